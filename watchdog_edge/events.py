@@ -1,0 +1,72 @@
+"""Frozen events returned by the core's ``feed`` and ``tick``; adapters act on them."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from typing import Any, Union
+
+
+def rfc3339(t: float) -> str:
+    """Core time (Unix seconds) as RFC 3339 text in UTC with millisecond precision."""
+    dt = datetime.fromtimestamp(t, tz=timezone.utc)
+    return dt.strftime("%Y-%m-%dT%H:%M:%S.") + f"{dt.microsecond // 1000:03d}Z"
+
+
+@dataclass(frozen=True, slots=True)
+class Alert:
+    """A raise or a clear of one check on one model, as published on the alert topic."""
+
+    alert_id: str
+    agent: str
+    model: str
+    model_version: str | None
+    check: str
+    state: str  # "raised" | "cleared"
+    severity: str  # "warning" | "critical"
+    t: float
+    summary: str
+    figures: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def ts(self) -> str:
+        return rfc3339(self.t)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The contract's JSON object."""
+        return {
+            "alert_id": self.alert_id,
+            "agent": self.agent,
+            "model": self.model,
+            "model_version": self.model_version,
+            "check": self.check,
+            "state": self.state,
+            "severity": self.severity,
+            "ts": self.ts,
+            "summary": self.summary,
+            "figures": self.figures,
+        }
+
+
+@dataclass(frozen=True, slots=True)
+class DeadLetter:
+    """A bad inbound record kept aside with its raw bytes and the reason."""
+
+    topic: str
+    t: float
+    reason: str
+    detail: str
+    payload: bytes
+
+
+@dataclass(frozen=True, slots=True)
+class VersionStarted:
+    """A model reported a new ``model_version``: its live windows start afresh."""
+
+    model: str
+    t: float
+    previous: str | None
+    version: str | None
+
+
+Event = Union[Alert, DeadLetter, VersionStarted]
