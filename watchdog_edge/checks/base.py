@@ -1,6 +1,6 @@
 """The one shape every check has.
 
-A check is fed predictions and pairs (``on_prediction``, ``on_pair``) and asked for a verdict
+A check is fed predictions, truths and pairs (``on_prediction``, ``on_truth``, ``on_pair``) and asked for a verdict
 (``evaluate``) after every input and on every tick. It returns ``None`` when it has nothing new
 to say (not enough data, or not due yet), else a :class:`Verdict` holding the level it wants to
 be at, hysteresis included. Turning levels into raised and cleared alerts is done in one place,
@@ -18,7 +18,7 @@ from typing import Any, ClassVar, Literal
 from pydantic import BaseModel, ConfigDict
 
 from ..cards import LossKind, ModelCard
-from ..records import Pair, Prediction
+from ..records import Pair, Prediction, Truth
 
 Level = Literal["ok", "warning", "critical"]
 
@@ -65,6 +65,9 @@ class Check:
 
     def on_prediction(self, prediction: Prediction) -> None:
         """Take one prediction (as it arrives, before any truth)."""
+
+    def on_truth(self, truth: Truth) -> None:
+        """Take one truth as it arrives (paired or not)."""
 
     def on_pair(self, pair: Pair, loss: float) -> None:
         """Take one pair and its loss (in the card's loss kind)."""
