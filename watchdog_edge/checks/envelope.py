@@ -1,0 +1,216 @@
+"""``range``: predictions made on inputs outside the training envelope (extrapolation).
+
+Each prediction's features are compared with the card's per-feature ``min`` and ``max``, widened
+on each side by ``margin`` x (max - min). The check keeps the last ``window`` predictions that
+carry features and the running count of those with at least one input outside; the share of
+outside predictions is the figure that raises and clears. Needs no truth. The figures give, per
+feature outside in the window, how many predictions were outside and the largest distance
+below ``low`` and above ``high`` (the envelope's edges), in the feature's own units.
+
+A feature that is null or absent in a prediction is not outside (``shift`` counts missing
+values); a feature the card does not describe is ignored; a prediction with no features at
+all is not counted.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from typing import Any
+
+from pydantic import Field, model_validator
+
+from ..records import Prediction
+from .base import Check, CheckContext, CheckSettings, Verdict
+from .levels import LevelGate
+
+
+class RangeSettings(CheckSettings):
+    """Settings of ``range``.
+
+    >>> s = RangeSettings(window=500, warning_share=0.02)
+    >>> s.critical_share, s.margin
+    (0.2, 0.0)
+    """
+
+    window: int = Field(200, ge=10, le=1_000_000, description="Number of latest predictions (with features) the share is taken over.")
+    margin: float = Field(0.0, ge=0, le=10, description="Widen each feature's [min, max] by this share of (max - min) on each side.")
+    warning_share: float = Field(0.05, gt=0, lt=1, description="Warning when more than this share of the window is outside the envelope.")
+    critical_share: float = Field(0.2, gt=0, le=1, description="Critical when more than this share of the window is outside the envelope.")
+    min_predictions: int = Field(100, ge=1, description="Predictions needed in the window before the first evaluation.")
+    evaluate_every: int = Field(20, ge=1, description="Predictions between evaluations.")
+    hysteresis: float = Field(0.2, ge=0, lt=1, description="Clear only when the share is at or below the limit x (1 - this).")
+    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+
+    @model_validator(mode="after")
+    def _order(self) -> "RangeSettings":
+        if self.critical_share < self.warning_share:
+            raise ValueError(f"critical_share ({self.critical_share}) must be >= warning_share ({self.warning_share})")
+        if self.min_predictions > self.window:
+            raise ValueError(f"min_predictions ({self.min_predictions}) must be <= window ({self.window})")
+        return self
+
+
+def _fmt(x: float) -> str:
+    return f"{x:.4g}"
+
+
+class RangeCheck(Check):
+    """Share of recent predictions whose inputs lie outside the card's envelope.
+
+    >>> from watchdog_edge.cards import ModelCard
+    >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 100}, fitted_parameters=2,
+    ...                  holdout={"loss": 1.0, "count": 50},
+    ...                  features={"temp": {"min": 0.0, "max": 50.0}})
+    >>> ctx = CheckContext("m", card, "squared", 1.0, "holdout")
+    >>> check = RangeCheck(RangeSettings(window=20, min_predictions=20, evaluate_every=20), ctx)
+    >>> for i in range(20):
+    ...     check.on_prediction(Prediction("m", str(i), 1.0, float(i), features={"temp": 58.0 if i < 5 else 20.0}))
+    >>> v = check.evaluate(20.0)
+    >>> v.level, v.figures["share"], v.figures["features"]["temp"]["max_above"]
+    ('critical', 0.25, 8.0)
+    """
+
+    name = "range"
+    settings_model = RangeSettings
+
+    def __init__(self, settings: RangeSettings, context: CheckContext) -> None:
+        super().__init__(settings, context)
+        self.settings: RangeSettings = settings
+        bounds = []
+        for fname, prof in context.card.features.items():
+            pad = settings.margin * (prof.max - prof.min)
+            bounds.append((fname, prof.min - pad, prof.max + pad))
+        self._bounds: tuple[tuple[str, float, float], ...] = tuple(bounds)
+        self._gate = LevelGate(settings.warning_share, settings.critical_share,
+                               settings.hysteresis, settings.clear_after)
+        self.reset()
+
+    def reset(self) -> None:
+        self._flags = bytearray(self.settings.window)  # 1 where the prediction was outside
+        self._pos = 0
+        self._filled = 0
+        self._outside = 0
+        self._seq = 0  # predictions taken so far
+        # (seq, {feature: signed distance}) of outside predictions still in the window
+        self._details: deque[tuple[int, dict[str, float]]] = deque()
+        self._since_eval = 0
+        self._gate.reset()
+        self._figures: dict[str, Any] = {}
+
+    def on_prediction(self, prediction: Prediction) -> None:
+        feats = prediction.features
+        if not feats or not self._bounds:
+            return
+        far: dict[str, float] | None = None
+        for fname, lo, hi in self._bounds:
+            x = feats.get(fname)
+            if x is None:
+                continue
+            if x < lo:
+                if far is None:
+                    far = {}
+                far[fname] = x - lo
+            elif x > hi:
+                if far is None:
+                    far = {}
+                far[fname] = x - hi
+        size = self.settings.window
+        pos = self._pos
+        if self._filled == size:
+            self._outside -= self._flags[pos]
+        else:
+            self._filled += 1
+        if far is None:
+            self._flags[pos] = 0
+        else:
+            self._flags[pos] = 1
+            self._outside += 1
+            self._details.append((self._seq, far))
+        self._seq += 1
+        self._pos = pos + 1 if pos + 1 < size else 0
+        self._since_eval += 1
+
+    def evaluate(self, t: float) -> Verdict | None:
+        s = self.settings
+        if self._since_eval < s.evaluate_every or self._filled < s.min_predictions:
+            return None
+        self._since_eval = 0
+        oldest = self._seq - self._filled
+        details = self._details
+        while details and details[0][0] < oldest:
+            details.popleft()
+        share = self._outside / self._filled
+        level = self._gate.update(share)
+        per: dict[str, dict[str, Any]] = {}
+        for _, far in details:
+            for fname, d in far.items():
+                f = per.get(fname)
+                if f is None:
+                    f = per[fname] = {"outside": 0, "max_below": None, "max_above": None}
+                f["outside"] += 1
+                if d < 0:
+                    if f["max_below"] is None or -d > f["max_below"]:
+                        f["max_below"] = -d
+                elif f["max_above"] is None or d > f["max_above"]:
+                    f["max_above"] = d
+        limits = {fname: (lo, hi) for fname, lo, hi in self._bounds}
+        for fname, f in per.items():
+            f["low"], f["high"] = limits[fname]
+        self._figures = {
+            "share": share,
+            "outside": self._outside,
+            "predictions": self._filled,
+            "warning_share": s.warning_share,
+            "critical_share": s.critical_share,
+            "margin": s.margin,
+            "features": per,
+        }
+        return Verdict(level, self._summary(level, share, per), dict(self._figures))
+
+    def _summary(self, level: str, share: float, per: dict[str, dict[str, Any]]) -> str:
+        s = self.settings
+        head = (f"{share:.1%} of the last {self._filled} predictions had inputs outside the "
+                f"training range")
+        if level == "ok":
+            return f"{head}, within the limit of {s.warning_share:.1%}."
+        limit = s.critical_share if level == "critical" else s.warning_share
+        if s.margin:
+            up, down = "the upper edge (training maximum plus margin)", "the lower edge (training minimum minus margin)"
+        else:
+            up, down = "the training maximum", "the training minimum"
+        worst = sorted(per.items(), key=lambda kv: -kv[1]["outside"])[:3]
+        parts = []
+        for fname, f in worst:
+            bits = []
+            if f["max_above"] is not None:
+                bits.append(f"up to {_fmt(f['max_above'])} above {up} {_fmt(f['high'])}")
+            if f["max_below"] is not None:
+                bits.append(f"up to {_fmt(f['max_below'])} below {down} {_fmt(f['low'])}")
+            parts.append(f"{fname} {' and '.join(bits)}")
+        more = "" if len(per) <= 3 else f" (and {len(per) - 3} more features)"
+        return (f"{head} (the {level} limit is {limit:.1%}), so the model is extrapolating: "
+                f"{'; '.join(parts)}{more}.")
+
+    def figures(self) -> dict[str, Any]:
+        out = dict(self._figures)
+        out["level"] = self._gate.level
+        return out
+
+    def snapshot(self) -> dict[str, Any]:
+        return {
+            "flags": self._flags.hex(), "pos": self._pos, "filled": self._filled,
+            "outside": self._outside, "seq": self._seq,
+            "details": [[seq, far] for seq, far in self._details],
+            "since_eval": self._since_eval, "gate": self._gate.snapshot(), "figures": self._figures,
+        }
+
+    def restore(self, data: dict[str, Any]) -> None:
+        self._flags = bytearray.fromhex(data["flags"])
+        self._pos = int(data["pos"])
+        self._filled = int(data["filled"])
+        self._outside = int(data["outside"])
+        self._seq = int(data["seq"])
+        self._details = deque((int(seq), {k: float(v) for k, v in far.items()}) for seq, far in data["details"])
+        self._since_eval = int(data["since_eval"])
+        self._gate.restore(data["gate"])
+        self._figures = data["figures"]
