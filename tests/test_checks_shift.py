@@ -1,0 +1,176 @@
+"""``shift``: population stability index per feature against the card's training histogram."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from pydantic import ValidationError
+from scipy import stats as sps
+
+from watchdog_edge.cards import ModelCard, format_validation
+from watchdog_edge.checks import settings_class
+from watchdog_edge.checks.base import CheckContext
+from watchdog_edge.checks.shift import (
+    ShiftCheck, ShiftSettings, population_stability_index, settings_warnings,
+)
+from watchdog_edge.records import Prediction
+
+TRAIN_ROWS = 10_000
+
+
+def training_card(rng: np.random.Generator, bins: int = 10) -> ModelCard:
+    """A card whose histograms are the deciles of a training sample (edges from its quantiles)."""
+    feats = {}
+    for name, sample in (("pressure", rng.normal(5.0, 1.0, TRAIN_ROWS)),
+                         ("speed", rng.gamma(2.0, 3.0, TRAIN_ROWS))):
+        edges = np.quantile(sample, np.linspace(0, 1, bins + 1))
+        inner = edges[1:-1]
+        idx = np.searchsorted(inner, sample, side="right")
+        shares = np.bincount(idx, minlength=bins) / TRAIN_ROWS
+        feats[name] = {"min": float(sample.min()), "max": float(sample.max()),
+                       "histogram": {"edges": edges.tolist(), "shares": shares.tolist()}}
+    return ModelCard(model_id="press", training={"loss": 1.0, "count": TRAIN_ROWS},
+                     fitted_parameters=3, holdout={"loss": 1.0, "count": 500}, features=feats)
+
+
+def make_check(card: ModelCard, **settings) -> ShiftCheck:
+    return ShiftCheck(ShiftSettings(**settings), CheckContext("press", card, "squared", 1.0, "holdout"))
+
+
+def feed(check: ShiftCheck, pressure, speed, start: int = 0) -> list:
+    out = []
+    for i, (p, s) in enumerate(zip(pressure, speed), start):
+        check.on_prediction(Prediction("press", str(i), 0.0, float(i),
+                                       features={"pressure": p, "speed": s}))
+        v = check.evaluate(float(i))
+        if v is not None:
+            out.append(v)
+    return out
+
+
+def test_worked_example_by_hand():
+    # Expected shares 10/20/40/20/10 %, observed 20/20/30/20/10 of 100, no smoothing:
+    #   (0.2 - 0.1) ln(0.2/0.1) = 0.1 x 0.693147 = 0.0693147
+    #   (0.3 - 0.4) ln(0.3/0.4) = 0.1 x 0.287682 = 0.0287682
+    #   the three equal bins add 0;  PSI = 0.0980829
+    assert population_stability_index([0.1, 0.2, 0.4, 0.2, 0.1], [20, 20, 30, 20, 10], 0.0) == pytest.approx(
+        0.0980829, abs=1e-7)
+    # With smoothing 0.5 and an empty bin: expected 50/50 %, observed 10 and 0 (n = 10, 2 bins):
+    #   a = (10.5/11, 0.5/11) = (0.954545, 0.045455);  e = (5.5/11, 5.5/11) = (0.5, 0.5)
+    #   0.454545 ln(1.909091) + 0.454545 ln(11) = 0.293921 + 1.089952 = 1.383873
+    assert population_stability_index([0.5, 0.5], [10, 0], 0.5) == pytest.approx(1.383873, abs=1e-6)
+    # Without smoothing an empty bin makes the index infinite.
+    assert population_stability_index([0.5, 0.5], [10, 0], 0.0) == math.inf
+
+
+def test_index_is_the_symmetric_kullback_leibler_divergence():
+    # PSI = KL(a || e) + KL(e || a) (Jeffreys divergence); scipy.stats.entropy computes KL.
+    rng = np.random.default_rng(3)
+    for _ in range(20):
+        e = rng.dirichlet(np.ones(8))
+        c = rng.integers(0, 60, 8)
+        s = 0.5
+        n = c.sum()
+        a_sm = (c + s) / (n + 8 * s)
+        e_sm = (e * n + s) / (n + 8 * s)
+        ref = sps.entropy(a_sm, e_sm) + sps.entropy(e_sm, a_sm)
+        assert population_stability_index(e.tolist(), c.tolist(), s) == pytest.approx(ref, rel=1e-10)
+
+
+def test_bins_follow_the_card_edges_with_open_outer_bins():
+    card = ModelCard(model_id="press", training={"loss": 1.0, "count": 10}, fitted_parameters=1,
+                     holdout={"loss": 1.0, "count": 10},
+                     features={"pressure": {"min": 0, "max": 3, "histogram": {
+                         "edges": [0.0, 1.0, 2.0, 3.0], "shares": [0.3, 0.4, 0.3], "missing": 0.1}}})
+    check = make_check(card, window=50, evaluate_every=50)
+    values = [-100.0, 0.0, 0.99, 1.0, 1.5, 2.0, 2.999, 3.0, 1e6, None] * 5
+    feed(check, values, [1.0] * 50)
+    f = check._features[0]
+    # numpy's searchsorted on the inner edges, side='right', is the [e_i, e_i+1) convention;
+    # values below the first edge fall in bin 0 and at or above the last edge in the top bin.
+    x = np.array([v for v in values if v is not None])
+    ref = np.bincount(np.searchsorted([1.0, 2.0], x, side="right"), minlength=3)
+    assert f.counts[:3] == ref.tolist()
+    assert f.counts[3] == 5                         # the missing bin
+    # The expected side spreads the present share over the bins and keeps the missing share.
+    assert f.expected == pytest.approx([0.27, 0.36, 0.27, 0.1])
+
+
+def test_false_alarm_rate_on_unshifted_data_at_the_default_window_is_below_one_percent():
+    rng = np.random.default_rng(11)
+    card = training_card(rng)
+    settings = ShiftSettings()
+    assert settings.window == 1000
+    windows = 300
+    check = make_check(card, evaluate_every=settings.window)   # disjoint windows
+    n = windows * settings.window
+    verdicts = feed(check, rng.normal(5.0, 1.0, n).tolist(), rng.gamma(2.0, 3.0, n).tolist())
+    assert len(verdicts) == windows
+    alarms = sum(v.level != "ok" for v in verdicts)
+    assert alarms / windows < 0.01
+    # The bias the module docstring states: n x PSI is about chi-square with (bins - 1) degrees
+    # of freedom (Pearson's statistic), inflated by the training sample's own noise, so the mean
+    # index is about (bins - 1) (1/n + 1/N). Chi-square approximation from memory; scipy gives
+    # the 99.9% quantile to bound the worst window.
+    idx = np.array([v.figures["index"]["pressure"] for v in verdicts])
+    scale = 1 / settings.window + 1 / TRAIN_ROWS
+    assert idx.mean() == pytest.approx(9 * scale, rel=0.15)
+    assert idx.max() < sps.chi2.ppf(0.999, 9) * scale * 1.3
+    assert idx.max() < settings.warning / 3
+
+
+def test_a_shifted_feature_raises_and_is_named():
+    rng = np.random.default_rng(5)
+    card = training_card(rng)
+    check = make_check(card, evaluate_every=250)
+    calm = feed(check, rng.normal(5.0, 1.0, 2000).tolist(), rng.gamma(2.0, 3.0, 2000).tolist())
+    assert {v.level for v in calm} == {"ok"}
+    # Pressure moves up by half a standard deviation; speed is unchanged.
+    moved = feed(check, rng.normal(5.5, 1.0, 2000).tolist(), rng.gamma(2.0, 3.0, 2000).tolist(), start=2000)
+    assert moved[-1].level != "ok"
+    figs = moved[-1].figures
+    assert figs["top_feature"] == "pressure"
+    assert figs["index"]["pressure"] > 0.1 > figs["index"]["speed"]
+    assert "pressure" in moved[-1].summary
+    json.dumps(figs)
+    # A full standard deviation is critical.
+    far = feed(check, rng.normal(6.0, 1.0, 1000).tolist(), rng.gamma(2.0, 3.0, 1000).tolist(), start=4000)
+    assert far[-1].level == "critical"
+
+
+def test_a_feature_that_goes_missing_raises():
+    rng = np.random.default_rng(9)
+    card = training_card(rng)
+    check = make_check(card, evaluate_every=1000)
+    [v] = feed(check, [None] * 1000, rng.gamma(2.0, 3.0, 1000).tolist())
+    assert v.level == "critical" and v.figures["top_feature"] == "pressure"
+
+
+def test_snapshot_restore_mid_stream_gives_identical_verdicts():
+    rng = np.random.default_rng(21)
+    card = training_card(rng)
+    p = np.r_[rng.normal(5.0, 1.0, 1500), rng.normal(5.4, 1.2, 1500)].tolist()
+    s = rng.gamma(2.0, 3.0, 3000).tolist()
+    live = make_check(card, evaluate_every=90)
+    feed(live, p[:1300], s[:1300])
+    copy = make_check(card, evaluate_every=90)
+    copy.restore(json.loads(json.dumps(live.snapshot())))
+    a = feed(live, p[1300:], s[1300:], start=1300)
+    b = feed(copy, p[1300:], s[1300:], start=1300)
+    assert a == b and any(v.level != "ok" for v in a)
+
+
+def test_small_windows_are_warned_about_and_bad_settings_explained():
+    assert settings_class("shift") is ShiftSettings
+    assert settings_warnings(ShiftSettings()) == []
+    [w] = settings_warnings(ShiftSettings(window=200))
+    assert "shift.window = 200" in w and "1000" in w
+    with pytest.raises(ValidationError) as e:
+        ShiftSettings(warning=0.3, critical=0.2)
+    assert "critical (0.2) must be >= warning (0.3)" in format_validation(e.value)
+    with pytest.raises(ValidationError) as e:
+        ShiftSettings(smoothing=0)
+    assert "smoothing = 0" in format_validation(e.value)
