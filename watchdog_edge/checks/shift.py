@@ -63,12 +63,12 @@ def settings_warnings(settings: ShiftSettings) -> list[str]:
     """Advice on settings that are valid but unwise, for ``check-config`` to print.
 
     >>> settings_warnings(ShiftSettings(window=300))[0][:40]
-    'shift.window = 300 is below 1000: the po'
+    'window = 300 is below 1000: the populati'
     """
     out = []
     if settings.window < ADVISED_MIN_WINDOW:
         out.append(
-            f"shift.window = {settings.window} is below {ADVISED_MIN_WINDOW}: the population stability "
+            f"window = {settings.window} is below {ADVISED_MIN_WINDOW}: the population stability "
             f"index is biased upwards on small windows (about bins/window on unchanged inputs), so "
             f"false alarms become likely; use window >= {ADVISED_MIN_WINDOW} or raise 'warning'"
         )

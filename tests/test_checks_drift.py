@@ -1,0 +1,184 @@
+"""``drift``: change detection on the loss stream (river's ADWIN and Page-Hinkley), rises only."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from pydantic import ValidationError
+
+from watchdog_edge.cards import ModelCard, format_validation
+from watchdog_edge.checks import settings_class
+from watchdog_edge.checks.base import CheckContext
+from watchdog_edge.checks.drift import DriftCheck, DriftSettings, change_point
+from watchdog_edge.records import Pair, Prediction, Truth
+
+EXPECTED = 4.0  # expected squared error: residual standard deviation 2
+
+
+def make_check(window: int = 300, min_pairs: int = 50, **settings) -> DriftCheck:
+    card = ModelCard(model_id="boiler", training={"loss": EXPECTED, "count": 1000}, fitted_parameters=4,
+                     holdout={"loss": EXPECTED, "count": 300})
+    ctx = CheckContext("boiler", card, "squared", EXPECTED, "holdout", window_size=window, min_pairs=min_pairs)
+    return DriftCheck(DriftSettings(**settings), ctx)
+
+
+def errors(rng: np.random.Generator, *parts: tuple[int, float]) -> np.ndarray:
+    """Normal errors in consecutive parts of (count, standard deviation)."""
+    return np.concatenate([rng.normal(0.0, sd, n) for n, sd in parts])
+
+
+def run(check: DriftCheck, err: np.ndarray, start: int = 0, dt: float = 10.0) -> list[tuple[int, object]]:
+    out = []
+    for i, e in enumerate(err, start):
+        t = 1_700_000_000.0 + i * dt
+        pair = Pair(Prediction("boiler", str(i), 50.0, t - 5, ts=t - 7),
+                    Truth("boiler", str(i), 50.0 + float(e), t, ts=t - 2), t)
+        check.on_pair(pair, float(e) ** 2)
+        v = check.evaluate(t)
+        if v is not None:
+            out.append((i, v))
+    return out
+
+
+def test_a_rise_in_the_loss_is_raised_with_its_change_point_and_the_loss_before_and_after():
+    rng = np.random.default_rng(4)
+    err = errors(rng, (3000, 2.0), (1500, 4.0))      # mean squared error 4, then 16
+    out = run(make_check(), err)
+    assert out, "the rise was not detected"
+    i, v = out[0]
+    assert v.level == "warning"
+    assert 3000 <= i <= 3000 + 200                     # stated delay: within 200 pairs
+    f = v.figures
+    cp = round((f["change_t"] - 1_700_000_000.0) / 10)
+    assert abs(cp - 3000) <= 30
+    assert f["change_ts"] == pytest.approx(f["change_t"] - 2)   # the truth's source time
+    # The means are plain means of the squared errors on each side of the change point; the
+    # before side is the segment the detector held (since the start here).
+    sq = err ** 2
+    assert f["mean_before"] == pytest.approx(sq[:cp].mean())
+    assert f["mean_after"] == pytest.approx(sq[cp:i + 1].mean())
+    assert f["mean_before"] == pytest.approx(4.0, rel=0.1) and f["mean_after"] > 10
+    assert f["detector"] == "ADWIN"
+    assert "changed for the worse" in v.summary and "ADWIN" in v.summary
+    json.dumps(f)
+    # Nothing else is said while the loss stays high.
+    assert len(out) == 1
+
+
+def test_detections_are_river_adwin_fed_the_clipped_loss_ratio():
+    # river.drift.ADWIN driven directly with min(loss / expected, clip) detects at the same pairs.
+    from river import drift
+
+    rng = np.random.default_rng(8)
+    err = errors(rng, (2000, 2.0), (1000, 5.0), (1000, 1.0), (1000, 6.0))
+    ref = drift.ADWIN(delta=0.002)
+    ref_hits = []
+    for i, e in enumerate(err):
+        ref.update(min(e * e / EXPECTED, 10.0))
+        if ref.drift_detected:
+            ref_hits.append(i)
+    check = make_check()
+    ours = []
+    for i, e in enumerate(err):
+        pair = Pair(Prediction("boiler", str(i), 0.0, float(i)), Truth("boiler", str(i), float(e), float(i)), float(i))
+        before = check.figures()["detections"]
+        check.on_pair(pair, float(e) ** 2)
+        check.evaluate(float(i))
+        if check.figures()["detections"] > before:
+            ours.append(i)
+    assert ours == ref_hits and len(ref_hits) >= 3
+
+
+def test_falls_are_ignored():
+    rng = np.random.default_rng(2)
+    check = make_check()
+    out = run(check, errors(rng, (3000, 2.0), (2000, 0.7)))
+    assert out == []
+    assert check.figures()["detections"] >= 1
+    assert check.figures()["detections"] == check.snapshot()["ignored"]
+
+
+def test_clears_when_the_loss_since_the_change_recovers():
+    rng = np.random.default_rng(6)
+    check = make_check(window=200, min_pairs=50, clear_after=3, evaluate_every=10)
+    out = run(check, errors(rng, (2000, 2.0), (600, 4.0), (1500, 2.0)))
+    levels = [(i, v.level) for i, v in out]
+    assert [lv for _, lv in levels] == ["warning", "ok"]
+    raised_at, cleared_at = levels[0][0], levels[1][0]
+    assert 2000 <= raised_at <= 2200
+    assert 2600 < cleared_at <= 2600 + 600
+    cleared = out[1][1]
+    # The clear rule is gap's: mean loss since the change at or below 4 x 1.25 x 0.9 = 4.5.
+    assert cleared.figures["clear_limit"] == pytest.approx(4.5)
+    assert cleared.figures["live_loss_since_change"] <= 4.5
+    assert "back within the clearing limit" in cleared.summary
+
+
+def test_hold_clears_after_the_hold_time_on_a_tick():
+    rng = np.random.default_rng(6)
+    check = make_check(clear_on="hold", hold_s=3600)
+    out = run(check, errors(rng, (2000, 2.0), (400, 4.0)))
+    [(i, v)] = out
+    t_raise = 1_700_000_000.0 + i * 10
+    assert check.evaluate(t_raise + 3599) is None
+    v = check.evaluate(t_raise + 3600)
+    assert v.level == "ok" and "held for 3600 s" in v.summary
+
+
+def test_page_hinkley_detects_the_same_rise():
+    rng = np.random.default_rng(4)
+    out = run(make_check(detector="page_hinkley"), errors(rng, (3000, 2.0), (1500, 4.0)))
+    i, v = out[0]
+    assert 3000 <= i <= 3300 and v.figures["detector"] == "Page-Hinkley"
+    assert abs(round((v.figures["change_t"] - 1_700_000_000.0) / 10) - 3000) <= 50
+
+
+def test_no_alarm_on_a_long_stationary_stream():
+    rng = np.random.default_rng(10)
+    check = make_check()
+    assert run(check, errors(rng, (50_000, 2.0))) == []
+
+
+def test_change_point_is_the_least_squares_split():
+    # Brute force with numpy: the split minimising the residual sum of squares of two means.
+    rng = np.random.default_rng(12)
+    for _ in range(30):
+        n = int(rng.integers(12, 200))
+        k0 = int(rng.integers(5, n - 5))
+        x = np.r_[rng.normal(0, 1, k0), rng.normal(rng.uniform(-3, 3), 1, n - k0)]
+        rss = [((x[:k] - x[:k].mean()) ** 2).sum() + ((x[k:] - x[k:].mean()) ** 2).sum()
+               for k in range(5, n - 4)]
+        assert change_point(x) == 5 + int(np.argmin(rss))
+
+
+def test_snapshot_restore_mid_episode_gives_identical_verdicts():
+    rng = np.random.default_rng(14)
+    err = errors(rng, (1500, 2.0), (800, 4.5), (1500, 2.0), (700, 5.0))
+    live = make_check()
+    run(live, err[:2100])                 # inside the first episode
+    assert live.figures()["level"] == "warning"
+    copy = make_check()
+    copy.restore(json.loads(json.dumps(live.snapshot())))
+    a = run(live, err[2100:], start=2100)
+    b = run(copy, err[2100:], start=2100)
+    assert a == b and [v.level for _, v in a] == ["ok", "warning"]
+
+
+def test_settings_do_not_import_river_and_are_explained():
+    code = ("import sys; from watchdog_edge.checks import settings_class as s\n"
+            "for n in ('gap', 'range', 'shift', 'silence', 'drift', 'baseline'):\n"
+            "    try:\n        s(n)\n    except ModuleNotFoundError:\n        pass\n"
+            "print(sorted(m for m in ('river', 'scipy') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
+    assert settings_class("drift") is DriftSettings
+    with pytest.raises(ValidationError) as e:
+        DriftSettings(detector="cusum")
+    assert "detector = 'cusum'" in format_validation(e.value)
+    with pytest.raises(ValidationError) as e:
+        DriftSettings(clip=0.5)
+    assert "clip = 0.5" in format_validation(e.value)
