@@ -1,0 +1,166 @@
+"""The SQLite state file: journal, snapshots, outbox and dead letters on a real file."""
+
+from __future__ import annotations
+
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import textwrap
+
+import pytest
+
+from watchdog_edge.errors import WatchdogError
+from watchdog_edge.events import DeadLetter
+from watchdog_edge.store import JournalEntry, OutboxItem, Store, read_dead_letters
+
+
+def _msg(i: int, t: float = 0.0) -> JournalEntry:
+    return JournalEntry(t=t or 1000.0 + i, topic="plant/pred", payload=f'{{"id": {i}, "value": 1.5}}'.encode(), mid=i)
+
+
+def test_wal_and_synchronous_modes_are_in_force(tmp_path):
+    # PRAGMA journal_mode / synchronous read back what SQLite actually uses (SQLite docs, "PRAGMA").
+    s = Store(tmp_path / "a.sqlite")
+    assert s.journal_mode == "WAL"
+    assert s.synchronous == "NORMAL"
+    s.close()
+    f = Store(tmp_path / "b.sqlite", synchronous="FULL")
+    assert f.synchronous == "FULL"
+    f.close()
+    with pytest.raises(WatchdogError, match="NORMAL' or 'FULL"):
+        Store(tmp_path / "c.sqlite", synchronous="OFF")  # type: ignore[arg-type]
+
+
+def test_journal_keeps_messages_and_ticks_in_order_and_bytes_exact(tmp_path):
+    s = Store(tmp_path / "s.sqlite")
+    raw = b"\xff\xfe not utf-8 \x00"
+    last = s.append([_msg(1), JournalEntry(t=1001.5, tick=True), JournalEntry(t=1002.0, topic="x/y", payload=raw)])
+    assert last == 3
+    tail = list(s.journal_tail(0))
+    assert [(e.t, e.topic, e.tick) for e in tail] == [(1001.0, "plant/pred", False), (1001.5, None, True),
+                                                     (1002.0, "x/y", False)]
+    assert tail[2].payload == raw and tail[0].mid == 1
+    assert [e.seq for e in s.journal_tail(2)] == [3]
+    s.close()
+
+
+def test_snapshot_trims_the_journal_and_a_reopen_resumes_from_it(tmp_path):
+    path = tmp_path / "s.sqlite"
+    s = Store(path)
+    s.append([_msg(i) for i in range(5)])
+    covered = s.save_snapshot({"models": {"m": {"n": 5}}}, t=1005.0)
+    assert covered == 5 and s.journal_depth() == 0
+    s.append([_msg(i) for i in range(5, 8)])
+    s.save_snapshot({"models": {"m": {"n": 7}}}, t=1007.0, journal_seq=7)  # row 8 not covered
+    s.close()
+
+    r = Store(path)
+    snap = r.latest_snapshot()
+    assert snap is not None and snap.data == {"models": {"m": {"n": 7}}} and snap.journal_seq == 7
+    assert [e.seq for e in r.journal_tail(snap.journal_seq)] == [8]
+    # seq numbers keep growing after trims, so a tail is never confused with old rows
+    assert r.append([_msg(9)]) == 9
+    assert r._db.execute("SELECT COUNT(*) FROM snapshots").fetchone()[0] == 1
+    r.close()
+
+
+def test_outbox_holds_alerts_until_acknowledged_and_counts_them(tmp_path):
+    s = Store(tmp_path / "s.sqlite")
+    a1 = OutboxItem("id-1", "watchdog/m/alerts", b'{"alert_id": "id-1"}', 10.0)
+    a2 = OutboxItem("id-2", "watchdog/m/alerts", b'{"alert_id": "id-2"}', 11.0)
+    s.append([_msg(1)], [a1])
+    s.append([_msg(2)], [a2, a1])  # the same alert id again is kept once
+    assert [a.alert_id for a in s.outbox()] == ["id-1", "id-2"]
+    assert s.mark_sent(["id-1", "unknown"]) == 1
+    assert [a.alert_id for a in s.outbox()] == ["id-2"] and s.outbox_depth() == 1
+    assert s.counter("alerts_sent") == 1
+    s.close()
+
+
+def test_a_failed_batch_leaves_neither_journal_rows_nor_alerts(tmp_path):
+    s = Store(tmp_path / "s.sqlite")
+    bad = OutboxItem("id-x", "t", None, 1.0)  # type: ignore[arg-type]  # bytes(None) fails mid-batch
+    with pytest.raises(TypeError):
+        s.append([_msg(1), _msg(2)], [bad])
+    assert s.journal_depth() == 0 and s.outbox_depth() == 0
+    s.close()
+
+
+def test_a_killed_writer_never_leaves_alerts_without_their_journal_rows(tmp_path):
+    # A real process appends batches (5 messages + 1 alert each) until it is SIGKILLed; after
+    # that the file must hold whole batches only: the transaction is the unit (SQLite atomic commit).
+    path = tmp_path / "s.sqlite"
+    code = textwrap.dedent(f"""
+        import sys
+        from watchdog_edge.store import Store, JournalEntry, OutboxItem
+        s = Store({str(path)!r})
+        i = 0
+        while True:
+            rows = [JournalEntry(t=float(i * 5 + k), topic="p", payload=b"x" * 200) for k in range(5)]
+            s.append(rows, [OutboxItem(f"a{{i}}", "o", b"alert", float(i))])
+            i += 1
+            if i == 50:
+                print("ready", flush=True)
+    """)
+    proc = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
+    assert proc.stdout.readline().strip() == "ready"
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait(timeout=10)
+    s = Store(path)
+    n_alerts, n_rows = s.outbox_depth(), s.journal_depth()
+    assert n_alerts >= 50
+    assert n_rows == 5 * n_alerts
+    assert s._db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    s.close()
+
+
+def test_dead_letters_are_bounded_by_count_and_bytes_and_readable_back(tmp_path):
+    path = tmp_path / "s.sqlite"
+    s = Store(path, dead_letter_max_count=3, dead_letter_max_bytes=2048)
+    for i in range(5):
+        s.add_dead_letters([DeadLetter("plant/pred", float(i), "not_json", f"line {i}", f"bad {i}".encode())])
+    kept = s.dead_letters()
+    assert [d.detail for d in kept] == ["line 2", "line 3", "line 4"]  # oldest dropped first
+    assert s.dead_letter_stats() == {"count": 3, "bytes": sum(len(d.payload) for d in kept), "dropped": 2}
+
+    big = b"{" * 5000
+    s.add_dead_letters([DeadLetter("plant/pred", 9.0, "too_large", "5000 bytes", big)])
+    stats = s.dead_letter_stats()
+    assert stats["bytes"] <= 2048
+    newest = s.dead_letters(limit=1)[0]
+    assert newest.reason == "too_large" and newest.size == 5000 and newest.truncated
+    assert newest.payload == big[:2048]
+
+    # An operator reads them while the agent still has the file open (WAL readers do not block).
+    back = read_dead_letters(path)
+    assert [d.reason for d in back] == [d.reason for d in s.dead_letters()]
+    assert back[-1].to_dict()["size"] == 5000
+    s.close()
+
+
+def test_non_utf8_dead_letter_reads_back_as_base64(tmp_path):
+    s = Store(tmp_path / "s.sqlite")
+    s.add_dead_letters([DeadLetter("a/b", 1.0, "not_json", "bytes", b"\xff\x00\x81")])
+    d = s.dead_letters()[0].to_dict()
+    assert "payload" not in d and d["payload_b64"] == "/wCB"  # base64 of ff 00 81 (RFC 4648)
+    s.close()
+
+
+def test_reading_a_missing_or_foreign_file_says_what_to_check(tmp_path):
+    with pytest.raises(WatchdogError, match="agent.state_dir"):
+        read_dead_letters(tmp_path / "none.sqlite")
+    other = tmp_path / "other.sqlite"
+    sqlite3.connect(other).execute("CREATE TABLE x (a)").connection.commit()
+    with pytest.raises(WatchdogError, match="not a watchdog-edge state file"):
+        read_dead_letters(other)
+
+
+def test_a_newer_schema_is_refused(tmp_path):
+    path = tmp_path / "s.sqlite"
+    s = Store(path)
+    s._db.execute("UPDATE meta SET value = '99' WHERE key = 'schema_version'")
+    s.close()
+    with pytest.raises(WatchdogError, match="schema 99"):
+        Store(path)
