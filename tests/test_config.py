@@ -1,0 +1,77 @@
+"""Config loading: defaults, and errors that name the key, the value and the rule."""
+
+import pytest
+
+from watchdog_edge.config import load_config, parse_config
+from watchdog_edge.errors import ConfigError
+
+MODEL = {"id": "m", "card": "m.json", "prediction_topic": "a/pred", "truth_topic": "a/truth"}
+
+
+def err(data) -> str:
+    with pytest.raises(ConfigError) as e:
+        parse_config(data)
+    return str(e.value)
+
+
+def test_defaults_are_filled_in():
+    cfg = parse_config({"models": [MODEL]})
+    m = cfg.models[0]
+    assert m.window.size == 500 and m.pairing.horizon_s == 7200
+    assert cfg.broker.topics.alerts == "watchdog/{model}/alerts"
+    assert m.checks["gap"].warning_tolerance == 0.25 and m.checks["gap"].critical_tolerance == 1.0
+    assert "gap" in m.enabled_checks()
+
+
+def test_error_names_key_value_and_rule():
+    msg = err({"models": [dict(MODEL, window={"size": 0})]})
+    assert "models[0] (id 'm').window.size = 0" in msg and "greater than or equal to 2" in msg
+
+
+def test_unknown_key_is_named():
+    msg = err({"models": [dict(MODEL, widow={"size": 5})]})
+    assert "widow" in msg and "unknown key" in msg
+
+
+def test_unknown_check_lists_the_known_ones():
+    msg = err({"models": [dict(MODEL, checks={"gapp": {}})]})
+    assert "'gapp'" in msg and "gap" in msg
+
+
+def test_check_setting_error_is_named():
+    msg = err({"models": [dict(MODEL, checks={"gap": {"confidence": 1.5}})]})
+    assert "checks.gap.confidence = 1.5" in msg
+
+
+def test_wildcards_in_model_id_and_bad_filters_are_refused():
+    assert "model id 'a+b'" in err({"models": [dict(MODEL, id="a+b")]})
+    assert "'#' must be a whole level" in err({"models": [dict(MODEL, truth_topic="a/#/b")]})
+
+
+def test_duplicate_model_ids():
+    assert "appears twice" in err({"models": [MODEL, MODEL]})
+
+
+def test_needs_a_model():
+    assert "models" in err({})
+
+
+def test_both_password_sources_refused():
+    assert "not both" in err({"models": [MODEL], "broker": {"password_file": "p", "password_env": "P"}})
+
+
+def test_file_errors(tmp_path):
+    with pytest.raises(ConfigError, match="not found"):
+        load_config(tmp_path / "missing.toml")
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[agent\nname = 1\n")
+    with pytest.raises(ConfigError, match="not valid TOML"):
+        load_config(bad)
+
+
+def test_paths_resolve_against_the_config_folder(tmp_path):
+    p = tmp_path / "sub" / "c.toml"
+    p.parent.mkdir()
+    p.write_text('[[models]]\nid = "m"\ncard = "cards/m.json"\nprediction_topic = "a"\ntruth_topic = "b"\n')
+    cfg = load_config(p)
+    assert cfg.resolve(cfg.models[0].card) == (tmp_path / "sub" / "cards" / "m.json").resolve()

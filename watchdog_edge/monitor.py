@@ -1,0 +1,372 @@
+"""The sans-I/O monitoring core: topic, payload and receive time in; events out.
+
+``feed`` and ``tick`` are all an adapter needs. Internally ``feed`` is ``apply(intake(...))``:
+``intake`` routes, parses and pairs (it owns the pairing buffers and the bad-record counters);
+``apply`` runs the live windows, the checks and the alert states. A tuner intakes a recording
+once and applies the same steps to many monitors built with other check settings.
+
+The core never reads a clock, opens a socket, starts a thread or touches disk.
+"""
+
+from __future__ import annotations
+
+import base64
+from collections import deque
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Iterable
+
+from . import checks as registry
+from .alerts import AlertBook
+from .cards import ModelCard, expected_loss, load_card
+from .checks.base import Check, CheckContext
+from .config import Config, ModelSettings, load_config
+from .errors import CardError, ConfigError
+from .events import Alert, DeadLetter, Event, VersionStarted
+from .losses import loss_function
+from .pairing import COUNTERS as PAIR_COUNTERS
+from .pairing import Pairer
+from .parsing import REASONS, BadRecord, RecordParser, decode, element_bytes
+from .records import Pair, Prediction, Truth
+from .topics import Router
+
+SNAPSHOT_FORMAT = 1
+
+
+@dataclass(frozen=True, slots=True)
+class Step:
+    """One unit of work for ``apply``: a prediction, truth, pair or tick of one model."""
+
+    kind: str  # "prediction" | "truth" | "pair" | "tick"
+    t: float
+    model: str | None = None
+    item: Prediction | Truth | Pair | None = None
+
+
+class ModelTrack:
+    """Windows, checks and alert states of one model."""
+
+    def __init__(self, agent: str, settings: ModelSettings, card: ModelCard) -> None:
+        self.settings = settings
+        self.card = card
+        try:
+            exp, source = expected_loss(card)
+        except CardError as e:
+            raise ConfigError(f"models[{settings.id}].card: {e}") from None
+        self.context = CheckContext(
+            model=settings.id, card=card, loss_kind=card.loss, expected_loss=exp,
+            expected_source=source, window_size=settings.window.size,
+            window_max_age_s=settings.window.max_age_s, min_pairs=settings.window.min_pairs,
+        )
+        self.loss = loss_function(card.loss)
+        self.checks: dict[str, Check] = {}
+        for name in settings.enabled_checks():
+            cls = registry.check_class(name)
+            self.checks[name] = cls(settings.checks[name], self.context)
+        self.book = AlertBook(agent, settings.id)
+        self.version: str | None = None
+        self.version_seen = False
+        self.pairs = 0
+        self.stale_pairs = 0
+        self.last_alert_t: float | None = None
+
+    def _collect(self, t: float, out: list[Event]) -> None:
+        for name, check in self.checks.items():
+            verdict = check.evaluate(t)
+            if verdict is not None:
+                alert = self.book.update(name, verdict, t, self.version)
+                if alert is not None:
+                    self.last_alert_t = t
+                    out.append(alert)
+
+    def prediction(self, p: Prediction, out: list[Event]) -> None:
+        if p.model_version is not None and p.model_version != self.version:
+            if self.version_seen or self.version is not None:
+                out.extend(self.book.close_all(
+                    p.t, self.version, f"Model version {p.model_version} replaced {self.version}; live windows start afresh."))
+                for check in self.checks.values():
+                    check.reset()
+            out.append(VersionStarted(self.settings.id, p.t, self.version, p.model_version))
+            self.version = p.model_version
+        self.version_seen = True
+        for check in self.checks.values():
+            check.on_prediction(p)
+        self._collect(p.t, out)
+
+    def truth(self, tr: Truth, out: list[Event]) -> None:
+        for check in self.checks.values():
+            check.on_truth(tr)
+        self._collect(tr.t, out)
+
+    def pair(self, pr: Pair, out: list[Event]) -> None:
+        v = pr.prediction.model_version
+        if v is not None and v != self.version:
+            self.stale_pairs += 1  # the pair belongs to a version no longer live
+            return
+        self.pairs += 1
+        loss = self.loss(pr.truth.value, pr.prediction.value)
+        for check in self.checks.values():
+            check.on_pair(pr, loss)
+        self._collect(pr.t, out)
+
+    def tick(self, t: float, out: list[Event]) -> None:
+        self._collect(t, out)
+
+    def state(self) -> dict[str, Any]:
+        checks = {}
+        for name, check in self.checks.items():
+            checks[name] = {"state": self.book.level(name), "figures": check.figures()}
+        return {
+            "model": self.settings.id, "model_version": self.version, "pairs": self.pairs,
+            "stale_pairs": self.stale_pairs, "expected_loss": self.context.expected_loss,
+            "expected_source": self.context.expected_source, "loss": self.context.loss_kind,
+            "checks": checks,
+        }
+
+    def snapshot(self) -> dict[str, Any]:
+        return {
+            "version": self.version, "version_seen": self.version_seen, "pairs": self.pairs,
+            "stale_pairs": self.stale_pairs, "book": self.book.snapshot(),
+            "checks": {n: c.snapshot() for n, c in self.checks.items()},
+        }
+
+    def restore(self, data: dict[str, Any]) -> None:
+        self.version = data["version"]
+        self.version_seen = data["version_seen"]
+        self.pairs = data["pairs"]
+        self.stale_pairs = data["stale_pairs"]
+        self.book.restore(data["book"])
+        for n, c in self.checks.items():
+            if n in data["checks"]:
+                c.restore(data["checks"][n])
+
+
+class Monitor:
+    """The core. Feed it what a recording line holds; act on the events it returns.
+
+    >>> from watchdog_edge.config import parse_config
+    >>> cfg = parse_config({"models": [{"id": "m", "card": "m.json",
+    ...     "prediction_topic": "site/pred", "truth_topic": "site/truth"}]})
+    >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 200}, fitted_parameters=3,
+    ...                  least_squares=True)
+    >>> mon = Monitor(cfg, {"m": card})
+    >>> mon.feed("site/pred", b'{"id": 1, "value": 2.0}', t=100.0)
+    []
+    >>> mon.feed("site/truth", b'{"id": "1", "value": 2.5}', t=160.0)
+    []
+    >>> mon.status()["models"]["m"]["paired"]
+    1
+    """
+
+    def __init__(self, config: Config, cards: dict[str, ModelCard]) -> None:
+        self.config = config
+        self.agent = config.agent.name
+        routes: list[tuple[str, str, str]] = []
+        self.parsers: dict[tuple[str, str], RecordParser] = {}
+        self.pairers: dict[str, Pairer] = {}
+        self.tracks: dict[str, ModelTrack] = {}
+        for m in config.models:
+            if m.id not in cards:
+                raise ConfigError(f"models[{m.id}].card: no model card was given for model {m.id!r}")
+            routes.append((m.prediction_topic, m.id, "prediction"))
+            routes.append((m.truth_topic, m.id, "truth"))
+            self.parsers[(m.id, "prediction")] = RecordParser(m.id, "prediction", m.fields.prediction_map())
+            self.parsers[(m.id, "truth")] = RecordParser(m.id, "truth", m.fields.truth_map())
+            self.pairers[m.id] = Pairer(m.pairing.horizon_s, m.pairing.max_unpaired)
+            self.tracks[m.id] = ModelTrack(self.agent, m, cards[m.id])
+        self.router = Router(routes)
+        self.max_payload = config.agent.max_payload_bytes
+        self.now = float("-inf")
+        self.received = 0
+        self.records = 0
+        self.ticks = 0
+        self.clock_backwards = 0
+        self.bad = dict.fromkeys(REASONS, 0)
+        self._dead: deque[DeadLetter] = deque()
+        self._dead_bytes = 0
+
+    @classmethod
+    def from_files(cls, config_path: str | Path) -> "Monitor":
+        """Load the config and every card it names, then build the core."""
+        cfg = load_config(config_path)
+        return cls(cfg, load_cards(cfg))
+
+    # -- time -------------------------------------------------------------------------------
+    def _clock(self, t: float) -> float:
+        t = float(t)
+        if t < self.now:
+            self.clock_backwards += 1
+            return self.now
+        self.now = t
+        return t
+
+    # -- intake: route, parse, pair ---------------------------------------------------------
+    def _dead_letter(self, topic: str, t: float, reason: str, detail: str, raw: bytes,
+                     out: list[Any]) -> None:
+        self.bad[reason] += 1
+        raw = raw[: self.max_payload]
+        dl = DeadLetter(topic, t, reason, detail, raw)
+        self._dead.append(dl)
+        self._dead_bytes += len(raw)
+        limits = self.config.agent
+        while self._dead and (len(self._dead) > limits.dead_letter_max_count
+                              or self._dead_bytes > limits.dead_letter_max_bytes):
+            self._dead_bytes -= len(self._dead.popleft().payload)
+        out.append(dl)
+
+    def intake(self, topic: str, payload: bytes | str, t: float) -> list[Any]:
+        """Route, parse and pair one message; returns steps and dead letters."""
+        t = self._clock(t)
+        self.received += 1
+        raw = payload.encode() if isinstance(payload, str) else bytes(payload)
+        out: list[Any] = []
+        self._expire(t)
+        routes = self.router.route(topic)
+        if not routes:
+            self._dead_letter(topic, t, "unknown_topic", f"no model listens on topic {topic!r}", raw, out)
+            return out
+        try:
+            elements = decode(raw, self.max_payload)
+        except BadRecord as e:
+            self._dead_letter(topic, t, e.reason, e.detail, raw, out)
+            return out
+        single = len(elements) == 1
+        for model, kind in routes:
+            parser = self.parsers[(model, kind)]
+            pairer = self.pairers[model]
+            for el in elements:
+                try:
+                    rec = parser.parse(el, t)
+                except BadRecord as e:
+                    self._dead_letter(topic, t, e.reason, e.detail, raw if single else element_bytes(el), out)
+                    continue
+                self.records += 1
+                if kind == "prediction":
+                    out.append(Step("prediction", t, model, rec))
+                    pr = pairer.add_prediction(rec)  # type: ignore[arg-type]
+                else:
+                    out.append(Step("truth", t, model, rec))
+                    pr = pairer.add_truth(rec)  # type: ignore[arg-type]
+                if pr is not None:
+                    out.append(Step("pair", t, model, pr))
+        return out
+
+    def _expire(self, t: float) -> None:
+        for p in self.pairers.values():
+            p.expire(t)
+
+    def intake_tick(self, t: float) -> list[Any]:
+        """A timer tick as a step."""
+        t = self._clock(t)
+        self.ticks += 1
+        self._expire(t)
+        return [Step("tick", t)]
+
+    # -- apply: windows, checks, alerts -----------------------------------------------------
+    def apply(self, steps: Iterable[Any]) -> list[Event]:
+        """Run steps from ``intake`` through the checks; dead letters pass through."""
+        out: list[Event] = []
+        tracks = self.tracks
+        for s in steps:
+            if type(s) is not Step:
+                out.append(s)
+                continue
+            kind = s.kind
+            if kind == "pair":
+                tracks[s.model].pair(s.item, out)  # type: ignore[index,arg-type]
+            elif kind == "prediction":
+                tracks[s.model].prediction(s.item, out)  # type: ignore[index,arg-type]
+            elif kind == "truth":
+                tracks[s.model].truth(s.item, out)  # type: ignore[index,arg-type]
+            else:
+                if s.t > self.now:
+                    self.now = s.t
+                for tr in tracks.values():
+                    tr.tick(s.t, out)
+        return out
+
+    def feed(self, topic: str, payload: bytes | str, t: float) -> list[Event]:
+        """One received message at receive time ``t``."""
+        return self.apply(self.intake(topic, payload, t))
+
+    def tick(self, t: float) -> list[Event]:
+        """A timer tick at core time ``t``."""
+        return self.apply(self.intake_tick(t))
+
+    # -- state ------------------------------------------------------------------------------
+    def models(self) -> list[str]:
+        return list(self.tracks)
+
+    def state(self, model: str) -> dict[str, Any]:
+        """Every check's state and latest figures for one model."""
+        st = self.tracks[model].state()
+        st["pairing"] = dict(self.pairers[model].counts)
+        st["pending"] = self.pairers[model].pending
+        return st
+
+    def status(self) -> dict[str, Any]:
+        """Counters of the whole core."""
+        totals = dict.fromkeys(PAIR_COUNTERS, 0)
+        per_model = {}
+        for m, p in self.pairers.items():
+            per_model[m] = dict(p.counts, pending=p.pending, stale_pairs=self.tracks[m].stale_pairs)
+            for k, v in p.counts.items():
+                totals[k] += v
+        return {
+            "received": self.received, "records": self.records, "ticks": self.ticks,
+            "bad": {k: v for k, v in self.bad.items() if v}, "bad_total": sum(self.bad.values()),
+            "clock_backwards": self.clock_backwards, "dead_letters_kept": len(self._dead),
+            **totals, "models": per_model,
+        }
+
+    def dead_letters(self) -> list[DeadLetter]:
+        """The dead letters the core still holds (bounded by count and bytes)."""
+        return list(self._dead)
+
+    # -- snapshot ---------------------------------------------------------------------------
+    def snapshot(self) -> dict[str, Any]:
+        """All state as plain JSON-able data."""
+        return {
+            "format": SNAPSHOT_FORMAT, "agent": self.agent, "now": self.now,
+            "received": self.received, "records": self.records, "ticks": self.ticks,
+            "clock_backwards": self.clock_backwards, "bad": dict(self.bad),
+            "dead": [{"topic": d.topic, "t": d.t, "reason": d.reason, "detail": d.detail,
+                      "payload": base64.b64encode(d.payload).decode()} for d in self._dead],
+            "pairers": {m: p.snapshot() for m, p in self.pairers.items()},
+            "tracks": {m: tr.snapshot() for m, tr in self.tracks.items()},
+        }
+
+    @classmethod
+    def restore(cls, config: Config, cards: dict[str, ModelCard], data: dict[str, Any]) -> "Monitor":
+        """A monitor that continues exactly where ``snapshot`` left off."""
+        if data.get("format") != SNAPSHOT_FORMAT:
+            raise ConfigError(f"snapshot format {data.get('format')!r} is not {SNAPSHOT_FORMAT}; start without it")
+        mon = cls(config, cards)
+        mon.now = float(data["now"]) if data["now"] is not None else float("-inf")
+        mon.received = data["received"]
+        mon.records = data["records"]
+        mon.ticks = data["ticks"]
+        mon.clock_backwards = data["clock_backwards"]
+        mon.bad.update(data["bad"])
+        for d in data["dead"]:
+            dl = DeadLetter(d["topic"], d["t"], d["reason"], d["detail"], base64.b64decode(d["payload"]))
+            mon._dead.append(dl)
+            mon._dead_bytes += len(dl.payload)
+        for m, snap in data["pairers"].items():
+            if m in mon.pairers:
+                mon.pairers[m].restore(snap)
+        for m, snap in data["tracks"].items():
+            if m in mon.tracks:
+                mon.tracks[m].restore(snap)
+        return mon
+
+
+def load_cards(cfg: Config) -> dict[str, ModelCard]:
+    """Load every model's card named in the config (paths relative to the config file)."""
+    cards = {}
+    for m in cfg.models:
+        try:
+            cards[m.id] = load_card(cfg.resolve(m.card))
+        except CardError as e:
+            raise ConfigError(f"models[{m.id}].card = {m.card!r}: {e}") from None
+    return cards
