@@ -1,0 +1,478 @@
+"""Choose check settings on recorded traffic: one parse pass, many settings, one worker per CPU.
+
+The recording is parsed and paired once (``Monitor.intake``) into steps; each setting of the
+grid is a Monitor built from the config with some keys replaced, and ``apply(steps)`` gives its
+alerts. A raised alert counts as a detection of an incident when it comes between the
+incident's start and its end plus a grace period (default: one window, i.e. the window size
+divided by the recording's pair rate); any other raised alert is a false alarm.
+
+Grid file (TOML): each key is a dotted path inside a ``[[models]]`` entry, each value the list
+of values to try, listed from the most alarm-prone to the least (the order decides which
+setting is "tightest" when there is no incidents file)::
+
+    [grid]
+    "window.size" = [100, 200, 400]
+    "checks.gap.confidence" = [0.9, 0.95, 0.99]
+    "checks.gap.warning_tolerance" = [0.25, 0.5, 1.0]
+"""
+
+from __future__ import annotations
+
+import copy
+import itertools
+import math
+import multiprocessing as mp
+import os
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Iterable
+
+from watchdog_edge.cards import ModelCard
+from watchdog_edge.config import Config, parse_config
+from watchdog_edge.errors import ConfigError, WatchdogError
+from watchdog_edge.events import Alert
+from watchdog_edge.monitor import Monitor, Step, load_cards
+from watchdog_edge.replay import read_recording, with_ticks
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+# Keys that change what intake does (parsing, pairing, routing) cannot vary: the steps are shared.
+_FIXED_PREFIXES = ("id", "card", "prediction_topic", "truth_topic", "fields", "pairing")
+
+
+# -- grid ---------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Setting:
+    """One point of the grid: dotted key -> value, and its tightness (0 = most alarm-prone)."""
+
+    index: int
+    values: dict[str, Any]
+    tightness: float
+
+    def label(self) -> str:
+        return ", ".join(f"{_short(k)}={v}" for k, v in self.values.items())
+
+
+def _short(key: str) -> str:
+    return key.removeprefix("checks.")
+
+
+def _flatten(prefix: str, obj: Any, out: dict[str, list]) -> None:
+    if isinstance(obj, dict):
+        for k, v in obj.items():
+            _flatten(f"{prefix}.{k}" if prefix else k, v, out)
+    elif isinstance(obj, list):
+        if not obj:
+            raise ConfigError(f"grid key {prefix!r} has an empty list; give at least one value")
+        out[prefix] = obj
+    else:
+        out[prefix] = [obj]
+
+
+def default_grid(cfg: Config) -> dict[str, list]:
+    """A grid around the config's own window: gap confidence and tolerance, three window sizes."""
+    m = cfg.models[0]
+    size, min_pairs = m.window.size, m.window.min_pairs
+    sizes = sorted({max(min_pairs, size // 2), size, size * 2})
+    return {
+        "window.size": sizes,
+        "checks.gap.confidence": [0.9, 0.95, 0.99],
+        "checks.gap.warning_tolerance": [0.25, 0.5, 1.0],
+    }
+
+
+def load_grid(path: str | Path) -> dict[str, list]:
+    """Read a grid file: a ``[grid]`` table of dotted keys -> lists of values."""
+    p = Path(path)
+    try:
+        raw = tomllib.loads(p.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ConfigError(f"grid file not found: {p}") from None
+    except tomllib.TOMLDecodeError as e:
+        raise ConfigError(f"grid file {p} is not valid TOML: {e}") from None
+    if not isinstance(raw.get("grid"), dict) or not raw["grid"]:
+        raise ConfigError(f"grid file {p} needs a [grid] table of keys -> lists, "
+                          "e.g. \"checks.gap.warning_tolerance\" = [0.25, 0.5]")
+    extra = [k for k in raw if k != "grid"]
+    if extra:
+        raise ConfigError(f"grid file {p}: unknown top-level key {extra[0]!r}; only [grid] is read")
+    out: dict[str, list] = {}
+    _flatten("", raw["grid"], out)
+    return out
+
+
+def expand(grid: dict[str, list]) -> list[Setting]:
+    """Every combination of the grid's values, in a stable order."""
+    for key in grid:
+        if key.split(".")[0] in _FIXED_PREFIXES:
+            raise ConfigError(f"grid key {key!r} cannot vary: parsing and pairing run once for all "
+                              "settings; tune window and check settings only")
+        if not key.startswith(("window.", "checks.")):
+            raise ConfigError(f"grid key {key!r}: give a key inside a [[models]] entry that starts "
+                              "with 'window.' or 'checks.' (e.g. checks.gap.confidence)")
+    keys = list(grid)
+    out = []
+    for i, combo in enumerate(itertools.product(*(range(len(grid[k])) for k in keys))):
+        tight = sum(pos / (len(grid[k]) - 1) for k, pos in zip(keys, combo) if len(grid[k]) > 1)
+        out.append(Setting(i, {k: grid[k][pos] for k, pos in zip(keys, combo)}, tight))
+    return out
+
+
+def _set(d: dict, dotted: str, value: Any) -> None:
+    parts = dotted.split(".")
+    for p in parts[:-1]:
+        nxt = d.get(p)
+        if not isinstance(nxt, dict):
+            nxt = {}
+            d[p] = nxt
+        d = nxt
+    d[parts[-1]] = value
+
+
+def with_setting(raw: dict, setting: Setting, models: list[str] | None) -> dict:
+    """A copy of the raw config data with the setting's keys set in the chosen models."""
+    data = copy.deepcopy(raw)
+    for m in data.get("models", []):
+        if models is None or m.get("id") in models:
+            for k, v in setting.values.items():
+                _set(m, k, v)
+    return data
+
+
+# -- one shared parse pass ----------------------------------------------------------------------
+@dataclass
+class Intake:
+    """A recording parsed and paired once: the steps every setting is applied to."""
+
+    steps: list[Step]
+    start: float
+    end: float
+    pairs: dict[str, int]
+    pair_span: dict[str, tuple[float, float]]
+
+    def pair_rate(self, model: str) -> float:
+        """Pairs per second of core time for one model (0 when it has fewer than two)."""
+        a, b = self.pair_span.get(model, (0.0, 0.0))
+        n = self.pairs.get(model, 0)
+        return (n - 1) / (b - a) if n > 1 and b > a else 0.0
+
+
+def intake_recording(config: Config, cards: dict[str, ModelCard], recording: str | Path,
+                     tick_every: float | None = None) -> Intake:
+    """Parse and pair a recording once, through the same core as replay."""
+    mon = Monitor(config, cards)
+    steps: list[Step] = []
+    start = end = math.nan
+    pairs: dict[str, int] = {}
+    span: dict[str, tuple[float, float]] = {}
+    for line in with_ticks(read_recording(recording), tick_every):
+        out = mon.intake_tick(line.t) if line.tick else mon.intake(line.topic, line.payload, line.t)
+        if math.isnan(start):
+            start = line.t
+        end = max(end, line.t) if not math.isnan(end) else line.t
+        for s in out:
+            if type(s) is Step:
+                steps.append(s)
+                if s.kind == "pair":
+                    pairs[s.model] = pairs.get(s.model, 0) + 1
+                    a, _ = span.get(s.model, (s.t, s.t))
+                    span[s.model] = (a, s.t)
+    if not steps:
+        raise WatchdogError(f"recording {recording} gave no predictions or truths on the config's topics; "
+                            "check the topics in the config against the recording")
+    return Intake(steps, start, end, pairs, span)
+
+
+# -- evaluating settings ------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Mark:
+    """A raised alert, reduced to what scoring needs."""
+
+    t: float
+    model: str
+    check: str
+    severity: str
+
+
+def apply_setting(config: Config, cards: dict[str, ModelCard], steps: list[Step],
+                  models: list[str] | None = None, checks: list[str] | None = None) -> list[Mark]:
+    """The raised alerts of one setting on the shared steps (of ``models`` and ``checks``)."""
+    mon = Monitor(config, cards)
+    return [Mark(e.t, e.model, e.check, e.severity) for e in mon.apply(steps)
+            if isinstance(e, Alert) and e.state == "raised" and (models is None or e.model in models)
+            and (checks is None or e.check in checks)]
+
+
+_W: dict[str, Any] = {}
+
+
+def _init_worker(steps: list[Step], cards: dict[str, ModelCard], base_dir: str, models: list[str] | None,
+                 checks: list[str] | None) -> None:
+    _W.update(steps=steps, cards=cards, base_dir=Path(base_dir), models=models, checks=checks)
+
+
+def _run_one(job: tuple[int, dict]) -> tuple[int, list[Mark]]:
+    index, data = job
+    cfg = parse_config(data, _W["base_dir"])
+    return index, apply_setting(cfg, _W["cards"], _W["steps"], _W["models"], _W["checks"])
+
+
+def evaluate_all(jobs: list[tuple[int, dict]], steps: list[Step], cards: dict[str, ModelCard],
+                 base_dir: Path, models: list[str] | None, workers: int,
+                 progress: Callable[[int], None] | None = None,
+                 checks: list[str] | None = None) -> dict[int, list[Mark]]:
+    """Alerts of every job (index, config data); ``workers`` processes, or in-process for 1."""
+    results: dict[int, list[Mark]] = {}
+    if workers <= 1 or len(jobs) <= 1:
+        _init_worker(steps, cards, str(base_dir), models, checks)
+        for job in jobs:
+            i, marks = _run_one(job)
+            results[i] = marks
+            if progress:
+                progress(1)
+        return results
+    # fork hands the steps to each worker once, without pickling them per setting
+    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+    with ctx.Pool(workers, initializer=_init_worker, initargs=(steps, cards, str(base_dir), models, checks)) as pool:
+        for i, marks in pool.imap_unordered(_run_one, jobs, chunksize=1):
+            results[i] = marks
+            if progress:
+                progress(1)
+    return results
+
+
+# -- scoring ------------------------------------------------------------------------------------
+@dataclass
+class Score:
+    """How one setting did on one recording."""
+
+    alerts: int
+    false_alarms: int
+    false_alarms_per_day: float
+    healthy_days: float
+    grace_s: float
+    detections: list[dict[str, Any]] = field(default_factory=list)
+
+    @property
+    def missed(self) -> int:
+        return sum(1 for d in self.detections if d["detected_at"] is None)
+
+    @property
+    def mean_delay_s(self) -> float:
+        delays = [d["delay_s"] for d in self.detections if d["delay_s"] is not None]
+        return sum(delays) / len(delays) if delays else math.nan
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"alerts": self.alerts, "false_alarms": self.false_alarms,
+                "false_alarms_per_day": self.false_alarms_per_day, "healthy_days": self.healthy_days,
+                "grace_s": self.grace_s, "missed": self.missed,
+                "mean_delay_s": None if math.isnan(self.mean_delay_s) else self.mean_delay_s,
+                "detections": self.detections}
+
+
+def _union_length(spans: Iterable[tuple[float, float]], lo: float, hi: float) -> float:
+    total, cur_a, cur_b = 0.0, None, None
+    for a, b in sorted((max(lo, a), min(hi, b)) for a, b in spans):
+        if b <= a:
+            continue
+        if cur_b is None or a > cur_b:
+            if cur_b is not None:
+                total += cur_b - cur_a
+            cur_a, cur_b = a, b
+        else:
+            cur_b = max(cur_b, b)
+    if cur_b is not None:
+        total += cur_b - cur_a
+    return total
+
+
+def score(marks: list[Mark], incidents: list[dict[str, Any]], start: float, end: float,
+          grace_s: float) -> Score:
+    """Detections, delays and false alarms of one setting's raised alerts."""
+    spans = [(float(inc["start"]), float(inc["end"]) + grace_s) for inc in incidents]
+    detections = []
+    for inc, (a, b) in zip(incidents, spans):
+        hit = next((m for m in marks if a <= m.t <= b and inc.get("model") in (None, m.model)), None)
+        detections.append({
+            "kind": inc["kind"], "start": inc["start"], "end": inc["end"],
+            "detected_at": None if hit is None else hit.t,
+            "delay_s": None if hit is None else hit.t - float(inc["start"]),
+            "check": None if hit is None else hit.check,
+            "severity": None if hit is None else hit.severity,
+        })
+    false = [m for m in marks
+             if not any(a <= m.t <= b and inc.get("model") in (None, m.model)
+                        for inc, (a, b) in zip(incidents, spans))]
+    healthy_s = max(0.0, (end - start) - _union_length(spans, start, end))
+    days = healthy_s / 86400.0
+    per_day = len(false) / days if days > 0 else (math.inf if false else 0.0)
+    return Score(len(marks), len(false), per_day, days, grace_s, detections)
+
+
+# -- the whole tuning run -----------------------------------------------------------------------
+@dataclass
+class Row:
+    setting: Setting
+    score: Score
+    holdout: Score | None = None
+
+
+@dataclass
+class TuneResult:
+    rows: list[Row]             # ranked, best first
+    best: Row
+    with_incidents: bool
+    alarm_budget: float
+    invalid: list[tuple[Setting, str]]
+    intake: Intake
+    config: Config
+    raw_config: dict
+    models: list[str] | None
+    holdout_intake: Intake | None = None
+    checks: list[str] | None = None
+
+
+def _grace(cfg: Config, intake: Intake, models: list[str] | None, grace_s: float | None) -> float:
+    if grace_s is not None:
+        return grace_s
+    rates = []
+    for m in cfg.models:
+        if models is None or m.id in models:
+            r = intake.pair_rate(m.id)
+            if r > 0:
+                rates.append(m.window.size / r)
+    return max(rates) if rates else 0.0
+
+
+def rank_key(row: Row, with_incidents: bool, budget: float) -> tuple:
+    s = row.score
+    delay = s.mean_delay_s if not math.isnan(s.mean_delay_s) else math.inf
+    if with_incidents:
+        return (s.missed, s.false_alarms_per_day, delay, row.setting.tightness, row.setting.index)
+    # healthy recording: within the alarm budget first, then the tightest, then fewest alarms
+    return (s.false_alarms_per_day > budget, row.setting.tightness, s.false_alarms_per_day, row.setting.index)
+
+
+def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[str, Any]] | None = None,
+         grid: dict[str, list] | None = None, workers: int | None = None,
+         holdout: str | Path | None = None, holdout_incidents: list[dict[str, Any]] | None = None,
+         models: list[str] | None = None, grace_s: float | None = None, alarm_budget: float = 0.5,
+         tick_every: float | None = None, progress: Callable[[int, int], None] | None = None,
+         checks: list[str] | None = None) -> TuneResult:
+    """Evaluate every grid setting on a recording and rank them; see the module docstring."""
+    p = Path(config_path)
+    try:
+        raw = tomllib.loads(p.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ConfigError(f"config file not found: {p}") from None
+    except tomllib.TOMLDecodeError as e:
+        raise ConfigError(f"config file {p} is not valid TOML: {e}") from None
+    base_dir = p.parent.resolve()
+    cfg = parse_config(raw, base_dir, str(p))
+    if models is not None:
+        unknown = [m for m in models if m not in {x.id for x in cfg.models}]
+        if unknown:
+            raise ConfigError(f"--model {unknown[0]!r} is not in {p}; models there: "
+                              f"{', '.join(x.id for x in cfg.models)}")
+    cards = load_cards(cfg)
+    settings = expand(grid if grid is not None else default_grid(cfg))
+    jobs, invalid = [], []
+    configs: dict[int, Config] = {}
+    for s in settings:
+        data = with_setting(raw, s, models)
+        try:
+            configs[s.index] = parse_config(data, base_dir, f"grid setting {s.label()}")
+        except ConfigError as e:
+            invalid.append((s, str(e)))
+            continue
+        jobs.append((s.index, data))
+    if not jobs:
+        raise ConfigError("no grid setting gives a valid config; first problem:\n" + invalid[0][1])
+    intake = intake_recording(cfg, cards, recording, tick_every)
+    n_workers = max(1, workers if workers is not None else (os.cpu_count() or 1))
+    done = 0
+
+    def tick(k: int) -> None:
+        nonlocal done
+        done += k
+        if progress:
+            progress(done, len(jobs))
+
+    if checks is not None:
+        from watchdog_edge.checks import CHECK_NAMES
+
+        unknown = [c for c in checks if c not in CHECK_NAMES]
+        if unknown:
+            raise ConfigError(f"--checks names {unknown[0]!r}; known checks are {', '.join(CHECK_NAMES)}")
+    marks = evaluate_all(jobs, intake.steps, cards, base_dir, models, n_workers, tick, checks)
+    with_inc = incidents is not None
+    rows = []
+    for s in settings:
+        if s.index not in marks:
+            continue
+        g = _grace(configs[s.index], intake, models, grace_s)
+        rows.append(Row(s, score(marks[s.index], incidents or [], intake.start, intake.end, g)))
+    rows.sort(key=lambda r: rank_key(r, with_inc, alarm_budget))
+    best = rows[0]
+    hold = None
+    if holdout is not None:
+        hold = intake_recording(cfg, cards, holdout, tick_every)
+        hm = apply_setting(configs[best.setting.index], cards, hold.steps, models, checks)
+        g = _grace(configs[best.setting.index], hold, models, grace_s)
+        best.holdout = score(hm, holdout_incidents or [], hold.start, hold.end, g)
+    return TuneResult(rows, best, with_inc, alarm_budget, invalid, intake, cfg, raw, models, hold, checks)
+
+
+def best_config(result: TuneResult) -> Config:
+    """The config with the best setting applied (validated)."""
+    data = with_setting(result.raw_config, result.best.setting, result.models)
+    return parse_config(data, result.config.base_dir, "best setting")
+
+
+def snippet(result: TuneResult, where: Path, recording: str | Path) -> str:
+    """The best setting as ``[[models]]`` entries ready to paste over the config's ones.
+
+    Card paths are rewritten relative to ``where`` (the snippet's folder), so the snippet on
+    its own also loads in ``check-config``.
+    """
+    from watchdog_edge import tomlout
+
+    data = with_setting(result.raw_config, result.best.setting, result.models)
+    out_models = []
+    for m in data["models"]:
+        if result.models is not None and m["id"] not in result.models:
+            continue
+        m = dict(m)
+        card = result.config.resolve(m["card"]).resolve()
+        try:
+            m["card"] = os.path.relpath(card, where.resolve())
+        except ValueError:  # another drive on Windows
+            m["card"] = str(card)
+        out_models.append(m)
+    s = result.best.score
+    lines = [
+        f"# Best of {len(result.rows)} settings from 'watchdog-edge tune' on {Path(recording).name}:",
+        f"#   {result.best.setting.label()}",
+    ]
+    if result.with_incidents:
+        lines.append(f"#   missed {s.missed} of {len(s.detections)} incidents, "
+                     f"{s.false_alarms_per_day:.2f} false alarms per day, mean delay "
+                     f"{_fmt_delay(s.mean_delay_s)}")
+    else:
+        lines.append(f"#   {s.false_alarms_per_day:.2f} alarms per day (budget {result.alarm_budget:g})")
+    if result.best.holdout is not None:
+        h = result.best.holdout
+        lines.append(f"#   holdout: missed {h.missed} of {len(h.detections)}, "
+                     f"{h.false_alarms_per_day:.2f} false alarms per day")
+    lines.append("# Paste over the matching [[models]] entry of your config.")
+    return "\n".join(lines) + "\n\n" + tomlout.dumps({"models": out_models})
+
+
+def _fmt_delay(s: float | None) -> str:
+    if s is None or (isinstance(s, float) and math.isnan(s)):
+        return "-"
+    return f"{s / 60:.0f} min" if s < 7200 else f"{s / 3600:.1f} h"
