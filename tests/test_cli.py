@@ -1,0 +1,111 @@
+"""The command line as a user meets it: replay, check-config, and their errors."""
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+from watchdog_edge.cards import save_card
+from watchdog_edge.cli import app
+from watchdog_edge.replay import RecordingWriter
+
+from helpers import card
+
+runner = CliRunner()
+
+CONFIG = """
+[agent]
+name = "test-gw"
+
+[broker]
+username = "watcher"
+password_env = "WATCHDOG_TEST_PASSWORD"
+
+[[models]]
+id = "pump-flow"
+card = "pump.json"
+prediction_topic = "station/pump/pred"
+truth_topic = "station/pump/truth"
+window = { size = 200, min_pairs = 100 }
+
+[models.checks.range]
+enabled = false
+[models.checks.shift]
+enabled = false
+"""
+
+
+@pytest.fixture()
+def site(tmp_path: Path) -> Path:
+    save_card(card("pump-flow", holdout=1.0), tmp_path / "pump.json")
+    (tmp_path / "config.toml").write_text(CONFIG)
+    rng = np.random.default_rng(11)
+    errs = np.concatenate([rng.normal(0, 1, 600), rng.normal(0, 2.5, 400)])
+    with RecordingWriter(tmp_path / "rec.jsonl") as w:
+        for i, e in enumerate(errs):
+            t = 1_780_000_000 + 30.0 * i
+            w.message(t, "station/pump/pred", json.dumps({"id": i, "value": 10.0}).encode())
+            w.message(t + 20, "station/pump/truth", json.dumps({"id": i, "value": 10.0 + e}).encode())
+            if i == 500:
+                w.message(t + 21, "station/pump/truth", b"\xff\xfe not json")
+    return tmp_path
+
+
+def test_replay_is_deterministic_byte_for_byte(site):
+    for name in ("a.jsonl", "b.jsonl"):
+        r = runner.invoke(app, ["replay", str(site / "rec.jsonl"), "--config", str(site / "config.toml"),
+                                "--alerts", str(site / name), "--tick-every", "60"])
+        assert r.exit_code == 0, r.output
+    a, b = (site / "a.jsonl").read_bytes(), (site / "b.jsonl").read_bytes()
+    assert a == b and a
+    alerts = [json.loads(x) for x in a.splitlines()]
+    assert alerts[0]["check"] == "gap" and alerts[0]["state"] == "raised"
+    assert "gap" in r.output and "not_json 1" in r.output
+
+
+def test_replay_json_summary(site):
+    r = runner.invoke(app, ["replay", str(site / "rec.jsonl"), "--config", str(site / "config.toml"), "--json"])
+    assert r.exit_code == 0
+    data = json.loads(r.stdout)
+    assert data["status"]["paired"] == 1000
+    assert data["status"]["bad"] == {"not_json": 1}
+    assert data["models"]["pump-flow"]["checks"]["gap"]["state"] in ("warning", "critical")
+
+
+def test_check_config_prints_resolved_settings_without_secrets(site):
+    os.environ["WATCHDOG_TEST_PASSWORD"] = "s3cret-value"
+    try:
+        r = runner.invoke(app, ["check-config", str(site / "config.toml")])
+    finally:
+        del os.environ["WATCHDOG_TEST_PASSWORD"]
+    assert r.exit_code == 0, r.output
+    assert "valid" in r.output and "warning_tolerance = 0.25" in r.output
+    assert "s3cret-value" not in r.output
+    assert "WATCHDOG_TEST_PASSWORD (value not shown)" in r.output
+
+
+def test_check_config_error_names_key_value_and_rule(site):
+    bad = site / "bad.toml"
+    bad.write_text(CONFIG.replace("size = 200", "size = -3"))
+    r = runner.invoke(app, ["check-config", str(bad)])
+    assert r.exit_code == 2
+    assert "models[0] (id 'pump-flow').window.size = -3" in r.output
+    assert "greater than or equal to 2" in r.output
+
+
+def test_missing_card_is_named(site):
+    (site / "pump.json").unlink()
+    r = runner.invoke(app, ["check-config", str(site / "config.toml")])
+    assert r.exit_code == 2 and "pump.json" in r.output and "not found" in r.output
+
+
+def test_console_script_runs_as_a_real_process(site):
+    out = subprocess.run([sys.executable, "-m", "watchdog_edge.cli", "replay", str(site / "rec.jsonl"),
+                          "--config", str(site / "config.toml"), "--quiet"], capture_output=True, text=True, timeout=60)
+    assert out.returncode == 0, out.stderr
+    assert "alerts" in out.stdout
