@@ -1,0 +1,182 @@
+"""The paho adapter against a real mosquitto: persistent sessions, manual acks, topics, secrets."""
+
+from __future__ import annotations
+
+import queue
+import random
+import threading
+import time
+
+import paho.mqtt.client as paho
+import pytest
+from paho.mqtt.enums import CallbackAPIVersion
+
+from broker import Broker, broker, make_tls  # noqa: F401  (broker is a pytest fixture)
+from watchdog_edge.config import BrokerSettings
+from watchdog_edge.errors import BrokerError, ConfigError
+from watchdog_edge.mqtt import Backoff, Link, check_topic_name, outbound_topic, read_password
+
+
+def _publish(b: Broker, topic: str, payloads: list[bytes]) -> None:
+    c = paho.Client(CallbackAPIVersion.VERSION2, client_id="pub-helper")
+    c.connect(b.host, b.port)
+    c.loop_start()
+    for p in payloads:
+        c.publish(topic, p, qos=1).wait_for_publish(10)
+    c.disconnect()
+    c.loop_stop()
+
+
+class _Taker:
+    """Collects what a Link delivers."""
+
+    def __init__(self) -> None:
+        self.messages: queue.Queue = queue.Queue()
+        self.events: queue.Queue = queue.Queue()
+
+    def get(self, n: int, timeout: float = 10.0) -> list:
+        out = []
+        deadline = time.monotonic() + timeout
+        while len(out) < n and time.monotonic() < deadline:
+            try:
+                out.append(self.messages.get(timeout=0.1))
+            except queue.Empty:
+                pass
+        return out
+
+
+def _link(b: Broker, tmp_path, taker: _Taker, protocol: str = "3.1.1", **kw) -> Link:
+    s = BrokerSettings(host=b.host, port=b.port, protocol=protocol, keepalive=5, reconnect_min_s=0.1,
+                       reconnect_max_s=0.3, **kw)
+    return Link(s, "wd-test", ["site/#"], "watchdog/agents/t/status", b'{"state":"offline"}', tmp_path,
+                taker.messages.put, taker.events.put)
+
+
+@pytest.mark.parametrize("protocol", ["3.1.1", "5"])
+def test_persistent_session_keeps_messages_while_away_and_redelivers_unacked(broker, tmp_path, protocol):
+    # MQTT 3.1.1 section 3.1.2.4 (CleanSession = 0) and MQTT 5 section 3.1.2.4 / 3.1.2.11.2
+    # (Clean Start = 0 with a Session Expiry Interval): the server keeps the subscription and
+    # queues QoS 1 messages for the client; unacknowledged ones are re-sent with DUP = 1 (4.4).
+    taker = _Taker()
+    link = _link(broker, tmp_path, taker, protocol)
+    link.start()
+    _publish(broker, "site/a", [b"one"])
+    first = taker.get(1)
+    assert [m.payload for m in first] == [b"one"]
+    link.ack(first[0].mid)
+    _publish(broker, "site/a", [b"two"])  # received but never acknowledged
+    assert [m.payload for m in taker.get(1)] == [b"two"]
+    link.stop()
+
+    _publish(broker, "site/b", [b"three", b"four"])  # sent while the agent is away
+    taker2 = _Taker()
+    link2 = _link(broker, tmp_path, taker2, protocol)
+    link2.start()
+    got = taker2.get(3)
+    assert [m.payload for m in got] == [b"two", b"three", b"four"]
+    assert got[0].dup is True  # the unacknowledged one comes back marked as a re-send
+    for m in got:
+        link2.ack(m.mid)
+    link2.stop()
+
+
+def test_reconnects_after_a_broker_restart_and_resubscribes(broker, tmp_path):
+    taker = _Taker()
+    link = _link(broker, tmp_path, taker)
+    link.start()
+    broker.stop()
+    deadline = time.monotonic() + 10
+    while link.connected.is_set() and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert not link.connected.is_set()
+    broker.start()
+    assert link.connected.wait(10), "did not reconnect"
+    _publish(broker, "site/x", [b"after"])
+    got = taker.get(1)
+    assert [m.payload for m in got] == [b"after"]
+    kinds = []
+    while not taker.events.empty():
+        kinds.append(taker.events.get().kind)
+    assert kinds.count("connected") == 2 and "disconnected" in kinds
+    link.stop()
+
+
+def test_publish_waits_on_paho_and_goes_out_after_reconnect(broker, tmp_path):
+    taker = _Taker()
+    link = _link(broker, tmp_path, taker)
+    link.start()
+    got: list[bytes] = []
+    done = threading.Event()
+    watcher = paho.Client(CallbackAPIVersion.VERSION2, client_id="w", clean_session=False)
+    watcher.on_connect = lambda c, u, f, rc, p: c.subscribe("out/#", qos=1)
+    watcher.on_message = lambda c, u, m: (got.append(m.payload), done.set())
+    watcher.reconnect_delay_set(0.1, 0.3)
+    watcher.connect(broker.host, broker.port)
+    watcher.loop_start()
+    time.sleep(0.3)
+    broker.stop()
+    while link.connected.is_set():
+        time.sleep(0.02)
+    mid = link.publish("out/alerts", b"held", qos=1)  # no connection now: paho keeps it
+    broker.start()
+    assert done.wait(15), "message published while offline never arrived"
+    assert got == [b"held"]
+    deadline = time.monotonic() + 5
+    acks = []
+    while time.monotonic() < deadline and mid not in acks:
+        try:
+            ev = taker.events.get(timeout=0.1)
+        except queue.Empty:
+            continue
+        if ev.kind == "puback":
+            acks.append(ev.mid)
+    assert mid in acks
+    watcher.loop_stop()
+    link.stop()
+
+
+def test_unreachable_broker_gives_one_line_reason(tmp_path):
+    from broker import free_port
+
+    s = BrokerSettings(host="127.0.0.1", port=free_port())
+    link = Link(s, "x", ["a"], "s", b"", tmp_path, lambda m: None, lambda e: None)
+    with pytest.raises(BrokerError, match=r"connection refused\); is the broker running"):
+        link.start()
+
+
+def test_outbound_topics_refuse_wildcards_nul_and_empty_levels():
+    # MQTT 3.1.1 section 4.7.3: topic names used to publish must not contain wildcards;
+    # section 1.5.3: no U+0000.
+    assert outbound_topic("watchdog/{model}/alerts", model="pump-1") == "watchdog/pump-1/alerts"
+    assert outbound_topic("wd/agents/{agent}/status", agent="edge") == "wd/agents/edge/status"
+    for bad in ("a+b", "a#", "x/y", "nul\x00", ""):
+        with pytest.raises(BrokerError):
+            outbound_topic("watchdog/{model}/alerts", model=bad)
+    with pytest.raises(BrokerError, match="empty level"):
+        check_topic_name("watchdog//alerts")
+    with pytest.raises(BrokerError, match=r"'\+'"):
+        check_topic_name("watchdog/+/alerts")
+    with pytest.raises(BrokerError, match="only {model} and {agent}"):
+        outbound_topic("watchdog/{site}/alerts", model="m")
+
+
+def test_password_comes_from_a_file_or_the_environment(tmp_path, monkeypatch):
+    (tmp_path / "pw").write_text("s3cret\n")
+    assert read_password(BrokerSettings(username="u", password_file="pw"), tmp_path) == "s3cret"
+    monkeypatch.setenv("WD_TEST_PW", "from-env")
+    assert read_password(BrokerSettings(username="u", password_env="WD_TEST_PW"), tmp_path) == "from-env"
+    with pytest.raises(ConfigError, match="WD_MISSING_PW.*not set"):
+        read_password(BrokerSettings(username="u", password_env="WD_MISSING_PW"), tmp_path)
+    with pytest.raises(ConfigError, match="password_file = 'nope'"):
+        read_password(BrokerSettings(username="u", password_file="nope"), tmp_path)
+    assert read_password(BrokerSettings(), tmp_path) is None
+
+
+def test_backoff_doubles_up_to_the_cap_with_jitter_and_resets():
+    b = Backoff(0.5, 4.0, random.Random(7))
+    waits = [b.next() for _ in range(8)]
+    caps = [0.5, 1.0, 2.0, 4.0, 4.0, 4.0, 4.0, 4.0]
+    assert all(c / 2 <= w <= c for w, c in zip(waits, caps))
+    assert len({round(w, 6) for w in waits[3:]}) > 1  # jitter: not all the same at the cap
+    b.reset()
+    assert 0.25 <= b.next() <= 0.5
