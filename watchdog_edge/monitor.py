@@ -33,7 +33,7 @@ from .topics import Router
 SNAPSHOT_FORMAT = 1
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)
 class Step:
     """One unit of work for ``apply``: a prediction, truth, pair or tick of one model."""
 
@@ -220,8 +220,9 @@ class Monitor:
         self.received += 1
         raw = payload.encode() if isinstance(payload, str) else bytes(payload)
         out: list[Any] = []
-        self._expire(t)
         routes = self.router.route(topic)
+        for model, _ in routes:
+            self.pairers[model].expire(t)
         if not routes:
             self._dead_letter(topic, t, "unknown_topic", f"no model listens on topic {topic!r}", raw, out)
             return out

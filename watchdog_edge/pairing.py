@@ -36,6 +36,7 @@ class Pairer:
         self._truths: OrderedDict[str, Truth] = OrderedDict()
         self._done: OrderedDict[str, float] = OrderedDict()  # paired ids -> pairing time
         self.counts = dict.fromkeys(COUNTERS, 0)
+        self._due = float("inf")  # no record can expire before this core time
 
     @property
     def pending(self) -> int:
@@ -51,6 +52,8 @@ class Pairer:
         if truth is not None:
             return self._pair(p, truth, p.t)
         self._preds[p.id] = p
+        if p.t + self.horizon_s < self._due:
+            self._due = p.t + self.horizon_s
         self._cap()
         return None
 
@@ -64,12 +67,16 @@ class Pairer:
         if pred is not None:
             return self._pair(pred, tr, tr.t)
         self._truths[tr.id] = tr
+        if tr.t + self.horizon_s < self._due:
+            self._due = tr.t + self.horizon_s
         self._cap()
         return None
 
     def _pair(self, p: Prediction, tr: Truth, t: float) -> Pair:
         self.counts["paired"] += 1
         self._done[p.id] = t
+        if t + self.horizon_s < self._due:
+            self._due = t + self.horizon_s
         if len(self._done) > self.max_unpaired:
             self._done.popitem(last=False)
         return Pair(p, tr, t)
@@ -88,6 +95,8 @@ class Pairer:
 
     def expire(self, now: float) -> None:
         """Drop records older than the horizon (records arrive in core-time order)."""
+        if now <= self._due:
+            return
         limit = now - self.horizon_s
         for store, key in ((self._preds, "expired_predictions"), (self._truths, "expired_truths")):
             while store:
@@ -101,6 +110,11 @@ class Pairer:
             if t >= limit:
                 break
             self._done.popitem(last=False)
+        firsts = [next(iter(self._preds.values())).t if self._preds else None,
+                  next(iter(self._truths.values())).t if self._truths else None,
+                  next(iter(self._done.values())) if self._done else None]
+        known = [f for f in firsts if f is not None]
+        self._due = min(known) + self.horizon_s if known else float("inf")
 
     def snapshot(self) -> dict[str, Any]:
         return {
@@ -115,3 +129,5 @@ class Pairer:
         self._truths = OrderedDict((d["id"], Truth(**d)) for d in data["truths"])
         self._done = OrderedDict((k, float(t)) for k, t in data["done"])
         self.counts.update(data["counts"])
+        firsts = [r.t for r in (*self._preds.values(), *self._truths.values())] + list(self._done.values())
+        self._due = min(firsts) + self.horizon_s if firsts else float("inf")

@@ -167,12 +167,15 @@ class RecordParser:
         return Prediction(self.model, rid, value, t, ts, feats, version)
 
 
+_decode_json = json.JSONDecoder().decode
+
+
 def decode(payload: bytes, max_bytes: int) -> list[Any]:
     """Payload bytes to a list of JSON elements (one object becomes a list of one)."""
     if len(payload) > max_bytes:
         raise BadRecord("oversize", f"payload of {len(payload)} bytes is over the limit of {max_bytes}")
     try:
-        doc = json.loads(payload)
+        doc = _decode_json(payload.decode("utf-8"))
     except (ValueError, UnicodeDecodeError) as e:
         raise BadRecord("not_json", f"payload is not JSON: {e}") from None
     if isinstance(doc, list):

@@ -1,11 +1,15 @@
-"""Inbound records after parsing: predictions, truths, and the pairs they form."""
+"""Inbound records after parsing: predictions, truths, and the pairs they form.
+
+They are treated as immutable but not declared frozen: a frozen dataclass costs about four
+times as much to build, and two to four are built per record on the hot path.
+"""
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)
 class Prediction:
     """One prediction as received: ``id`` is always text, ``t`` the receive (core) time."""
 
@@ -18,7 +22,7 @@ class Prediction:
     model_version: str | None = None
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)
 class Truth:
     """One measured value as received."""
 
@@ -29,7 +33,7 @@ class Truth:
     ts: float | None = None
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)
 class Pair:
     """A prediction joined with its truth; ``t`` is the core time the pair was made."""
 
