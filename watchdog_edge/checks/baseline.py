@@ -16,7 +16,7 @@ raises when some learner is better with p < 1 - ``confidence`` and by a margin
 clears when no learner has been better, by ``margin`` x (1 - ``hysteresis``), for
 ``clear_after`` evaluations in a row.
 
-Inputs: a missing feature (null or absent) is imputed by the running mean of its earlier
+Inputs: a missing feature (null or absent) is imputed by the mean of its earlier observed
 values (0 before any) and counted; a feature name never seen before simply joins the inputs.
 
 CPU budget for small gateways: only a ``learn_share`` of the pairs is used, chosen by a
@@ -66,7 +66,7 @@ class BaselineSettings(CheckSettings):
     critical_margin: float | None = Field(None, gt=0, lt=1, description="Critical when the margin is at least this (null: warning only).")
     window: int | None = Field(None, ge=30, le=100_000, description="Latest scored pairs compared (null: the model's window size).")
     min_pairs: int = Field(200, ge=20, description="Scored pairs needed in the window before the first test.")
-    evaluate_every: int = Field(50, ge=1, description="Scored pairs between tests.")
+    evaluate_every: int = Field(100, ge=1, description="Scored pairs between tests.")
     hysteresis: float = Field(0.5, ge=0, lt=1, description="Clear only when no learner is better by margin x (1 - this) with confidence.")
     clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
     learn_share: float = Field(1.0, gt=0, le=1, description="Share of pairs the learners use, chosen by a hash of the pair id.")
@@ -154,25 +154,36 @@ class BaselineCheck(Check):
         self.names: tuple[str, ...] = tuple(settings.learners)
         self.size = settings.window if settings.window is not None else context.window_size
         self.min_pairs = min(settings.min_pairs, self.size)
+        self._every = settings.evaluate_every
         self._absolute = context.loss_kind == "absolute"
         self.learners = {n: make_learner(n, settings.seed) for n in self.names}
-        self._impute: dict[str, list[float]] = {}  # feature -> [count, mean]
-        self._truth_n = 0
+        self._order = [self.learners[n] for n in self.names]
+        self._budgeted = settings.learn_share < 1.0 or settings.max_pairs_per_s is not None
+        # Imputation: each feature's sum of observed values, and its count of them as
+        # _cntv[i] + _n_fast (rows that had every known feature, in the known order).
+        self._names: list[str] = []
+        self._index: dict[str, int] = {}
+        self._sumv: list[float] = []
+        self._cntv: list[int] = []
+        self._n_fast = 0
+        self._fast_keys: tuple[str, ...] = ()
+        self._pending: list[dict[str, float]] = []  # complete rows not yet in the sums
         self._truth_mean = 0.0
         self._tokens: float | None = None
         self._tokens_t = 0.0
-        self._counts = {"scored": 0, "no_features": 0, "skipped_share": 0, "skipped_rate": 0, "imputed": 0}
+        self._n_scored = self._n_no_features = self._n_skip_share = self._n_skip_rate = self._n_imputed = 0
         self.reset()
 
     def reset(self) -> None:
         # A new model version: the comparison starts over; the learners keep what they learned
         # about the process, which does not depend on the deployed model.
-        k = len(self.names)
-        self._model_loss = np.zeros(self.size)
-        self._learner_loss = np.zeros((k, self.size))
+        # plain lists as ring buffers: cheaper to write one item than numpy arrays
+        self._model_loss = [0.0] * self.size
+        self._learner_loss = [[0.0] * self.size for _ in self.names]
         self._pos = 0
         self._filled = 0
         self._since_eval = 0
+        self._model_mean = math.nan
         self._level: Level = "ok"
         self._calm_run = 0
         self._figures: dict[str, Any] = {}
@@ -181,7 +192,7 @@ class BaselineCheck(Check):
     def _admit(self, pair: Pair) -> bool:
         s = self.settings
         if s.learn_share < 1.0 and hash_share(pair.id) >= s.learn_share:
-            self._counts["skipped_share"] += 1
+            self._n_skip_share += 1
             return False
         rate = s.max_pairs_per_s
         if rate is not None:
@@ -193,70 +204,105 @@ class BaselineCheck(Check):
                 self._tokens = min(cap, self._tokens + (t - self._tokens_t) * rate)
             self._tokens_t = max(t, self._tokens_t)
             if self._tokens < 1.0:
-                self._counts["skipped_rate"] += 1
+                self._n_skip_rate += 1
                 return False
             self._tokens -= 1.0
         return True
 
+    def _fold(self) -> None:
+        """Add the pending complete rows to the imputation sums.
+
+        Done every 256 such rows and before any imputation, at points fixed by the data alone,
+        so the rounding is the same live, in replay and after a restore.
+        """
+        pend = self._pending
+        if not pend:
+            return
+        sumv, index = self._sumv, self._index
+        for name in self._fast_keys:
+            sumv[index[name]] += sum([d[name] for d in pend])
+        self._n_fast += len(pend)
+        pend.clear()
+
     def _inputs(self, feats: dict[str, float | None]) -> dict[str, float]:
-        imp = self._impute
+        """The slow path: impute missing features, take in new ones."""
+        self._fold()
+        index, sumv, cntv = self._index, self._sumv, self._cntv
         x: dict[str, float] = {}
+        imputed = 0
         for name, v in feats.items():
-            st = imp.get(name)
-            if st is None:
-                st = imp[name] = [0.0, 0.0]
+            i = index.get(name)
+            if i is None:  # a new feature: its count starts now
+                i = index[name] = len(sumv)
+                self._names.append(name)
+                sumv.append(0.0)
+                cntv.append(-self._n_fast)
             if v is None:
-                x[name] = st[1]
-                self._counts["imputed"] += 1
+                c = cntv[i] + self._n_fast
+                x[name] = sumv[i] / c if c else 0.0
+                imputed += 1
             else:
                 x[name] = v
-                st[0] += 1.0
-                st[1] += (v - st[1]) / st[0]
-        for name, st in imp.items():
-            if name not in x:
-                x[name] = st[1]
-                self._counts["imputed"] += 1
+                sumv[i] += v
+                cntv[i] += 1
+        if len(x) < len(sumv):
+            for i, name in enumerate(self._names):
+                if name not in x:
+                    c = cntv[i] + self._n_fast
+                    x[name] = sumv[i] / c if c else 0.0
+                    imputed += 1
+        self._fast_keys = tuple(self._names)
+        self._n_imputed += imputed
         return x
 
     def on_pair(self, pair: Pair, loss: float) -> None:
         feats = pair.prediction.features
         if not feats:
-            self._counts["no_features"] += 1
+            self._n_no_features += 1
             return
-        if not self._admit(pair):
+        if self._budgeted and not self._admit(pair):
             return
-        x = self._inputs(feats)
+        if None not in feats.values() and tuple(feats) == self._fast_keys:
+            # the usual case, inline: the known features in the known order, none missing;
+            # its values join the imputation sums in batches (see _fold)
+            pend = self._pending
+            pend.append(feats)
+            if len(pend) >= 256:
+                self._fold()
+            x = feats
+        else:
+            x = self._inputs(feats)
         y = pair.truth.value
         pos = self._pos
         fallback = self._truth_mean
-        row = self._learner_loss
-        for j, name in enumerate(self.names):
-            learner = self.learners[name]
+        absolute = self._absolute
+        isfinite = math.isfinite
+        for learner, row in zip(self._order, self._learner_loss):
             p = learner.predict_one(x)
-            if p is None or not math.isfinite(p):
+            if p is None or not isfinite(p):
                 p = fallback
             e = y - p
-            row[j, pos] = abs(e) if self._absolute else e * e
+            row[pos] = abs(e) if absolute else e * e
             learner.learn_one(x, y)
         self._model_loss[pos] = loss
-        self._truth_n += 1
-        self._truth_mean += (y - self._truth_mean) / self._truth_n
-        self._pos = pos + 1 if pos + 1 < self.size else 0
+        n = self._n_scored = self._n_scored + 1
+        self._truth_mean = fallback + (y - fallback) / n
+        pos += 1
+        self._pos = pos if pos < self.size else 0
         if self._filled < self.size:
             self._filled += 1
         self._since_eval += 1
-        self._counts["scored"] += 1
 
     # -- verdict --------------------------------------------------------------------------
-    def _ordered(self, a: np.ndarray) -> np.ndarray:
+    def _ordered(self, a: list[float]) -> np.ndarray:
         if self._filled < self.size:
-            return a[: self._filled]
-        return np.concatenate((a[self._pos:], a[: self._pos]))
+            return np.array(a[: self._filled])
+        return np.array(a[self._pos:] + a[: self._pos])
 
     def compare(self) -> dict[str, dict[str, float]]:
         """Each learner against the model over the current window."""
         model = self._ordered(self._model_loss)
-        m = float(model.mean())
+        m = self._model_mean = float(model.mean())
         out = {}
         for j, name in enumerate(self.names):
             learner = self._ordered(self._learner_loss[j])
@@ -273,11 +319,16 @@ class BaselineCheck(Check):
         return out
 
     def evaluate(self, t: float) -> Verdict | None:
-        s = self.settings
-        if self._since_eval < s.evaluate_every or self._filled < self.min_pairs:
+        # kept tiny: it runs after every record, and the test below needs closures (cells)
+        if self._since_eval < self._every or self._filled < self.min_pairs:
             return None
+        return self._test()
+
+    def _test(self) -> Verdict:
+        s = self.settings
         self._since_eval = 0
         res = self.compare()
+        model_mean = self._model_mean
         alpha = 1.0 - s.confidence
         passing = {n: r for n, r in res.items() if r["p_value"] < alpha and r["margin"] >= s.margin}
         if passing:
@@ -303,7 +354,7 @@ class BaselineCheck(Check):
                     self._calm_run = 0
         self._figures = {
             "learner": best,
-            "model_loss": float(self._ordered(self._model_loss).mean()),
+            "model_loss": model_mean,
             "learner_loss": r["learner_loss"],
             "statistic": r["statistic"],
             "p_value": r["p_value"],
@@ -313,7 +364,7 @@ class BaselineCheck(Check):
             "pairs": self._filled,
             "learners": res,
             "loss": self.context.loss_kind,
-            **self._counts,
+            **self.counts(),
         }
         return Verdict(self._level, self._summary(best, r), dict(self._figures))
 
@@ -330,9 +381,15 @@ class BaselineCheck(Check):
                 f"({r['margin']:.0%} lower, Diebold-Mariano p = {r['p_value']:.2g}); the model may need "
                 f"retraining or its inputs checking.")
 
+    def counts(self) -> dict[str, int]:
+        """Pairs scored, pairs without features, pairs skipped by the budget, values imputed."""
+        return {"scored": self._n_scored, "no_features": self._n_no_features,
+                "skipped_share": self._n_skip_share, "skipped_rate": self._n_skip_rate,
+                "imputed": self._n_imputed}
+
     def figures(self) -> dict[str, Any]:
         out = dict(self._figures)
-        out.update(self._counts)
+        out.update(self.counts())
         out["level"] = self._level
         return out
 
@@ -340,10 +397,11 @@ class BaselineCheck(Check):
     def snapshot(self) -> dict[str, Any]:
         return {
             "learners": {n: _pack(m) for n, m in self.learners.items()},
-            "impute": {k: list(v) for k, v in self._impute.items()},
-            "truth_n": self._truth_n, "truth_mean": self._truth_mean,
-            "tokens": self._tokens, "tokens_t": self._tokens_t, "counts": dict(self._counts),
-            "model_loss": self._model_loss.tolist(), "learner_loss": self._learner_loss.tolist(),
+            "features": list(self._names), "sums": list(self._sumv), "feature_counts": list(self._cntv),
+            "n_fast": self._n_fast, "fast_keys": list(self._fast_keys), "truth_mean": self._truth_mean,
+            "pending": [[d[k] for k in self._fast_keys] for d in self._pending],
+            "tokens": self._tokens, "tokens_t": self._tokens_t, "counts": self.counts(),
+            "model_loss": list(self._model_loss), "learner_loss": [list(r) for r in self._learner_loss],
             "pos": self._pos, "filled": self._filled, "since_eval": self._since_eval,
             "level": self._level, "calm_run": self._calm_run, "figures": self._figures,
         }
@@ -351,14 +409,23 @@ class BaselineCheck(Check):
     def restore(self, data: dict[str, Any]) -> None:
         self.learners = {n: _unpack(data["learners"][n]) if n in data["learners"]
                          else make_learner(n, self.settings.seed) for n in self.names}
-        self._impute = {k: [float(a), float(b)] for k, (a, b) in data["impute"].items()}
-        self._truth_n = int(data["truth_n"])
+        self._order = [self.learners[n] for n in self.names]
+        self._names = list(data["features"])
+        self._index = {name: i for i, name in enumerate(self._names)}
+        self._sumv = [float(v) for v in data["sums"]]
+        self._cntv = [int(v) for v in data["feature_counts"]]
+        self._n_fast = int(data["n_fast"])
+        self._fast_keys = tuple(data["fast_keys"])
+        self._pending = [dict(zip(self._fast_keys, (float(v) for v in row))) for row in data["pending"]]
         self._truth_mean = float(data["truth_mean"])
         self._tokens = data["tokens"]
         self._tokens_t = float(data["tokens_t"])
-        self._counts = {k: int(v) for k, v in data["counts"].items()}
-        self._model_loss = np.array(data["model_loss"], dtype=float)
-        self._learner_loss = np.array(data["learner_loss"], dtype=float).reshape(len(self.names), self.size)
+        c = data["counts"]
+        self._n_scored, self._n_no_features = int(c["scored"]), int(c["no_features"])
+        self._n_skip_share, self._n_skip_rate = int(c["skipped_share"]), int(c["skipped_rate"])
+        self._n_imputed = int(c["imputed"])
+        self._model_loss = [float(v) for v in data["model_loss"]]
+        self._learner_loss = [[float(v) for v in r] for r in data["learner_loss"]]
         self._pos = int(data["pos"])
         self._filled = int(data["filled"])
         self._since_eval = int(data["since_eval"])

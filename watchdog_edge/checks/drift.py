@@ -150,8 +150,9 @@ class DriftCheck(Check):
         seq = self._seq
         self._seq = seq + 1
         self._history.append((seq, pair.t, pair.ts, loss, ratio))
-        self._since_change.push(pair.t, loss)
-        self._since_eval += 1
+        if self._level != "ok":  # only a raised drift needs the loss since its change
+            self._since_change.push(pair.t, loss)
+            self._since_eval += 1
         det = self._detector
         det.update(ratio)
         if det.drift_detected:

@@ -9,11 +9,13 @@ starts is reported once its timeout has passed since the watchdog began watching
 A level is warning when a feed has been silent for longer than its timeout, critical when
 longer than ``critical_factor`` x the timeout. It falls back as soon as the feed delivers again
 (a record is proof the feed is alive; no hysteresis is needed). A verdict is returned only when
-the level changes, so the check costs two subtractions per call.
+the level changes. The check keeps the next time at which a limit can be passed, so most calls
+of ``evaluate`` cost one comparison.
 """
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 from pydantic import Field, model_validator
@@ -78,51 +80,71 @@ class SilenceCheck(Check):
         self._last_truth: float | None = None
         self._reported: Level = "ok"
         self._now: float | None = None
+        self._next = -math.inf  # no level change is possible up to this core time ...
+        self._fresh = True      # ... unless a record arrived while a level was raised
 
     def reset(self) -> None:
         # A new model version keeps the feeds' times (they are not a window), but the alert
         # states were closed, so the current level must be reported afresh.
         self._reported = "ok"
-
-    def _seen(self, t: float) -> None:
-        if self._start is None:
-            self._start = t
+        self._fresh = True
 
     def on_prediction(self, prediction: Prediction) -> None:
         t = prediction.t
-        self._seen(t)
+        if self._start is None:
+            self._start = t
         if self._last_prediction is None or t > self._last_prediction:
             self._last_prediction = t
+        if self._reported != "ok":
+            self._fresh = True
 
     def on_truth(self, truth: Truth) -> None:
         t = truth.t
-        self._seen(t)
+        if self._start is None:
+            self._start = t
         if self._last_truth is None or t > self._last_truth:
             self._last_truth = t
+        if self._reported != "ok":
+            self._fresh = True
 
     def _since(self, last: float | None, t: float) -> float:
         ref = last if last is not None else self._start
         return max(0.0, t - ref)  # type: ignore[operator]
 
     def _level(self, t: float) -> Level:
+        """The level at ``t``; also sets the next time a limit can be passed."""
         s = self.settings
         level: Level = "ok"
+        nxt = math.inf
         for last, limit in ((self._last_prediction, s.prediction_timeout_s),
                             (self._last_truth, s.truth_timeout_s)):
             if limit is None:
                 continue
-            quiet = self._since(last, t)
-            if quiet > limit:
-                if s.critical_factor is not None and quiet > limit * s.critical_factor:
-                    return "critical"
-                level = "warning"
+            ref = last if last is not None else self._start
+            quiet = max(0.0, t - ref)  # type: ignore[operator]
+            crit = None if s.critical_factor is None else limit * s.critical_factor
+            if crit is not None and quiet > crit:
+                level = "critical"
+            elif quiet > limit:
+                if level == "ok":
+                    level = "warning"
+                if crit is not None:
+                    nxt = min(nxt, ref + crit)  # type: ignore[operator]
+            else:
+                nxt = min(nxt, ref + limit)  # type: ignore[operator]
+        self._next = nxt
         return level
 
     def evaluate(self, t: float) -> Verdict | None:
-        self._seen(t)
-        if self._now is None or t > self._now:
-            self._now = t
-        level = self._level(self._now)
+        now = self._now
+        if now is None or t > now:
+            self._now = now = t
+        if not self._fresh and now <= self._next:
+            return None
+        if self._start is None:
+            self._start = now
+        self._fresh = False
+        level = self._level(now)
         if level == self._reported:
             return None
         self._reported = level
@@ -167,6 +189,8 @@ class SilenceCheck(Check):
                 "last_truth": self._last_truth, "reported": self._reported, "now": self._now}
 
     def restore(self, data: dict[str, Any]) -> None:
+        self._next = -math.inf
+        self._fresh = True
         self._start = data["start"]
         self._last_prediction = data["last_prediction"]
         self._last_truth = data["last_truth"]
