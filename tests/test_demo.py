@@ -1,0 +1,40 @@
+"""The demo as a new user runs it: a real process, alerts that tell the story, files left behind."""
+
+import json
+from datetime import datetime, timezone
+import subprocess
+import sys
+
+from typer.testing import CliRunner
+
+from watchdog_edge.cli import app
+
+
+def test_demo_catches_the_overfit_model_and_the_degrading_one(tmp_path):
+    folder = tmp_path / "demo"
+    out = subprocess.run([sys.executable, "-m", "watchdog_edge.cli", "demo", "--folder", str(folder)],
+                         capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    alerts = [json.loads(x) for x in (folder / "alerts.jsonl").read_text().splitlines()]
+    first_gap = {a["model"]: a for a in reversed(alerts) if a["check"] == "gap" and a["state"] == "raised"}
+    quick, main = first_gap["compressor-kw-quick"], first_gap["compressor-kw"]
+    assert quick["figures"]["diagnosis"] == "present from deployment"
+    assert main["figures"]["diagnosis"] == "appeared after a healthy period"
+    assert quick["figures"]["expected_source"] == "fpe" and main["figures"]["expected_source"] == "holdout"
+    # The fouling starts on day 3.5 of the recording; the degrading model is flagged after it.
+    start = datetime(2026, 5, 28, tzinfo=timezone.utc)
+    raised_at = datetime.fromisoformat(main["ts"].replace("Z", "+00:00"))
+    assert 3.5 < (raised_at - start).total_seconds() / 86400 < 4.5
+    assert main["figures"]["lower"] > main["figures"]["warning_limit"]
+    checks_seen = {a["check"] for a in alerts}
+    assert {"gap", "range", "silence", "drift", "baseline"} <= checks_seen
+    assert "present from deployment" in out.stdout and "bad records by reason: not_finite" in out.stdout
+    for name in ("config.toml", "recording.jsonl", "compressor-kw.card.json", "compressor-kw-quick.card.json"):
+        assert (folder / name).exists()
+
+    # Replaying the files it left gives the same alerts, byte for byte.
+    again = tmp_path / "again.jsonl"
+    r = CliRunner().invoke(app, ["replay", str(folder / "recording.jsonl"), "--config", str(folder / "config.toml"),
+                                 "--alerts", str(again), "--quiet"])
+    assert r.exit_code == 0, r.output
+    assert again.read_bytes() == (folder / "alerts.jsonl").read_bytes()
