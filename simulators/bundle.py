@@ -1,7 +1,7 @@
 """Files of a simulated run: the recording, its incidents, the model card and a config for replay.
 
 Next to ``RECORDING.jsonl`` go ``RECORDING.incidents.json``, ``RECORDING.config.toml`` and
-``<model id>.card.json``, so ``watchdog-edge replay RECORDING.jsonl --config
+``RECORDING.card.json`` (named for the recording: two seeds in one folder have two cards), so ``watchdog-edge replay RECORDING.jsonl --config
 RECORDING.config.toml`` works straight away.
 """
 
@@ -84,7 +84,7 @@ def write_bundle(run: Run, recording: str | Path, scenario_name: str = "") -> Bu
     with RecordingWriter(rec) as w:
         for m in run.messages:
             w.message(m.t, m.topic, m.payload)
-    card_path = rec.with_name(f"{run.scenario.model.id}.card.json")
+    card_path = sibling(rec, ".card.json")
     save_card(run.card, card_path)
     inc_path = sibling(rec, ".incidents.json")
     inc_path.write_text(json.dumps(incidents_data(run, scenario_name), indent=2) + "\n", encoding="utf-8")

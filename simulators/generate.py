@@ -1,8 +1,10 @@
 """Run a scenario: train the deployed model, then produce the site's traffic with incidents.
 
-Everything random comes from one seed through numpy's SeedSequence, one child stream per
-purpose (training history, live sensors, process noise, truth timing), so the same seed gives
-the same messages, byte for byte, on the same platform.
+Everything random comes from seeds through numpy's SeedSequence, one child stream per purpose
+(training history, live sensors, process noise, truth timing), so the same seed gives the same
+messages, byte for byte, on the same platform. The deployed model is trained from the
+scenario's own ``site.seed``; the run's seed only changes the field traffic, so two seeds are
+two days of the same deployment (one to tune on, one to check the choice on).
 """
 
 from __future__ import annotations
@@ -127,7 +129,7 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
     hours = sc.site.duration_h if duration_h is None else float(duration_h)
     if hours <= 0:
         raise ValueError(f"duration must be positive, got {hours} hours")
-    model, card = train(sc, seed)
+    model, card = train(sc, sc.site.seed)
     step = sc.timing.prediction_every_s
     start_t = sc.site.start_t
     end_t = start_t + hours * 3600.0

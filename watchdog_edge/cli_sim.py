@@ -165,30 +165,35 @@ def tune(
     if result.with_incidents:
         table.add_column("detected", justify="right")
         table.add_column("false/day", justify="right")
+        table.add_column("near/day", justify="right")
         for d in result.best.score.detections:
             table.add_column(f"delay {d['kind']}", justify="right")
     else:
         table.add_column("alarms/day", justify="right")
+        table.add_column("near/day", justify="right")
         table.add_column("within budget", justify="center")
 
-    def cells(sc) -> list[str]:
+    def cells(sc, near: float | None) -> list[str]:
+        near_text = "-" if near is None else f"{near:.2f}"
         if result.with_incidents:
             n = len(sc.detections)
-            return [f"{n - sc.missed}/{n}", f"{sc.false_alarms_per_day:.2f}"] + [
+            return [f"{n - sc.missed}/{n}", f"{sc.false_alarms_per_day:.2f}", near_text] + [
                 tuning._fmt_delay(d["delay_s"]) if d["delay_s"] is not None else "missed" for d in sc.detections]
-        return [f"{sc.false_alarms_per_day:.2f}", "yes" if sc.false_alarms_per_day <= alarm_budget else "no"]
+        quiet = (near if near is not None else sc.false_alarms_per_day) <= alarm_budget
+        return [f"{sc.false_alarms_per_day:.2f}", near_text, "yes" if quiet else "no"]
 
     for rank, row in enumerate(result.rows[:top], 1):
-        table.add_row(str(rank), *(str(row.setting.values[k]) for k in keys), *cells(row.score))
+        table.add_row(str(rank), *(str(row.setting.values[k]) for k in keys),
+                      *cells(row.score, row.robust_alarms_per_day))
     if result.best.holdout is not None:
         h = result.best.holdout
         if result.with_incidents and hinc is None:
-            h_cells = ["-", f"{h.false_alarms_per_day:.2f}"] + ["-"] * len(result.best.score.detections)
+            h_cells = ["-", f"{h.false_alarms_per_day:.2f}", "-"] + ["-"] * len(result.best.score.detections)
         elif result.with_incidents and len(h.detections) != len(result.best.score.detections):
             n = len(h.detections)
-            h_cells = [f"{n - h.missed}/{n}", f"{h.false_alarms_per_day:.2f}"] + ["-"] * len(result.best.score.detections)
+            h_cells = [f"{n - h.missed}/{n}", f"{h.false_alarms_per_day:.2f}", "-"] + ["-"] * len(result.best.score.detections)
         else:
-            h_cells = cells(h)
+            h_cells = cells(h, None)
         table.add_row("[bold]holdout[/bold]", *(str(result.best.setting.values[k]) for k in keys), *h_cells)
     console.print(table)
 
@@ -208,7 +213,8 @@ def tune(
         data = {"recording": str(recording), "with_incidents": result.with_incidents,
                 "best": {"setting": result.best.setting.values, **result.best.score.to_dict(),
                          "holdout": result.best.holdout.to_dict() if result.best.holdout else None},
-                "rows": [{"setting": r.setting.values, "tightness": r.setting.tightness, **r.score.to_dict()}
+                "rows": [{"setting": r.setting.values, "tightness": r.setting.tightness,
+                          "neighbourhood_alarms_per_day": r.robust_alarms_per_day, **r.score.to_dict()}
                          for r in result.rows]}
         results_out.write_text(json.dumps(data, indent=2, default=str) + "\n", encoding="utf-8")
         console.print(f"results: {results_out}")
