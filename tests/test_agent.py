@@ -38,13 +38,15 @@ REPO = Path(__file__).resolve().parents[1]
 
 # --- set-up helpers ------------------------------------------------------------------------
 def write_setup(tmp: Path, broker: Broker, broker_extra: str = "", agent_extra: str = "",
-                checks: str = "", window: str = "size = 60\nmin_pairs = 40") -> Path:
+                checks: str = "", window: str = "size = 60\nmin_pairs = 40", snapshot_every_s: float = 1.0) -> Path:
     """A card with held-out squared loss 1.0 and a config for model 'pump' talking to ``broker``."""
     card = ModelCard(model_id="pump", model_version="v1", loss="squared", training={"loss": 0.9, "count": 5000},
                      fitted_parameters=4, least_squares=True, holdout={"loss": 1.0, "count": 1000})
     save_card(card, tmp / "pump.card.json")
     checks = checks or ('[models.checks.gap]\nevaluate_every = 5\n'
                         '[models.checks.silence]\nenabled = false\n')
+    # the card has no feature profiles, so the input checks have nothing to watch here
+    checks += '[models.checks.range]\nenabled = false\n[models.checks.shift]\nenabled = false\n'
     text = f"""
 [agent]
 name = "edge-1"
@@ -124,13 +126,13 @@ class Client:
     def json_on(self, topic: str) -> list[dict]:
         return [json.loads(m.payload) for m in self.on(topic)]
 
-    def wait_for(self, predicate, timeout: float = 15.0, what: str = "condition") -> None:
+    def wait_for(self, predicate, timeout: float = 15.0, what: str = "condition", detail=None) -> None:
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             if predicate():
                 return
             time.sleep(0.05)
-        raise AssertionError(f"timed out waiting for {what}")
+        raise AssertionError(f"timed out waiting for {what}" + (f"\n{detail()}" if detail else ""))
 
     def close(self) -> None:
         self.c.disconnect()
@@ -150,7 +152,8 @@ class AgentProc:
                                       *extra], stdout=self._fh, stderr=subprocess.STDOUT, env=e, cwd=config.parent)
 
     def text(self) -> str:
-        self._fh.flush()
+        if not self._fh.closed:
+            self._fh.flush()
         return self.log.read_text()
 
     def wait_ready(self, timeout: float = 20.0) -> None:
@@ -232,3 +235,307 @@ def test_end_to_end_gap_alert_and_retained_state(tmp_path, broker):
     assert rc == 0, agent.text()
     watcher.wait_for(lambda: watcher.json_on(STATUS)[-1]["state"] == "offline", what="status offline")
     watcher.close()
+
+
+def test_last_will_sets_status_offline_after_sigkill(tmp_path, broker):
+    cfg = write_setup(tmp_path, broker)
+    watcher = Client(broker, "watcher", [STATUS])
+    agent = AgentProc(cfg)
+    agent.wait_ready()
+    watcher.wait_for(lambda: watcher.on(STATUS) and watcher.json_on(STATUS)[-1]["state"] == "online",
+                     what="status online")
+    agent.stop(signal.SIGKILL)
+    # MQTT 3.1.1 section 3.1.2.5: the server publishes the will when the network connection
+    # closes without a DISCONNECT; it was set retained, so a later reader sees it too.
+    watcher.wait_for(lambda: watcher.json_on(STATUS)[-1]["state"] == "offline", what="the last will")
+    late = Client(broker, "late", [STATUS])
+    late.wait_for(lambda: late.on(STATUS), what="retained status")
+    assert late.json_on(STATUS)[-1] == {"agent": "edge-1", "state": "offline",
+                                        "version": late.json_on(STATUS)[-1]["version"]}
+    assert late.on(STATUS)[-1].retain
+    late.close()
+    watcher.close()
+
+
+def _alerts_by_id(msgs: list[dict]) -> dict[str, dict]:
+    """Alert id -> content; asserts that every duplicate has the same content as the first."""
+    seen: dict[str, dict] = {}
+    for a in msgs:
+        if a["alert_id"] in seen:
+            assert seen[a["alert_id"]] == a, "a re-sent alert changed its content"
+        seen.setdefault(a["alert_id"], a)
+    return seen
+
+
+def _replay_alerts(cfg: Path, recording: Path) -> list[dict]:
+    config = load_config(cfg)
+    mon = Monitor(config, load_cards(config))
+    from watchdog_edge.agent import alert_payload
+
+    return [json.loads(alert_payload(e)) for e in replay(mon, read_recording(recording)) if isinstance(e, Alert)]
+
+
+SILENCE = ('[models.checks.gap]\nevaluate_every = 5\n'
+           '[models.checks.silence]\nprediction_timeout_s = 1.0\ntruth_timeout_s = 1.0\n')
+
+
+def test_broker_down_while_the_model_degrades_every_alert_arrives(tmp_path, broker):
+    cfg = write_setup(tmp_path, broker, checks=SILENCE)
+    rec = tmp_path / "live.jsonl"
+    watcher = Client(broker, "watcher", [ALERTS], clean=False)
+    agent = AgentProc(cfg, "--record", str(rec))
+    try:
+        agent.wait_ready()
+        pub = Client(broker, "publisher")
+        rng = np.random.default_rng(2)
+        send_pairs(pub, 0, 50, 1.0, rng)  # healthy: squared error near the card's 1.0
+        send_pairs(pub, 50, 80, 3.0, rng)  # degrading
+        broker.stop()
+        # Down for longer than the silence timeout: the agent raises silence alerts that it
+        # cannot deliver; they wait in the outbox.
+        time.sleep(2.5)
+        broker.start()
+        pub.connected.clear()
+        pub.wait_for(pub.c.is_connected, what="publisher reconnect")
+        send_pairs(pub, 130, 20, 3.0, rng)  # traffic again: silence clears
+        expected = None
+
+        def all_arrived() -> bool:
+            nonlocal expected
+            got = _alerts_by_id(watcher.json_on(ALERTS))
+            return {"gap", "silence"} <= {a["check"] for a in got.values()} and any(
+                a["state"] == "cleared" for a in got.values() if a["check"] == "silence")
+
+        try:
+            watcher.wait_for(all_arrived, timeout=20, what="gap and silence alerts after the restart")
+        except AssertionError:
+            raise AssertionError(f"{[(a['check'], a['state']) for a in watcher.json_on(ALERTS)]}\n{agent.text()}")
+        pub.close()
+    finally:
+        rc = agent.stop()
+    assert rc == 0, agent.text()
+    received = _alerts_by_id(watcher.json_on(ALERTS))
+    # Every alert the agent raised (replayed from its own recording) reached the subscriber.
+    produced = _alerts_by_id(_replay_alerts(cfg, rec))
+    assert set(produced) == set(received)
+    assert produced == received
+    assert "lost the broker connection" in agent.text()
+    watcher.close()
+
+
+def _status_now(reader_broker: Broker, timeout: float = 10.0) -> dict:
+    c = Client(reader_broker, f"status-{time.monotonic_ns()}", [STATUS])
+    c.wait_for(lambda: c.on(STATUS), timeout=timeout, what="status")
+    s = c.json_on(STATUS)[-1]
+    c.close()
+    return s
+
+
+def test_sigkill_mid_stream_then_restart_counts_each_acknowledged_record_once(tmp_path, broker):
+    cfg = write_setup(tmp_path, broker, checks=SILENCE, snapshot_every_s=0.7)
+    watcher = Client(broker, "watcher", [ALERTS, STATUS], clean=False)
+    agent = AgentProc(cfg)
+    agent.wait_ready()
+    acked_preds: list[int] = []
+    acked_truths: list[int] = []
+    stop = threading.Event()
+    rng = np.random.default_rng(3)
+
+    def publisher() -> None:
+        pub = Client(broker, "steady-publisher")
+        i = 0
+        while not stop.is_set():
+            p, t = pair_payloads(range(i, i + 1), rng.normal(0.0, 3.0, 1))
+            if pub.publish(PRED, p, timeout=30):
+                acked_preds.append(i)
+            if pub.publish(TRUTH, t, timeout=30):
+                acked_truths.append(i)
+            i += 1
+            time.sleep(0.002)
+        pub.close()
+
+    th = threading.Thread(target=publisher, daemon=True)
+    th.start()
+    try:
+        watcher.wait_for(lambda: any(a["check"] == "gap" for a in watcher.json_on(ALERTS)), what="gap raised")
+        # Freeze the broker: inbound traffic stops, the agent's silence alert gets no PUBACK.
+        os.kill(broker.proc.pid, signal.SIGSTOP)
+        db_path = state_path(tmp_path / "state")
+        deadline = time.monotonic() + 10
+        waiting: list[str] = []
+        while time.monotonic() < deadline and not waiting:
+            waiting = [a.alert_id for a in _outbox(db_path) if b'"silence"' in a.payload]
+            time.sleep(0.05)
+        assert waiting, "the silence alert never reached the outbox"
+        agent.stop(signal.SIGKILL)
+        os.kill(broker.proc.pid, signal.SIGCONT)
+        time.sleep(0.7)  # the publisher keeps sending; the broker queues for the dead agent
+        agent2 = AgentProc(cfg)
+        agent2.wait_ready()
+        time.sleep(0.7)
+        stop.set()
+        th.join(20)
+        n = len(acked_preds)
+        watcher.wait_for(lambda: watcher.json_on(STATUS)[-1].get("predictions", -1) == n
+                         and watcher.json_on(STATUS)[-1].get("truths", -1) == len(acked_truths),
+                         timeout=20, what=f"status counting {n} predictions, {len(acked_truths)} truths",
+                         detail=lambda: f"{watcher.json_on(STATUS)[-1]}\n{agent.text()}\n{agent2.text()}")
+    finally:
+        stop.set()
+        rc = agent2.stop() if "agent2" in locals() else None
+    assert rc == 0, agent2.text()
+    final = _status_now(broker)
+    assert final["duplicate_predictions"] == 0 and final["duplicate_truths"] == 0
+    assert final["paired"] == len(set(acked_preds) & set(acked_truths))
+    assert final["outbox_depth"] == 0
+    got = _alerts_by_id(watcher.json_on(ALERTS))
+    assert set(waiting) <= set(got), "the alert waiting in the outbox was not re-sent"
+    gap_raised = [a for a in got.values() if a["check"] == "gap" and a["state"] == "raised"]
+    assert len(gap_raised) == 1, f"gap raised more than once: {gap_raised}"
+    assert gap_raised[0]["summary"] and "deployment" in gap_raised[0]["summary"]
+    # the window went on across the crash: the state counts every pair, not only the new ones
+    st = Store(state_path(tmp_path / "state"))
+    snap = st.latest_snapshot()
+    st.close()
+    assert snap is not None and snap.data["monitor"]["tracks"]["pump"]["pairs"] == final["paired"]
+    watcher.close()
+
+
+def _outbox(db_path: Path) -> list:
+    import sqlite3
+
+    from watchdog_edge.store import OutboxItem
+
+    if not db_path.exists():
+        return []
+    db = sqlite3.connect(f"file:{db_path}?mode=ro", uri=True, timeout=5)
+    try:
+        rows = db.execute("SELECT alert_id, topic, payload, t FROM outbox").fetchall()
+    except sqlite3.OperationalError:
+        rows = []
+    db.close()
+    return [OutboxItem(r[0], r[1], bytes(r[2]), r[3]) for r in rows]
+
+
+def test_tls_and_password_accepted_wrong_password_and_untrusted_ca_refused(tmp_path):
+    tls = make_tls(tmp_path / "tls")
+    rogue = make_tls(tmp_path / "rogue", name="rogue")
+    b = Broker(tmp_path / "broker", tls=tls, passwords={"edge": "right-one"})
+    try:
+        (tmp_path / "pw-bad").write_text("wrong-one\n")
+        base = (f'username = "edge"\n[broker.tls]\nca_file = "{tls.ca}"\n')
+        good = write_setup(tmp_path, b, broker_extra='password_env = "WD_TEST_BROKER_PW"\n' + base)
+        agent = AgentProc(good, env={"WD_TEST_BROKER_PW": "right-one"})
+        agent.wait_ready()
+        assert agent.stop() == 0, agent.text()
+        assert "right-one" not in agent.text()
+
+        bad_pw = write_setup(tmp_path, b, broker_extra='password_file = "pw-bad"\n' + base)
+        a2 = AgentProc(bad_pw)
+        rc = a2.proc.wait(20)
+        out = a2.text()
+        a2.stop()
+        assert rc == 3, out
+        line = [ln for ln in out.splitlines() if ln.startswith("watchdog-edge:")]
+        assert len(line) == 1 and "refused the connection" in line[0] and "password" in line[0], out
+        assert "wrong-one" not in out
+
+        untrusted = write_setup(tmp_path, b, broker_extra=(
+            'username = "edge"\npassword_env = "WD_TEST_BROKER_PW"\n'
+            f'[broker.tls]\nca_file = "{rogue.ca}"\n'))
+        a3 = AgentProc(untrusted, env={"WD_TEST_BROKER_PW": "right-one"})
+        rc = a3.proc.wait(20)
+        out = a3.text()
+        a3.stop()
+        assert rc == 3, out
+        line = [ln for ln in out.splitlines() if ln.startswith("watchdog-edge:")]
+        assert len(line) == 1 and "certificate" in line[0] and "ca_file" in line[0], out
+    finally:
+        b.stop()
+
+
+def test_live_alerts_equal_replay_of_the_recording(tmp_path, broker):
+    cfg = write_setup(tmp_path, broker, checks=SILENCE + '[models.checks.drift]\nenabled = false\n')
+    rec = tmp_path / "live.jsonl"
+    watcher = Client(broker, "watcher", [ALERTS])
+    agent = AgentProc(cfg, "--record", str(rec))
+    try:
+        agent.wait_ready()
+        pub = Client(broker, "publisher")
+        rng = np.random.default_rng(4)
+        send_pairs(pub, 0, 60, 3.0, rng)  # gap from deployment
+        time.sleep(1.6)  # silence raised by ticks alone
+        send_pairs(pub, 60, 120, 0.5, rng)  # healthy again: silence and, later, gap clear
+        watcher.wait_for(lambda: len(_alerts_by_id(watcher.json_on(ALERTS))) >= 3, what="three alerts")
+        time.sleep(0.5)
+        pub.close()
+    finally:
+        rc = agent.stop()
+    assert rc == 0, agent.text()
+    lines = list(read_recording(rec))
+    assert any(ln.tick for ln in lines) and any(not ln.tick for ln in lines)
+    live = [json.loads(m.payload) for m in watcher.on(ALERTS)]
+    replayed = _replay_alerts(cfg, rec)
+    assert [a["alert_id"] for a in replayed] == list(_alerts_by_id(live))
+    assert replayed == list(_alerts_by_id(live).values())
+    watcher.close()
+
+
+def test_bad_payloads_go_to_dead_letters_with_their_reason_and_good_ones_pair(tmp_path, broker):
+    cfg = write_setup(tmp_path, broker, agent_extra="max_payload_bytes = 1024")
+    agent = AgentProc(cfg)
+    agent.wait_ready()
+    pub = Client(broker, "publisher")
+    bad = [
+        (PRED, b"{not json", "not_json"),
+        (PRED, b"\xff\xfe\x00", "not_json"),
+        (TRUTH, b"42", "not_object"),
+        (PRED, b'{"value": 1.0}', "missing_id"),
+        (TRUTH, b'{"id": 5}', "missing_value"),
+        (PRED, b'{"id": 6, "value": "high"}', "bad_type"),
+        (PRED, b'{"id": 7, "value": NaN}', "not_finite"),
+        (TRUTH, b'{"id": 8, "value": Infinity}', "not_finite"),
+        (PRED, b'{"id": 9, "value": 1.0, "ts": "yesterday"}', "bad_ts"),
+        (PRED, b'{"id": 10, "value": 1.0, "pad": "' + b"x" * 2000 + b'"}', "oversize"),
+    ]
+    good_ids = []
+    for k, (topic, payload, _) in enumerate(bad):
+        i = 1000 + k
+        p, t = pair_payloads(range(i, i + 1), np.zeros(1))
+        assert pub.publish(PRED, p) and pub.publish(topic, payload) and pub.publish(TRUTH, t)
+        good_ids.append(i)
+    # An array: good elements are taken, the bad one is dead-lettered on its own.
+    assert pub.publish(PRED, json.dumps([{"id": 2000, "value": 1.0}, {"id": 2001}]).encode())
+    assert pub.publish(TRUTH, b'[{"id": 2000, "value": 1.5}]')
+    good_ids.append(2000)
+    db = state_path(tmp_path / "state")
+    deadline = time.monotonic() + 15
+    letters: list = []
+    while time.monotonic() < deadline and len(letters) < len(bad) + 1:
+        letters = read_dead_letters(db) if db.exists() else []
+        time.sleep(0.1)
+    time.sleep(0.6)
+    status = _status_now(broker)
+    pub.close()
+    assert agent.stop() == 0, agent.text()
+    assert status["paired"] == len(good_ids)
+    assert [d.reason for d in letters] == [r for _, _, r in bad] + ["missing_value"]
+    for d, (topic, payload, reason) in zip(letters, bad):
+        assert d.topic == topic and payload.startswith(d.payload)
+        # an oversize payload is kept cut to agent.max_payload_bytes; its detail gives the size
+        assert d.size == (1024 if reason == "oversize" else len(payload))
+    assert f"{len(bad[-1][1])} bytes" in letters[len(bad) - 1].detail
+    assert json.loads(letters[-1].payload) == {"id": 2001}
+    assert status["bad"] == {"not_json": 2, "not_object": 1, "missing_id": 1, "missing_value": 2, "bad_type": 1,
+                             "not_finite": 2, "bad_ts": 1, "oversize": 1}
+    # and the operator's command shows them
+    env = dict(os.environ, PYTHONPATH=str(REPO))
+    out = subprocess.run([sys.executable, "-m", "watchdog_edge.cli", "deadletters", "--config", str(cfg), "--json"],
+                         capture_output=True, text=True, env=env, timeout=30)
+    assert out.returncode == 0, out.stderr
+    rows = [json.loads(x) for x in out.stdout.splitlines()]
+    assert [r["reason"] for r in rows] == [d.reason for d in letters]
+    assert "payload_b64" in rows[1] and rows[0]["payload"] == "{not json"
+    table = subprocess.run([sys.executable, "-m", "watchdog_edge.cli", "deadletters", "--config", str(cfg),
+                            "--last", "2"], capture_output=True, text=True, env=env, timeout=30)
+    assert table.returncode == 0 and "oversize" in table.stdout and "missing_value" in table.stdout

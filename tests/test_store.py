@@ -164,3 +164,11 @@ def test_a_newer_schema_is_refused(tmp_path):
     s.close()
     with pytest.raises(WatchdogError, match="schema 99"):
         Store(path)
+
+
+def test_snapshot_keeps_infinities_exactly(tmp_path):
+    s = Store(tmp_path / "s.sqlite")
+    s.save_snapshot({"now": float("-inf"), "x": [1.5, float("inf")]}, t=1.0)
+    back = s.latest_snapshot().data
+    assert back["now"] == float("-inf") and back["x"] == [1.5, float("inf")]
+    s.close()

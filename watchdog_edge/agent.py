@@ -117,7 +117,11 @@ class Agent:
             mon = Monitor(self.config, self.cards)
             after = 0
         else:
-            mon = Monitor.restore(self.config, self.cards, snap.data)
+            mon = Monitor.restore(self.config, self.cards, snap.data["monitor"])
+            # Packet ids of the latest messages, so that a re-send of one already covered by
+            # the snapshot is still recognised (rule 5).
+            for mid, crc, size in snap.data.get("recent", []):
+                self.recent[int(mid)] = (int(crc), int(size))
             after = snap.journal_seq
         n = 0
         for e in self.store.journal_tail(after):
@@ -353,7 +357,9 @@ class Agent:
         return mid
 
     def _snapshot(self) -> None:
-        self.store.save_snapshot(self.monitor.snapshot(), time.time())
+        data = {"monitor": self.monitor.snapshot(),
+                "recent": [[mid, crc, size] for mid, (crc, size) in self.recent.items()]}
+        self.store.save_snapshot(data, time.time())
         self.counters["snapshots"] += 1
 
     # --- shutdown ---------------------------------------------------------------------------

@@ -258,7 +258,9 @@ class Store:
         In the same transaction the journal rows it covers are deleted and older snapshots
         dropped. Returns the covered ``seq``.
         """
-        text = json.dumps(data, separators=(",", ":"), allow_nan=False)
+        # Python's JSON reads back its own NaN/Infinity literals exactly (a core that has
+        # seen nothing holds its clock at -inf), so they are allowed in this private file.
+        text = json.dumps(data, separators=(",", ":"))
         db = self._db
         db.execute("BEGIN")
         try:
