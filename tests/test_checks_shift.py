@@ -88,15 +88,14 @@ def test_bins_follow_the_card_edges_with_open_outer_bins():
     check = make_check(card, window=50, evaluate_every=50)
     values = [-100.0, 0.0, 0.99, 1.0, 1.5, 2.0, 2.999, 3.0, 1e6, None] * 5
     feed(check, values, [1.0] * 50)
-    f = check._features[0]
-    # numpy's searchsorted on the inner edges, side='right', is the [e_i, e_i+1) convention;
-    # values below the first edge fall in bin 0 and at or above the last edge in the top bin.
-    x = np.array([v for v in values if v is not None])
-    ref = np.bincount(np.searchsorted([1.0, 2.0], x, side="right"), minlength=3)
-    assert f.counts[:3] == ref.tolist()
-    assert f.counts[3] == 5                         # the missing bin
-    # The expected side spreads the present share over the bins and keeps the missing share.
-    assert f.expected == pytest.approx([0.27, 0.36, 0.27, 0.1])
+    counts = check.counts()["pressure"]
+    # Bins by hand: [-inf, 1) holds -100, 0, 0.99; [1, 2) holds 1, 1.5; [2, inf) holds 2,
+    # 2.999, 3, 1e6 (the last bin is open); None goes to the missing bin. Five copies of each.
+    assert counts == [15, 10, 20, 5]
+    # The expected side spreads the present share over the bins and keeps the missing share:
+    # 0.3 x 0.9, 0.4 x 0.9, 0.3 x 0.9 and 0.1; the index is the pure function on those.
+    idx = check.indices()["pressure"]
+    assert idx == pytest.approx(population_stability_index([0.27, 0.36, 0.27, 0.1], counts, 0.5))
 
 
 def test_false_alarm_rate_on_unshifted_data_at_the_default_window_is_below_one_percent():

@@ -24,9 +24,10 @@ is null or absent falls into the missing bin.
 from __future__ import annotations
 
 import math
-from bisect import bisect_right
+import operator
 from typing import Any, Sequence
 
+import numpy as np
 from pydantic import Field, model_validator
 
 from ..records import Prediction
@@ -48,7 +49,7 @@ class ShiftSettings(CheckSettings):
     warning: float = Field(0.1, gt=0, description="Warning when a feature's population stability index exceeds this.")
     critical: float = Field(0.25, gt=0, description="Critical when a feature's population stability index exceeds this.")
     smoothing: float = Field(0.5, gt=0, le=10, description="Pseudo-count added to every bin on both sides, so empty bins stay finite.")
-    evaluate_every: int = Field(100, ge=1, description="Predictions between evaluations.")
+    evaluate_every: int = Field(250, ge=1, description="Predictions between evaluations (the index moves slowly on a window of 1000).")
     hysteresis: float = Field(0.2, ge=0, lt=1, description="Clear only when the index is at or below the limit x (1 - this).")
     clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
 
@@ -103,20 +104,12 @@ def population_stability_index(expected_shares: Sequence[float], actual_counts: 
     return total
 
 
-class _Feature:
-    __slots__ = ("name", "inner", "expected", "missing_bin", "counts")
-
-    def __init__(self, name: str, edges: Sequence[float], shares: Sequence[float], missing: float) -> None:
-        self.name = name
-        self.inner = list(edges[1:-1])  # bin i is [edges[i], edges[i+1]); outer bins are open
-        present = 1.0 - missing
-        self.expected = [s * present for s in shares] + [missing]
-        self.missing_bin = len(shares)
-        self.counts = [0] * (len(shares) + 1)
-
-
 class ShiftCheck(Check):
     """Population stability index per feature against the card's training histograms.
+
+    Predictions are queued as they come (one list append) and binned in a batch with numpy
+    when an evaluation is due or a snapshot is taken; binning in batches or one by one gives
+    the same counts, so this changes nothing but the cost.
 
     >>> from watchdog_edge.cards import ModelCard
     >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 100}, fitted_parameters=2,
@@ -137,58 +130,97 @@ class ShiftCheck(Check):
     def __init__(self, settings: ShiftSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
         self.settings: ShiftSettings = settings
-        feats = []
+        names, inner, expected, nbins = [], [], [], []
         for fname, prof in context.card.features.items():
             h = prof.histogram
             if h is not None and h.shares:
-                feats.append(_Feature(fname, h.edges, h.shares, h.missing))
-        self._features: tuple[_Feature, ...] = tuple(feats)
+                names.append(fname)
+                inner.append(h.edges[1:-1])  # bin i is [edges[i], edges[i+1]); outer bins open
+                present = 1.0 - h.missing
+                expected.append([sh * present for sh in h.shares] + [h.missing])
+                nbins.append(len(h.shares) + 1)  # the card's bins, then the missing bin
+        self.names: tuple[str, ...] = tuple(names)
+        self.expected: dict[str, list[float]] = dict(zip(names, expected))
+        self._nbins = np.array(nbins, dtype=np.int64)
+        # Every feature's bins side by side in one flat count vector, at these offsets.
+        self._offset = np.concatenate(([0], np.cumsum(self._nbins)[:-1])).astype(np.int64)
+        self._total = int(self._nbins.sum()) if nbins else 0
+        # Inner edges padded with +inf to one width, so that one comparison bins every
+        # feature: the bin is the number of inner edges <= x (bisect_right).
+        width = max((len(e) for e in inner), default=0)
+        self._edges = np.full((len(names), max(width, 1)), np.inf)
+        for j, e in enumerate(inner):
+            self._edges[j, : len(e)] = e
+        self._missing = self._nbins - 1
+        self._getter = operator.itemgetter(*names) if names else None
+        self._every = settings.evaluate_every
         self._gate = LevelGate(settings.warning, settings.critical, settings.hysteresis, settings.clear_after)
         self.reset()
 
     def reset(self) -> None:
-        for f in self._features:
-            f.counts = [0] * len(f.counts)
-        self._ring: list[tuple[int, ...] | None] = [None] * self.settings.window
+        self._counts = np.zeros(self._total, dtype=np.int64)
+        # flat bin ids (offset included) of each prediction in the window; -1 where still empty
+        self._ring = np.full((self.settings.window, len(self.names)), -1, dtype=np.int32)
         self._pos = 0
         self._filled = 0
+        self._pending: list[dict[str, float | None]] = []
         self._since_eval = 0
         self._gate.reset()
         self._figures: dict[str, Any] = {}
 
     def on_prediction(self, prediction: Prediction) -> None:
         feats = prediction.features
-        if not feats or not self._features:
+        if feats and self.names:
+            self._pending.append(feats)
+            self._since_eval += 1
+
+    def _flush(self) -> None:
+        """Bin the queued predictions into the window."""
+        pend = self._pending
+        if not pend:
             return
-        bins = []
-        for f in self._features:
-            x = feats.get(f.name)
-            b = f.missing_bin if x is None else bisect_right(f.inner, x)
-            f.counts[b] += 1
-            bins.append(b)
-        pos = self._pos
-        old = self._ring[pos]
-        if old is not None:
-            for f, b in zip(self._features, old):
-                f.counts[b] -= 1
-        else:
-            self._filled += 1
-        self._ring[pos] = tuple(bins)
-        self._pos = pos + 1 if pos + 1 < len(self._ring) else 0
-        self._since_eval += 1
+        size = self.settings.window
+        if len(pend) > size:  # only the newest ``size`` can stay in the window
+            pend = pend[-size:]
+        m = len(pend)
+        names = self.names
+        try:
+            rows = list(map(self._getter, pend))
+        except KeyError:  # some prediction lacks a feature: missing, like a null
+            rows = [[d.get(n) for n in names] for d in pend]
+        x = np.array(rows, dtype=float).reshape(m, len(names))  # None -> NaN
+        bins = (x[:, :, None] >= self._edges[None, :, :]).sum(axis=2)
+        bins = np.where(np.isnan(x), self._missing, bins) + self._offset
+        slots = (self._pos + np.arange(m)) % size
+        old = self._ring[slots].ravel()
+        self._counts += (np.bincount(bins.ravel(), minlength=self._total)
+                         - np.bincount(old[old >= 0], minlength=self._total))
+        self._ring[slots] = bins
+        self._pos = int((self._pos + m) % size)
+        self._filled = min(size, self._filled + m)
+        self._pending = []
+
+    def counts(self) -> dict[str, list[int]]:
+        """Live counts per feature: the card's bins, then the missing bin."""
+        self._flush()
+        c = self._counts.tolist()
+        return {n: c[o:o + k] for n, o, k in zip(self.names, self._offset.tolist(), self._nbins.tolist())}
 
     def indices(self) -> dict[str, float]:
         """The index of every feature over the current window."""
-        if not self._filled:
+        if not self._filled and not self._pending:
             return {}
         s = self.settings.smoothing
-        return {f.name: population_stability_index(f.expected, f.counts, s) for f in self._features}
+        return {n: population_stability_index(self.expected[n], c, s) for n, c in self.counts().items()}
 
     def evaluate(self, t: float) -> Verdict | None:
-        s = self.settings
-        if self._since_eval < s.evaluate_every or self._filled < s.window:
+        if self._since_eval < self._every:
             return None
         self._since_eval = 0
+        self._flush()
+        if self._filled < self.settings.window:
+            return None
+        s = self.settings
         idx = self.indices()
         top = max(idx, key=idx.__getitem__)
         level = self._gate.update(idx[top])
@@ -220,19 +252,21 @@ class ShiftCheck(Check):
         return out
 
     def snapshot(self) -> dict[str, Any]:
+        self._flush()  # binning now or later gives the same window
         return {
-            "ring": [list(r) if r is not None else None for r in self._ring],
+            "features": list(self.names), "ring": self._ring.tolist(), "counts": self._counts.tolist(),
             "pos": self._pos, "filled": self._filled, "since_eval": self._since_eval,
-            "counts": {f.name: list(f.counts) for f in self._features},
             "gate": self._gate.snapshot(), "figures": self._figures,
         }
 
     def restore(self, data: dict[str, Any]) -> None:
-        self._ring = [tuple(r) if r is not None else None for r in data["ring"]]
+        if list(data["features"]) != list(self.names):
+            raise ValueError(f"shift snapshot covers features {data['features']}, the card has {list(self.names)}")
+        self._ring = np.array(data["ring"], dtype=np.int32).reshape(self.settings.window, len(self.names))
+        self._counts = np.array(data["counts"], dtype=np.int64)
         self._pos = int(data["pos"])
         self._filled = int(data["filled"])
         self._since_eval = int(data["since_eval"])
-        for f in self._features:
-            f.counts = [int(c) for c in data["counts"][f.name]]
+        self._pending = []
         self._gate.restore(data["gate"])
         self._figures = data["figures"]
