@@ -173,3 +173,12 @@ def test_small_windows_are_warned_about_and_bad_settings_explained():
     with pytest.raises(ValidationError) as e:
         ShiftSettings(smoothing=0)
     assert "smoothing = 0" in format_validation(e.value)
+
+
+def test_check_config_prints_the_small_window_warning():
+    from watchdog_edge.config import config_warnings, parse_config
+
+    cfg = parse_config({"models": [{"id": "press", "card": "press.json", "prediction_topic": "p/pred",
+                                    "truth_topic": "p/truth", "checks": {"shift": {"window": 400}}}]})
+    [w] = config_warnings(cfg)
+    assert w.startswith("models[press].checks.shift: window = 400 is below 1000")
