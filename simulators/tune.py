@@ -226,6 +226,48 @@ def intake_recording(config: Config, cards: dict[str, ModelCard], recording: str
     return Intake(steps, start, end, pairs, span)
 
 
+# -- which checks a grid reaches ----------------------------------------------------------------
+# Checks with windows of their own: the model's [window] table does not reach them. A check
+# not listed here is taken to read it (slower if wrong, never inexact).
+_WINDOW_FREE = frozenset({"range", "shift", "silence"})
+
+
+def varied_checks(keys: Iterable[str]) -> set[str]:
+    """Checks whose alerts can differ between the grid's settings.
+
+    Every other check gives the same alerts under every setting (checks do not see each other),
+    so its alerts are computed once and shared: each setting then runs only the varied checks.
+    """
+    from watchdog_edge.checks import CHECK_NAMES
+
+    out: set[str] = set()
+    for k in keys:
+        parts = k.split(".")
+        if parts[0] == "checks" and len(parts) > 1:
+            out.add(parts[1])
+        elif parts[0] == "window":
+            out |= {n for n in CHECK_NAMES if n not in _WINDOW_FREE}
+    return out
+
+
+def only_checks(raw: dict, drop: set[str], models: list[str] | None) -> dict:
+    """Config data with the ``drop`` checks switched off (in the chosen models; every check in
+    the others, whose alerts are not looked at)."""
+    data = copy.deepcopy(raw)
+    from watchdog_edge.checks import registered
+
+    for m in data.get("models", []):
+        chosen = models is None or m.get("id") in models
+        for name in registered():
+            if name in drop or not chosen:
+                _set(m, f"checks.{name}.enabled", False)
+    return data
+
+
+def _sort_marks(marks: list["Mark"]) -> list["Mark"]:
+    return sorted(marks, key=lambda m: (m.t, m.model, m.check, m.severity))
+
+
 # -- evaluating settings ------------------------------------------------------------------------
 @dataclass(frozen=True)
 class Mark:
@@ -241,9 +283,9 @@ def apply_setting(config: Config, cards: dict[str, ModelCard], steps: list[Step]
                   models: list[str] | None = None, checks: list[str] | None = None) -> list[Mark]:
     """The raised alerts of one setting on the shared steps (of ``models`` and ``checks``)."""
     mon = Monitor(config, cards)
-    return [Mark(e.t, e.model, e.check, e.severity) for e in mon.apply(steps)
-            if isinstance(e, Alert) and e.state == "raised" and (models is None or e.model in models)
-            and (checks is None or e.check in checks)]
+    return _sort_marks([Mark(e.t, e.model, e.check, e.severity) for e in mon.apply(steps)
+                        if isinstance(e, Alert) and e.state == "raised" and (models is None or e.model in models)
+                        and (checks is None or e.check in checks)])
 
 
 _W: dict[str, Any] = {}
@@ -361,6 +403,7 @@ class Row:
     # the most false alarms per day of this setting and its grid neighbours: a setting on the
     # edge of a noisy region is quiet on this recording by luck, and another day shows it
     robust_alarms_per_day: float = 0.0
+    marks: list[Mark] = field(default_factory=list)
 
 
 @dataclass
@@ -423,7 +466,10 @@ def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[st
             raise ConfigError(f"--model {unknown[0]!r} is not in {p}; models there: "
                               f"{', '.join(x.id for x in cfg.models)}")
     cards = load_cards(cfg)
-    settings = expand(grid if grid is not None else default_grid(cfg))
+    grid = grid if grid is not None else default_grid(cfg)
+    settings = expand(grid)
+    varied = varied_checks(grid)
+    fixed = {n for m in cfg.models if models is None or m.id in models for n in m.enabled_checks()} - varied
     jobs, invalid = [], []
     configs: dict[int, Config] = {}
     for s in settings:
@@ -433,7 +479,8 @@ def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[st
         except ConfigError as e:
             invalid.append((s, str(e)))
             continue
-        jobs.append((s.index, data))
+        # each setting runs only the checks the grid reaches; the others run once, below
+        jobs.append((s.index, only_checks(data, fixed, models)))
     if not jobs:
         raise ConfigError("no grid setting gives a valid config; first problem:\n" + invalid[0][1])
     intake = intake_recording(cfg, cards, recording, tick_every)
@@ -453,13 +500,18 @@ def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[st
         if unknown:
             raise ConfigError(f"--checks names {unknown[0]!r}; known checks are {', '.join(CHECK_NAMES)}")
     marks = evaluate_all(jobs, intake.steps, cards, base_dir, models, n_workers, tick, checks)
+    shared: list[Mark] = []
+    if fixed:
+        shared_cfg = parse_config(only_checks(raw, varied, models), base_dir, "checks outside the grid")
+        shared = apply_setting(shared_cfg, cards, intake.steps, models, checks)
     with_inc = incidents is not None
     rows = []
     for s in settings:
         if s.index not in marks:
             continue
         g = _grace(configs[s.index], intake, models, grace_s)
-        rows.append(Row(s, score(marks[s.index], incidents or [], intake.start, intake.end, g)))
+        ms = _sort_marks(marks[s.index] + shared)
+        rows.append(Row(s, score(ms, incidents or [], intake.start, intake.end, g), marks=ms))
     by_index = {r.setting.index: r for r in rows}
     for r in rows:
         near = [by_index[n.index].score.false_alarms_per_day

@@ -303,3 +303,77 @@ def test_live_publishing_fails_clearly_without_a_broker():
 
     with pytest.raises(BrokerError, match="cannot reach the broker"):
         publish_live([], "127.0.0.1", free_port())
+
+
+# -- live, watched by the agent ---------------------------------------------------------------
+def test_scenario_streamed_live_and_watched_by_run_gives_the_alerts_of_its_replay(tmp_path, broker):  # noqa: F811
+    """simulate --broker -> broker -> watchdog-edge run --record; replay of that recording."""
+    import os
+    import signal
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    from watchdog_edge.agent import alert_payload
+    from watchdog_edge.monitor import load_cards
+
+    repo = Path(__file__).resolve().parents[1]
+    env = dict(os.environ, PYTHONPATH=str(repo) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    files = tmp_path / "site"
+    cli = [sys.executable, "-m", "watchdog_edge.cli"]
+    # the card and config (pointing at the test broker) come from simulate itself
+    prep = subprocess.run(cli + ["simulate", "dairy-chiller", "--broker", f"{broker.host}:{broker.port}",
+                                 "--files", str(files), "--duration", "1s", "--seed", "3"],
+                          env=env, capture_output=True, text=True, timeout=60)
+    assert prep.returncode == 0, prep.stderr
+    config = files / "dairy-chiller.config.toml"
+    assert load_config(config).broker.port == broker.port
+
+    alerts: list[bytes] = []
+    watcher = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="sim-test-watcher")
+    subscribed = threading.Event()
+    watcher.on_connect = lambda c, u, f, rc, p: (c.subscribe("watchdog/+/alerts", qos=1), None)
+    watcher.on_subscribe = lambda c, u, mid, rcs, p: subscribed.set()
+    watcher.on_message = lambda c, u, msg: alerts.append(msg.payload)
+    watcher.connect(broker.host, broker.port)
+    watcher.loop_start()
+    rec = tmp_path / "live.jsonl"
+    log = open(tmp_path / "agent.log", "w")
+    agent = subprocess.Popen(cli + ["run", "--config", str(config), "--record", str(rec)],
+                             stdout=log, stderr=subprocess.STDOUT, env=env, cwd=files)
+    try:
+        assert subscribed.wait(10)
+        deadline = time.monotonic() + 20
+        while "connected to" not in (tmp_path / "agent.log").read_text():
+            assert agent.poll() is None and time.monotonic() < deadline, (tmp_path / "agent.log").read_text()
+            time.sleep(0.05)
+        # two simulated hours (the step incident at 1 h) at 1200x: about six seconds
+        pub = subprocess.run(cli + ["simulate", "dairy-chiller", "--broker", f"{broker.host}:{broker.port}",
+                                    "--duration", "2h", "--speed", "1200", "--seed", "3"],
+                             env=env, capture_output=True, text=True, timeout=120)
+        assert pub.returncode == 0, pub.stderr
+        sent = len(simulate(load_scenario("dairy-chiller"), seed=3, duration_h=2).messages)
+        deadline = time.monotonic() + 20
+        while sum(1 for ln in read_recording(rec) if not ln.tick) < sent:
+            assert time.monotonic() < deadline, "the agent did not record every message"
+            time.sleep(0.1)
+        time.sleep(1.5)  # a tick or two after the last message, then a clean stop
+    finally:
+        if agent.poll() is None:
+            os.kill(agent.pid, signal.SIGTERM)
+        rc = agent.wait(20)
+        log.close()
+    time.sleep(0.5)
+    watcher.disconnect()
+    watcher.loop_stop()
+    assert rc == 0, (tmp_path / "agent.log").read_text()
+
+    cfg = load_config(config)
+    replayed = [alert_payload(e) for e in replay(Monitor(cfg, load_cards(cfg)), read_recording(rec))
+                if isinstance(e, Alert)]
+    live: dict[str, bytes] = {}
+    for a in alerts:  # QoS 1 may deliver a message twice: same id, same bytes
+        live.setdefault(json.loads(a)["alert_id"], a)
+    assert replayed, "two hours with a step offset should raise alerts"
+    assert {json.loads(a)["check"] for a in replayed} & {"gap", "range"}
+    assert replayed == list(live.values())

@@ -76,6 +76,23 @@ def test_shared_parse_pass_gives_the_same_alerts_as_a_full_replay(recordings):
         assert shared == full and full
 
 
+def test_checks_outside_the_grid_run_once_and_give_the_same_alerts(recordings):
+    a, _ = recordings
+    cfg = load_config(a.config)
+    cards = load_cards(cfg)
+    grid = {"checks.gap.warning_tolerance": [0.25, 1.0], "checks.shift.enabled": [True, False]}
+    res = tune(a.config, a.recording, load_incidents(a.incidents), grid=grid, workers=1)
+    raw = _raw(a.config)
+    for row in res.rows:
+        # the same setting with every check in one monitor, over a full replay
+        cfg_s = parse_config(with_setting(raw, row.setting, None), a.config.parent)
+        full = [Mark(e.t, e.model, e.check, e.severity)
+                for e in replay(Monitor(cfg_s, cards), read_recording(a.recording))
+                if isinstance(e, Alert) and e.state == "raised"]
+        assert row.marks == sorted(full, key=lambda m: (m.t, m.model, m.check, m.severity))
+    assert {m.check for r in res.rows for m in r.marks} >= {"gap", "range", "silence"}
+
+
 def test_two_workers_give_the_same_results_as_one(recordings):
     a, _ = recordings
     cfg = load_config(a.config)

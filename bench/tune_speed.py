@@ -1,0 +1,90 @@
+"""Settings evaluated per minute by ``tune`` on a one-day recording, one worker against one per CPU.
+
+The recording is one simulated day of the dairy-chiller scenario (a prediction every 10 s,
+about 13,000 messages). References measured in the same run:
+
+- a full replay of the recording (parse, pair, windows, checks, alerts) with the config as
+  written: the cost one more setting would have without the shared parse pass;
+- the marginal cost of one added setting inside ``tune``: (time for G settings - time for one
+  setting) / (G - 1), with one worker.
+
+Targets: marginal cost <= 1/10 of a full replay; two workers >= 1.5x the settings per minute
+of one. Timings are medians of ``--repeat`` runs; the machine may be shared, so read the
+ratios, not the seconds.
+
+    python3 bench/tune_speed.py [--hours 24] [--repeat 3] [--grid default|gap]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from simulators.bundle import write_bundle  # noqa: E402
+from simulators.generate import simulate  # noqa: E402
+from simulators.scenario import load_scenario  # noqa: E402
+from simulators.tune import default_grid, expand, tune  # noqa: E402
+from watchdog_edge.config import load_config  # noqa: E402
+from watchdog_edge.monitor import Monitor  # noqa: E402
+from watchdog_edge.replay import read_recording, replay  # noqa: E402
+
+GAP_GRID = {
+    "window.size": [60, 120, 240, 480],
+    "checks.gap.confidence": [0.9, 0.95, 0.99],
+    "checks.gap.warning_tolerance": [0.25, 0.5, 1.0],
+}
+
+
+def median_time(fn, repeat: int) -> float:
+    times = []
+    for _ in range(repeat):
+        t = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t)
+    return statistics.median(times)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--hours", type=float, default=24.0)
+    ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--grid", choices=["default", "gap"], default="default")
+    args = ap.parse_args()
+    cpus = os.cpu_count() or 1
+
+    with tempfile.TemporaryDirectory() as tmp:
+        run = simulate(load_scenario("dairy-chiller"), seed=1, duration_h=args.hours)
+        paths = write_bundle(run, Path(tmp) / "day.jsonl")
+        cfg = load_config(paths.config)
+        grid = default_grid(cfg) if args.grid == "default" else GAP_GRID
+        g = len(expand(grid))
+        one = {k: v[:1] for k, v in grid.items()}
+        print(f"recording: {len(run.messages)} messages over {args.hours:g} h; grid '{args.grid}': {g} settings; "
+              f"{cpus} CPUs")
+
+        full = median_time(lambda: replay(Monitor.from_files(paths.config), read_recording(paths.recording)),
+                           args.repeat)
+        t_one = median_time(lambda: tune(paths.config, paths.recording, None, grid=one, workers=1), args.repeat)
+        t_g1 = median_time(lambda: tune(paths.config, paths.recording, None, grid=grid, workers=1), args.repeat)
+        t_gn = median_time(lambda: tune(paths.config, paths.recording, None, grid=grid, workers=cpus), args.repeat)
+
+    marginal = (t_g1 - t_one) / (g - 1)
+    per_min_1 = g / t_g1 * 60
+    per_min_n = g / t_gn * 60
+    print(f"full replay (reference)          {full * 1000:8.1f} ms")
+    print(f"tune, 1 setting, 1 worker        {t_one * 1000:8.1f} ms")
+    print(f"tune, {g} settings, 1 worker      {t_g1 * 1000:8.1f} ms  -> {per_min_1:8.0f} settings/min")
+    print(f"tune, {g} settings, {cpus} workers     {t_gn * 1000:8.1f} ms  -> {per_min_n:8.0f} settings/min")
+    print(f"added setting / full replay      {marginal / full:8.3f}   (target <= 0.100)")
+    print(f"{cpus} workers / 1 worker            {per_min_n / per_min_1:8.2f}x  (target >= 1.5x with 2)")
+
+
+if __name__ == "__main__":
+    main()
