@@ -66,7 +66,7 @@ class BaselineSettings(CheckSettings):
     critical_margin: float | None = Field(None, gt=0, lt=1, description="Critical when the margin is at least this (null: warning only).")
     window: int | None = Field(None, ge=30, le=100_000, description="Latest scored pairs compared (null: the model's window size).")
     min_pairs: int = Field(200, ge=20, description="Scored pairs needed in the window before the first test.")
-    evaluate_every: int = Field(100, ge=1, description="Scored pairs between tests.")
+    evaluate_every: int = Field(200, ge=1, description="Scored pairs between tests (a slow signal: each test costs about 0.1 ms per learner).")
     hysteresis: float = Field(0.5, ge=0, lt=1, description="Clear only when no learner is better by margin x (1 - this) with confidence.")
     clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
     learn_share: float = Field(1.0, gt=0, le=1, description="Share of pairs the learners use, chosen by a hash of the pair id.")
