@@ -50,6 +50,7 @@ log = logging.getLogger("watchdog_edge.agent")
 
 _REMEMBERED_MIDS = 1000  # far above any broker's inflight window (mosquitto's default is 20)
 _LOG_EVERY_S = 60.0
+_QUEUE_SHED = 10000
 
 
 def json_safe(obj: Any) -> Any:
@@ -88,14 +89,16 @@ class Agent:
         self.status_topic = outbound_topic(b.topics.status, agent=a.name, model=None)
         self.store = Store(state_path(config.resolve(a.state_dir)), a.sqlite_synchronous,
                            a.dead_letter_max_count, a.dead_letter_max_bytes)
-        self.q: queue.Queue[Inbound | LinkEvent] = queue.Queue(maxsize=10000)
+        # Unbounded on purpose: at QoS 1 the broker's inflight window bounds what is in here;
+        # QoS 0 traffic beyond _QUEUE_SHED waiting messages is shed and counted.
+        self.q: queue.SimpleQueue[Inbound | LinkEvent] = queue.SimpleQueue()
         self.intake_open = False
         self.stopping = threading.Event()
         self.pending: dict[int, str] = {}  # mid -> alert_id awaiting PUBACK
         self.pending_other: set[int] = set()  # mids of retained state/status awaiting PUBACK
         self.recent: OrderedDict[int, tuple[int, int]] = OrderedDict()  # mid -> content key
         self.counters = {"connects": 0, "disconnects": 0, "connection_refused": 0, "connect_failures": 0,
-                         "redelivered": 0, "journal_batches": 0, "snapshots": 0}
+                         "redelivered": 0, "journal_batches": 0, "snapshots": 0, "shed_qos0": 0}
         self.last_refusal: str | None = None
         self._log_times: dict[str, float] = {}
         self.started = time.time()
@@ -148,6 +151,9 @@ class Agent:
     # --- paho thread -----------------------------------------------------------------------
     def _on_message(self, msg: Inbound) -> None:
         if self.intake_open:
+            if msg.qos == 0 and self.q.qsize() > _QUEUE_SHED:
+                self.counters["shed_qos0"] += 1
+                return
             self.q.put(msg)
 
     def _on_event(self, ev: LinkEvent) -> None:
@@ -262,13 +268,14 @@ class Agent:
         if entries or outbox or dead:
             self.store.append(entries, outbox, dead)
             self.counters["journal_batches"] += 1
+        # Committed: alerts go out first (latency), then the acks, then the rest.
+        for item in outbox:
+            self._publish_alert(item)
         for mid, qos in acks:
             self.link.ack(mid, qos)
         if rec is not None and entries:
             rec.flush()
         if outbox:
-            for item in outbox:
-                self._publish_alert(item)
             self._publish_states(sorted({self._model_of(i) for i in outbox}))
         if acked_alerts:
             self.store.mark_sent(acked_alerts)
