@@ -90,18 +90,21 @@ def draw(tr: Trace, incidents: list[dict[str, Any]], path: str | Path, title: st
             ax.axhline(tr.expected, color="#27ae60", lw=1.0)
             ax.axhline(tr.warning, color="#e67e22", lw=1.0, ls="--", label="warning limit")
             ax.axhline(tr.critical, color="#c0392b", lw=1.0, ls=":", label="critical limit")
-        seen: set[str] = set()
+        seen: set[tuple[str, str]] = set()
         for a in tr.alerts:
-            if a.state != "raised":
-                continue
             colour = _CHECK_COLOURS.get(a.check, "black")
-            ax.axvline(hours(a.t), color=colour, lw=1.0, alpha=0.8,
-                       label=f"{a.check} raised" if a.check not in seen else None)
-            seen.add(a.check)
+            raised = a.state == "raised"
+            ax.axvline(hours(a.t), color=colour, lw=1.0 if raised else 0.8, ls="-" if raised else ":",
+                       alpha=0.8 if raised else 0.6,
+                       label=f"{a.check} {a.state}" if (a.check, a.state) not in seen else None)
+            seen.add((a.check, a.state))
         ax.set_xlim(0, max(hours(end), 1e-9))
         positive = [v for v in tr.lower + tr.live + tr.upper if v > 0]
         if positive and max(positive) / min(positive) > 50:
             ax.set_yscale("log")
+            # a lower bound near zero (a wide interval) would squash the rest of the plot
+            floor = min(v for v in tr.live + ([tr.expected] if tr.expected else []) if v > 0) / 5
+            ax.set_ylim(bottom=floor)
         ax.set_xlabel("hours since the start of the recording")
         ax.set_ylabel("mean loss")
         ax.set_title(title, fontsize=10)

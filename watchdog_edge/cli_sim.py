@@ -38,7 +38,7 @@ def _fail(e: Exception) -> None:
 
 def simulate(
     scenario: str = typer.Argument(..., help="A scenario file, or the name of a shipped one "
-                                   "(cold-store, pumping-station, greenhouse)."),
+                                   "(cold-store, pumping-station, greenhouse, dairy-chiller)."),
     to_recording: Optional[Path] = typer.Option(None, "--to-recording", help="Write a recording (JSON Lines) here, with its incidents file, config and card beside it."),
     broker: Optional[str] = typer.Option(None, "--broker", help="Publish live to this broker, HOST:PORT, at QoS 1."),
     speed: float = typer.Option(1.0, "--speed", help="Live only: simulated seconds per wall-clock second."),
@@ -48,8 +48,7 @@ def simulate(
 ) -> None:
     """Simulate an invented site: train its model, then send its predictions and truths.
 
-    Exactly one of --to-recording and --broker. Live, the payloads are those the recording
-    would hold for the same seed; they are paced by the wall clock at --speed.
+    Exactly one of --to-recording and --broker. Live, the payloads are those the recording would hold for the same seed; they are paced by the wall clock at --speed.
     """
     from simulators.bundle import config_data, incidents_data, write_bundle
     from simulators.generate import simulate as run_sim
@@ -102,7 +101,7 @@ def tune(
     recording: Path = typer.Argument(..., help="Recording to tune on (JSON Lines)."),
     config: Path = typer.Option(..., "--config", "-c", help="The TOML config whose check settings are varied."),
     incidents: Optional[Path] = typer.Option(None, "--incidents", help="Incidents file (JSON): kind and span of each known incident."),
-    grid: Optional[Path] = typer.Option(None, "--grid", help="Grid file (TOML [grid] table of dotted keys -> lists). Default: window size x gap confidence x gap tolerance."),
+    grid: Optional[Path] = typer.Option(None, "--grid", help="Grid file (TOML \\[grid] table of dotted keys -> lists). Default: window size x gap confidence x gap tolerance."),
     holdout: Optional[Path] = typer.Option(None, "--holdout", help="A second recording (another seed or day) to check the chosen setting on."),
     holdout_incidents: Optional[Path] = typer.Option(None, "--holdout-incidents", help="Incidents file of the holdout recording."),
     model: Optional[list[str]] = typer.Option(None, "--model", help="Tune only this model (repeatable); default every model."),
@@ -118,12 +117,9 @@ def tune(
 ) -> None:
     """Replay a recording across a grid of check settings and rank them.
 
-    The recording is parsed and paired once; each setting is applied to that one pass,
-    spread over one worker process per CPU. With --incidents each setting is scored by missed
-    incidents, false alarms per day outside the incidents (plus a grace of one window) and
-    detection delay; without, by alarms per day, and the tightest setting within
-    --alarm-budget wins. Choosing on one recording is itself a fit: check the choice on
-    --holdout.
+    The recording is parsed and paired once; each setting is applied to that one pass, spread over one worker process per CPU. With --incidents each setting is scored by missed incidents, false alarms per day outside the incidents (plus a grace of one window, the window size over the pair rate) and detection delay; settings whose grid neighbours raise false alarms rank lower. Without incidents, the tightest setting within --alarm-budget wins. The best setting is written as a \[\[models]] TOML snippet and a PNG plot.
+
+    Choosing on one recording is itself a fit: check the choice on --holdout (another day, or another seed).
     """
     import json
 
