@@ -57,9 +57,10 @@ def test_a_rise_in_the_loss_is_raised_with_its_change_point_and_the_loss_before_
     assert abs(cp - 3000) <= 30
     assert f["change_ts"] == pytest.approx(f["change_t"] - 2)   # the truth's source time
     # The means are plain means of the squared errors on each side of the change point; the
-    # before side is the segment the detector held (since the start here).
+    # before side is the segment kept (the last ``history`` pairs, 2000 by default).
     sq = err ** 2
-    assert f["mean_before"] == pytest.approx(sq[:cp].mean())
+    assert f["pairs_before"] + f["pairs_after"] == 2000
+    assert f["mean_before"] == pytest.approx(sq[cp - f["pairs_before"]:cp].mean())
     assert f["mean_after"] == pytest.approx(sq[cp:i + 1].mean())
     assert f["mean_before"] == pytest.approx(4.0, rel=0.1) and f["mean_after"] > 10
     assert f["detector"] == "ADWIN"

@@ -61,7 +61,7 @@ class DriftSettings(CheckSettings):
     hysteresis: float = Field(0.1, ge=0, lt=1, description="Clear only when the mean loss is at or below the warning limit x (1 - this).")
     clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
     evaluate_every: int = Field(10, ge=1, description="Pairs between evaluations of the clearing rule.")
-    history: int = Field(5000, ge=100, le=1_000_000, description="Latest pairs kept to place the change point and the means before and after it.")
+    history: int = Field(2000, ge=100, le=1_000_000, description="Latest pairs kept to place the change point and the means before and after it.")
 
 
 def _detector(settings: DriftSettings) -> Any:
