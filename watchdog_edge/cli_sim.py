@@ -101,7 +101,7 @@ def tune(
     recording: Path = typer.Argument(..., help="Recording to tune on (JSON Lines)."),
     config: Path = typer.Option(..., "--config", "-c", help="The TOML config whose check settings are varied."),
     incidents: Optional[Path] = typer.Option(None, "--incidents", help="Incidents file (JSON): kind and span of each known incident."),
-    grid: Optional[Path] = typer.Option(None, "--grid", help="Grid file (TOML \\[grid] table of dotted keys -> lists). Default: window size x gap confidence x gap tolerance."),
+    grid: Optional[Path] = typer.Option(None, "--grid", help="Grid file (TOML \\[grid] table of dotted keys -> lists). Default: window size x gap confidence x gap tolerance x shift on/off (x ADWIN delta when drift is on)."),
     holdout: Optional[Path] = typer.Option(None, "--holdout", help="A second recording (another seed or day) to check the chosen setting on."),
     holdout_incidents: Optional[Path] = typer.Option(None, "--holdout-incidents", help="Incidents file of the holdout recording."),
     model: Optional[list[str]] = typer.Option(None, "--model", help="Tune only this model (repeatable); default every model."),
@@ -117,7 +117,7 @@ def tune(
 ) -> None:
     """Replay a recording across a grid of check settings and rank them.
 
-    The recording is parsed and paired once; each setting is applied to that one pass, spread over one worker process per CPU. With --incidents each setting is scored by missed incidents, false alarms per day outside the incidents (plus a grace of one window, the window size over the pair rate) and detection delay; settings whose grid neighbours raise false alarms rank lower. Without incidents, the tightest setting within --alarm-budget wins. The best setting is written as a \[\[models]] TOML snippet and a PNG plot.
+    The recording is parsed and paired once; each setting is applied to that one pass, spread over one worker process per CPU. With --incidents each setting is scored by missed incidents, false alarms per day outside the incidents (plus a grace of one window, the window size over the pair rate) and detection delay; settings whose grid neighbours raise false alarms rank lower. Without incidents, the tightest setting within --alarm-budget wins. The best setting is written as a \\[\\[models]] TOML snippet and a PNG plot.
 
     Choosing on one recording is itself a fit: check the choice on --holdout (another day, or another seed).
     """
