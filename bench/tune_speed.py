@@ -9,8 +9,8 @@ about 13,000 messages). References measured in the same run:
   setting) / (G - 1), with one worker.
 
 Targets: marginal cost <= 1/10 of a full replay; two workers >= 1.5x the settings per minute
-of one. Timings are medians of ``--repeat`` runs; the machine may be shared, so read the
-ratios, not the seconds.
+of one. Timings are the fastest of ``--repeat`` interleaved rounds; the machine may be shared, so
+read the ratios, not the seconds.
 
     python3 bench/tune_speed.py [--hours 24] [--repeat 3] [--grid default|gap]
 """
@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import statistics
 import sys
 import tempfile
 import time
@@ -42,13 +41,17 @@ GAP_GRID = {
 }
 
 
-def median_time(fn, repeat: int) -> float:
-    times = []
+def best_times(fns: dict, repeat: int) -> dict[str, float]:
+    """The fastest of ``repeat`` rounds for each function, rounds interleaved: on a shared
+    machine the minimum is the least disturbed figure, and interleaving spreads any burst of
+    load over every measurement alike."""
+    times: dict[str, list[float]] = {k: [] for k in fns}
     for _ in range(repeat):
-        t = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t)
-    return statistics.median(times)
+        for k, fn in fns.items():
+            t = time.perf_counter()
+            fn()
+            times[k].append(time.perf_counter() - t)
+    return {k: min(v) for k, v in times.items()}
 
 
 def main() -> None:
@@ -69,11 +72,13 @@ def main() -> None:
         print(f"recording: {len(run.messages)} messages over {args.hours:g} h; grid '{args.grid}': {g} settings; "
               f"{cpus} CPUs")
 
-        full = median_time(lambda: replay(Monitor.from_files(paths.config), read_recording(paths.recording)),
-                           args.repeat)
-        t_one = median_time(lambda: tune(paths.config, paths.recording, None, grid=one, workers=1), args.repeat)
-        t_g1 = median_time(lambda: tune(paths.config, paths.recording, None, grid=grid, workers=1), args.repeat)
-        t_gn = median_time(lambda: tune(paths.config, paths.recording, None, grid=grid, workers=cpus), args.repeat)
+        t = best_times({
+            "full": lambda: replay(Monitor.from_files(paths.config), read_recording(paths.recording)),
+            "one": lambda: tune(paths.config, paths.recording, None, grid=one, workers=1),
+            "g1": lambda: tune(paths.config, paths.recording, None, grid=grid, workers=1),
+            "gn": lambda: tune(paths.config, paths.recording, None, grid=grid, workers=cpus),
+        }, args.repeat)
+        full, t_one, t_g1, t_gn = t["full"], t["one"], t["g1"], t["gn"]
 
     marginal = (t_g1 - t_one) / (g - 1)
     per_min_1 = g / t_g1 * 60
@@ -84,6 +89,8 @@ def main() -> None:
     print(f"tune, {g} settings, {cpus} workers     {t_gn * 1000:8.1f} ms  -> {per_min_n:8.0f} settings/min")
     print(f"added setting / full replay      {marginal / full:8.3f}   (target <= 0.100)")
     print(f"{cpus} workers / 1 worker            {per_min_n / per_min_1:8.2f}x  (target >= 1.5x with 2)")
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    print(f"load average at the end: {load:.2f} on {cpus} CPUs (other work on the machine takes from the workers)")
 
 
 if __name__ == "__main__":

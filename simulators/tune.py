@@ -289,6 +289,7 @@ def apply_setting(config: Config, cards: dict[str, ModelCard], steps: list[Step]
 
 
 _W: dict[str, Any] = {}
+_SHARED = -1  # job index of the run of the checks the grid does not reach
 
 
 def _init_worker(steps: list[Step], cards: dict[str, ModelCard], base_dir: str, models: list[str] | None,
@@ -499,11 +500,11 @@ def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[st
         unknown = [c for c in checks if c not in CHECK_NAMES]
         if unknown:
             raise ConfigError(f"--checks names {unknown[0]!r}; known checks are {', '.join(CHECK_NAMES)}")
-    marks = evaluate_all(jobs, intake.steps, cards, base_dir, models, n_workers, tick, checks)
-    shared: list[Mark] = []
     if fixed:
-        shared_cfg = parse_config(only_checks(raw, varied, models), base_dir, "checks outside the grid")
-        shared = apply_setting(shared_cfg, cards, intake.steps, models, checks)
+        # the checks outside the grid: one more job, run alongside the settings
+        jobs.insert(0, (_SHARED, only_checks(raw, varied, models)))
+    marks = evaluate_all(jobs, intake.steps, cards, base_dir, models, n_workers, tick, checks)
+    shared = marks.pop(_SHARED, [])
     with_inc = incidents is not None
     rows = []
     for s in settings:
