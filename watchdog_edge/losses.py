@@ -1,7 +1,8 @@
 """Losses and the live loss window.
 
 The window keeps the last ``size`` losses (optionally also no older than ``max_age_s`` of core
-time) with a compensated running sum, so adding a pair and reading the mean are O(1). The
+time) in a numpy ring buffer, so the interval's computation gets its array without a copy
+loop, with a compensated running sum, so adding a pair and reading the mean are O(1). The
 running sum is rebuilt exactly with ``math.fsum`` once per ``size`` updates, so rounding error
 cannot build up over a stream of millions of pairs.
 """
@@ -9,7 +10,6 @@ cannot build up over a stream of millions of pairs.
 from __future__ import annotations
 
 import math
-from collections import deque
 from typing import Any, Callable
 
 import numpy as np
@@ -38,7 +38,7 @@ def loss_function(kind: LossKind) -> Callable[[float, float], float]:
 
 
 class LossWindow:
-    """The last ``size`` losses with their core times.
+    """The last ``size`` losses with their core times, in a ring buffer.
 
     >>> w = LossWindow(size=3)
     >>> for t, x in enumerate([1.0, 2.0, 3.0, 10.0]):
@@ -50,14 +50,16 @@ class LossWindow:
     def __init__(self, size: int, max_age_s: float | None = None) -> None:
         self.size = int(size)
         self.max_age_s = max_age_s
-        self._t: deque[float] = deque()
-        self._x: deque[float] = deque()
+        self._x = np.zeros(self.size)
+        self._t = np.zeros(self.size)
+        self._start = 0  # index of the oldest loss
+        self._n = 0
         self._sum = 0.0
         self._comp = 0.0  # Neumaier compensation term
         self._since_refresh = 0
 
     def __len__(self) -> int:
-        return len(self._x)
+        return self._n
 
     def _add(self, v: float) -> None:
         s = self._sum + v
@@ -69,12 +71,16 @@ class LossWindow:
 
     def push(self, t: float, loss: float) -> None:
         """Add one loss at core time ``t``."""
-        self._t.append(t)
-        self._x.append(loss)
+        if self._n == self.size:
+            i = self._start
+            self._add(-float(self._x[i]))
+            self._start = (i + 1) % self.size
+        else:
+            i = (self._start + self._n) % self.size
+            self._n += 1
+        self._x[i] = loss
+        self._t[i] = t
         self._add(loss)
-        if len(self._x) > self.size:
-            self._t.popleft()
-            self._add(-self._x.popleft())
         self._since_refresh += 1
         if self._since_refresh >= self.size:
             self._refresh()
@@ -84,41 +90,46 @@ class LossWindow:
         if self.max_age_s is None:
             return
         limit = now - self.max_age_s
-        dropped = False
-        while self._t and self._t[0] < limit:
-            self._t.popleft()
-            self._add(-self._x.popleft())
-            dropped = True
-        if dropped and not self._x:
+        while self._n and self._t[self._start] < limit:
+            self._add(-float(self._x[self._start]))
+            self._start = (self._start + 1) % self.size
+            self._n -= 1
+        if not self._n:
             self._sum = self._comp = 0.0
 
     def _refresh(self) -> None:
-        self._sum = math.fsum(self._x)
+        self._sum = math.fsum(self.array().tolist())
         self._comp = 0.0
         self._since_refresh = 0
 
     def mean(self) -> float:
         """Mean loss in the window (NaN when empty)."""
-        n = len(self._x)
-        return (self._sum + self._comp) / n if n else math.nan
+        return (self._sum + self._comp) / self._n if self._n else math.nan
+
+    def _ordered(self, buf: np.ndarray) -> np.ndarray:
+        end = self._start + self._n
+        if end <= self.size:
+            return buf[self._start:end].copy()
+        return np.concatenate((buf[self._start:], buf[: end - self.size]))
 
     def array(self) -> np.ndarray:
-        """The losses, oldest first."""
-        return np.fromiter(self._x, dtype=float, count=len(self._x))
+        """The losses, oldest first (a copy)."""
+        return self._ordered(self._x)
 
     def clear(self) -> None:
-        self._t.clear()
-        self._x.clear()
+        self._start = self._n = 0
         self._sum = self._comp = 0.0
         self._since_refresh = 0
 
     def snapshot(self) -> dict[str, Any]:
-        return {"t": list(self._t), "x": list(self._x), "since": self._since_refresh,
-                "sum": self._sum, "comp": self._comp}
+        return {"t": self._ordered(self._t).tolist(), "x": self.array().tolist(),
+                "since": self._since_refresh, "sum": self._sum, "comp": self._comp}
 
     def restore(self, data: dict[str, Any]) -> None:
-        self._t = deque(float(v) for v in data["t"])
-        self._x = deque(float(v) for v in data["x"])
+        n = len(data["x"])
+        self._x[:n] = data["x"]
+        self._t[:n] = data["t"]
+        self._start, self._n = 0, n
         self._since_refresh = int(data["since"])
         self._sum = float(data["sum"])
         self._comp = float(data["comp"])
