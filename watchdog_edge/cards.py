@@ -50,7 +50,7 @@ class Histogram(_Strict):
         if any(s < 0 for s in self.shares):
             raise ValueError("histogram shares must be >= 0")
         total = sum(self.shares)
-        if self.shares and abs(total - 1.0) > 1e-6 and total > 0:
+        if self.shares and abs(total - 1.0) > 1e-6:
             raise ValueError(f"histogram shares sum to {total:.6f}, not 1")
         return self
 
@@ -136,6 +136,8 @@ def load_card(path: str | Path) -> ModelCard:
         raw = json.loads(p.read_text(encoding="utf-8"))
     except FileNotFoundError:
         raise CardError(f"model card not found: {p}") from None
+    except (OSError, UnicodeDecodeError) as e:
+        raise CardError(f"model card {p} cannot be read: {e}") from None
     except json.JSONDecodeError as e:
         raise CardError(f"model card {p} is not valid JSON: {e}") from None
     try:
