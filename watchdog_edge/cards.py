@@ -9,6 +9,7 @@ from typing import Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from .errors import CardError
+from .files import read_document
 
 CARD_FORMAT = 1
 LossKind = Literal["squared", "absolute"]
@@ -132,14 +133,7 @@ def expected_loss(card: ModelCard) -> tuple[float, str]:
 def load_card(path: str | Path) -> ModelCard:
     """Read and validate a card; errors name the file and the field."""
     p = Path(path)
-    try:
-        raw = json.loads(p.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise CardError(f"model card not found: {p}") from None
-    except (OSError, UnicodeDecodeError) as e:
-        raise CardError(f"model card {p} cannot be read: {e}") from None
-    except json.JSONDecodeError as e:
-        raise CardError(f"model card {p} is not valid JSON: {e}") from None
+    raw = read_document(p, "model card", json.loads, CardError, "JSON")
     try:
         return ModelCard.model_validate(raw)
     except ValidationError as e:

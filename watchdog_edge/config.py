@@ -15,6 +15,7 @@ from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError,
 from . import checks as registry
 from .cards import format_validation
 from .errors import ConfigError
+from .files import read_document
 from .parsing import FieldMap
 from .topics import validate_filter, validate_level
 
@@ -272,12 +273,7 @@ def parse_config(data: dict[str, Any], base_dir: Path | None = None, source: str
 def load_config(path: str | Path) -> Config:
     """Read and validate a TOML config file."""
     p = Path(path)
-    try:
-        data = tomllib.loads(p.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise ConfigError(f"config file not found: {p}") from None
-    except tomllib.TOMLDecodeError as e:
-        raise ConfigError(f"config file {p} is not valid TOML: {e}") from None
+    data = read_document(p, "config file", tomllib.loads, ConfigError, "TOML")
     return parse_config(data, p.parent, str(p))
 
 
