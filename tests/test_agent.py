@@ -540,3 +540,38 @@ def test_bad_payloads_go_to_dead_letters_with_their_reason_and_good_ones_pair(tm
     table = subprocess.run([sys.executable, "-m", "watchdog_edge.cli", "deadletters", "--config", str(cfg),
                             "--last", "2"], capture_output=True, text=True, env=env, timeout=30)
     assert table.returncode == 0 and "oversize" in table.stdout and "missing_value" in table.stdout
+
+
+def test_refusal_while_running_is_logged_counted_and_survived(tmp_path):
+    from broker import make_password_file
+
+    b = Broker(tmp_path / "broker", passwords={"edge": "first"})
+    try:
+        (tmp_path / "pw").write_text("first\n")
+        cfg = write_setup(tmp_path, b, broker_extra='username = "edge"\npassword_file = "pw"\n')
+        agent = AgentProc(cfg)
+        agent.wait_ready()
+        # The operator rotates the broker's password; the running agent still has the old one.
+        b.stop()
+        make_password_file(b.folder / "passwords", {"edge": "second", "reader": "r"})
+        b.start()
+        deadline = time.monotonic() + 15
+        while time.monotonic() < deadline and "refused the connection" not in agent.text():
+            time.sleep(0.1)
+        assert "refused the connection" in agent.text(), agent.text()
+        assert agent.proc.poll() is None  # still running, retrying
+        # Put the old password back: the agent gets in on its own and reports the refusals.
+        b.stop()
+        make_password_file(b.folder / "passwords", {"edge": "first", "reader": "r"})
+        b.start()
+        reader = Client(b, "reader", [STATUS], auth=("reader", "r"))
+        reader.wait_for(lambda: any(s.get("link", {}).get("connection_refused", 0) >= 1
+                                    and s["state"] == "online" for s in reader.json_on(STATUS)),
+                        timeout=20, what="status counting the refusal")
+        last = [s for s in reader.json_on(STATUS) if s.get("link")][-1]
+        assert "password" in last["link"]["last_refusal"]
+        reader.close()
+        assert agent.stop() == 0, agent.text()
+        assert "first" not in agent.text().replace("first full", "")
+    finally:
+        b.stop()

@@ -102,6 +102,7 @@ class Agent:
         self.last_refusal: str | None = None
         self._log_times: dict[str, float] = {}
         self.started = time.time()
+        self.running = False  # true once the broker accepted us
         self.monitor = self._restore()
         self.recorder = RecordingWriter(record) if record is not None else None
         subs = []
@@ -178,6 +179,7 @@ class Agent:
             self.intake_open = False
             self._close_files()
             raise
+        self.running = True
         for sig in (signal.SIGTERM, signal.SIGINT):
             signal.signal(sig, self._on_signal)
         log.info("agent %s connected to %s:%d; listening on %s", self.name, self.config.broker.host,

@@ -79,6 +79,8 @@ def run(
     try:
         code = agent.run()
     except BrokerError as e:
+        if agent.running:
+            _fail(f"stopped: {e}", 1)
         _fail(f"cannot start: {e}", 3)
     raise typer.Exit(code)
 

@@ -366,7 +366,10 @@ class Link:
     def publish(self, topic: str, payload: bytes, qos: int = 1, retain: bool = False) -> int:
         """Queue a PUBLISH; returns its mid (the PUBACK arrives as a ``puback`` event)."""
         info = self.client.publish(topic, payload, qos=qos, retain=retain)
-        if info.rc not in (MQTTErrorCode.MQTT_ERR_SUCCESS, MQTTErrorCode.MQTT_ERR_NO_CONN):
+        # Without a connection (or losing it right now) paho keeps a QoS 1 message and sends
+        # it after the reconnect; only a refusal of the message itself is an error.
+        if info.rc not in (MQTTErrorCode.MQTT_ERR_SUCCESS, MQTTErrorCode.MQTT_ERR_NO_CONN,
+                           MQTTErrorCode.MQTT_ERR_CONN_LOST):
             raise BrokerError(f"cannot publish to {topic!r}: {paho.error_string(info.rc)}")
         return info.mid
 
