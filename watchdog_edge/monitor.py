@@ -63,6 +63,15 @@ class ModelTrack:
         for name in settings.enabled_checks():
             cls = registry.check_class(name)
             self.checks[name] = cls(settings.checks[name], self.context)
+        # Per input kind: the checks that take it, and those whose verdict it may change.
+        def overrides(check: Check, verb: str) -> bool:
+            return getattr(type(check), verb) is not getattr(Check, verb)
+
+        items = list(self.checks.items())
+        self._takes = {verb: [c for _, c in items if overrides(c, verb)]
+                       for verb in ("on_prediction", "on_truth", "on_pair")}
+        self._judges = {kind: [(n, c) for n, c in items if kind in c.reacts_to]
+                        for kind in ("prediction", "truth", "pair", "tick")}
         self.book = AlertBook(agent, settings.id)
         self.version: str | None = None
         self.version_seen = False
@@ -70,8 +79,8 @@ class ModelTrack:
         self.stale_pairs = 0
         self.last_alert_t: float | None = None
 
-    def _collect(self, t: float, out: list[Event]) -> None:
-        for name, check in self.checks.items():
+    def _collect(self, t: float, out: list[Event], kind: str) -> None:
+        for name, check in self._judges[kind]:
             verdict = check.evaluate(t)
             if verdict is not None:
                 alert = self.book.update(name, verdict, t, self.version)
@@ -89,14 +98,14 @@ class ModelTrack:
             out.append(VersionStarted(self.settings.id, p.t, self.version, p.model_version))
             self.version = p.model_version
         self.version_seen = True
-        for check in self.checks.values():
+        for check in self._takes["on_prediction"]:
             check.on_prediction(p)
-        self._collect(p.t, out)
+        self._collect(p.t, out, "prediction")
 
     def truth(self, tr: Truth, out: list[Event]) -> None:
-        for check in self.checks.values():
+        for check in self._takes["on_truth"]:
             check.on_truth(tr)
-        self._collect(tr.t, out)
+        self._collect(tr.t, out, "truth")
 
     def pair(self, pr: Pair, out: list[Event]) -> None:
         v = pr.prediction.model_version
@@ -105,12 +114,12 @@ class ModelTrack:
             return
         self.pairs += 1
         loss = self.loss(pr.truth.value, pr.prediction.value)
-        for check in self.checks.values():
+        for check in self._takes["on_pair"]:
             check.on_pair(pr, loss)
-        self._collect(pr.t, out)
+        self._collect(pr.t, out, "pair")
 
     def tick(self, t: float, out: list[Event]) -> None:
-        self._collect(t, out)
+        self._collect(t, out, "tick")
 
     def state(self) -> dict[str, Any]:
         checks = {}

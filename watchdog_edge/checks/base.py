@@ -58,6 +58,9 @@ class Check:
 
     name: ClassVar[str] = ""
     settings_model: ClassVar[type[CheckSettings]] = CheckSettings
+    # The inputs after which ``evaluate`` may have something new to say; the core skips the
+    # call after other inputs. A check that is unsure keeps the default: all of them.
+    reacts_to: ClassVar[frozenset[str]] = frozenset({"prediction", "truth", "pair", "tick"})
 
     def __init__(self, settings: CheckSettings, context: CheckContext) -> None:
         self.settings = settings

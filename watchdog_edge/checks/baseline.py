@@ -146,6 +146,7 @@ class BaselineCheck(Check):
     """
 
     name = "baseline"
+    reacts_to = frozenset({"pair"})  # its windows move only with pairs
     settings_model = BaselineSettings
 
     def __init__(self, settings: BaselineSettings, context: CheckContext) -> None:

@@ -116,6 +116,7 @@ class DriftCheck(Check):
     """
 
     name = "drift"
+    reacts_to = frozenset({"pair", "tick"})  # ticks end a hold
     settings_model = DriftSettings
 
     def __init__(self, settings: DriftSettings, context: CheckContext) -> None:

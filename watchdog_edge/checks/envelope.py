@@ -71,6 +71,7 @@ class RangeCheck(Check):
     """
 
     name = "range"
+    reacts_to = frozenset({"prediction"})  # its counts move only with predictions
     settings_model = RangeSettings
 
     def __init__(self, settings: RangeSettings, context: CheckContext) -> None:

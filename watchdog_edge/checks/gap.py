@@ -62,6 +62,7 @@ class GapCheck(Check):
 
     name = "gap"
     settings_model = GapSettings
+    reacts_to = frozenset({"pair", "tick"})  # ticks only matter for the age bound
 
     def __init__(self, settings: GapSettings, context: CheckContext) -> None:
         super().__init__(settings, context)

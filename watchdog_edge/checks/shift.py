@@ -125,6 +125,7 @@ class ShiftCheck(Check):
     """
 
     name = "shift"
+    reacts_to = frozenset({"prediction"})  # its counts move only with predictions
     settings_model = ShiftSettings
 
     def __init__(self, settings: ShiftSettings, context: CheckContext) -> None:
