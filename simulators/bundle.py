@@ -14,6 +14,7 @@ from typing import Any
 
 from watchdog_edge import tomlout
 from watchdog_edge.cards import save_card
+from watchdog_edge.files import read_document
 from watchdog_edge.errors import RecordingError
 from watchdog_edge.replay import RecordingWriter
 
@@ -101,12 +102,7 @@ def load_incidents(path: str | Path) -> list[dict[str, Any]]:
     Each incident needs ``start`` and ``end`` (core time, Unix seconds); ``kind`` is shown.
     """
     p = Path(path)
-    try:
-        raw = json.loads(p.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise RecordingError(f"incidents file not found: {p}") from None
-    except json.JSONDecodeError as e:
-        raise RecordingError(f"incidents file {p} is not valid JSON: {e}") from None
+    raw = read_document(p, "incidents file", json.loads, RecordingError, "JSON")
     items = raw.get("incidents") if isinstance(raw, dict) else raw
     if not isinstance(items, list):
         raise RecordingError(f"incidents file {p} must hold a list of incidents (or an object with 'incidents')")

@@ -4,36 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from watchdog_edge.cards import FeatureProfile, Histogram, LossFigure, ModelCard, TargetRange
+from watchdog_edge.cardbuild import mean_loss, quantile_histogram
+from watchdog_edge.cards import FeatureProfile, LossFigure, ModelCard, TargetRange
 
 from .fit import PolynomialModel
-
-
-def mean_loss(y: np.ndarray, yhat: np.ndarray, kind: str) -> float:
-    """Mean squared or absolute error."""
-    e = np.asarray(y, dtype=float) - np.asarray(yhat, dtype=float)
-    return float(np.mean(e * e) if kind == "squared" else np.mean(np.abs(e)))
-
-
-def quantile_histogram(values: np.ndarray, bins: int = 10) -> Histogram:
-    """Bins at training quantiles (ties merged), shares counted with the card's open outer bins.
-
-    >>> h = quantile_histogram(np.arange(100.0), bins=4)
-    >>> h.shares
-    [0.25, 0.25, 0.25, 0.25]
-    """
-    v = np.asarray(values, dtype=float)
-    missing = np.isnan(v)
-    v = v[~missing]
-    edges = np.unique(np.quantile(v, np.linspace(0.0, 1.0, bins + 1)))
-    if len(edges) < 2:
-        edges = np.array([edges[0] - 0.5, edges[0] + 0.5])
-    # bin i is [edges[i], edges[i+1]) with the outer bins open: searchsorted on the inner edges
-    idx = np.searchsorted(edges[1:-1], v, side="right")
-    counts = np.bincount(idx, minlength=len(edges) - 1)
-    shares = counts / max(1, len(v))
-    return Histogram(edges=[float(e) for e in edges], shares=[float(s) for s in shares],
-                     missing=float(missing.mean()) if len(missing) else 0.0)
 
 
 def build_card(model: PolynomialModel, model_id: str, version: str, loss: str,

@@ -37,6 +37,7 @@ from typing import Any, Callable, Iterable
 
 from watchdog_edge.cards import ModelCard
 from watchdog_edge.config import Config, parse_config
+from watchdog_edge.files import read_document
 from watchdog_edge.errors import ConfigError, WatchdogError
 from watchdog_edge.events import Alert
 from watchdog_edge.monitor import Monitor, Step, load_cards
@@ -127,12 +128,7 @@ def default_grid(cfg: Config) -> dict[str, list]:
 def load_grid(path: str | Path) -> dict[str, list]:
     """Read a grid file: a ``[grid]`` table of dotted keys -> lists of values."""
     p = Path(path)
-    try:
-        raw = tomllib.loads(p.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise ConfigError(f"grid file not found: {p}") from None
-    except tomllib.TOMLDecodeError as e:
-        raise ConfigError(f"grid file {p} is not valid TOML: {e}") from None
+    raw = read_document(p, "grid file", tomllib.loads, ConfigError, "TOML")
     if not isinstance(raw.get("grid"), dict) or not raw["grid"]:
         raise ConfigError(f"grid file {p} needs a [grid] table of keys -> lists, "
                           "e.g. \"checks.gap.warning_tolerance\" = [0.25, 0.5]")

@@ -13,7 +13,6 @@ from typer.testing import CliRunner
 
 from broker import broker  # noqa: F401  (pytest fixture: a real mosquitto on a free port)
 from simulators.bundle import config_data, load_incidents, write_bundle
-from simulators.card import quantile_histogram
 from simulators.fit import fit_polynomial
 from simulators.generate import simulate, train
 from simulators.live import parse_broker, publish_live
@@ -110,18 +109,6 @@ def test_least_squares_fit_matches_scikit_learn():
     x_new = rng.normal(size=(50, 3)) * [5.0, 0.5, 20.0] + [10.0, 1.0, 300.0]
     np.testing.assert_allclose(ours.predict(x_new), ref.predict(poly.transform(x_new)), rtol=1e-7, atol=1e-7)
     assert ours.parameters == poly.n_output_features_ == 10
-
-
-def test_card_histogram_counts_agree_with_numpy_histogram():
-    rng = np.random.default_rng(2)
-    v = rng.gamma(2.0, 3.0, 5000)
-    h = quantile_histogram(v, bins=8)
-    # numpy.histogram with the card's outer bins opened to -inf and +inf
-    edges = np.array(h.edges, dtype=float)
-    edges[0], edges[-1] = -np.inf, np.inf
-    counts, _ = np.histogram(v, bins=edges)
-    np.testing.assert_allclose(h.shares, counts / len(v), atol=1e-12)
-    assert len(h.shares) == 8 and max(h.shares) - min(h.shares) < 0.01  # quantile bins: equal shares
 
 
 def test_card_figures_are_the_training_rows_figures():
