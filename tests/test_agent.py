@@ -16,6 +16,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+import pytest
 import paho.mqtt.client as paho
 from paho.mqtt.enums import CallbackAPIVersion
 
@@ -198,8 +199,9 @@ def send_pairs(pub: Client, start: int, n: int, sigma: float, rng: np.random.Gen
 
 
 # --- tests ---------------------------------------------------------------------------------
-def test_end_to_end_gap_alert_and_retained_state(tmp_path, broker):
-    cfg = write_setup(tmp_path, broker)
+@pytest.mark.parametrize("protocol", ["3.1.1", "5"])
+def test_end_to_end_gap_alert_and_retained_state(tmp_path, broker, protocol):
+    cfg = write_setup(tmp_path, broker, broker_extra=f'protocol = "{protocol}"\n')
     watcher = Client(broker, "watcher", [ALERTS, STATE, STATUS])
     agent = AgentProc(cfg)
     try:
