@@ -249,7 +249,7 @@ def test_last_will_sets_status_offline_after_sigkill(tmp_path, broker):
                      what="status online")
     agent.stop(signal.SIGKILL)
     # MQTT 3.1.1 section 3.1.2.5: the server publishes the will when the network connection
-    # closes without a DISCONNECT; it was set retained, so a later reader sees it too.
+    # closes without a DISCONNECT; it was set retained, so a later reader sees it too (section number from memory).
     watcher.wait_for(lambda: watcher.json_on(STATUS)[-1]["state"] == "offline", what="the last will")
     late = Client(broker, "late", [STATUS])
     late.wait_for(lambda: late.on(STATUS), what="retained status")

@@ -54,7 +54,7 @@ def _link(b: Broker, tmp_path, taker: _Taker, protocol: str = "3.1.1", **kw) -> 
 
 @pytest.mark.parametrize("protocol", ["3.1.1", "5"])
 def test_persistent_session_keeps_messages_while_away_and_redelivers_unacked(broker, tmp_path, protocol):
-    # MQTT 3.1.1 section 3.1.2.4 (CleanSession = 0) and MQTT 5 section 3.1.2.4 / 3.1.2.11.2
+    # MQTT 3.1.1 section 3.1.2.4 (CleanSession = 0) and MQTT 5 section 3.1.2.4 / 3.1.2.11.2 (section numbers from memory)
     # (Clean Start = 0 with a Session Expiry Interval): the server keeps the subscription and
     # queues QoS 1 messages for the client; unacknowledged ones are re-sent with DUP = 1 (4.4).
     taker = _Taker()
@@ -145,7 +145,7 @@ def test_unreachable_broker_gives_one_line_reason(tmp_path):
 
 
 def test_outbound_topics_refuse_wildcards_nul_and_empty_levels():
-    # MQTT 3.1.1 section 4.7.3: topic names used to publish must not contain wildcards;
+    # MQTT 3.1.1 section 4.7.3: topic names used to publish must not contain wildcards (section numbers from memory);
     # section 1.5.3: no U+0000.
     assert outbound_topic("watchdog/{model}/alerts", model="pump-1") == "watchdog/pump-1/alerts"
     assert outbound_topic("wd/agents/{agent}/status", agent="edge") == "wd/agents/edge/status"
