@@ -221,10 +221,12 @@ def test_end_to_end_gap_alert_and_retained_state(tmp_path, broker, protocol):
         # retained state, read by a client that connects afterwards
         late = Client(broker, "late-reader", [STATE, STATUS])
         late.wait_for(lambda: late.on(STATE) and late.on(STATUS), what="retained state and status")
-        state = late.json_on(STATE)[0]
         # the first one comes from the broker's retained copy (later ones are live updates)
-        assert late.on(STATE)[0].retain
-        assert state["checks"]["gap"]["state"] in ("critical", "warning")
+        assert late.on(STATE)[0].retain and late.on(STATUS)[0].retain
+        # the state is republished right after the alert goes out
+        late.wait_for(lambda: late.json_on(STATE)[-1]["checks"]["gap"]["state"] == "critical",
+                      what="state showing the gap")
+        state = late.json_on(STATE)[-1]
         assert state["pairs"] >= 40
         # the status is refreshed every agent.state_every_s with the core's counters
         late.wait_for(lambda: late.json_on(STATUS)[-1]["received"] >= 16, what="status counters")

@@ -97,6 +97,7 @@ class Agent:
         self.pending: dict[int, str] = {}  # mid -> alert_id awaiting PUBACK
         self.pending_other: set[int] = set()  # mids of retained state/status awaiting PUBACK
         self.recent: OrderedDict[int, tuple[int, int]] = OrderedDict()  # mid -> content key
+        self._carry: list[Inbound | LinkEvent] = []
         self.counters = {"connects": 0, "disconnects": 0, "connection_refused": 0, "connect_failures": 0,
                          "redelivered": 0, "journal_batches": 0, "snapshots": 0, "shed_qos0": 0}
         self.last_refusal: str | None = None
@@ -212,11 +213,14 @@ class Agent:
 
     def _take(self, batch_max: int, wait: float) -> list[Inbound | LinkEvent]:
         items: list[Inbound | LinkEvent] = []
-        try:
-            items.append(self.q.get(timeout=wait) if wait > 0 else self.q.get_nowait())
-        except queue.Empty:
-            return items
-        messages = int(isinstance(items[0], Inbound))
+        if self._carry:  # left over when the last batch hit agent.journal_batch_ms
+            items, self._carry = self._carry, []
+        else:
+            try:
+                items.append(self.q.get(timeout=wait) if wait > 0 else self.q.get_nowait())
+            except queue.Empty:
+                return items
+        messages = sum(isinstance(i, Inbound) for i in items)
         while messages < batch_max:
             try:
                 it = self.q.get_nowait()
@@ -235,8 +239,14 @@ class Agent:
         events: list[LinkEvent] = []
         mon = self.monitor
         rec = self.recorder
-        for it in items:
+        # A batch commits (and acks) no later than agent.journal_batch_ms after it started,
+        # even when its messages are slow to process; the rest waits for the next batch.
+        deadline = time.perf_counter() + self.config.agent.journal_batch_ms / 1000.0
+        for k, it in enumerate(items):
             if type(it) is Inbound:
+                if entries and time.perf_counter() >= deadline:
+                    self._carry = items[k:]
+                    break
                 if it.dup and self.recent.get(it.mid) == _content_key(it.topic, it.payload):
                     self.counters["redelivered"] += 1
                     acks.append((it.mid, it.qos))
