@@ -142,3 +142,10 @@ def test_missing_card_and_unusable_card_are_clear_errors():
         Monitor(config(), {})
     with pytest.raises(ConfigError, match="holdout"):
         Monitor(config(), {"m": card(holdout=None, loss="absolute")})
+
+
+def test_snapshot_is_strict_json_even_before_the_first_record():
+    mon = Monitor(config(), {"m": card()})
+    text = json.dumps(mon.snapshot(), allow_nan=False)  # RFC 8259 has no NaN or Infinity
+    again = Monitor.restore(config(), {"m": card()}, json.loads(text))
+    assert again.feed("m/pred", pred(1, 1.0), 5.0) == []

@@ -337,7 +337,8 @@ class Monitor:
     def snapshot(self) -> dict[str, Any]:
         """All state as plain JSON-able data."""
         return {
-            "format": SNAPSHOT_FORMAT, "agent": self.agent, "now": self.now,
+            "format": SNAPSHOT_FORMAT, "agent": self.agent,
+            "now": self.now if self.now != float("-inf") else None,  # strict JSON has no infinity
             "received": self.received, "records": self.records, "ticks": self.ticks,
             "clock_backwards": self.clock_backwards, "bad": dict(self.bad),
             "dead": [{"topic": d.topic, "t": d.t, "reason": d.reason, "detail": d.detail,
