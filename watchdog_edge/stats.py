@@ -351,13 +351,19 @@ def andrews_bandwidth(x: np.ndarray) -> float:
     >>> round(andrews_bandwidth(np.array([1.0, 2.0, 3.0, 4.0, 3.0, 2.0, 1.0, 2.0, 3.0, 4.0])), 3)
     2.7
     """
-    arr = _as_series(x, "x")
-    n = arr.size
+    return _bandwidth_of_demeaned(_demeaned(_as_series(x, "x")))
+
+
+def _demeaned(arr: np.ndarray) -> np.ndarray:
+    return arr - arr.mean()
+
+
+def _bandwidth_of_demeaned(z: np.ndarray) -> float:
+    n = z.size
     if n < 3:
         return 0.0
-    z = arr - arr.mean()
     denom = float(np.dot(z[:-1], z[:-1]))
-    if denom <= 0.0 or np.ptp(arr) == 0.0:
+    if denom <= 0.0 or not np.any(z):
         return 0.0
     rho = float(np.dot(z[1:], z[:-1])) / denom
     rho = min(max(rho, -_RHO_CLIP), _RHO_CLIP)
@@ -389,8 +395,11 @@ def long_run_variance(x: np.ndarray, bandwidth: float | None = None) -> float:
         bandwidth = float(bandwidth)
         if not (bandwidth >= 0.0) or math.isinf(bandwidth):
             raise ValueError(f"bandwidth={bandwidth!r} must be a finite number >= 0 (or None for automatic)")
-    n = arr.size
-    z = arr - arr.mean()
+    return _lrv_of_demeaned(_demeaned(arr), bandwidth)
+
+
+def _lrv_of_demeaned(z: np.ndarray, bandwidth: float) -> float:
+    n = z.size
     total = float(np.dot(z, z))
     lags = _bartlett_lags(bandwidth, n)
     for j in range(1, lags + 1):
@@ -417,9 +426,10 @@ def mean_interval(x: np.ndarray, confidence: float) -> MeanInterval:
     if not (0.5 <= confidence < 1.0):
         raise ValueError(f"confidence={confidence!r} must be in [0.5, 1) (one-sided level, e.g. 0.95)")
     n = arr.size
-    bw = andrews_bandwidth(arr)
-    se = math.sqrt(long_run_variance(arr, bw) / n)
     mean = float(arr.mean())
+    z = arr - mean  # one validated, demeaned pass serves the bandwidth and the variance
+    bw = _bandwidth_of_demeaned(z)
+    se = math.sqrt(_lrv_of_demeaned(z, bw) / n)
     half = (t_ppf(confidence, n - 1) if confidence > 0.5 else 0.0) * se
     return MeanInterval(mean=mean, lower=mean - half, upper=mean + half, std_error=se, bandwidth=bw, n=n)
 
