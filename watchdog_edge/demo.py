@@ -162,11 +162,11 @@ def build_site(folder: Path, seed: int = 7, days: float = 6.0) -> dict[str, Path
             next_tick += 60.0
 
     config = folder / "config.toml"
-    config.write_text(_CONFIG.format(site=SITE), encoding="utf-8")
+    config.write_text(_config_text(SITE), encoding="utf-8")
     return {"config": config, "recording": recording, "folder": folder}
 
 
-_CONFIG = """\
+_HEAD = """\
 # Demo config: an invented cold store, two models of compressor power, all six checks on.
 [agent]
 name = "harbour-3-gateway"
@@ -175,11 +175,13 @@ state_dir = "state"
 [broker]
 host = "127.0.0.1"
 port = 1883
+"""
 
+_MODEL = """
 [[models]]
-id = "compressor-kw"
-card = "compressor-kw.card.json"
-prediction_topic = "{site}/compressor/pred"
+id = "{model}"
+card = "{model}.card.json"
+prediction_topic = "{site}/compressor/{topic}"
 truth_topic = "{site}/meter"
 fields.truth = {{ id = "meter.id", value = "meter.kw", ts = "read_at" }}
 pairing = {{ horizon_s = 3600 }}
@@ -188,25 +190,6 @@ window = {{ size = 300, min_pairs = 100 }}
 [models.checks.gap]
 warning_tolerance = 0.25
 critical_tolerance = 1.0
-
-[models.checks.range]
-[models.checks.shift]
-window = 2160
-[models.checks.silence]
-truth_timeout_s = 3600
-[models.checks.drift]
-[models.checks.baseline]
-learners = ["mean", "linear"]
-
-[[models]]
-id = "compressor-kw-quick"
-card = "compressor-kw-quick.card.json"
-prediction_topic = "{site}/compressor/pred-quick"
-truth_topic = "{site}/meter"
-fields.truth = {{ id = "meter.id", value = "meter.kw", ts = "read_at" }}
-pairing = {{ horizon_s = 3600 }}
-window = {{ size = 300, min_pairs = 100 }}
-
 [models.checks.range]
 [models.checks.shift]
 window = 2160
@@ -216,6 +199,11 @@ truth_timeout_s = 3600
 [models.checks.baseline]
 learners = ["mean", "linear"]
 """
+
+
+def _config_text(site: str) -> str:
+    return _HEAD + "".join(_MODEL.format(model=m, site=site, topic=t) for m, t in
+                           (("compressor-kw", "pred"), ("compressor-kw-quick", "pred-quick")))
 
 
 def run_demo(folder: Path, seed: int = 7, days: float = 6.0, console: Console | None = None) -> list:
