@@ -75,3 +75,35 @@ def test_paths_resolve_against_the_config_folder(tmp_path):
     p.write_text('[[models]]\nid = "m"\ncard = "cards/m.json"\nprediction_topic = "a"\ntruth_topic = "b"\n')
     cfg = load_config(p)
     assert cfg.resolve(cfg.models[0].card) == (tmp_path / "sub" / "cards" / "m.json").resolve()
+
+
+def test_model_id_from_a_topic_level(tmp_path):
+    from watchdog_edge.cards import save_card
+    from watchdog_edge.events import DeadLetter
+    from watchdog_edge.monitor import Monitor, load_cards
+
+    from helpers import card, pred, truth
+
+    (tmp_path / "cards").mkdir()
+    for mid in ("pump-1", "pump-2"):
+        save_card(card(mid), tmp_path / "cards" / f"{mid}.json")
+    cfgfile = tmp_path / "c.toml"
+    cfgfile.write_text('[[models]]\nid = "pumps"\ncard = "cards/{model}.json"\nmodel_level = 2\n'
+                       'prediction_topic = "station/+/pred"\ntruth_topic = "station/+/truth"\n')
+    cfg = load_config(cfgfile)
+    assert [(m.id, m.prediction_topic) for m in cfg.models] == [("pump-1", "station/pump-1/pred"),
+                                                                ("pump-2", "station/pump-2/pred")]
+    mon = Monitor(cfg, load_cards(cfg))
+    mon.feed("station/pump-2/pred", pred(1, 3.0), 1.0)
+    mon.feed("station/pump-2/truth", truth(1, 3.5), 2.0)
+    assert mon.status()["models"]["pump-2"]["paired"] == 1
+    ev = mon.feed("station/pump-9/pred", pred(1, 3.0), 3.0)
+    assert [e.reason for e in ev if isinstance(e, DeadLetter)] == ["unknown_topic"]
+
+
+def test_model_level_rules_are_explained():
+    msg = err({"models": [dict(MODEL, card="cards/{model}.json", model_level=2)]})
+    assert "must have '+' at level 2" in msg
+    msg = err({"models": [dict(MODEL, prediction_topic="s/+/p", truth_topic="s/+/t", model_level=2)]})
+    assert "{model} in the file name" in msg
+    assert "model_level is not set" in err({"models": [dict(MODEL, card="{model}.json")]})

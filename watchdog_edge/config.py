@@ -146,6 +146,9 @@ class ModelSettings(_Strict):
     card: str = Field(description="Path of the model card JSON (relative to the config file).")
     prediction_topic: str
     truth_topic: str
+    model_level: int | None = Field(
+        None, ge=1, description="Many models in one entry: the model id is this level (1 = first) of both "
+        "topics, which must be '+' there, and 'card' names the cards with {model} in the file name.")
     fields: FieldSettings = FieldSettings()
     pairing: PairingSettings = PairingSettings()
     window: WindowSettings = WindowSettings()
@@ -162,6 +165,22 @@ class ModelSettings(_Strict):
     def _filter(cls, v: str) -> str:
         validate_filter(v)
         return v
+
+    @model_validator(mode="after")
+    def _template(self) -> "ModelSettings":
+        if self.model_level is None:
+            if "{model}" in self.card:
+                raise ValueError("card holds {model} but model_level is not set; set model_level to the topic level of the id")
+            return self
+        for name in ("prediction_topic", "truth_topic"):
+            levels = getattr(self, name).split("/")
+            if len(levels) < self.model_level or levels[self.model_level - 1] != "+":
+                raise ValueError(f"with model_level = {self.model_level}, {name} must have '+' at level "
+                                 f"{self.model_level}, got {getattr(self, name)!r}")
+        if "{model}" not in Path(self.card).name:
+            raise ValueError("with model_level set, card must name the card files with {model} in the "
+                             "file name, e.g. \"cards/{model}.json\"")
+        return self
 
     @field_validator("checks", mode="before")
     @classmethod
@@ -274,7 +293,54 @@ def load_config(path: str | Path) -> Config:
     """Read and validate a TOML config file."""
     p = Path(path)
     data = read_document(p, "config file", tomllib.loads, ConfigError, "TOML")
-    return parse_config(data, p.parent, str(p))
+    return expand_models(parse_config(data, p.parent, str(p)))
+
+
+def _with_level(flt: str, level: int, value: str) -> str:
+    parts = flt.split("/")
+    parts[level - 1] = value
+    return "/".join(parts)
+
+
+def expand_models(cfg: Config) -> Config:
+    """Turn each entry with ``model_level`` into one model per card file that matches it.
+
+    ``card = "cards/{model}.json"`` with files ``cards/pump-1.json`` and ``cards/pump-2.json``
+    gives models ``pump-1`` and ``pump-2``, each on its own topics (the ``+`` at
+    ``model_level`` replaced by the id). A message for a model with no card then meets no
+    route and is dead-lettered as ``unknown_topic``.
+    """
+    if all(m.model_level is None for m in cfg.models):
+        return cfg
+    out: list[ModelSettings] = []
+    for m in cfg.models:
+        if m.model_level is None:
+            out.append(m)
+            continue
+        pattern = cfg.resolve(m.card)
+        head, _, tail = pattern.name.partition("{model}")
+        found = sorted(pattern.parent.glob(head + "*" + tail)) if pattern.parent.is_dir() else []
+        if not found:
+            raise ConfigError(f"models[{m.id}].card = {m.card!r}: no card file matches {pattern}; "
+                              "write one card per model, named by its id")
+        for f in found:
+            mid = f.name[len(head): len(f.name) - len(tail)]
+            try:
+                validate_level(mid, "model id")
+            except ValueError as e:
+                raise ConfigError(f"models[{m.id}].card: card file {f.name}: {e}") from None
+            out.append(m.model_copy(update={
+                "id": mid, "card": str(f), "model_level": None,
+                "prediction_topic": _with_level(m.prediction_topic, m.model_level, mid),
+                "truth_topic": _with_level(m.truth_topic, m.model_level, mid)}))
+    ids = [m.id for m in out]
+    dup = next((i for i in ids if ids.count(i) > 1), None)
+    if dup is not None:
+        raise ConfigError(f"model id {dup!r} appears twice after expanding model_level entries; "
+                          "each model needs its own id")
+    expanded = cfg.model_copy(update={"models": out})
+    expanded._base_dir = cfg.base_dir
+    return expanded
 
 
 def config_warnings(cfg: Config) -> list[str]:
