@@ -149,3 +149,16 @@ def test_snapshot_is_strict_json_even_before_the_first_record():
     text = json.dumps(mon.snapshot(), allow_nan=False)  # RFC 8259 has no NaN or Infinity
     again = Monitor.restore(config(), {"m": card()}, json.loads(text))
     assert again.feed("m/pred", pred(1, 1.0), 5.0) == []
+
+
+def test_feed_gives_the_same_events_as_apply_of_intake():
+    rng = np.random.default_rng(12)
+    cfg, cards = config(checks=GAP_ONLY), {"m": card(holdout=1.0)}
+    a, b = Monitor(cfg, cards), Monitor(cfg, cards)
+    got_a, got_b = [], []
+    for i, e in enumerate(np.concatenate([rng.normal(0, 1, 500), rng.normal(0, 2, 500)])):
+        for topic, payload, t in (("m/pred", pred(i, 0.0), 10.0 * i), ("m/truth", truth(i, float(e)), 10.0 * i + 5),
+                                  ("m/truth", b"{bad", 10.0 * i + 6)):
+            got_a += a.feed(topic, payload, t)
+            got_b += b.apply(b.intake(topic, payload, t))
+    assert got_a == got_b and any(isinstance(x, Alert) for x in got_a)

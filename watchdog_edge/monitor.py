@@ -225,16 +225,24 @@ class Monitor:
 
     def intake(self, topic: str, payload: bytes | str, t: float) -> list[Any]:
         """Route, parse and pair one message; returns steps and dead letters."""
+        return self._intake(topic, payload, t, None)
+
+    def _intake(self, topic: str, payload: bytes | str, t: float, direct: list[Event] | None) -> list[Any]:
+        # With ``direct`` the tracks run at once and their events go there: the same order of
+        # work as apply(intake(...)), without building a Step per record.
         t = self._clock(t)
         self.received += 1
-        raw = payload.encode() if isinstance(payload, str) else bytes(payload)
-        out: list[Any] = []
+        if type(payload) is bytes:
+            raw = payload
+        else:
+            raw = payload.encode() if isinstance(payload, str) else bytes(payload)
+        out: list[Any] = [] if direct is None else direct
         routes = self.router.route(topic)
-        for model, _ in routes:
-            self.pairers[model].expire(t)
         if not routes:
             self._dead_letter(topic, t, "unknown_topic", f"no model listens on topic {topic!r}", raw, out)
             return out
+        for model, _ in routes:
+            self.pairers[model].expire(t)
         try:
             elements = decode(raw, self.max_payload)
         except BadRecord as e:
@@ -244,6 +252,7 @@ class Monitor:
         for model, kind in routes:
             parser = self.parsers[(model, kind)]
             pairer = self.pairers[model]
+            track = self.tracks[model]
             for el in elements:
                 try:
                     rec = parser.parse(el, t)
@@ -252,13 +261,22 @@ class Monitor:
                     continue
                 self.records += 1
                 if kind == "prediction":
-                    out.append(Step("prediction", t, model, rec))
+                    if direct is None:
+                        out.append(Step("prediction", t, model, rec))
+                    else:
+                        track.prediction(rec, direct)  # type: ignore[arg-type]
                     pr = pairer.add_prediction(rec)  # type: ignore[arg-type]
                 else:
-                    out.append(Step("truth", t, model, rec))
+                    if direct is None:
+                        out.append(Step("truth", t, model, rec))
+                    else:
+                        track.truth(rec, direct)  # type: ignore[arg-type]
                     pr = pairer.add_truth(rec)  # type: ignore[arg-type]
                 if pr is not None:
-                    out.append(Step("pair", t, model, pr))
+                    if direct is None:
+                        out.append(Step("pair", t, model, pr))
+                    else:
+                        track.pair(pr, direct)
         return out
 
     def _expire(self, t: float) -> None:
@@ -296,8 +314,8 @@ class Monitor:
         return out
 
     def feed(self, topic: str, payload: bytes | str, t: float) -> list[Event]:
-        """One received message at receive time ``t``."""
-        return self.apply(self.intake(topic, payload, t))
+        """One received message at receive time ``t``; the same events as apply(intake(...))."""
+        return self._intake(topic, payload, t, [])
 
     def tick(self, t: float) -> list[Event]:
         """A timer tick at core time ``t``."""

@@ -138,6 +138,8 @@ class RecordParser:
     def __init__(self, model: str, kind: str, fields: FieldMap) -> None:
         self.model = model
         self.kind = kind
+        self._plain = all("." not in p for p in (fields.id, fields.value, fields.ts))
+        self._keys = (fields.id, fields.value, fields.ts)
         self._id = compile_path(fields.id)
         self._value = compile_path(fields.value)
         self._ts = compile_path(fields.ts)
@@ -146,11 +148,18 @@ class RecordParser:
 
     def parse(self, obj: Any, t: float) -> Prediction | Truth:
         """One element; raises :class:`BadRecord`."""
-        if not isinstance(obj, dict):
+        if type(obj) is not dict:
             raise BadRecord("not_object", f"element is {type(obj).__name__}, not a JSON object")
-        rid = _id(self._id(obj))
-        value = _number(self._value(obj), "value", "missing_value")
-        raw_ts = self._ts(obj)
+        if self._plain:  # the common case: top-level keys, looked up without a path walk
+            k_id, k_value, k_ts = self._keys
+            raw_id = obj.get(k_id, _MISSING)
+            raw_value = obj.get(k_value, _MISSING)
+            raw_ts = obj.get(k_ts, _MISSING)
+        else:
+            raw_id, raw_value, raw_ts = self._id(obj), self._value(obj), self._ts(obj)
+        rid = raw_id if type(raw_id) is str and raw_id else _id(raw_id)
+        value = (float(raw_value) if type(raw_value) is float and math.isfinite(raw_value)
+                 else _number(raw_value, "value", "missing_value"))
         ts = None if raw_ts is _MISSING or raw_ts is None else parse_ts(raw_ts)
         if self.kind == "truth":
             return Truth(self.model, rid, value, t, ts)
@@ -167,7 +176,20 @@ class RecordParser:
         return Prediction(self.model, rid, value, t, ts, feats, version)
 
 
-_decode_json = json.JSONDecoder().decode
+_decoder = json.JSONDecoder()
+_scan_once = _decoder.scan_once
+_decode_json = _decoder.decode
+
+
+def _loads(text: str) -> Any:
+    """``json.loads`` without its wrappers: scan once, fall back for whitespace or errors."""
+    try:
+        doc, end = _scan_once(text, 0)
+    except StopIteration:
+        return _decode_json(text)  # leading whitespace or not JSON: the full decoder says which
+    if end != len(text) and text[end:].strip():
+        return _decode_json(text)  # trailing data: let the full decoder raise its error
+    return doc
 
 
 def decode(payload: bytes, max_bytes: int) -> list[Any]:
@@ -175,7 +197,7 @@ def decode(payload: bytes, max_bytes: int) -> list[Any]:
     if len(payload) > max_bytes:
         raise BadRecord("oversize", f"payload of {len(payload)} bytes is over the limit of {max_bytes}")
     try:
-        doc = _decode_json(payload.decode("utf-8"))
+        doc = _loads(payload.decode("utf-8"))
     except (ValueError, UnicodeDecodeError) as e:
         raise BadRecord("not_json", f"payload is not JSON: {e}") from None
     if isinstance(doc, list):
