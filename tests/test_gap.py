@@ -82,9 +82,22 @@ def feed(gap, losses, start=0):
 
 
 def test_evaluates_every_k_pairs_once_the_minimum_is_reached():
+    # Mean 1.3 is above the warning limit 1.25, but the spread keeps the lower bound below it.
     gap = GapCheck(GapSettings(evaluate_every=10), ctx(size=100, min_pairs=50))
-    verdicts = feed(gap, [1.0] * 120)
+    verdicts = feed(gap, ([0.3] * 5 + [2.3] * 5) * 12)
     assert len(verdicts) == 8  # at pairs 50, 60, ..., 120
+    assert all(v.level == "ok" and v.figures["lower"] < 1.25 < v.figures["live_loss"] for v in verdicts)
+
+
+def test_a_healthy_window_skips_the_interval_but_keeps_its_figures():
+    # While the running mean is under the warning limit the lower bound cannot pass it.
+    rng = np.random.default_rng(13)
+    gap = GapCheck(GapSettings(evaluate_every=10), ctx(size=100, min_pairs=50))
+    losses = list(rng.exponential(1.0, 120))
+    assert feed(gap, losses) == []
+    figs = gap.figures()
+    assert figs["live_loss"] == pytest.approx(np.mean(losses[-100:]))
+    assert figs["lower"] < figs["live_loss"] < figs["upper"] and figs["pairs"] == 100
 
 
 def test_limits_relative_and_absolute():

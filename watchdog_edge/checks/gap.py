@@ -88,6 +88,7 @@ class GapCheck(Check):
         self._healthy_seen = False  # one full window without a gap has passed
         self._diagnosis: str | None = None
         self._figures: dict[str, Any] = {}
+        self._stale = False  # the window moved since the figures were computed
 
     def on_pair(self, pair: Pair, loss: float) -> None:
         self.window.push(pair.t, loss)
@@ -107,7 +108,12 @@ class GapCheck(Check):
             return None
         self._since_eval = 0
         self._evaluated = True
-        iv = mean_interval(self.window.array(), self.settings.confidence)
+        if self._level == "ok" and self.window.mean() <= self.warning_limit:
+            # The lower bound never exceeds the mean, so nothing can be raised: skip the
+            # interval, the costliest step, while the model is healthy.
+            self._stale = True
+            return None
+        iv = self._interval()
         s = self.settings
         if iv.lower > self.critical_limit:
             target = "critical"
@@ -134,6 +140,17 @@ class GapCheck(Check):
         else:
             self._clear_run = 0
 
+        self._store_figures(iv)
+        if self._level != "ok":
+            self._figures["diagnosis"] = self._diagnosis
+        return Verdict(self._level, self._summary(iv), dict(self._figures))
+
+    def _interval(self) -> Any:
+        self._stale = False
+        return mean_interval(self.window.array(), self.settings.confidence)
+
+    def _store_figures(self, iv: Any) -> None:
+        s = self.settings
         self._figures = {
             "live_loss": iv.mean,
             "lower": iv.lower,
@@ -147,9 +164,6 @@ class GapCheck(Check):
             "bandwidth": iv.bandwidth,
             "loss": self.context.loss_kind,
         }
-        if self._level != "ok":
-            self._figures["diagnosis"] = self._diagnosis
-        return Verdict(self._level, self._summary(iv), dict(self._figures))
 
     def _summary(self, iv: Any) -> str:
         kind = "squared" if self.context.loss_kind == "squared" else "absolute"
@@ -169,6 +183,8 @@ class GapCheck(Check):
         return self.window.mean() if len(self.window) else math.nan
 
     def figures(self) -> dict[str, Any]:
+        if self._stale and len(self.window) >= 2:  # evaluations skipped the interval: bring it up to date
+            self._store_figures(self._interval())
         out = dict(self._figures)
         out["level"] = self._level
         out["window_pairs"] = len(self.window)
