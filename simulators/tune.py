@@ -279,7 +279,15 @@ def apply_setting(config: Config, cards: dict[str, ModelCard], steps: list[Step]
                   models: list[str] | None = None, checks: list[str] | None = None) -> list[Mark]:
     """The raised alerts of one setting on the shared steps (of ``models`` and ``checks``)."""
     mon = Monitor(config, cards)
-    return _sort_marks([Mark(e.t, e.model, e.check, e.severity) for e in mon.apply(steps)
+    # Settings with the same checks switched on need the same steps: filter once per check set.
+    key = tuple((m.id, tuple(m.enabled_checks())) for m in config.models)
+    cache = _W.setdefault("relevant", {})
+    if _W.get("relevant_of") is not steps:  # the object itself: an id() can be reused
+        cache.clear()
+        _W["relevant_of"] = steps
+    if key not in cache:
+        cache[key] = mon.relevant(steps)
+    return _sort_marks([Mark(e.t, e.model, e.check, e.severity) for e in mon.apply(cache[key])
                         if isinstance(e, Alert) and e.state == "raised" and (models is None or e.model in models)
                         and (checks is None or e.check in checks)])
 

@@ -162,3 +162,20 @@ def test_feed_gives_the_same_events_as_apply_of_intake():
             got_a += a.feed(topic, payload, t)
             got_b += b.apply(b.intake(topic, payload, t))
     assert got_a == got_b and any(isinstance(x, Alert) for x in got_a)
+
+
+def test_relevant_steps_give_the_same_alerts_with_fewer_steps():
+    rng = np.random.default_rng(14)
+    cfg, cards = config(checks=GAP_ONLY), {"m": card(holdout=1.0)}
+    intake = Monitor(cfg, cards)
+    steps = []
+    for i, e in enumerate(np.concatenate([rng.normal(0, 1, 400), rng.normal(0, 2, 400)])):
+        version = "v1" if i < 600 else "v2"
+        steps += intake.intake("m/pred", pred(i, 0.0, model_version=version), 10.0 * i)
+        steps += intake.intake("m/truth", truth(i, float(e)), 10.0 * i + 5)
+    full = [a.to_dict() for a in Monitor(cfg, cards).apply(steps) if isinstance(a, Alert)]
+    mon = Monitor(cfg, cards)
+    kept = mon.relevant(steps)
+    assert len(kept) < len(steps) / 2  # gap needs pairs, and the predictions that change version
+    assert [a.to_dict() for a in mon.apply(kept) if isinstance(a, Alert)] == full
+    assert any(a["state"] == "cleared" and a["model_version"] == "v1" for a in full)

@@ -313,6 +313,32 @@ class Monitor:
                     tr.tick(s.t, out)
         return out
 
+    def relevant(self, steps: Iterable[Any]) -> list[Step]:
+        """The steps that can change this monitor's alerts, for applying one recording many times.
+
+        Pairs and ticks are kept; a prediction or truth only where some enabled check of its
+        model takes or judges it, or where a prediction starts a new model version. Dead
+        letters are dropped. ``apply`` of the result gives the same alerts as ``apply`` of all.
+        """
+        wants = {m: (bool(tr._takes["on_prediction"] or tr._judges["prediction"]),
+                     bool(tr._takes["on_truth"] or tr._judges["truth"])) for m, tr in self.tracks.items()}
+        version: dict[str, str | None] = {}
+        out: list[Step] = []
+        for s in steps:
+            if type(s) is not Step:
+                continue
+            if s.kind == "prediction":
+                v = s.item.model_version  # type: ignore[union-attr]
+                new_version = v is not None and v != version.get(s.model)  # type: ignore[arg-type]
+                if new_version:
+                    version[s.model] = v  # type: ignore[index]
+                if not (wants[s.model][0] or new_version):  # type: ignore[index]
+                    continue
+            elif s.kind == "truth" and not wants[s.model][1]:  # type: ignore[index]
+                continue
+            out.append(s)
+        return out
+
     def feed(self, topic: str, payload: bytes | str, t: float) -> list[Event]:
         """One received message at receive time ``t``; the same events as apply(intake(...))."""
         return self._intake(topic, payload, t, [])
