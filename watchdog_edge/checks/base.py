@@ -30,6 +30,11 @@ class CheckSettings(BaseModel):
     enabled: bool = True
 
 
+def fmt(x: float) -> str:
+    """A figure in an alert summary: four significant digits."""
+    return f"{x:.4g}"
+
+
 @dataclass(frozen=True, slots=True)
 class Verdict:
     """What a check concludes at one evaluation."""

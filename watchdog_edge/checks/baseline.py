@@ -41,7 +41,7 @@ from pydantic import Field, field_validator, model_validator
 
 from ..records import Pair
 from ..stats import diebold_mariano
-from .base import Check, CheckContext, CheckSettings, Level, Verdict
+from .base import Check, CheckContext, CheckSettings, Level, Verdict, fmt
 
 LearnerName = Literal["mean", "linear", "tree"]
 
@@ -118,10 +118,6 @@ def _pack(obj: Any) -> str:
 
 def _unpack(text: str) -> Any:
     return pickle.loads(base64.b64decode(text))
-
-
-def _fmt(x: float) -> str:
-    return f"{x:.4g}"
 
 
 class BaselineCheck(Check):
@@ -375,10 +371,10 @@ class BaselineCheck(Check):
         n = self._filled
         if self._level == "ok":
             return (f"No online learner beats the deployed model with confidence over the last {n} pairs "
-                    f"(best: {DESCRIPTIONS[best]}, mean {kind} error {_fmt(r['learner_loss'])} against "
-                    f"the model's {_fmt(model)}).")
+                    f"(best: {DESCRIPTIONS[best]}, mean {kind} error {fmt(r['learner_loss'])} against "
+                    f"the model's {fmt(model)}).")
         return (f"A cheap {DESCRIPTIONS[best]} beats the deployed model: mean {kind} error "
-                f"{_fmt(r['learner_loss'])} against the model's {_fmt(model)} over the last {n} pairs "
+                f"{fmt(r['learner_loss'])} against the model's {fmt(model)} over the last {n} pairs "
                 f"({r['margin']:.0%} lower, Diebold-Mariano p = {r['p_value']:.2g}); the model may need "
                 f"retraining or its inputs checking.")
 

@@ -36,7 +36,7 @@ from pydantic import Field
 from ..events import rfc3339
 from ..losses import LossWindow
 from ..records import Pair
-from .base import Check, CheckContext, CheckSettings, Level, Verdict
+from .base import Check, CheckContext, CheckSettings, Level, Verdict, fmt
 
 
 class DriftSettings(CheckSettings):
@@ -91,10 +91,6 @@ def change_point(x: np.ndarray, min_side: int = 5) -> int:
     cs = np.cumsum(x - x.mean())[k - 1]
     gain = cs * cs / (k * (n - k))
     return int(k[int(np.argmax(gain))])
-
-
-def _fmt(x: float) -> str:
-    return f"{x:.4g}"
 
 
 class DriftCheck(Check):
@@ -242,14 +238,14 @@ class DriftCheck(Check):
         ratio = c["mean_after"] / c["mean_before"] if c["mean_before"] > 0 else math.inf
         src = "" if c["change_ts"] is None else f", source time {rfc3339(c['change_ts'])}"
         return (f"The model's error changed for the worse at {rfc3339(c['change_t'])}{src}: mean {kind} "
-                f"error {_fmt(c['mean_before'])} before and {_fmt(c['mean_after'])} after "
+                f"error {fmt(c['mean_before'])} before and {fmt(c['mean_after'])} after "
                 f"({ratio:.2g} times), found by {det} {c['pairs_after']} pairs after the change.")
 
     def _recovery_summary(self) -> str:
         w = self._since_change
         kind = "squared" if self.context.loss_kind == "squared" else "absolute"
-        return (f"The mean {kind} error since the change, {_fmt(w.mean())} over {len(w)} pairs, is back "
-                f"within the clearing limit {_fmt(self.clear_limit)}.")
+        return (f"The mean {kind} error since the change, {fmt(w.mean())} over {len(w)} pairs, is back "
+                f"within the clearing limit {fmt(self.clear_limit)}.")
 
     def _hold_summary(self) -> str:
         return (f"The drift raised at {rfc3339(self._raised_t)} has been held for "  # type: ignore[arg-type]

@@ -20,7 +20,7 @@ from typing import Any
 from pydantic import Field, model_validator
 
 from ..records import Prediction
-from .base import Check, CheckContext, CheckSettings, Verdict
+from .base import Check, CheckContext, CheckSettings, Verdict, fmt
 from .levels import LevelGate
 
 
@@ -48,10 +48,6 @@ class RangeSettings(CheckSettings):
         if self.min_predictions > self.window:
             raise ValueError(f"min_predictions ({self.min_predictions}) must be <= window ({self.window})")
         return self
-
-
-def _fmt(x: float) -> str:
-    return f"{x:.4g}"
 
 
 class RangeCheck(Check):
@@ -184,9 +180,9 @@ class RangeCheck(Check):
         for fname, f in worst:
             bits = []
             if f["max_above"] is not None:
-                bits.append(f"up to {_fmt(f['max_above'])} above {up} {_fmt(f['high'])}")
+                bits.append(f"up to {fmt(f['max_above'])} above {up} {fmt(f['high'])}")
             if f["max_below"] is not None:
-                bits.append(f"up to {_fmt(f['max_below'])} below {down} {_fmt(f['low'])}")
+                bits.append(f"up to {fmt(f['max_below'])} below {down} {fmt(f['low'])}")
             parts.append(f"{fname} {' and '.join(bits)}")
         more = "" if len(per) <= 3 else f" (and {len(per) - 3} more features)"
         return (f"{head} (the {level} limit is {limit:.1%}), so the model is extrapolating: "

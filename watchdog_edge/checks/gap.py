@@ -10,7 +10,7 @@ from pydantic import Field, model_validator
 from ..losses import LossWindow
 from ..records import Pair
 from ..stats import mean_interval
-from .base import Check, CheckContext, CheckSettings, Verdict
+from .base import Check, CheckContext, CheckSettings, Verdict, fmt
 
 FROM_DEPLOYMENT = "present from deployment"
 AFTER_HEALTHY = "appeared after a healthy period"
@@ -37,10 +37,6 @@ class GapSettings(CheckSettings):
         if self.critical_tolerance < self.warning_tolerance:
             raise ValueError(f"critical_tolerance ({self.critical_tolerance}) must be >= warning_tolerance ({self.warning_tolerance})")
         return self
-
-
-def _fmt(x: float) -> str:
-    return f"{x:.4g}"
 
 
 class GapCheck(Check):
@@ -170,14 +166,14 @@ class GapCheck(Check):
         pct = int(round(self.settings.confidence * 100))
         src = "held-out loss" if self.context.expected_source == "holdout" else "final prediction error"
         if self._level == "ok":
-            return (f"Live mean {kind} error {_fmt(iv.mean)} over {iv.n} pairs is back within the "
-                    f"warning limit {_fmt(self.warning_limit)} (upper {pct}% bound {_fmt(iv.upper)}).")
+            return (f"Live mean {kind} error {fmt(iv.mean)} over {iv.n} pairs is back within the "
+                    f"warning limit {fmt(self.warning_limit)} (upper {pct}% bound {fmt(iv.upper)}).")
         why = ("the model may be overfit, or its training data unlike the field"
                if self._diagnosis == FROM_DEPLOYMENT else "the model or its inputs have degraded")
         limit = self.critical_limit if self._level == "critical" else self.warning_limit
-        return (f"Live mean {kind} error {_fmt(iv.mean)} over {iv.n} pairs (lower {pct}% bound "
-                f"{_fmt(iv.lower)}) is above the {self._level} limit {_fmt(limit)} set from the expected "
-                f"{_fmt(self.context.expected_loss)} ({src}); {self._diagnosis}: {why}.")
+        return (f"Live mean {kind} error {fmt(iv.mean)} over {iv.n} pairs (lower {pct}% bound "
+                f"{fmt(iv.lower)}) is above the {self._level} limit {fmt(limit)} set from the expected "
+                f"{fmt(self.context.expected_loss)} ({src}); {self._diagnosis}: {why}.")
 
     def live_mean(self) -> float:
         return self.window.mean() if len(self.window) else math.nan
