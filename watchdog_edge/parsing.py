@@ -181,8 +181,12 @@ _scan_once = _decoder.scan_once
 _decode_json = _decoder.decode
 
 
-def _loads(text: str) -> Any:
-    """``json.loads`` without its wrappers: scan once, fall back for whitespace or errors."""
+def loads_json(text: str) -> Any:
+    """``json.loads`` of text without its wrappers: scan once, fall back for whitespace or errors.
+
+    >>> loads_json('{"id": 1}'), loads_json(' [1] ')
+    ({'id': 1}, [1])
+    """
     try:
         doc, end = _scan_once(text, 0)
     except StopIteration:
@@ -197,7 +201,7 @@ def decode(payload: bytes, max_bytes: int) -> list[Any]:
     if len(payload) > max_bytes:
         raise BadRecord("oversize", f"payload of {len(payload)} bytes is over the limit of {max_bytes}")
     try:
-        doc = _loads(payload.decode("utf-8"))
+        doc = loads_json(payload.decode("utf-8"))
     except (ValueError, UnicodeDecodeError) as e:
         raise BadRecord("not_json", f"payload is not JSON: {e}") from None
     if isinstance(doc, list):
