@@ -179,3 +179,13 @@ def test_relevant_steps_give_the_same_alerts_with_fewer_steps():
     assert len(kept) < len(steps) / 2  # gap needs pairs, and the predictions that change version
     assert [a.to_dict() for a in mon.apply(kept) if isinstance(a, Alert)] == full
     assert any(a["state"] == "cleared" and a["model_version"] == "v1" for a in full)
+
+
+def test_waiting_predictions_drop_features_only_when_no_check_reads_them_from_pairs():
+    feats = {"a": {"min": 0, "max": 1, "histogram": {"edges": [0, 0.5, 1], "shares": [0.5, 0.5]}}}
+    plain = Monitor(config(), {"m": card(features=feats)})
+    plain.feed("m/pred", pred(1, 0.0, features={"a": 0.2}), 1.0)
+    assert plain.pairers["m"].snapshot()["preds"][0]["features"] == {}
+    learner = Monitor(config(checks={"baseline": {}}), {"m": card(features=feats)})
+    learner.feed("m/pred", pred(1, 0.0, features={"a": 0.2}), 1.0)
+    assert learner.pairers["m"].snapshot()["preds"][0]["features"] == {"a": 0.2}

@@ -73,6 +73,7 @@ class ModelTrack:
         self._judges = {kind: [(n, c) for n, c in items if kind in c.reacts_to]
                         for kind in ("prediction", "truth", "pair", "tick")}
         self.book = AlertBook(agent, settings.id)
+        self.keeps_features = any(c.pair_features for c in self._takes["on_pair"])
         self.version: str | None = None
         self.version_seen = False
         self.pairs = 0
@@ -265,6 +266,8 @@ class Monitor:
                         out.append(Step("prediction", t, model, rec))
                     else:
                         track.prediction(rec, direct)  # type: ignore[arg-type]
+                        if not track.keeps_features:
+                            rec.features = {}  # rebound, not cleared: a check may still hold the dict
                     pr = pairer.add_prediction(rec)  # type: ignore[arg-type]
                 else:
                     if direct is None:

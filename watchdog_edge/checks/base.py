@@ -66,6 +66,9 @@ class Check:
     # The inputs after which ``evaluate`` may have something new to say; the core skips the
     # call after other inputs. A check that is unsure keeps the default: all of them.
     reacts_to: ClassVar[frozenset[str]] = frozenset({"prediction", "truth", "pair", "tick"})
+    # Whether on_pair reads pair.prediction.features. When no check of a model does, the live
+    # core keeps waiting predictions without their features (less memory per unpaired record).
+    pair_features: ClassVar[bool] = True
 
     def __init__(self, settings: CheckSettings, context: CheckContext) -> None:
         self.settings = settings

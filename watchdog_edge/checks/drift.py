@@ -113,6 +113,7 @@ class DriftCheck(Check):
 
     name = "drift"
     reacts_to = frozenset({"pair", "tick"})  # ticks end a hold
+    pair_features = False  # it takes the loss only
     settings_model = DriftSettings
 
     def __init__(self, settings: DriftSettings, context: CheckContext) -> None:

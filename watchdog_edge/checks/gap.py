@@ -59,6 +59,7 @@ class GapCheck(Check):
     name = "gap"
     settings_model = GapSettings
     reacts_to = frozenset({"pair", "tick"})  # ticks only matter for the age bound
+    pair_features = False  # it takes the loss only
 
     def __init__(self, settings: GapSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
