@@ -237,6 +237,7 @@ class Agent:
         acks: list[tuple[int, int]] = []
         acked_alerts: list[str] = []
         events: list[LinkEvent] = []
+        alerted: set[str] = set()  # models whose retained state is refreshed after this batch
         mon = self.monitor
         rec = self.recorder
         # A batch commits (and acks) no later than agent.journal_batch_ms after it started,
@@ -260,7 +261,7 @@ class Agent:
                 if rec is not None:
                     rec.message(t, it.topic, it.payload)
                 if out:
-                    self._collect(out, outbox, dead)
+                    self._collect(out, outbox, dead, alerted)
             elif it.kind == "puback":
                 alert_id = self.pending.pop(it.mid, None)
                 if alert_id is not None:
@@ -276,7 +277,7 @@ class Agent:
             if rec is not None:
                 rec.tick(t)
             if out:
-                self._collect(out, outbox, dead)
+                self._collect(out, outbox, dead, alerted)
         if entries or outbox or dead:
             self.store.append(entries, outbox, dead)
             self.counters["journal_batches"] += 1
@@ -288,22 +289,17 @@ class Agent:
         if rec is not None and entries:
             rec.flush()
         if outbox:
-            self._publish_states(sorted({self._model_of(i) for i in outbox}))
+            self._publish_states(sorted(alerted))
         if acked_alerts:
             self.store.mark_sent(acked_alerts)
         for ev in events:
             self._link_event(ev)
 
-    def _model_of(self, item: OutboxItem) -> str:
-        for m, topic in self.alert_topics.items():
-            if topic == item.topic:
-                return m
-        return ""
-
-    def _collect(self, out: list[Any], outbox: list[OutboxItem], dead: list[DeadLetter]) -> None:
+    def _collect(self, out: list[Any], outbox: list[OutboxItem], dead: list[DeadLetter], alerted: set[str]) -> None:
         for ev in out:
             if isinstance(ev, Alert):
                 outbox.append(OutboxItem(ev.alert_id, self.alert_topics[ev.model], alert_payload(ev), ev.t))
+                alerted.add(ev.model)
                 log.warning("alert %s %s %s on %s: %s", ev.check, ev.state, ev.severity, ev.model, ev.summary)
             elif isinstance(ev, DeadLetter):
                 dead.append(ev)
