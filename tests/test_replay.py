@@ -38,6 +38,8 @@ def test_bad_payload_text_replays_as_it_came():
     ('{"t": 1, "topic": "a"}', "payload"),
     ('{"t": 1, "topic": "a", "payload_b64": "***"}', "base64"),
     ("[1, 2]", "object"),
+    ('{"t": NaN, "topic": "a", "payload": "x"}', "'t'"),
+    ("[" * 5000, "not JSON"),
 ])
 def test_bad_lines_name_the_line(text, needle, tmp_path):
     path = tmp_path / "bad.jsonl"
@@ -56,3 +58,16 @@ def test_ticks_are_added_on_whole_multiples():
     lines = [RecordLine(10.5, "a", b"{}"), RecordLine(13.2, "a", b"{}")]
     got = [(ln.t, ln.tick) for ln in with_ticks(lines, 1.0)]
     assert got == [(10.5, False), (11.0, True), (12.0, True), (13.0, True), (13.2, False)]
+
+
+def test_lines_other_tools_write_are_read_too(tmp_path):
+    # Integer times, other key orders and spacing, a NaN inside the payload text, a payload
+    # that is not UTF-8 on disk (kept byte for byte) and a ``tick`` line with extra keys.
+    path = tmp_path / "other.jsonl"
+    path.write_bytes(b'{"topic":"a/pred","t":1764600000,"payload":"{\\"id\\":1,\\"value\\":NaN}"}\n'
+                     b'  {"payload": "caf\xe9", "t": 1764600001.5, "topic": "a/pred"}  \n'
+                     b'{"t": 1764600002, "tick": true, "note": "from a logger"}\n')
+    got = list(read_recording(path))
+    assert got[0] == RecordLine(1764600000.0, "a/pred", b'{"id":1,"value":NaN}')
+    assert got[1] == RecordLine(1764600001.5, "a/pred", b"caf\xe9")
+    assert got[2] == RecordLine(1764600002.0, tick=True)

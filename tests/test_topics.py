@@ -42,7 +42,7 @@ def test_outbound_levels_refuse_wildcards_and_empty():
 
 
 def test_router_sends_one_topic_to_every_listening_model():
-    r = Router([("site/meter", "a", "truth"), ("site/meter", "b", "truth"), ("site/+/pred", "c", "prediction")])
+    r = Router([("site/meter", ("a", "truth")), ("site/meter", ("b", "truth")), ("site/+/pred", ("c", "prediction"))])
     assert r.route("site/meter") == (("a", "truth"), ("b", "truth"))
     assert r.route("site/x/pred") == (("c", "prediction"),)
     assert r.route("elsewhere") == ()

@@ -71,16 +71,25 @@ class LossWindow:
 
     def push(self, t: float, loss: float) -> None:
         """Add one loss at core time ``t``."""
+        s, c = self._sum, self._comp
         if self._n == self.size:
             i = self._start
-            self._add(-float(self._x[i]))
-            self._start = (i + 1) % self.size
+            v = -float(self._x[i])
+            # Neumaier's compensated sum, written out (as in _add) since this runs on every pair
+            r = s + v
+            c += ((s - r) + v) if abs(s) >= abs(v) else ((v - r) + s)
+            s = r
+            self._start = i + 1 if i + 1 < self.size else 0
         else:
-            i = (self._start + self._n) % self.size
+            i = self._start + self._n
+            if i >= self.size:
+                i -= self.size
             self._n += 1
         self._x[i] = loss
         self._t[i] = t
-        self._add(loss)
+        r = s + loss
+        c += ((s - r) + loss) if abs(s) >= abs(loss) else ((loss - r) + s)
+        self._sum, self._comp = r, c
         self._since_refresh += 1
         if self._since_refresh >= self.size:
             self._refresh()

@@ -19,14 +19,14 @@ from typing import Any, Iterable
 from . import checks as registry
 from .alerts import AlertBook
 from .cards import ModelCard, expected_loss, load_card
-from .checks.base import Check, CheckContext
+from .checks.base import Check, CheckContext, Verdict
 from .config import Config, ModelSettings, load_config
 from .errors import CardError, ConfigError
 from .events import Alert, DeadLetter, Event, VersionStarted
 from .losses import loss_function
 from .pairing import COUNTERS as PAIR_COUNTERS
 from .pairing import Pairer
-from .parsing import REASONS, BadRecord, RecordParser, decode, element_bytes
+from .parsing import REASONS, BadRecord, InexactNumber, RecordParser, decode, decode_exact, element_bytes
 from .records import Pair, Prediction, Truth
 from .topics import Router
 
@@ -41,6 +41,23 @@ class Step:
     t: float
     model: str | None = None
     item: Prediction | Truth | Pair | None = None
+
+
+@dataclass(slots=True, eq=False)
+class Lane:
+    """Where the records of one topic filter go: one model's parser, pairer and track."""
+
+    model: str
+    kind: str  # "prediction" | "truth"
+    parser: RecordParser
+    pairer: Pairer
+    track: "ModelTrack"
+    prediction: bool = False
+    parse: Any = None
+
+    def __post_init__(self) -> None:
+        self.prediction = self.kind == "prediction"
+        self.parse = self.parser.parse
 
 
 class ModelTrack:
@@ -72,6 +89,14 @@ class ModelTrack:
                        for verb in ("on_prediction", "on_truth", "on_pair")}
         self._judges = {kind: [(n, c) for n, c in items if kind in c.reacts_to]
                         for kind in ("prediction", "truth", "pair", "tick")}
+        # The same, as bound methods: the hot path calls them without attribute lookups.
+        self._feed_prediction = tuple(c.on_prediction for c in self._takes["on_prediction"])
+        self._feed_truth = tuple(c.on_truth for c in self._takes["on_truth"])
+        self._feed_pair = tuple(c.on_pair for c in self._takes["on_pair"])
+        self._ask = {kind: tuple((n, c.evaluate) for n, c in judges) for kind, judges in self._judges.items()}
+        self._ask_prediction = self._ask["prediction"]
+        self._ask_truth = self._ask["truth"]
+        self._ask_pair = self._ask["pair"]
         self.book = AlertBook(agent, settings.id)
         self.keeps_features = any(c.pair_features for c in self._takes["on_pair"])
         self.version: str | None = None
@@ -80,47 +105,64 @@ class ModelTrack:
         self.stale_pairs = 0
         self.last_alert_t: float | None = None
 
-    def _collect(self, t: float, out: list[Event], kind: str) -> None:
-        for name, check in self._judges[kind]:
-            verdict = check.evaluate(t)
-            if verdict is not None:
-                alert = self.book.update(name, verdict, t, self.version)
-                if alert is not None:
-                    self.last_alert_t = t
-                    out.append(alert)
+    def _verdict(self, name: str, verdict: Verdict, t: float, out: list[Event]) -> None:
+        alert = self.book.update(name, verdict, t, self.version)
+        if alert is not None:
+            self.last_alert_t = t
+            out.append(alert)
 
     def prediction(self, p: Prediction, out: list[Event]) -> None:
-        if p.model_version is not None and p.model_version != self.version:
-            if self.version_seen or self.version is not None:
-                out.extend(self.book.close_all(
-                    p.t, self.version, f"Model version {p.model_version} replaced {self.version}; live windows start afresh."))
-                for check in self.checks.values():
-                    check.reset()
-            out.append(VersionStarted(self.settings.id, p.t, self.version, p.model_version))
-            self.version = p.model_version
+        v = p.model_version
+        if v is not None and v != self.version:
+            self._new_version(p, out)
         self.version_seen = True
-        for check in self._takes["on_prediction"]:
-            check.on_prediction(p)
-        self._collect(p.t, out, "prediction")
+        for take in self._feed_prediction:
+            take(p)
+        t = p.t
+        for name, ask in self._ask_prediction:
+            verdict = ask(t)
+            if verdict is not None:
+                self._verdict(name, verdict, t, out)
+
+    def _new_version(self, p: Prediction, out: list[Event]) -> None:
+        if self.version_seen or self.version is not None:
+            out.extend(self.book.close_all(
+                p.t, self.version, f"Model version {p.model_version} replaced {self.version}; live windows start afresh."))
+            for check in self.checks.values():
+                check.reset()
+        out.append(VersionStarted(self.settings.id, p.t, self.version, p.model_version))
+        self.version = p.model_version
 
     def truth(self, tr: Truth, out: list[Event]) -> None:
-        for check in self._takes["on_truth"]:
-            check.on_truth(tr)
-        self._collect(tr.t, out, "truth")
+        for take in self._feed_truth:
+            take(tr)
+        t = tr.t
+        for name, ask in self._ask_truth:
+            verdict = ask(t)
+            if verdict is not None:
+                self._verdict(name, verdict, t, out)
 
     def pair(self, pr: Pair, out: list[Event]) -> None:
-        v = pr.prediction.model_version
+        p = pr.prediction
+        v = p.model_version
         if v is not None and v != self.version:
             self.stale_pairs += 1  # the pair belongs to a version no longer live
             return
         self.pairs += 1
-        loss = self.loss(pr.truth.value, pr.prediction.value)
-        for check in self._takes["on_pair"]:
-            check.on_pair(pr, loss)
-        self._collect(pr.t, out, "pair")
+        loss = self.loss(pr.truth.value, p.value)
+        for take in self._feed_pair:
+            take(pr, loss)
+        t = pr.t
+        for name, ask in self._ask_pair:
+            verdict = ask(t)
+            if verdict is not None:
+                self._verdict(name, verdict, t, out)
 
     def tick(self, t: float, out: list[Event]) -> None:
-        self._collect(t, out, "tick")
+        for name, ask in self._ask["tick"]:
+            verdict = ask(t)
+            if verdict is not None:
+                self._verdict(name, verdict, t, out)
 
     def state(self) -> dict[str, Any]:
         checks = {}
@@ -171,20 +213,20 @@ class Monitor:
     def __init__(self, config: Config, cards: dict[str, ModelCard]) -> None:
         self.config = config
         self.agent = config.agent.name
-        routes: list[tuple[str, str, str]] = []
+        routes: list[tuple[str, Lane]] = []
         self.parsers: dict[tuple[str, str], RecordParser] = {}
         self.pairers: dict[str, Pairer] = {}
         self.tracks: dict[str, ModelTrack] = {}
         for m in config.models:
             if m.id not in cards:
                 raise ConfigError(f"models[{m.id}].card: no model card was given for model {m.id!r}")
-            routes.append((m.prediction_topic, m.id, "prediction"))
-            routes.append((m.truth_topic, m.id, "truth"))
             self.parsers[(m.id, "prediction")] = RecordParser(m.id, "prediction", m.fields.prediction_map())
             self.parsers[(m.id, "truth")] = RecordParser(m.id, "truth", m.fields.truth_map())
             self.pairers[m.id] = Pairer(m.pairing.horizon_s, m.pairing.max_unpaired)
             self.tracks[m.id] = ModelTrack(self.agent, m, cards[m.id])
-        self.router = Router(routes)
+            for flt, kind in ((m.prediction_topic, "prediction"), (m.truth_topic, "truth")):
+                routes.append((flt, Lane(m.id, kind, self.parsers[(m.id, kind)], self.pairers[m.id], self.tracks[m.id])))
+        self.router: Router[Lane] = Router(routes)
         self.max_payload = config.agent.max_payload_bytes
         self.now = float("-inf")
         self.received = 0
@@ -194,6 +236,7 @@ class Monitor:
         self.bad = dict.fromkeys(REASONS, 0)
         self._dead: deque[DeadLetter] = deque()
         self._dead_bytes = 0
+        self._exact: tuple[bytes | None, list[Any]] = (None, [])
 
     @classmethod
     def from_files(cls, config_path: str | Path) -> "Monitor":
@@ -231,39 +274,43 @@ class Monitor:
     def _intake(self, topic: str, payload: bytes | str, t: float, direct: list[Event] | None) -> list[Any]:
         # With ``direct`` the tracks run at once and their events go there: the same order of
         # work as apply(intake(...)), without building a Step per record.
-        t = self._clock(t)
+        t = float(t)
+        if t < self.now:
+            self.clock_backwards += 1
+            t = self.now
+        else:
+            self.now = t
         self.received += 1
         if type(payload) is bytes:
             raw = payload
         else:
             raw = payload.encode() if isinstance(payload, str) else bytes(payload)
         out: list[Any] = [] if direct is None else direct
-        routes = self.router.route(topic)
-        if not routes:
+        lanes = self.router.route(topic)
+        if not lanes:
             self._dead_letter(topic, t, "unknown_topic", f"no model listens on topic {topic!r}", raw, out)
             return out
-        for model, _ in routes:
-            self.pairers[model].expire(t)
+        for lane in lanes:
+            if t > lane.pairer.due:
+                lane.pairer.expire(t)
         try:
             elements = decode(raw, self.max_payload)
         except BadRecord as e:
             self._dead_letter(topic, t, e.reason, e.detail, raw, out)
             return out
-        single = len(elements) == 1
-        for model, kind in routes:
-            parser = self.parsers[(model, kind)]
-            pairer = self.pairers[model]
-            track = self.tracks[model]
+        for lane in lanes:
+            parse, pairer, track = lane.parse, lane.pairer, lane.track
             for el in elements:
                 try:
-                    rec = parser.parse(el, t)
+                    rec = parse(el, t)
                 except BadRecord as e:
-                    self._dead_letter(topic, t, e.reason, e.detail, raw if single else element_bytes(el), out)
-                    continue
+                    rec = self._reject(e, lane, el, elements, raw, topic, t, out)
+                    if rec is None:
+                        continue
                 self.records += 1
-                if kind == "prediction":
+                if lane.prediction:
                     if direct is None:
-                        out.append(Step("prediction", t, model, rec))
+                        out.append(Step("prediction", t, lane.model, rec))
                     else:
                         track.prediction(rec, direct)  # type: ignore[arg-type]
                         if not track.keeps_features:
@@ -271,16 +318,30 @@ class Monitor:
                     pr = pairer.add_prediction(rec)  # type: ignore[arg-type]
                 else:
                     if direct is None:
-                        out.append(Step("truth", t, model, rec))
+                        out.append(Step("truth", t, lane.model, rec))
                     else:
                         track.truth(rec, direct)  # type: ignore[arg-type]
                     pr = pairer.add_truth(rec)  # type: ignore[arg-type]
                 if pr is not None:
                     if direct is None:
-                        out.append(Step("pair", t, model, pr))
+                        out.append(Step("pair", t, lane.model, pr))
                     else:
                         track.pair(pr, direct)
         return out
+
+    def _reject(self, e: BadRecord, lane: Lane, el: Any, elements: list[Any], raw: bytes, topic: str,
+                t: float, out: list[Any]) -> Prediction | Truth | None:
+        """Dead-letter a bad element; an inexact number gets a second, exact reading first."""
+        if type(e) is InexactNumber:
+            k = next(i for i, x in enumerate(elements) if x is el)
+            if self._exact[0] is not raw:  # read once per payload, however many elements need it
+                self._exact = (raw, decode_exact(raw))
+            try:
+                return lane.parse(self._exact[1][k], t)
+            except BadRecord as again:
+                e = again
+        self._dead_letter(topic, t, e.reason, e.detail, raw if len(elements) == 1 else element_bytes(el), out)
+        return None
 
     def _expire(self, t: float) -> None:
         for p in self.pairers.values():

@@ -36,7 +36,7 @@ class Pairer:
         self._truths: OrderedDict[str, Truth] = OrderedDict()
         self._done: OrderedDict[str, float] = OrderedDict()  # paired ids -> pairing time
         self.counts = dict.fromkeys(COUNTERS, 0)
-        self._due = float("inf")  # no record can expire before this core time
+        self.due = float("inf")  # no record can expire before this core time
 
     @property
     def pending(self) -> int:
@@ -52,9 +52,10 @@ class Pairer:
         if truth is not None:
             return self._pair(p, truth, p.t)
         self._preds[p.id] = p
-        if p.t + self.horizon_s < self._due:
-            self._due = p.t + self.horizon_s
-        self._cap()
+        if p.t + self.horizon_s < self.due:
+            self.due = p.t + self.horizon_s
+        if len(self._preds) + len(self._truths) > self.max_unpaired:
+            self._cap()
         return None
 
     def add_truth(self, tr: Truth) -> Pair | None:
@@ -67,16 +68,17 @@ class Pairer:
         if pred is not None:
             return self._pair(pred, tr, tr.t)
         self._truths[tr.id] = tr
-        if tr.t + self.horizon_s < self._due:
-            self._due = tr.t + self.horizon_s
-        self._cap()
+        if tr.t + self.horizon_s < self.due:
+            self.due = tr.t + self.horizon_s
+        if len(self._preds) + len(self._truths) > self.max_unpaired:
+            self._cap()
         return None
 
     def _pair(self, p: Prediction, tr: Truth, t: float) -> Pair:
         self.counts["paired"] += 1
         self._done[p.id] = t
-        if t + self.horizon_s < self._due:
-            self._due = t + self.horizon_s
+        if t + self.horizon_s < self.due:
+            self.due = t + self.horizon_s
         if len(self._done) > self.max_unpaired:
             self._done.popitem(last=False)
         return Pair(p, tr, t)
@@ -95,7 +97,7 @@ class Pairer:
 
     def expire(self, now: float) -> None:
         """Drop records older than the horizon (records arrive in core-time order)."""
-        if now <= self._due:
+        if now <= self.due:
             return
         limit = now - self.horizon_s
         for store, key in ((self._preds, "expired_predictions"), (self._truths, "expired_truths")):
@@ -114,7 +116,7 @@ class Pairer:
                   next(iter(self._truths.values())).t if self._truths else None,
                   next(iter(self._done.values())) if self._done else None]
         known = [f for f in firsts if f is not None]
-        self._due = min(known) + self.horizon_s if known else float("inf")
+        self.due = min(known) + self.horizon_s if known else float("inf")
 
     def snapshot(self) -> dict[str, Any]:
         return {
@@ -130,4 +132,4 @@ class Pairer:
         self._done = OrderedDict((k, float(t)) for k, t in data["done"])
         self.counts.update(data["counts"])
         firsts = [r.t for r in (*self._preds.values(), *self._truths.values())] + list(self._done.values())
-        self._due = min(firsts) + self.horizon_s if firsts else float("inf")
+        self.due = min(firsts) + self.horizon_s if firsts else float("inf")

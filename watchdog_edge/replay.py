@@ -12,11 +12,16 @@ import json
 import math
 from dataclasses import dataclass
 from pathlib import Path
-from typing import IO, Callable, Iterable, Iterator
+from typing import IO, Any, Callable, Iterable, Iterator
+
+import orjson
 
 from .errors import RecordingError
 from .events import Event
 from .parsing import loads_json
+
+_orjson_loads = orjson.loads
+_OrjsonError = orjson.JSONDecodeError
 
 
 @dataclass(slots=True)
@@ -29,15 +34,47 @@ class RecordLine:
     tick: bool = False
 
 
-def parse_line(text: str, lineno: int = 0, source: str = "recording") -> RecordLine | None:
+def parse_line(text: str | bytes, lineno: int = 0, source: str = "recording") -> RecordLine | None:
     """One recording line; ``None`` for a blank line; :class:`RecordingError` when malformed."""
+    return next(parse_lines((text,), source, lineno), None)
+
+
+def parse_lines(texts: Iterable[str | bytes], source: str = "recording", first: int = 1) -> Iterator[RecordLine]:
+    """Recording lines from their texts, blank ones skipped; line numbers count from ``first``."""
+    for i, text in enumerate(texts, first):
+        try:
+            obj = _orjson_loads(text)  # the common case: a well-formed line, read in one step
+        except _OrjsonError:
+            obj = _parse_slowly(text, i, source)
+            if obj is not None:
+                yield _check_line(obj, i, source)
+            continue
+        if type(obj) is dict:  # orjson's floats are finite and its text holds no surrogates
+            t = obj.get("t")
+            payload = obj.get("payload")
+            if type(t) is float and type(payload) is str and "tick" not in obj:
+                topic = obj.get("topic")
+                if type(topic) is str and topic:
+                    yield RecordLine(t, topic, payload.encode("utf-8", "surrogatepass"))
+                    continue
+        yield _check_line(obj, i, source)
+
+
+def _parse_slowly(text: str | bytes, lineno: int, source: str) -> Any:
+    """What orjson refused: blank lines, bytes that are not UTF-8, NaN literals, or bad JSON."""
+    if type(text) is not str:
+        text = text.decode("utf-8", "surrogateescape")
     text = text.strip()
     if not text:
         return None
     try:
-        obj = loads_json(text)
+        return loads_json(text)
     except ValueError as e:
         raise RecordingError(f"{source}, line {lineno}: not JSON ({e})") from None
+
+
+def _check_line(obj: Any, lineno: int, source: str) -> RecordLine:
+    """Every rule of a line, each with its own message."""
     if not isinstance(obj, dict):
         raise RecordingError(f"{source}, line {lineno}: a line must be a JSON object")
     t = obj.get("t")
@@ -52,7 +89,10 @@ def parse_line(text: str, lineno: int = 0, source: str = "recording") -> RecordL
         p = obj["payload"]
         if not isinstance(p, str):
             raise RecordingError(f"{source}, line {lineno}: 'payload' must be the payload as text (use 'payload_b64' for bytes)")
-        payload = p.encode("utf-8", "surrogatepass")
+        try:  # bytes that were not UTF-8 on disk come back as they were
+            payload = p.encode("utf-8", "surrogateescape")
+        except UnicodeEncodeError:  # a lone surrogate written as a JSON escape
+            payload = p.encode("utf-8", "surrogatepass")
     elif "payload_b64" in obj:
         try:
             payload = base64.b64decode(obj["payload_b64"], validate=True)
@@ -67,14 +107,11 @@ def read_recording(path: str | Path) -> Iterator[RecordLine]:
     """Lines of a recording file, in order."""
     p = Path(path)
     try:
-        fh = p.open("r", encoding="utf-8", errors="surrogateescape")
+        fh = p.open("rb")
     except FileNotFoundError:
         raise RecordingError(f"recording not found: {p}") from None
     with fh:
-        for i, text in enumerate(fh, 1):
-            line = parse_line(text, i, str(p))
-            if line is not None:
-                yield line
+        yield from parse_lines(fh, str(p))
 
 
 def format_message(t: float, topic: str, payload: bytes) -> str:
@@ -150,7 +187,7 @@ def replay(monitor, lines: Iterable[RecordLine], tick_every: float | None = None
     """Drive ``monitor`` with recording lines; return every event in order."""
     events: list[Event] = []
     feed, tick = monitor.feed, monitor.tick
-    for line in with_ticks(lines, tick_every):
+    for line in with_ticks(lines, tick_every) if tick_every else lines:
         out = tick(line.t) if line.tick else feed(line.topic, line.payload, line.t)
         if out:
             events.extend(out)

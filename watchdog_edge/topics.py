@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import Generic, TypeVar
+
 
 def validate_filter(flt: str) -> None:
     """Raise ValueError when ``flt`` is not a valid MQTT topic filter (MQTT 3.1.1, 4.7)."""
@@ -46,41 +48,41 @@ def matches(flt: str, topic: str) -> bool:
     return len(f_levels) == len(t_levels)
 
 
-Route = tuple[tuple[str, str], ...]
+T = TypeVar("T")
 
 
-class Router:
-    """Maps a topic to every ``(model, kind)`` listening on it (one meter may serve two models).
+class Router(Generic[T]):
+    """Maps a topic to every target listening on it (one meter may serve two models).
 
     Exact filters are looked up in a dict; wildcard filters are scanned once per topic and the
     answer cached.
 
-    >>> Router([("a/+/pred", "m1", "prediction"), ("a/x/pred", "m2", "prediction")]).route("a/x/pred")
-    (('m2', 'prediction'), ('m1', 'prediction'))
+    >>> Router([("a/+/pred", "m1"), ("a/x/pred", "m2")]).route("a/x/pred")
+    ('m2', 'm1')
     """
 
-    def __init__(self, routes: list[tuple[str, str, str]], cache_size: int = 4096) -> None:
-        self._exact: dict[str, list[tuple[str, str]]] = {}
-        self._wild: list[tuple[str, str, str]] = []
-        for flt, model, kind in routes:
+    def __init__(self, routes: list[tuple[str, T]], cache_size: int = 4096) -> None:
+        self._exact: dict[str, list[T]] = {}
+        self._wild: list[tuple[str, T]] = []
+        for flt, target in routes:
             validate_filter(flt)
             if "+" in flt or "#" in flt:
-                self._wild.append((flt, model, kind))
+                self._wild.append((flt, target))
             else:
-                self._exact.setdefault(flt, []).append((model, kind))
-        self._cache: dict[str, Route] = {}
+                self._exact.setdefault(flt, []).append(target)
+        self._cache: dict[str, tuple[T, ...]] = {}
         self._cache_size = cache_size
 
-    def route(self, topic: str) -> Route:
-        """Every (model, kind) for ``topic``; empty when no model listens."""
+    def route(self, topic: str) -> tuple[T, ...]:
+        """Every target for ``topic``; empty when nothing listens."""
         hit = self._cache.get(topic)
         if hit is not None:
             return hit
         found = list(self._exact.get(topic, ()))
-        for flt, model, kind in self._wild:
-            if matches(flt, topic) and (model, kind) not in found:
-                found.append((model, kind))
-        result: Route = tuple(found)
+        for flt, target in self._wild:
+            if matches(flt, topic) and target not in found:
+                found.append(target)
+        result = tuple(found)
         if len(self._cache) >= self._cache_size:
             self._cache.clear()
         self._cache[topic] = result
