@@ -1,11 +1,13 @@
 """``range``: predictions made on inputs outside the training envelope (extrapolation).
 
 Each prediction's features are compared with the card's per-feature ``min`` and ``max``, widened
-on each side by ``margin`` x (max - min). The check keeps the last ``window`` predictions that
-carry features and the running count of those with at least one input outside; the share of
-outside predictions is the figure that raises and clears. Needs no truth. The figures give, per
-feature outside in the window, how many predictions were outside and the largest distance
-below ``low`` and above ``high`` (the envelope's edges), in the feature's own units.
+on each side by ``margin`` x (max - min). Over the last ``window`` predictions that carry
+features, the share of those with at least one input outside is the figure that raises and
+clears; the check keeps only the outside ones (with their place in the stream), so a
+prediction inside the envelope costs a comparison per feature and nothing more. Needs no
+truth. The figures give, per feature outside in the window, how many predictions were
+outside and the largest distance below ``low`` and above ``high`` (the envelope's edges), in
+the feature's own units.
 
 A feature that is null or absent in a prediction is not outside (``shift`` counts missing
 values); a feature the card does not describe is ignored; a prediction with no features at
@@ -83,14 +85,11 @@ class RangeCheck(Check):
         self.reset()
 
     def reset(self) -> None:
-        self._flags = bytearray(self.settings.window)  # 1 where the prediction was outside
-        self._pos = 0
-        self._filled = 0
-        self._outside = 0
-        self._seq = 0  # predictions taken so far
-        # (seq, {feature: signed distance}) of outside predictions still in the window
+        self._seq = 0  # predictions with features taken so far
+        # (seq, {feature: signed distance}) of the outside predictions that may still be in
+        # the window: the share is their count over the window, so inside ones cost nothing
         self._details: deque[tuple[int, dict[str, float]]] = deque()
-        self._since_eval = 0
+        self._last_eval = 0  # ``_seq`` at the latest evaluation
         self._gate.reset()
         self._figures: dict[str, Any] = {}
 
@@ -111,32 +110,25 @@ class RangeCheck(Check):
                 if far is None:
                     far = {}
                 far[fname] = x - hi
-        size = self.settings.window
-        pos = self._pos
-        if self._filled == size:
-            self._outside -= self._flags[pos]
-        else:
-            self._filled += 1
-        if far is None:
-            self._flags[pos] = 0
-        else:
-            self._flags[pos] = 1
-            self._outside += 1
+        if far is not None:
             self._details.append((self._seq, far))
         self._seq += 1
-        self._pos = pos + 1 if pos + 1 < size else 0
-        self._since_eval += 1
+
+    @property
+    def _filled(self) -> int:
+        return min(self._seq, self.settings.window)
 
     def evaluate(self, t: float) -> Verdict | None:
         s = self.settings
-        if self._since_eval < s.evaluate_every or self._filled < s.min_predictions:
+        if self._seq - self._last_eval < s.evaluate_every or self._seq < s.min_predictions:
             return None
-        self._since_eval = 0
+        self._last_eval = self._seq
         oldest = self._seq - self._filled
         details = self._details
         while details and details[0][0] < oldest:
             details.popleft()
-        share = self._outside / self._filled
+        outside = len(details)
+        share = outside / self._filled
         level = self._gate.update(share)
         per: dict[str, dict[str, Any]] = {}
         for _, far in details:
@@ -155,7 +147,7 @@ class RangeCheck(Check):
             f["low"], f["high"] = limits[fname]
         self._figures = {
             "share": share,
-            "outside": self._outside,
+            "outside": outside,
             "predictions": self._filled,
             "warning_share": s.warning_share,
             "critical_share": s.critical_share,
@@ -194,20 +186,15 @@ class RangeCheck(Check):
         return out
 
     def snapshot(self) -> dict[str, Any]:
+        oldest = self._seq - self._filled  # only what the window still holds
         return {
-            "flags": self._flags.hex(), "pos": self._pos, "filled": self._filled,
-            "outside": self._outside, "seq": self._seq,
-            "details": [[seq, far] for seq, far in self._details],
-            "since_eval": self._since_eval, "gate": self._gate.snapshot(), "figures": self._figures,
+            "seq": self._seq, "details": [[seq, far] for seq, far in self._details if seq >= oldest],
+            "since_eval": self._seq - self._last_eval, "gate": self._gate.snapshot(), "figures": self._figures,
         }
 
     def restore(self, data: dict[str, Any]) -> None:
-        self._flags = bytearray.fromhex(data["flags"])
-        self._pos = int(data["pos"])
-        self._filled = int(data["filled"])
-        self._outside = int(data["outside"])
         self._seq = int(data["seq"])
         self._details = deque((int(seq), {k: float(v) for k, v in far.items()}) for seq, far in data["details"])
-        self._since_eval = int(data["since_eval"])
+        self._last_eval = self._seq - int(data["since_eval"])
         self._gate.restore(data["gate"])
         self._figures = data["figures"]

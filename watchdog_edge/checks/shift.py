@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import math
 import operator
+from itertools import chain
 from typing import Any, Sequence
 
 import numpy as np
@@ -185,11 +186,14 @@ class ShiftCheck(Check):
             pend = pend[-size:]
         m = len(pend)
         names = self.names
+        k = len(names)
         try:
-            rows = list(map(self._getter, pend))
+            rows = map(self._getter, pend)
+            # fromiter reads a flat stream of numbers twice as fast as array() reads rows
+            x = np.fromiter(chain.from_iterable(rows) if k > 1 else rows, float, m * k)  # None -> NaN
         except KeyError:  # some prediction lacks a feature: missing, like a null
-            rows = [[d.get(n) for n in names] for d in pend]
-        x = np.array(rows, dtype=float).reshape(m, len(names))  # None -> NaN
+            x = np.array([[d.get(n) for n in names] for d in pend], dtype=float)
+        x = x.reshape(m, k)
         bins = (x[:, :, None] >= self._edges[None, :, :]).sum(axis=2)
         bins = np.where(np.isnan(x), self._missing, bins) + self._offset
         slots = (self._pos + np.arange(m)) % size

@@ -71,6 +71,8 @@ class SilenceCheck(Check):
 
     name = "silence"
     settings_model = SilenceSettings
+    # A pair comes with the truth or prediction just evaluated at the same time: nothing new.
+    reacts_to = frozenset({"prediction", "truth", "tick"})
 
     def __init__(self, settings: SilenceSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
@@ -81,7 +83,8 @@ class SilenceCheck(Check):
         self._reported: Level = "ok"
         self._now: float | None = None
         self._next = -math.inf  # no level change is possible up to this core time ...
-        self._fresh = True      # ... unless a record arrived while a level was raised
+        self._fresh = True      # ... unless a record arrived on a feed that was past its limit
+        self._quiet_predictions = self._quiet_truths = False  # past their limits at the last look
 
     def reset(self) -> None:
         # A new model version keeps the feeds' times (they are not a window), but the alert
@@ -95,7 +98,7 @@ class SilenceCheck(Check):
             self._start = t
         if self._last_prediction is None or t > self._last_prediction:
             self._last_prediction = t
-        if self._reported != "ok":
+        if self._quiet_predictions:
             self._fresh = True
 
     def on_truth(self, truth: Truth) -> None:
@@ -104,7 +107,7 @@ class SilenceCheck(Check):
             self._start = t
         if self._last_truth is None or t > self._last_truth:
             self._last_truth = t
-        if self._reported != "ok":
+        if self._quiet_truths:
             self._fresh = True
 
     def _since(self, last: float | None, t: float) -> float:
@@ -112,16 +115,19 @@ class SilenceCheck(Check):
         return max(0.0, t - ref)  # type: ignore[operator]
 
     def _level(self, t: float) -> Level:
-        """The level at ``t``; also sets the next time a limit can be passed."""
+        """The level at ``t``; also sets the next time a limit can be passed and the quiet feeds."""
         s = self.settings
         level: Level = "ok"
         nxt = math.inf
+        quiet_feeds = []
         for last, limit in ((self._last_prediction, s.prediction_timeout_s),
                             (self._last_truth, s.truth_timeout_s)):
             if limit is None:
+                quiet_feeds.append(False)
                 continue
             ref = last if last is not None else self._start
             quiet = max(0.0, t - ref)  # type: ignore[operator]
+            quiet_feeds.append(quiet > limit)
             crit = None if s.critical_factor is None else limit * s.critical_factor
             if crit is not None and quiet > crit:
                 level = "critical"
@@ -133,6 +139,8 @@ class SilenceCheck(Check):
             else:
                 nxt = min(nxt, ref + limit)  # type: ignore[operator]
         self._next = nxt
+        # Only a record on a feed past its limit can bring the level down before ``nxt``.
+        self._quiet_predictions, self._quiet_truths = quiet_feeds
         return level
 
     def evaluate(self, t: float) -> Verdict | None:
