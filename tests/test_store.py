@@ -199,3 +199,33 @@ def test_snapshot_keeps_infinities_exactly(tmp_path):
     back = s.latest_snapshot().data
     assert back["now"] == float("-inf") and back["x"] == [1.5, float("inf")]
     s.close()
+
+
+def test_snapshot_text_is_exactly_what_json_dumps_writes():
+    # The snapshot is written piece by piece (to save memory); the text must not change.
+    import json
+    import random
+
+    from hypothesis import given, settings, strategies as st
+
+    from watchdog_edge.store import _PIECE, snapshot_text
+
+    def dumps(x):
+        return json.dumps(x, separators=(",", ":"))
+
+    leaves = st.none() | st.booleans() | st.integers() | st.floats() | st.text(max_size=8)
+    values = st.recursive(leaves, lambda inner: st.lists(inner, max_size=5) | st.dictionaries(st.text(max_size=5), inner,
+                                                                                             max_size=5), max_leaves=30)
+
+    @settings(max_examples=200, deadline=None)
+    @given(values)
+    def small(v):
+        assert snapshot_text(v) == dumps(v)
+
+    small()
+    rng = random.Random(5)
+    n = 2 * _PIECE + 7  # past the piece size, with a remainder
+    big = {"pairers": {"m": {"done": [[str(i), 1.7e9 + rng.random()] for i in range(n)], "preds": []}},
+           "ids": {f"k{i}": (i, float("inf") if i % 97 == 0 else i / 7, "é") for i in range(n)},
+           "window": tuple(rng.gauss(0, 1) for _ in range(n)), "mixed": {1: "a", "b": [float("nan")]}}
+    assert snapshot_text(big) == dumps(big)

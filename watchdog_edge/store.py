@@ -23,6 +23,7 @@ from __future__ import annotations
 import json
 import sqlite3
 from dataclasses import dataclass
+from itertools import islice
 from pathlib import Path
 from typing import Any, Iterable, Iterator, Literal
 
@@ -66,6 +67,60 @@ CREATE TABLE IF NOT EXISTS dead_letters (
     size INTEGER NOT NULL
 );
 """
+
+
+_PIECE = 1000  # list items or dict entries encoded in one go when writing a snapshot
+
+
+def snapshot_text(data: Any) -> str:
+    """``json.dumps(data, separators=(",", ":"))``, built piece by piece to stay near the text's own size.
+
+    json.dumps gathers a large list as tens of thousands of small strings before joining
+    them, about seven times the size of the text; a snapshot holds lists of 20,000 entries
+    (the pairing memory), so that peak was the agent's largest. Here lists and dicts are
+    encoded ``_PIECE`` items at a time into one growing buffer. Python's JSON reads back its
+    own NaN and Infinity literals exactly (a core that has seen nothing holds its clock at
+    -inf), so they are allowed in this private file.
+
+    >>> snapshot_text({"a": [1, 2.5, float("-inf")], "b": {"c": None}})
+    '{"a":[1,2.5,-Infinity],"b":{"c":null}}'
+    """
+    out = bytearray()
+    _encode(data, out)
+    return out.decode("ascii")  # json.dumps escapes every non-ASCII character
+
+
+def _encode(obj: Any, out: bytearray) -> None:
+    dumps = json.dumps
+    if isinstance(obj, dict) and all(type(k) is str for k in obj):
+        if len(obj) > _PIECE:
+            out += b"{"
+            items = iter(obj.items())
+            first = True
+            while piece := dict(islice(items, _PIECE)):
+                if not first:
+                    out += b","
+                out += dumps(piece, separators=(",", ":"))[1:-1].encode("ascii")
+                first = False
+            out += b"}"
+            return
+        out += b"{"
+        for k, (key, value) in enumerate(obj.items()):
+            if k:
+                out += b","
+            out += dumps(key).encode("ascii")
+            out += b":"
+            _encode(value, out)
+        out += b"}"
+    elif isinstance(obj, (list, tuple)) and len(obj) > _PIECE:
+        out += b"["
+        for start in range(0, len(obj), _PIECE):
+            if start:
+                out += b","
+            out += dumps(obj[start:start + _PIECE], separators=(",", ":"))[1:-1].encode("ascii")
+        out += b"]"
+    else:
+        out += dumps(obj, separators=(",", ":")).encode("ascii")
 
 
 @dataclass(frozen=True, slots=True)
@@ -277,9 +332,7 @@ class Store:
         In the same transaction the journal rows it covers are deleted and older snapshots
         dropped. Returns the covered ``seq``.
         """
-        # Python's JSON reads back its own NaN/Infinity literals exactly (a core that has
-        # seen nothing holds its clock at -inf), so they are allowed in this private file.
-        text = json.dumps(data, separators=(",", ":"))
+        text = snapshot_text(data)
         db = self._db
         db.execute("BEGIN")
         try:
