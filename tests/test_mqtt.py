@@ -183,6 +183,17 @@ def test_many_messages_over_tls_arrive_whole_in_order_and_are_all_acknowledged(t
         b.stop()
 
 
+def test_the_paho_steps_the_link_replaces_still_exist():
+    # The link overrides two inner steps of paho 2.x for speed (see mqtt._Client). A paho
+    # without them still works, only slower: this test says so at upgrade time.
+    import inspect
+
+    for name, params in (("_create_socket", ["self"]), ("_handle_on_message", ["self", "message"])):
+        step = getattr(paho.Client, name, None)
+        assert step is not None, f"paho {paho.__name__} has no {name}: the link runs without its fast path"
+        assert list(inspect.signature(step).parameters) == params
+
+
 def test_unreachable_broker_gives_one_line_reason(tmp_path):
     from broker import free_port
 
