@@ -78,3 +78,39 @@ def test_close_sends_what_is_queued(pair):
     buf.close()
     peer.settimeout(2.0)
     assert peer.recv(10) == b"\xe0\x00"
+
+
+def test_after_a_disconnect_close_waits_for_the_peer_so_no_reset_loses_the_last_bytes():
+    # Closing a TCP socket that still holds unread data sends a reset, and the peer may then
+    # lose what it had not read yet. After expect_close(), close() reads until the peer has
+    # closed its side, so the peer gets every byte however late it reads.
+    import threading
+    import time
+
+    server = socket.create_server(("127.0.0.1", 0))
+    client = socket.create_connection(server.getsockname())
+    peer, _ = server.accept()
+    client.setblocking(False)
+    buf = BufferedSocket(client)
+    peer.sendall(b"x" * 100_000)  # never read by the client side
+    got = bytearray()
+    peer_closed = threading.Event()
+
+    def broker_side() -> None:
+        time.sleep(0.2)  # reads only after the client has decided to close
+        peer.settimeout(2.0)
+        while b"bye" not in got:
+            got.extend(peer.recv(100))
+        peer_closed.set()  # just before: close() can only return after this close
+        peer.close()
+
+    th = threading.Thread(target=broker_side)
+    th.start()
+    buf.send(b"bye")
+    buf.expect_close()
+    buf.close()
+    closed_after_peer = peer_closed.is_set()
+    th.join(5)
+    server.close()
+    assert bytes(got) == b"bye"  # no reset cost the peer its last bytes
+    assert closed_after_peer

@@ -54,6 +54,19 @@ class _Taker:
         return [e.kind for e in self.events]
 
 
+def _broker_saw_disconnects(b: Broker, n: int, client_id: str = "wd-test", timeout: float = 10.0) -> None:
+    """Wait until the broker has logged ``n`` disconnects of ``client_id``.
+
+    A new connection with the same client id that the broker reads before the old socket's
+    last bytes takes the session over and drops those bytes (PUBACKs included); the agent
+    recognises such re-sent messages, these tests want to see the acks themselves arrive.
+    """
+    deadline = time.monotonic() + timeout
+    while b.log_text().count(f"Client {client_id} disconnected") < n and time.monotonic() < deadline:
+        time.sleep(0.02)
+    assert b.log_text().count(f"Client {client_id} disconnected") >= n, b.log_text()[-2000:]
+
+
 def _link(b: Broker, tmp_path, taker: _Taker, protocol: str = "3.1.1", **kw) -> Link:
     s = BrokerSettings(host="localhost" if "tls" in kw else b.host, port=b.port, protocol=protocol, keepalive=5,
                        reconnect_min_s=0.1, reconnect_max_s=0.3, **kw)
@@ -91,6 +104,7 @@ def test_persistent_session_keeps_messages_while_away_and_redelivers_unacked(bro
         link2.ack(m.mid)
     link2.flush()  # the three acks leave together
     link2.stop()
+    _broker_saw_disconnects(broker, 2)
 
     # They were all acknowledged: a third session gets nothing back.
     taker3 = _Taker()
@@ -174,6 +188,7 @@ def test_many_messages_over_tls_arrive_whole_in_order_and_are_all_acknowledged(t
         pub.loop_stop()
         assert [m.payload for m in got] == sent
         link.stop()
+        _broker_saw_disconnects(b, 1)
         taker2 = _Taker()
         link2 = _link(b, tmp_path, taker2, tls={"ca_file": str(tls.ca)})
         link2.start()

@@ -333,10 +333,11 @@ class Agent:
                         acked_alerts.append(alert_id)
                     else:
                         self.pending_other.discard(ev.mid)
-                else:
-                    self._link_event(ev)
             if acked_alerts:
-                self.store.mark_sent(acked_alerts)
+                self.store.mark_sent(acked_alerts)  # before a reconnect re-sends the outbox
+            for ev in events:
+                if ev.kind != "puback":
+                    self._link_event(ev)
 
     def _collect(self, out: list[Any], outbox: list[OutboxItem], dead: list[DeadLetter], alerted: set[str]) -> None:
         for ev in out:

@@ -11,13 +11,16 @@ paho and the real socket (plain or TLS):
 - ``send`` only appends to an output buffer; ``flush()`` hands it to the kernel in one call,
   keeps what the kernel did not take for the next ``flush`` and never blocks;
 - an error while flushing is kept and raised by the next ``recv``, where paho looks for a
-  lost connection.
+  lost connection;
+- after a DISCONNECT it closes only once the broker has closed its side, so that no reset
+  can make the broker drop the last bytes it was sent.
 """
 
 from __future__ import annotations
 
 import socket
 import ssl
+import time
 from typing import Any
 
 _READ_SIZE = 65536
@@ -34,6 +37,7 @@ class BufferedSocket:
         self._wbuf = bytearray()
         self.error: OSError | None = None
         self._ssl_pending = getattr(sock, "pending", None)
+        self._drain_before_close = False
 
     def fileno(self) -> int:
         return self.sock.fileno()
@@ -85,15 +89,30 @@ class BufferedSocket:
         return True
 
     def close(self) -> None:
-        """Send what is queued (a DISCONNECT, say) within a second, then close."""
-        if self._wbuf and self.error is None:
-            try:
-                self.sock.settimeout(1.0)
-                self.sock.sendall(self._wbuf)
-            except (OSError, ValueError):
-                pass
+        """Send what is queued (a DISCONNECT, say) within a second, then close.
+
+        After ``expect_close()`` it first reads until the broker closes its side (a second at
+        most): closing a socket that holds unread data sends a reset, and a reset can make
+        the broker drop our last PUBACKs and the DISCONNECT before it has read them.
+        """
+        sock = self.sock
+        try:
+            if self.error is None and (self._wbuf or self._drain_before_close):
+                sock.settimeout(1.0)
+                if self._wbuf:
+                    sock.sendall(self._wbuf)
+                if self._drain_before_close:
+                    deadline = time.monotonic() + 1.0
+                    while time.monotonic() < deadline and sock.recv(_READ_SIZE):
+                        pass
+        except (OSError, ValueError):
+            pass
         self._wbuf.clear()
-        self.sock.close()
+        sock.close()
+
+    def expect_close(self) -> None:
+        """A DISCONNECT is on its way: let ``close`` wait for the broker to close first."""
+        self._drain_before_close = True
 
     def __getattr__(self, name: str) -> Any:
         # setblocking, settimeout, getpeercert, ...: whatever paho asks of the real socket.

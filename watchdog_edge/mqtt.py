@@ -451,13 +451,18 @@ class Link:
     def stop(self, clean: bool = True, timeout: float = 3.0) -> None:
         """Disconnect with a DISCONNECT packet, so the broker does not publish the will."""
         self._closing = True
+        self.connected.clear()
         if self._attempt is not None:
             self._attempt.join(timeout)
+            if self._attempt.is_alive():
+                return  # still connecting (a slow name lookup, say): leave the client to it
             self._attempt = None
         c = self.client
         if c.socket() is None:
-            self.connected.clear()
             return
+        sock = c.socket()
+        if isinstance(sock, BufferedSocket):
+            sock.expect_close()
         try:
             c.disconnect()
         except Exception:  # noqa: BLE001 - shutting down anyway
@@ -467,7 +472,6 @@ class Link:
             self.flush()  # writing the DISCONNECT closes the socket
             if c.socket() is not None:
                 self.poll(0.02)
-        self.connected.clear()
 
     # --- traffic -------------------------------------------------------------------------------
     def want_write(self) -> bool:
@@ -480,15 +484,15 @@ class Link:
 
     def flush(self) -> None:
         """Write the queued packets (acks, publishes, pings) without blocking."""
-        if self._attempt is not None:
-            return
         c = self.client
+        if self._attempt is not None or c.socket() is None:
+            return
         if c.want_write():
             rc = c.loop_write()
             if rc != MQTTErrorCode.MQTT_ERR_SUCCESS:
                 self._lost(rc)
                 return
-        sock = c.socket()
+        sock = c.socket()  # None once a DISCONNECT went out
         if isinstance(sock, BufferedSocket):
             sock.flush()
 
