@@ -40,6 +40,7 @@ class BufferedSocket:
         self._drain_before_close = False
 
     def fileno(self) -> int:
+        """The real socket's descriptor (for select)."""
         return self.sock.fileno()
 
     def recv(self, size: int) -> bytes:
@@ -70,6 +71,7 @@ class BufferedSocket:
         return len(data)
 
     def has_output(self) -> bool:
+        """True while queued bytes wait for ``flush``."""
         return bool(self._wbuf)
 
     def flush(self) -> bool:
