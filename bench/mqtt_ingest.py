@@ -12,7 +12,9 @@ own process:
 3. Latency: the agent running live; truths sent one at a time, 10 ms apart, on a model whose
    gap check raises and clears every few truths; the time from publishing the deciding truth
    to receiving its alert.
-4. The agent's peak resident memory (VmHWM) with the default checks.
+4. The agent's peak resident memory with the default checks: VmHWM read during the drain,
+   and the peak over its whole run, the snapshot it takes at shutdown included (that snapshot
+   holds the pairing memory, as the periodic ones do in the field).
 
     python3 bench/mqtt_ingest.py [--messages 20000] [--batched-messages 1000] [--alerts 100] [--repeats 3]
 
@@ -227,6 +229,19 @@ def peak_rss_mb(pid: int) -> float:
     return float("nan")
 
 
+def wait_peak_rss_mb(proc: subprocess.Popen, timeout: float) -> float:
+    """Wait for the agent to exit; its peak RSS over the whole run (the shutdown snapshot included)."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        pid, status, usage = os.wait4(proc.pid, os.WNOHANG)
+        if pid:
+            proc.returncode = os.waitstatus_to_exitcode(status)
+            return usage.ru_maxrss / 1024  # kilobytes on Linux
+        time.sleep(0.02)
+    proc.kill()
+    sys.exit("the agent did not stop within 30 s of SIGTERM")
+
+
 def agent_drain(folder: Path, port: int, n_messages: int, per_message: int, tag: str) -> dict:
     cfg = write_agent_setup(folder, port, f"state-{tag}")
     watch = StatusWatch(port)
@@ -240,7 +255,7 @@ def agent_drain(folder: Path, port: int, n_messages: int, per_message: int, tag:
         time.sleep(0.05)
     rss = peak_rss_mb(proc.pid)
     proc.send_signal(signal.SIGTERM)
-    proc.wait(30)
+    rss_run = wait_peak_rss_mb(proc, 30)
     watch.close()
     # Rate from status points strictly inside the drain, so start-up and the end lag of the
     # status interval do not count.
@@ -250,7 +265,8 @@ def agent_drain(folder: Path, port: int, n_messages: int, per_message: int, tag:
     (t0, c0), (t1, c1) = inside[0], inside[-1]
     rate = (c1 - c0) / (t1 - t0)
     last = watch.points[-1][1]
-    return {"msg_rate": rate, "record_rate": rate * per_message, "rss_mb": rss, "paired": last.get("paired"),
+    return {"msg_rate": rate, "record_rate": rate * per_message, "rss_mb": rss, "rss_run_mb": rss_run,
+            "paired": last.get("paired"),
             "journal_batches": last.get("link", {}).get("journal_batches"),
             "received": last.get("received")}
 
@@ -364,7 +380,9 @@ def main() -> None:
     s, b, lat = results["single"], results["batched"], results["latency"]
     ratio = s["agent"]["msg_rate"] / s["bare"]["msg_rate"]
     ratio_b = b["agent"]["msg_rate"] / b["bare"]["msg_rate"]
-    rss = max(r["agent"]["rss_mb"] for shape in (s, b) for r in shape["runs"])
+    rss = {tag: max(r["agent"]["rss_mb"] for r in shape["runs"]) for tag, shape in (("single", s), ("batched", b))}
+    rss_run = {tag: max(r["agent"]["rss_run_mb"] for r in shape["runs"]) for tag, shape in (("single", s), ("batched", b))}
+    worst = max(rss_run.values())
 
     def mark(ok: bool) -> str:
         return "ok" if ok else "MISSED"
@@ -381,7 +399,10 @@ def main() -> None:
     print(f"  p50 {lat['p50_ms']:.1f} ms   p99 {lat['p99_ms']:.1f} ms   max {lat['max_ms']:.1f} ms  "
           f"(target p99 <= 50: {mark(lat['p99_ms'] <= 50)})")
     print(f"  of which publish -> agent receipt: p50 {lat['inbound_p50_ms']:.1f} ms, p99 {lat['inbound_p99_ms']:.1f} ms")
-    print(f"agent peak RSS (VmHWM), default checks: {rss:.1f} MB  (target <= 64: {mark(rss <= 64)})")
+    print("agent peak RSS, default checks, at 1 / 100 records per message:")
+    print(f"  during the drain (VmHWM)              {rss['single']:5.1f} / {rss['batched']:5.1f} MB")
+    print(f"  whole run, shutdown snapshot included {rss_run['single']:5.1f} / {rss_run['batched']:5.1f} MB  "
+          f"(target <= 64: {mark(worst <= 64)})")
     print("\n" + json.dumps(results))
     shutil.rmtree(folder, ignore_errors=True)
 

@@ -579,3 +579,41 @@ def test_refusal_while_running_is_logged_counted_and_survived(tmp_path):
         assert "first" not in agent.text().replace("first full", "")
     finally:
         b.stop()
+
+
+def test_a_redelivered_message_already_journaled_is_acknowledged_and_not_fed_twice(tmp_path, broker):
+    # MQTT 3.1.1, 4.4: a message whose PUBACK did not reach the broker comes again with DUP
+    # set and the same packet id. The agent's own batch step is driven here with such
+    # messages; the link is never started (nothing goes over the network).
+    from watchdog_edge.agent import Agent
+    from watchdog_edge.mqtt import Inbound
+
+    cfg = write_setup(tmp_path, broker)
+    config = load_config(cfg)
+    agent = Agent(config, load_cards(config))
+    agent.intake_open = True
+    first, second = b'{"id": 1, "value": 2.0}', b'{"id": 2, "value": 3.0}'
+
+    def deliver(*msgs: Inbound) -> None:
+        for m in msgs:
+            agent._on_message(m)
+        agent._process(tick=False)
+
+    deliver(Inbound(PRED, first, 5, 1, False))
+    deliver(Inbound(PRED, first, 5, 1, True))  # the re-send: acknowledged, not fed
+    assert agent.monitor.status()["predictions"] == 1 and agent.counters["redelivered"] == 1
+    deliver(Inbound(PRED, second, 5, 1, True))  # same id, other content: a new message
+    assert agent.monitor.status()["predictions"] == 2 and agent.store.journal_depth() == 2
+    agent._snapshot()
+    agent._close_files()
+
+    # After a restart the packet ids come back from the snapshot.
+    again = Agent(config, load_cards(config))
+    again.intake_open = True
+    again._on_message(Inbound(PRED, second, 5, 1, True))
+    again._on_message(Inbound(PRED, first, 6, 1, True))  # DUP, but never journaled: fed
+    again._process(tick=False)
+    status = again.monitor.status()
+    assert again.counters["redelivered"] == 1 and status["predictions"] == 3
+    assert status["duplicate_predictions"] == 1  # id 1 again: the core counts it, as it must
+    again._close_files()

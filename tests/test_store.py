@@ -88,6 +88,33 @@ def test_a_failed_batch_leaves_neither_journal_rows_nor_alerts(tmp_path):
     s.close()
 
 
+def test_seq_numbers_and_depth_follow_the_journal_across_failures_trims_and_reopens(tmp_path):
+    # commit() counts seq numbers itself instead of asking SQLite after every batch, and
+    # journal_depth() reads the two ends of the key: both must agree with the table.
+    path = tmp_path / "s.sqlite"
+    s = Store(path)
+
+    def count() -> int:
+        return s._db.execute("SELECT COUNT(*) FROM journal").fetchone()[0]
+
+    assert s.commit([(1.0, "p", b"a", 0, 1), (1.5, None, None, 1, None)]) == 2
+    with pytest.raises(TypeError):
+        s.commit([(2.0, "p", b"b", 0, 2)], [OutboxItem("x", "t", None, 2.0)])  # type: ignore[arg-type]
+    assert s.commit([(3.0, "p", b"c", 0, 3)], [OutboxItem("a1", "o", b"{}", 3.0)]) == 3
+    assert s._db.execute("SELECT journal_seq FROM outbox WHERE alert_id = 'a1'").fetchone()[0] == 3
+    assert [e.seq for e in s.journal_tail(0)] == [1, 2, 3]
+    assert s.journal_depth() == count() == 3
+    s.save_snapshot({"n": 2}, t=4.0, journal_seq=2)
+    assert s.journal_depth() == count() == 1
+    s.close()
+    s = Store(path)
+    assert s.commit([(5.0, "p", b"d", 0, 4)]) == 4
+    assert s.journal_depth() == count() == 2
+    s.save_snapshot({"n": 4}, t=6.0)
+    assert s.journal_depth() == count() == 0
+    s.close()
+
+
 def test_a_killed_writer_never_leaves_alerts_without_their_journal_rows(tmp_path):
     # A real process appends batches (5 messages + 1 alert each) until it is SIGKILLed; after
     # that the file must hold whole batches only: the transaction is the unit (SQLite atomic commit).
@@ -172,3 +199,33 @@ def test_snapshot_keeps_infinities_exactly(tmp_path):
     back = s.latest_snapshot().data
     assert back["now"] == float("-inf") and back["x"] == [1.5, float("inf")]
     s.close()
+
+
+def test_snapshot_text_is_exactly_what_json_dumps_writes():
+    # The snapshot is written piece by piece (to save memory); the text must not change.
+    import json
+    import random
+
+    from hypothesis import given, settings, strategies as st
+
+    from watchdog_edge.store import _PIECE, snapshot_text
+
+    def dumps(x):
+        return json.dumps(x, separators=(",", ":"))
+
+    leaves = st.none() | st.booleans() | st.integers() | st.floats() | st.text(max_size=8)
+    values = st.recursive(leaves, lambda inner: st.lists(inner, max_size=5) | st.dictionaries(st.text(max_size=5), inner,
+                                                                                             max_size=5), max_leaves=30)
+
+    @settings(max_examples=200, deadline=None)
+    @given(values)
+    def small(v):
+        assert snapshot_text(v) == dumps(v)
+
+    small()
+    rng = random.Random(5)
+    n = 2 * _PIECE + 7  # past the piece size, with a remainder
+    big = {"pairers": {"m": {"done": [[str(i), 1.7e9 + rng.random()] for i in range(n)], "preds": []}},
+           "ids": {f"k{i}": (i, float("inf") if i % 97 == 0 else i / 7, "é") for i in range(n)},
+           "window": tuple(rng.gauss(0, 1) for _ in range(n)), "mixed": {1: "a", "b": [float("nan")]}}
+    assert snapshot_text(big) == dumps(big)

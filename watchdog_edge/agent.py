@@ -2,14 +2,20 @@
 
 The rules of this file, in the order a message meets them:
 
-1. paho's network thread only puts received messages and connection events on a queue.
-2. One worker (the main thread) takes messages in small batches: each message gets its receive
-   time ``t`` here and goes through ``Monitor.feed``; a due timer tick goes through
-   ``Monitor.tick``. Journal rows, the alerts they caused (outbox) and the dead letters are
-   committed in ONE transaction; only then are the messages acknowledged (manual PUBACK) and
-   the alerts published. Acks are never held back for a snapshot.
+1. One thread does the work. ``Link.poll`` waits for traffic and reads what has come; paho's
+   callbacks only append the messages and connection events to two lists. There is no
+   queue between threads and no second thread contending for the interpreter lock (only a
+   reconnect's blocking connect runs in a short-lived thread, see mqtt.py). A signal
+   handler only sets a flag.
+2. The messages are taken in small batches (``agent.journal_batch_max``, and no longer than
+   ``agent.journal_batch_ms`` of work): each gets its receive time ``t`` and goes through
+   ``Monitor.feed``; a due timer tick goes through ``Monitor.tick``. Journal rows, the alerts
+   they caused (outbox) and the dead letters are committed in ONE transaction; only then are
+   the messages acknowledged (manual PUBACK, all of a batch in one write) and the alerts
+   published. Acks are never held back for a snapshot.
 3. An alert leaves the outbox only when its PUBACK arrives. On every connect the outbox rows
-   that paho does not hold in flight are published again, with the same ``alert_id``.
+   that paho does not hold in flight are published again, with the same ``alert_id``; while
+   the broker is away, alerts only wait in the outbox (ticks, and so the silence check, go on).
 4. A snapshot of the core is taken every ``agent.snapshot_every_s`` and at shutdown; it trims
    the journal. A restart restores the snapshot and feeds the journal's tail through the core;
    the alerts and dead letters this produces were committed the first time, so they are not
@@ -27,12 +33,10 @@ from __future__ import annotations
 import json
 import logging
 import math
-import queue
 import signal
-import threading
 import time
 import zlib
-from collections import OrderedDict
+from itertools import islice
 from pathlib import Path
 from typing import Any
 
@@ -44,13 +48,13 @@ from .events import Alert, DeadLetter, rfc3339
 from .monitor import Monitor
 from .mqtt import Inbound, Link, LinkEvent, outbound_topic, status_payload
 from .replay import RecordingWriter
-from .store import JournalEntry, OutboxItem, Store, state_path
+from .store import OutboxItem, Store, state_path
 
 log = logging.getLogger("watchdog_edge.agent")
 
 _REMEMBERED_MIDS = 1000  # far above any broker's inflight window (mosquitto's default is 20)
 _LOG_EVERY_S = 60.0
-_QUEUE_SHED = 10000
+_POLL_MAX_S = 0.2  # longest wait for traffic, and so for noticing a stop signal
 
 
 def json_safe(obj: Any) -> Any:
@@ -69,8 +73,55 @@ def alert_payload(alert: Alert) -> bytes:
     return json.dumps(json_safe(alert.to_dict()), separators=(",", ":"), ensure_ascii=False).encode()
 
 
-def _content_key(topic: str, payload: bytes) -> tuple[int, int]:
-    return zlib.crc32(topic.encode("utf-8", "surrogateescape") + b"\x00" + payload), len(payload)
+class RecentMessages:
+    """Content keys (CRC-32 of topic, NUL and payload; payload length) of the latest messages, by packet id.
+
+    It recognises a re-sent message (rule 5) without keeping payloads in memory.
+
+    >>> r = RecentMessages(size=2)
+    >>> r.remember(7, "a/pred", b'{"id": 1}')
+    >>> r.seen(7, "a/pred", b'{"id": 1}'), r.seen(7, "a/pred", b'{"id": 2}'), r.seen(8, "a/pred", b'{"id": 1}')
+    (True, False, False)
+    """
+
+    def __init__(self, size: int = _REMEMBERED_MIDS) -> None:
+        self.size = size
+        self.keys: dict[int, tuple[int, int]] = {}
+        self._topic_crc: dict[str, int] = {}
+
+    def key(self, topic: str, payload: bytes) -> tuple[int, int]:
+        """The content key; the same as zlib.crc32 over topic, NUL and payload in one piece."""
+        start = self._topic_crc.get(topic)
+        if start is None:
+            if len(self._topic_crc) >= 1024:  # many topics under a wildcard: keep it bounded
+                self._topic_crc.clear()
+            start = self._topic_crc[topic] = zlib.crc32(topic.encode("utf-8", "surrogateescape") + b"\x00")
+        return zlib.crc32(payload, start), len(payload)
+
+    def remember(self, mid: int, topic: str, payload: bytes) -> None:
+        """Note that the message with packet id ``mid`` is journaled."""
+        keys = self.keys
+        keys.pop(mid, None)  # a reused id moves to the newest end
+        keys[mid] = self.key(topic, payload)
+        if len(keys) > 2 * self.size:  # trimmed now and then, not at every message
+            for old in list(islice(keys, len(keys) - self.size)):
+                del keys[old]
+
+    def restore(self, rows: list[list[int]]) -> None:
+        """Keys saved with a snapshot: ``[mid, crc, size]`` rows, oldest first."""
+        for mid, crc, size in rows:
+            self.keys.pop(int(mid), None)
+            self.keys[int(mid)] = (int(crc), int(size))
+
+    def rows(self) -> list[list[int]]:
+        """The keys as ``[mid, crc, size]`` rows for a snapshot, oldest first."""
+        return [[mid, crc, size] for mid, (crc, size) in islice(self.keys.items(), max(0, len(self.keys) - self.size),
+                                                                 None)]
+
+    def seen(self, mid: int, topic: str, payload: bytes) -> bool:
+        """True when this very message (packet id and content) was journaled."""
+        kept = self.keys.get(mid)
+        return kept is not None and kept == self.key(topic, payload)
 
 
 class Agent:
@@ -89,17 +140,17 @@ class Agent:
         self.status_topic = outbound_topic(b.topics.status, agent=a.name, model=None)
         self.store = Store(state_path(config.resolve(a.state_dir)), a.sqlite_synchronous,
                            a.dead_letter_max_count, a.dead_letter_max_bytes)
-        # Unbounded on purpose: at QoS 1 the broker's inflight window bounds what is in here;
-        # QoS 0 traffic beyond _QUEUE_SHED waiting messages is shed and counted.
-        self.q: queue.SimpleQueue[Inbound | LinkEvent] = queue.SimpleQueue()
+        # Filled by the link's callbacks inside Link.poll. The inbox holds at most about one
+        # batch: poll reads no further, and what is not read waits in the socket and the broker.
+        self.inbox: list[Inbound] = []
+        self.events: list[LinkEvent] = []
         self.intake_open = False
-        self.stopping = threading.Event()
+        self.stopping = False
         self.pending: dict[int, str] = {}  # mid -> alert_id awaiting PUBACK
         self.pending_other: set[int] = set()  # mids of retained state/status awaiting PUBACK
-        self.recent: OrderedDict[int, tuple[int, int]] = OrderedDict()  # mid -> content key
-        self._carry: list[Inbound | LinkEvent] = []
+        self.recent = RecentMessages()
         self.counters = {"connects": 0, "disconnects": 0, "connection_refused": 0, "connect_failures": 0,
-                         "redelivered": 0, "journal_batches": 0, "snapshots": 0, "shed_qos0": 0}
+                         "redelivered": 0, "journal_batches": 0, "snapshots": 0}
         self.last_refusal: str | None = None
         self._log_times: dict[str, float] = {}
         self.started = time.time()
@@ -113,7 +164,7 @@ class Agent:
                     subs.append(flt)
         self.link = Link(b, b.client_id or f"watchdog-edge-{a.name}", subs, self.status_topic,
                          status_payload(a.name, "offline", version=__version__), config.base_dir,
-                         self._on_message, self._on_event)
+                         self._on_message, self.events.append)
 
     # --- restart ---------------------------------------------------------------------------
     def _restore(self) -> Monitor:
@@ -125,8 +176,7 @@ class Agent:
             mon = Monitor.restore(self.config, self.cards, snap.data["monitor"])
             # Packet ids of the latest messages, so that a re-send of one already covered by
             # the snapshot is still recognised (rule 5).
-            for mid, crc, size in snap.data.get("recent", []):
-                self.recent[int(mid)] = (int(crc), int(size))
+            self.recent.restore(snap.data.get("recent", []))
             after = snap.journal_seq
         n = 0
         for e in self.store.journal_tail(after):
@@ -137,29 +187,17 @@ class Agent:
             else:
                 mon.feed(e.topic or "", e.payload or b"", e.t)
                 if e.mid is not None:
-                    self._remember(e.mid, e.topic or "", e.payload or b"")
+                    self.recent.remember(e.mid, e.topic or "", e.payload or b"")
             n += 1
         if snap is not None or n:
             log.info("resumed from %s and %d journal rows; %d alerts wait in the outbox",
                      "a snapshot" if snap is not None else "no snapshot", n, self.store.outbox_depth())
         return mon
 
-    def _remember(self, mid: int, topic: str, payload: bytes) -> None:
-        self.recent[mid] = _content_key(topic, payload)
-        self.recent.move_to_end(mid)
-        while len(self.recent) > _REMEMBERED_MIDS:
-            self.recent.popitem(last=False)
-
-    # --- paho thread -----------------------------------------------------------------------
+    # --- link callbacks (inside Link.poll) ----------------------------------------------------
     def _on_message(self, msg: Inbound) -> None:
         if self.intake_open:
-            if msg.qos == 0 and self.q.qsize() > _QUEUE_SHED:
-                self.counters["shed_qos0"] += 1
-                return
-            self.q.put(msg)
-
-    def _on_event(self, ev: LinkEvent) -> None:
-        self.q.put(ev)
+            self.inbox.append(msg)
 
     # --- logging at most once a minute per key ---------------------------------------------
     def _log_limited(self, key: str, level: int, text: str, *args: Any) -> None:
@@ -173,9 +211,10 @@ class Agent:
     def run(self) -> int:
         """Connect, then work until a signal; 0 on a clean shutdown. BrokerError if refused at start."""
         a = self.config.agent
+        link = self.link
         self.intake_open = True
         try:
-            self.link.start()
+            link.start()
         except BrokerError:
             self.intake_open = False
             self._close_files()
@@ -184,21 +223,28 @@ class Agent:
         for sig in (signal.SIGTERM, signal.SIGINT):
             signal.signal(sig, self._on_signal)
         log.info("agent %s connected to %s:%d; listening on %s", self.name, self.config.broker.host,
-                 self.config.broker.port, ", ".join(self.link.subscriptions))
+                 self.config.broker.port, ", ".join(link.subscriptions))
         now = time.monotonic()
         next_tick = now + a.tick_every_s
         next_snapshot = now + a.snapshot_every_s
         next_state = now  # publish state and status right away
         batch_max = a.journal_batch_max
-        while not self.stopping.is_set():
-            wait = max(0.0, min(next_tick, next_state, next_snapshot, time.monotonic() + 0.2) - time.monotonic())
-            items = self._take(batch_max, wait)
+        while not self.stopping:
+            room = batch_max - len(self.inbox)
+            if room > 0:
+                if self.inbox or self.events:
+                    wait = 0.0
+                else:
+                    now = time.monotonic()
+                    wait = max(0.0, min(next_tick, next_state, next_snapshot, now + _POLL_MAX_S) - now)
+                link.poll(wait, room)
             now = time.monotonic()
             tick = now >= next_tick
             if tick:
                 # Skip missed ticks after a stall rather than firing a burst of them.
                 next_tick = max(next_tick + a.tick_every_s, now)
-            self._process(items, tick)
+            if self.inbox or self.events or tick:
+                self._process(tick)
             if now >= next_state:
                 next_state = now + a.state_every_s
                 self._publish_states(self.monitor.models())
@@ -206,94 +252,92 @@ class Agent:
             if now >= next_snapshot:
                 next_snapshot = now + a.snapshot_every_s
                 self._snapshot()
+            link.flush()
         return self._shutdown()
 
     def _on_signal(self, signum: int, frame: Any) -> None:
-        self.stopping.set()
+        self.stopping = True
 
-    def _take(self, batch_max: int, wait: float) -> list[Inbound | LinkEvent]:
-        items: list[Inbound | LinkEvent] = []
-        if self._carry:  # left over when the last batch hit agent.journal_batch_ms
-            items, self._carry = self._carry, []
-        else:
-            try:
-                items.append(self.q.get(timeout=wait) if wait > 0 else self.q.get_nowait())
-            except queue.Empty:
-                return items
-        messages = sum(isinstance(i, Inbound) for i in items)
-        while messages < batch_max:
-            try:
-                it = self.q.get_nowait()
-            except queue.Empty:
-                break
-            items.append(it)
-            messages += isinstance(it, Inbound)
-        return items
-
-    def _process(self, items: list[Inbound | LinkEvent], tick: bool) -> None:
-        entries: list[JournalEntry] = []
+    def _process(self, tick: bool) -> None:
+        items = self.inbox
+        rows: list[tuple] = []
         outbox: list[OutboxItem] = []
         dead: list[DeadLetter] = []
         acks: list[tuple[int, int]] = []
-        acked_alerts: list[str] = []
-        events: list[LinkEvent] = []
         alerted: set[str] = set()  # models whose retained state is refreshed after this batch
-        mon = self.monitor
+        feed = self.monitor.feed
         rec = self.recorder
+        recent = self.recent
+        clock = time.time
         # A batch commits (and acks) no later than agent.journal_batch_ms after it started,
         # even when its messages are slow to process; the rest waits for the next batch.
-        deadline = time.perf_counter() + self.config.agent.journal_batch_ms / 1000.0
-        for k, it in enumerate(items):
-            if type(it) is Inbound:
-                if entries and time.perf_counter() >= deadline:
-                    self._carry = items[k:]
-                    break
-                if it.dup and self.recent.get(it.mid) == _content_key(it.topic, it.payload):
-                    self.counters["redelivered"] += 1
-                    acks.append((it.mid, it.qos))
-                    continue
-                t = time.time()
-                out = mon.feed(it.topic, it.payload, t)
-                entries.append(JournalEntry(t, it.topic, it.payload, mid=it.mid if it.qos else None))
-                if it.qos:
-                    acks.append((it.mid, it.qos))
-                    self._remember(it.mid, it.topic, it.payload)
-                if rec is not None:
-                    rec.message(t, it.topic, it.payload)
-                if out:
-                    self._collect(out, outbox, dead, alerted)
-            elif it.kind == "puback":
-                alert_id = self.pending.pop(it.mid, None)
-                if alert_id is not None:
-                    acked_alerts.append(alert_id)
-                else:
-                    self.pending_other.discard(it.mid)
+        perf = time.perf_counter
+        a = self.config.agent
+        deadline = perf() + a.journal_batch_ms / 1000.0
+        # paho may read a few packets past the batch (it reads one per outbound message still
+        # in flight): they wait for the next batch.
+        batch_max = a.journal_batch_max
+        done = 0
+        for topic, payload, mid, qos, dup in items:
+            if done >= batch_max or (rows and perf() >= deadline):
+                break
+            done += 1
+            if dup and recent.seen(mid, topic, payload):
+                self.counters["redelivered"] += 1
+                acks.append((mid, qos))
+                continue
+            t = clock()
+            out = feed(topic, payload, t)
+            if qos:
+                rows.append((t, topic, payload, 0, mid))
+                acks.append((mid, qos))
+                recent.remember(mid, topic, payload)
             else:
-                events.append(it)
+                rows.append((t, topic, payload, 0, None))
+            if rec is not None:
+                rec.message(t, topic, payload)
+            if out:
+                self._collect(out, outbox, dead, alerted)
+        self.inbox = items[done:] if done < len(items) else []
         if tick:
-            t = time.time()
-            out = mon.tick(t)
-            entries.append(JournalEntry(t, tick=True))
+            t = clock()
+            out = self.monitor.tick(t)
+            rows.append((t, None, None, 1, None))
             if rec is not None:
                 rec.tick(t)
             if out:
                 self._collect(out, outbox, dead, alerted)
-        if entries or outbox or dead:
-            self.store.append(entries, outbox, dead)
+        if rows or outbox or dead:
+            self.store.commit(rows, outbox, dead)
             self.counters["journal_batches"] += 1
-        # Committed: alerts go out first (latency), then the acks, then the rest.
-        for item in outbox:
-            self._publish_alert(item)
+        # Committed: alerts go out first (latency), then the acks, all in one write.
+        link = self.link
+        if outbox and link.connected.is_set():
+            for item in outbox:
+                self._publish_alert(item)
         for mid, qos in acks:
-            self.link.ack(mid, qos)
-        if rec is not None and entries:
+            link.ack(mid, qos)
+        link.flush()
+        if rec is not None and rows:
             rec.flush()
         if outbox:
             self._publish_states(sorted(alerted))
-        if acked_alerts:
-            self.store.mark_sent(acked_alerts)
-        for ev in events:
-            self._link_event(ev)
+        if self.events:
+            events = self.events[:]
+            self.events.clear()  # the same list: the link appends to it
+            acked_alerts: list[str] = []
+            for ev in events:
+                if ev.kind == "puback":
+                    alert_id = self.pending.pop(ev.mid, None)
+                    if alert_id is not None:
+                        acked_alerts.append(alert_id)
+                    else:
+                        self.pending_other.discard(ev.mid)
+            if acked_alerts:
+                self.store.mark_sent(acked_alerts)  # before a reconnect re-sends the outbox
+            for ev in events:
+                if ev.kind != "puback":
+                    self._link_event(ev)
 
     def _collect(self, out: list[Any], outbox: list[OutboxItem], dead: list[DeadLetter], alerted: set[str]) -> None:
         for ev in out:
@@ -372,33 +416,30 @@ class Agent:
         return mid
 
     def _snapshot(self) -> None:
-        data = {"monitor": self.monitor.snapshot(),
-                "recent": [[mid, crc, size] for mid, (crc, size) in self.recent.items()]}
+        data = {"monitor": self.monitor.snapshot(), "recent": self.recent.rows()}
         self.store.save_snapshot(data, time.time())
         self.counters["snapshots"] += 1
 
     # --- shutdown ---------------------------------------------------------------------------
-    def _drain_events(self, until: float, done) -> None:
+    def _drain_events(self, seconds: float, done) -> None:
+        until = time.monotonic() + seconds
         while time.monotonic() < until and not done():
-            items = self._take(self.config.agent.journal_batch_max, 0.02)
-            if items:
-                self._process(items, tick=False)
+            self.link.poll(0.02)
+            if self.inbox or self.events:
+                self._process(tick=False)
+            self.link.flush()
 
     def _shutdown(self) -> int:
         log.info("stopping: intake closed, flushing the outbox")
         self.intake_open = False
-        # Messages already queued were received before the stop: journal and acknowledge them.
-        while True:
-            items = self._take(self.config.agent.journal_batch_max, 0.0)
-            if not items:
-                break
-            self._process(items, tick=False)
-        self._drain_events(time.monotonic() + 5.0, lambda: not self.pending or not self.link.connected.is_set())
+        # Messages already read were received before the stop: journal and acknowledge them.
+        while self.inbox:
+            self._process(tick=False)
+        self._drain_events(5.0, lambda: not self.pending or not self.link.connected.is_set())
         self._snapshot()
         mid = self._publish_status("offline")
         if mid is not None:
-            self._drain_events(time.monotonic() + 2.0,
-                               lambda: mid not in self.pending_other or not self.link.connected.is_set())
+            self._drain_events(2.0, lambda: mid not in self.pending_other or not self.link.connected.is_set())
         self.link.stop(clean=True)
         left = self.store.outbox_depth()
         if left:

@@ -2,8 +2,17 @@
 
 from __future__ import annotations
 
-import json
 import sys
+
+if __name__ == "__main__":
+    # ``python -m watchdog_edge.cli run ...`` starts the agent without typer (see cli_run.py).
+    from watchdog_edge.cli_run import lean_main
+
+    _code = lean_main(sys.argv[1:])
+    if _code is not None:
+        sys.exit(_code)
+
+import json
 from pathlib import Path
 from typing import Optional
 

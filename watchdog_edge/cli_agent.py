@@ -3,14 +3,12 @@
 from __future__ import annotations
 
 import json
-import logging
-import sys
 from pathlib import Path
 from typing import Optional
 
 import typer
 
-from .errors import BrokerError, WatchdogError
+from .errors import WatchdogError
 
 RUN_HELP = """Run the live agent: subscribe to every model's prediction and truth topics, pair them, run the checks, and publish alerts, retained per-model state and a retained agent status.
 
@@ -60,29 +58,9 @@ def run(
         "(overwritten); 'watchdog-edge replay' on it gives the same alerts as this run."),
     log_level: str = typer.Option("info", "--log-level", help="debug, info, warning or error."),
 ) -> None:
-    from .agent import Agent
-    from .config import load_config
-    from .monitor import load_cards
+    from .cli_run import run_agent
 
-    level = getattr(logging, log_level.upper(), None)
-    if not isinstance(level, int):
-        _fail(f"--log-level {log_level!r} is not one of debug, info, warning, error", 2)
-    logging.basicConfig(level=level, stream=sys.stderr, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
-    try:
-        cfg = load_config(config)
-        cards = load_cards(cfg)
-        agent = Agent(cfg, cards, record=record)
-    except BrokerError as e:
-        _fail(str(e), 2)
-    except WatchdogError as e:
-        _fail(str(e).replace("\n", " "), 2)
-    try:
-        code = agent.run()
-    except BrokerError as e:
-        if agent.running:
-            _fail(f"stopped: {e}", 1)
-        _fail(f"cannot start: {e}", 3)
-    raise typer.Exit(code)
+    raise typer.Exit(run_agent(config, record, log_level))
 
 
 def deadletters(

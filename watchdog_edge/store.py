@@ -23,6 +23,7 @@ from __future__ import annotations
 import json
 import sqlite3
 from dataclasses import dataclass
+from itertools import islice
 from pathlib import Path
 from typing import Any, Iterable, Iterator, Literal
 
@@ -30,6 +31,7 @@ from .errors import WatchdogError
 from .events import DeadLetter
 
 SCHEMA_VERSION = 1
+_CACHE_KIB = 512
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
@@ -65,6 +67,60 @@ CREATE TABLE IF NOT EXISTS dead_letters (
     size INTEGER NOT NULL
 );
 """
+
+
+_PIECE = 1000  # list items or dict entries encoded in one go when writing a snapshot
+
+
+def snapshot_text(data: Any) -> str:
+    """``json.dumps(data, separators=(",", ":"))``, built piece by piece to stay near the text's own size.
+
+    json.dumps gathers a large list as tens of thousands of small strings before joining
+    them, about seven times the size of the text; a snapshot holds lists of 20,000 entries
+    (the pairing memory), so that peak was the agent's largest. Here lists and dicts are
+    encoded ``_PIECE`` items at a time into one growing buffer. Python's JSON reads back its
+    own NaN and Infinity literals exactly (a core that has seen nothing holds its clock at
+    -inf), so they are allowed in this private file.
+
+    >>> snapshot_text({"a": [1, 2.5, float("-inf")], "b": {"c": None}})
+    '{"a":[1,2.5,-Infinity],"b":{"c":null}}'
+    """
+    out = bytearray()
+    _encode(data, out)
+    return out.decode("ascii")  # json.dumps escapes every non-ASCII character
+
+
+def _encode(obj: Any, out: bytearray) -> None:
+    dumps = json.dumps
+    if isinstance(obj, dict) and all(type(k) is str for k in obj):
+        if len(obj) > _PIECE:
+            out += b"{"
+            items = iter(obj.items())
+            first = True
+            while piece := dict(islice(items, _PIECE)):
+                if not first:
+                    out += b","
+                out += dumps(piece, separators=(",", ":"))[1:-1].encode("ascii")
+                first = False
+            out += b"}"
+            return
+        out += b"{"
+        for k, (key, value) in enumerate(obj.items()):
+            if k:
+                out += b","
+            out += dumps(key).encode("ascii")
+            out += b":"
+            _encode(value, out)
+        out += b"}"
+    elif isinstance(obj, (list, tuple)) and len(obj) > _PIECE:
+        out += b"["
+        for start in range(0, len(obj), _PIECE):
+            if start:
+                out += b","
+            out += dumps(obj[start:start + _PIECE], separators=(",", ":"))[1:-1].encode("ascii")
+        out += b"]"
+    else:
+        out += dumps(obj, separators=(",", ":")).encode("ascii")
 
 
 @dataclass(frozen=True, slots=True)
@@ -167,6 +223,9 @@ class Store:
             raise WatchdogError(f"the state file {self.path} cannot use WAL mode (got {mode!r}); "
                                 "put agent.state_dir on a local file system")
         self._db.execute(f"PRAGMA synchronous={synchronous}")
+        # The agent appends and rarely reads back: a small page cache holds the pages a commit
+        # touches (SQLite's default is 2 MB).
+        self._db.execute(f"PRAGMA cache_size=-{_CACHE_KIB}")
         self._db.executescript(_SCHEMA)
         found = self._meta_get("schema_version")
         if found is None:
@@ -174,6 +233,7 @@ class Store:
         elif int(found) != SCHEMA_VERSION:
             raise WatchdogError(f"the state file {self.path} has schema {found}, this version reads "
                                 f"{SCHEMA_VERSION}; move it away to start fresh")
+        self._last_seq = self.last_seq()
 
     # --- plumbing -------------------------------------------------------------------------
     def close(self) -> None:
@@ -216,13 +276,23 @@ class Store:
         """
         rows = [(e.t, e.topic, None if e.payload is None else bytes(e.payload), int(e.tick), e.mid)
                 for e in entries]
+        return self.commit(rows, alerts, dead_letters)
+
+    def commit(
+        self,
+        rows: list[tuple[float, str | None, bytes | None, int, int | None]],
+        alerts: Iterable[OutboxItem] = (),
+        dead_letters: Iterable[DeadLetter] = (),
+    ) -> int:
+        """``append`` for journal rows given as ``(t, topic, payload, tick, mid)`` tuples (the agent's hot path)."""
         dl = list(dead_letters)
         db = self._db
         db.execute("BEGIN")
         try:
             if rows:
                 db.executemany("INSERT INTO journal (t, topic, payload, tick, mid) VALUES (?, ?, ?, ?, ?)", rows)
-            last = db.execute("SELECT COALESCE(MAX(seq), 0) FROM journal").fetchone()[0]
+            # One writer, AUTOINCREMENT: the rows just written took the next seq numbers.
+            last = self._last_seq + len(rows)
             for a in alerts:
                 db.execute("INSERT OR IGNORE INTO outbox (alert_id, topic, payload, t, journal_seq) "
                            "VALUES (?, ?, ?, ?, ?)", (a.alert_id, a.topic, bytes(a.payload), a.t, last))
@@ -232,7 +302,8 @@ class Store:
         except BaseException:
             db.execute("ROLLBACK")
             raise
-        return int(last)
+        self._last_seq = last
+        return last
 
     def journal_tail(self, after_seq: int) -> Iterator[JournalEntry]:
         """Journal rows after ``after_seq`` in order (what a restart replays)."""
@@ -244,7 +315,10 @@ class Store:
 
     def journal_depth(self) -> int:
         """Rows in the journal (not yet covered by a snapshot)."""
-        return int(self._db.execute("SELECT COUNT(*) FROM journal").fetchone()[0])
+        # seq numbers are consecutive (one writer; a snapshot trims a prefix), so the two ends
+        # of the primary key give the count without reading every page of the journal.
+        lo, hi = self._db.execute("SELECT (SELECT MIN(seq) FROM journal), (SELECT MAX(seq) FROM journal)").fetchone()
+        return 0 if lo is None else int(hi) - int(lo) + 1
 
     def last_seq(self) -> int:
         """The highest journal ``seq`` ever written (kept across trims)."""
@@ -258,9 +332,7 @@ class Store:
         In the same transaction the journal rows it covers are deleted and older snapshots
         dropped. Returns the covered ``seq``.
         """
-        # Python's JSON reads back its own NaN/Infinity literals exactly (a core that has
-        # seen nothing holds its clock at -inf), so they are allowed in this private file.
-        text = json.dumps(data, separators=(",", ":"))
+        text = snapshot_text(data)
         db = self._db
         db.execute("BEGIN")
         try:
