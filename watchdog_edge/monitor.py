@@ -227,10 +227,10 @@ class Monitor:
             for flt, kind in ((m.prediction_topic, "prediction"), (m.truth_topic, "truth")):
                 routes.append((flt, Lane(m.id, kind, self.parsers[(m.id, kind)], self.pairers[m.id], self.tracks[m.id])))
         self.router: Router[Lane] = Router(routes)
+        self._routes = self.router.cache  # looked up first: most topics are already there
         self.max_payload = config.agent.max_payload_bytes
         self.now = float("-inf")
         self.received = 0
-        self.records = 0
         self.ticks = 0
         self.clock_backwards = 0
         self.bad = dict.fromkeys(REASONS, 0)
@@ -269,12 +269,16 @@ class Monitor:
 
     def intake(self, topic: str, payload: bytes | str, t: float) -> list[Any]:
         """Route, parse and pair one message; returns steps and dead letters."""
-        return self._intake(topic, payload, t, None)
+        return self.feed(topic, payload, t, steps=True)
 
-    def _intake(self, topic: str, payload: bytes | str, t: float, direct: list[Event] | None) -> list[Any]:
-        # With ``direct`` the tracks run at once and their events go there: the same order of
-        # work as apply(intake(...)), without building a Step per record.
-        t = float(t)
+    def feed(self, topic: str, payload: bytes | str, t: float, *, steps: bool = False) -> list[Any]:
+        """One received message at receive time ``t``; the events it causes.
+
+        With ``steps=True`` the tracks do not run: the result holds the steps (and dead
+        letters) for :meth:`apply`, which then gives the same events in the same order.
+        """
+        if type(t) is not float:
+            t = float(t)
         if t < self.now:
             self.clock_backwards += 1
             t = self.now
@@ -285,8 +289,8 @@ class Monitor:
             raw = payload
         else:
             raw = payload.encode() if isinstance(payload, str) else bytes(payload)
-        out: list[Any] = [] if direct is None else direct
-        lanes = self.router.route(topic)
+        out: list[Any] = []
+        lanes = self._routes.get(topic) or self.router.route(topic)
         if not lanes:
             self._dead_letter(topic, t, "unknown_topic", f"no model listens on topic {topic!r}", raw, out)
             return out
@@ -307,26 +311,25 @@ class Monitor:
                     rec = self._reject(e, lane, el, elements, raw, topic, t, out)
                     if rec is None:
                         continue
-                self.records += 1
                 if lane.prediction:
-                    if direct is None:
+                    if steps:
                         out.append(Step("prediction", t, lane.model, rec))
                     else:
-                        track.prediction(rec, direct)  # type: ignore[arg-type]
+                        track.prediction(rec, out)  # type: ignore[arg-type]
                         if not track.keeps_features:
                             rec.features = {}  # rebound, not cleared: a check may still hold the dict
                     pr = pairer.add_prediction(rec)  # type: ignore[arg-type]
                 else:
-                    if direct is None:
+                    if steps:
                         out.append(Step("truth", t, lane.model, rec))
                     else:
-                        track.truth(rec, direct)  # type: ignore[arg-type]
+                        track.truth(rec, out)  # type: ignore[arg-type]
                     pr = pairer.add_truth(rec)  # type: ignore[arg-type]
                 if pr is not None:
-                    if direct is None:
+                    if steps:
                         out.append(Step("pair", t, lane.model, pr))
                     else:
-                        track.pair(pr, direct)
+                        track.pair(pr, out)
         return out
 
     def _reject(self, e: BadRecord, lane: Lane, el: Any, elements: list[Any], raw: bytes, topic: str,
@@ -403,15 +406,16 @@ class Monitor:
             out.append(s)
         return out
 
-    def feed(self, topic: str, payload: bytes | str, t: float) -> list[Event]:
-        """One received message at receive time ``t``; the same events as apply(intake(...))."""
-        return self._intake(topic, payload, t, [])
-
     def tick(self, t: float) -> list[Event]:
         """A timer tick at core time ``t``."""
         return self.apply(self.intake_tick(t))
 
     # -- state ------------------------------------------------------------------------------
+    @property
+    def records(self) -> int:
+        """Good records taken (every one reaches its model's pairer, duplicates included)."""
+        return sum(p.counts["predictions"] + p.counts["truths"] for p in self.pairers.values())
+
     def models(self) -> list[str]:
         return list(self.tracks)
 
@@ -463,7 +467,6 @@ class Monitor:
         mon = cls(config, cards)
         mon.now = float(data["now"]) if data["now"] is not None else float("-inf")
         mon.received = data["received"]
-        mon.records = data["records"]
         mon.ticks = data["ticks"]
         mon.clock_backwards = data["clock_backwards"]
         mon.bad.update(data["bad"])

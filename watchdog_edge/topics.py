@@ -70,12 +70,12 @@ class Router(Generic[T]):
                 self._wild.append((flt, target))
             else:
                 self._exact.setdefault(flt, []).append(target)
-        self._cache: dict[str, tuple[T, ...]] = {}
+        self.cache: dict[str, tuple[T, ...]] = {}  # topic -> targets, for callers that look first
         self._cache_size = cache_size
 
     def route(self, topic: str) -> tuple[T, ...]:
         """Every target for ``topic``; empty when nothing listens."""
-        hit = self._cache.get(topic)
+        hit = self.cache.get(topic)
         if hit is not None:
             return hit
         found = list(self._exact.get(topic, ()))
@@ -83,7 +83,7 @@ class Router(Generic[T]):
             if matches(flt, topic) and target not in found:
                 found.append(target)
         result = tuple(found)
-        if len(self._cache) >= self._cache_size:
-            self._cache.clear()
-        self._cache[topic] = result
+        if len(self.cache) >= self._cache_size:
+            self.cache.clear()
+        self.cache[topic] = result
         return result
