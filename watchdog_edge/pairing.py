@@ -7,6 +7,7 @@ expire after ``horizon_s``; above ``max_unpaired`` pending records the oldest is
 
 from __future__ import annotations
 
+import math
 from collections import OrderedDict
 from dataclasses import asdict, astuple
 from typing import Any
@@ -119,25 +120,32 @@ class Pairer:
         if now <= self.due:
             return
         limit = now - self.horizon_s
-        for store, key in ((self._preds, "expired_predictions"), (self._truths, "expired_truths")):
-            while store:
-                first = next(iter(store.values()))
-                if first[3] >= limit:
-                    break
-                store.popitem(last=False)
-                self.counts[key] += 1
-        while self._done:
-            k, t = next(iter(self._done.items()))
-            if t >= limit:
-                break
-            self._done.popitem(last=False)
+        preds, truths, done = self._preds, self._truths, self._done
+        n = 0
+        while preds and next(iter(preds.values()))[3] < limit:
+            preds.popitem(last=False)
+            n += 1
+        if n:
+            self.counts["expired_predictions"] += n
+            n = 0
+        while truths and next(iter(truths.values()))[3] < limit:
+            truths.popitem(last=False)
+            n += 1
+        if n:
+            self.counts["expired_truths"] += n
+        while done and next(iter(done.values())) < limit:
+            done.popitem(last=False)
         self._set_due()
 
     def _set_due(self) -> None:
-        firsts = [next(iter(store.values()))[3] for store in (self._preds, self._truths) if store]
+        first = math.inf
+        if self._preds:
+            first = next(iter(self._preds.values()))[3]
+        if self._truths:
+            first = min(first, next(iter(self._truths.values()))[3])
         if self._done:
-            firsts.append(next(iter(self._done.values())))
-        self.due = min(firsts) + self.horizon_s if firsts else float("inf")
+            first = min(first, next(iter(self._done.values())))
+        self.due = first + self.horizon_s
 
     def snapshot(self) -> dict[str, Any]:
         return {
