@@ -2,7 +2,9 @@
 
 The recording is parsed and paired once (``Monitor.intake``) into steps; each setting of the
 grid is a Monitor built from the config with some keys replaced, and ``apply(steps)`` gives its
-alerts. A raised alert counts as a detection of an incident when it comes between the
+alerts. Checks do not see each other, so a check runs once per distinct value of the grid keys
+that reach it (its own keys, and ``window.*`` for the checks that read the model's window), and
+a setting's alerts are put together from those runs; checks the grid does not reach run once. A raised alert counts as a detection of an incident when it comes between the
 incident's start and its end plus a grace period (default: one window, i.e. the window size
 divided by the recording's pair rate); any other raised alert is a false alarm.
 
@@ -26,6 +28,7 @@ setting is "tightest" when there is no incidents file)::
 from __future__ import annotations
 
 import copy
+import gc
 import itertools
 import math
 import multiprocessing as mp
@@ -204,14 +207,18 @@ def intake_recording(config: Config, cards: dict[str, ModelCard], recording: str
     start = end = math.nan
     pairs: dict[str, int] = {}
     span: dict[str, tuple[float, float]] = {}
-    for line in with_ticks(read_recording(recording), tick_every):
-        out = mon.intake_tick(line.t) if line.tick else mon.intake(line.topic, line.payload, line.t)
-        if math.isnan(start):
-            start = line.t
-        end = max(end, line.t) if not math.isnan(end) else line.t
+    intake, intake_tick, add = mon.intake, mon.intake_tick, steps.append
+    lines = read_recording(recording)
+    for line in with_ticks(lines, tick_every) if tick_every else lines:
+        t = line.t
+        out = intake_tick(t) if line.tick else intake(line.topic, line.payload, t)
+        if not t <= end:  # the first line (end is NaN) or a later receive time
+            end = t
+            if math.isnan(start):
+                start = t
         for s in out:
             if type(s) is Step:
-                steps.append(s)
+                add(s)
                 if s.kind == "pair":
                     pairs[s.model] = pairs.get(s.model, 0) + 1
                     a, _ = span.get(s.model, (s.t, s.t))
@@ -228,22 +235,28 @@ def intake_recording(config: Config, cards: dict[str, ModelCard], recording: str
 _WINDOW_FREE = frozenset({"range", "shift", "silence"})
 
 
+def reaches(key: str, check: str) -> bool:
+    """Whether a grid key can change the alerts of ``check``.
+
+    >>> reaches("checks.gap.confidence", "gap"), reaches("window.size", "shift")
+    (True, False)
+    """
+    parts = key.split(".")
+    if parts[0] == "checks":
+        return len(parts) > 1 and parts[1] == check
+    return parts[0] == "window" and check not in _WINDOW_FREE
+
+
 def varied_checks(keys: Iterable[str]) -> set[str]:
     """Checks whose alerts can differ between the grid's settings.
 
     Every other check gives the same alerts under every setting (checks do not see each other),
-    so its alerts are computed once and shared: each setting then runs only the varied checks.
+    so its alerts are computed once and shared; each varied check runs on its own, once per
+    distinct value of the keys that reach it (see ``tune``).
     """
     from watchdog_edge.checks import CHECK_NAMES
 
-    out: set[str] = set()
-    for k in keys:
-        parts = k.split(".")
-        if parts[0] == "checks" and len(parts) > 1:
-            out.add(parts[1])
-        elif parts[0] == "window":
-            out |= {n for n in CHECK_NAMES if n not in _WINDOW_FREE}
-    return out
+    return {n for n in CHECK_NAMES for k in keys if reaches(k, n)}
 
 
 def only_checks(raw: dict, drop: set[str], models: list[str] | None) -> dict:
@@ -321,13 +334,20 @@ def evaluate_all(jobs: list[tuple[int, dict]], steps: list[Step], cards: dict[st
             if progress:
                 progress(1)
         return results
-    # fork hands the steps to each worker once, without pickling them per setting
+    # fork hands the steps to each worker once, without pickling them per setting; frozen
+    # objects are left out of the workers' garbage collections, which would otherwise touch
+    # (and so copy) every page of the parent's heap they inherited
     ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
-    with ctx.Pool(workers, initializer=_init_worker, initargs=(steps, cards, str(base_dir), models, checks)) as pool:
-        for i, marks in pool.imap_unordered(_run_one, jobs, chunksize=1):
-            results[i] = marks
-            if progress:
-                progress(1)
+    gc.freeze()
+    try:
+        with ctx.Pool(workers, initializer=_init_worker,
+                      initargs=(steps, cards, str(base_dir), models, checks)) as pool:
+            for i, marks in pool.imap_unordered(_run_one, jobs, chunksize=1):
+                results[i] = marks
+                if progress:
+                    progress(1)
+    finally:
+        gc.unfreeze()
     return results
 
 
@@ -474,8 +494,12 @@ def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[st
     grid = grid if grid is not None else default_grid(cfg)
     settings = expand(grid)
     varied = varied_checks(grid)
-    fixed = {n for m in cfg.models if models is None or m.id in models for n in m.enabled_checks()} - varied
-    jobs, invalid = [], []
+    chosen = [m for m in cfg.models if models is None or m.id in models]
+    fixed = {n for m in chosen for n in m.enabled_checks()} - varied
+    jobs: list[tuple[int, dict]] = []
+    job_of: dict[tuple, int] = {}  # (check, the values of the grid keys that reach it) -> job
+    parts: dict[int, list[int]] = {}  # setting -> the jobs whose alerts make up its alerts
+    invalid = []
     configs: dict[int, Config] = {}
     for s in settings:
         data = with_setting(raw, s, models)
@@ -484,9 +508,18 @@ def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[st
         except ConfigError as e:
             invalid.append((s, str(e)))
             continue
-        # each setting runs only the checks the grid reaches; the others run once, below
-        jobs.append((s.index, only_checks(data, fixed, models)))
-    if not jobs:
+        # Each varied check runs on its own, once per distinct value of the keys that reach
+        # it (checks do not see each other): a grid of gap settings x shift on/off runs gap
+        # once per gap setting and shift once, not every pair of them.
+        on = {n for m in configs[s.index].models if models is None or m.id in models for n in m.enabled_checks()}
+        parts[s.index] = []
+        for check in sorted(varied & on):
+            key = (check, tuple((k, repr(v)) for k, v in s.values.items() if reaches(k, check)))
+            if key not in job_of:
+                job_of[key] = len(jobs)
+                jobs.append((len(jobs), only_checks(data, varied - {check} | fixed, models)))
+            parts[s.index].append(job_of[key])
+    if not parts:
         raise ConfigError("no grid setting gives a valid config; first problem:\n" + invalid[0][1])
     intake = intake_recording(cfg, cards, recording, tick_every)
     n_workers = max(1, workers if workers is not None else (os.cpu_count() or 1))
@@ -512,10 +545,10 @@ def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[st
     with_inc = incidents is not None
     rows = []
     for s in settings:
-        if s.index not in marks:
+        if s.index not in parts:
             continue
         g = _grace(configs[s.index], intake, models, grace_s)
-        ms = _sort_marks(marks[s.index] + shared)
+        ms = _sort_marks([m for j in parts[s.index] for m in marks[j]] + shared)
         rows.append(Row(s, score(ms, incidents or [], intake.start, intake.end, g), marks=ms))
     by_index = {r.setting.index: r for r in rows}
     for r in rows:

@@ -76,12 +76,18 @@ def test_shared_parse_pass_gives_the_same_alerts_as_a_full_replay(recordings):
         assert shared == full and full
 
 
-def test_checks_outside_the_grid_run_once_and_give_the_same_alerts(recordings):
+def test_each_check_runs_once_per_distinct_setting_and_gives_the_same_alerts(recordings):
     a, _ = recordings
     cfg = load_config(a.config)
     cards = load_cards(cfg)
-    grid = {"checks.gap.warning_tolerance": [0.25, 1.0], "checks.shift.enabled": [True, False]}
-    res = tune(a.config, a.recording, load_incidents(a.incidents), grid=grid, workers=1)
+    grid = {"window.size": [60, 240], "checks.gap.warning_tolerance": [0.25, 1.0],
+            "checks.shift.enabled": [True, False]}
+    runs = []
+    res = tune(a.config, a.recording, load_incidents(a.incidents), grid=grid, workers=1,
+               progress=lambda done, total: runs.append(total))
+    # 8 settings, but gap runs once per (window.size, warning_tolerance), shift once (it does
+    # not read the model's window), range and silence once for all
+    assert len(res.rows) == 8 and runs[-1] == 4 + 1 + 1
     raw = _raw(a.config)
     for row in res.rows:
         # the same setting with every check in one monitor, over a full replay
