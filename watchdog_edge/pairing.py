@@ -70,7 +70,8 @@ class Pairer:
         truth = self._truths.pop(pid, None)
         if truth is not None:
             return self._pair(p, Truth(*truth), p.t)
-        self._preds[pid] = _fields(p)
+        # _fields(p) written out: this runs for every prediction
+        self._preds[pid] = (p.model, pid, p.value, p.t, p.ts, p.features or None, p.model_version)
         if p.t + self.horizon_s < self.due:
             self.due = p.t + self.horizon_s
         if len(self._preds) + len(self._truths) > self.max_unpaired:

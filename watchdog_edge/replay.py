@@ -39,25 +39,33 @@ def parse_line(text: str | bytes, lineno: int = 0, source: str = "recording") ->
     return next(parse_lines((text,), source, lineno), None)
 
 
-def parse_lines(texts: Iterable[str | bytes], source: str = "recording", first: int = 1) -> Iterator[RecordLine]:
-    """Recording lines from their texts, blank ones skipped; line numbers count from ``first``."""
-    for i, text in enumerate(texts, first):
-        try:
-            obj = _orjson_loads(text)  # the common case: a well-formed line, read in one step
-        except _OrjsonError:
-            obj = _parse_slowly(text, i, source)
-            if obj is not None:
-                yield _check_line(obj, i, source)
-            continue
-        if type(obj) is dict:  # orjson's floats are finite and its text holds no surrogates
-            t = obj.get("t")
-            payload = obj.get("payload")
-            if type(t) is float and type(payload) is str and "tick" not in obj:
-                topic = obj.get("topic")
-                if type(topic) is str and topic:
-                    yield RecordLine(t, topic, payload.encode("utf-8", "surrogatepass"))
-                    continue
-        yield _check_line(obj, i, source)
+def parse_lines(texts: Iterable[str | bytes], source: str = "recording", first: int = 1,
+                close: bool = False) -> Iterator[RecordLine]:
+    """Recording lines from their texts, blank ones skipped; line numbers count from ``first``.
+
+    With ``close`` the texts (an open file) are closed when the lines end or stop being read.
+    """
+    try:
+        for i, text in enumerate(texts, first):
+            try:
+                obj = _orjson_loads(text)  # the common case: a well-formed line, read in one step
+            except _OrjsonError:
+                obj = _parse_slowly(text, i, source)
+                if obj is not None:
+                    yield _check_line(obj, i, source)
+                continue
+            if type(obj) is dict:  # orjson's floats are finite and its text holds no surrogates
+                t = obj.get("t")
+                payload = obj.get("payload")
+                if type(t) is float and type(payload) is str and "tick" not in obj:
+                    topic = obj.get("topic")
+                    if type(topic) is str and topic:
+                        yield RecordLine(t, topic, payload.encode("utf-8", "surrogatepass"))
+                        continue
+            yield _check_line(obj, i, source)
+    finally:
+        if close:
+            texts.close()  # type: ignore[attr-defined]
 
 
 def _parse_slowly(text: str | bytes, lineno: int, source: str) -> Any:
@@ -104,14 +112,13 @@ def _check_line(obj: Any, lineno: int, source: str) -> RecordLine:
 
 
 def read_recording(path: str | Path) -> Iterator[RecordLine]:
-    """Lines of a recording file, in order."""
+    """Lines of a recording file, in order; a missing file is an error at once."""
     p = Path(path)
     try:
         fh = p.open("rb")
     except FileNotFoundError:
         raise RecordingError(f"recording not found: {p}") from None
-    with fh:
-        yield from parse_lines(fh, str(p))
+    return parse_lines(fh, str(p), close=True)
 
 
 def format_message(t: float, topic: str, payload: bytes) -> str:

@@ -100,16 +100,11 @@ class RangeCheck(Check):
         far: dict[str, float] | None = None
         for fname, lo, hi in self._bounds:
             x = feats.get(fname)
-            if x is None:
+            if x is None or lo <= x <= hi:
                 continue
-            if x < lo:
-                if far is None:
-                    far = {}
-                far[fname] = x - lo
-            elif x > hi:
-                if far is None:
-                    far = {}
-                far[fname] = x - hi
+            if far is None:
+                far = {}
+            far[fname] = x - lo if x < lo else x - hi  # signed distance past the nearer edge
         if far is not None:
             self._details.append((self._seq, far))
         self._seq += 1
