@@ -2,7 +2,7 @@
 
 Records are built and parsed before timing starts (Prediction, Truth and Pair objects with
 five features), and each check is driven the way the core drives it: the record's verb, then
-``evaluate`` after every record. Two references are measured in the same run:
+``evaluate`` unless the verb returned False. Two references are measured in the same run:
 
 - for every baseline learner, river's own test-then-train loop on the same feature dicts
   (``predict_one`` then ``learn_one``), so the printed overhead is what the check adds on top
@@ -80,21 +80,19 @@ def timed(setup: Callable[[], Any], run: Callable[[Any], None]) -> float:
 
 
 def drive(checks: dict[str, Any], preds, truths, pairs, losses) -> None:
-    """One prediction, one truth and one pair per row, evaluating every check after each."""
+    """One prediction, one truth and one pair per row; each check evaluated after each as the
+    core does it: unless the verb said False (nothing new for evaluate)."""
     cs = list(checks.values())
     for p, tr, pr, loss in zip(preds, truths, pairs, losses):
         for c in cs:
-            c.on_prediction(p)
+            if c.on_prediction(p) is not False:
+                c.evaluate(p.t)
         for c in cs:
-            c.evaluate(p.t)
+            if c.on_truth(tr) is not False:
+                c.evaluate(tr.t)
         for c in cs:
-            c.on_truth(tr)
-        for c in cs:
-            c.evaluate(tr.t)
-        for c in cs:
-            c.on_pair(pr, loss)
-        for c in cs:
-            c.evaluate(pr.t)
+            if c.on_pair(pr, loss) is not False:
+                c.evaluate(pr.t)
 
 
 def make(name: str, card: ModelCard, **settings: Any) -> Any:

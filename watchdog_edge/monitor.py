@@ -89,14 +89,18 @@ class ModelTrack:
                        for verb in ("on_prediction", "on_truth", "on_pair")}
         self._judges = {kind: [(n, c) for n, c in items if kind in c.reacts_to]
                         for kind in ("prediction", "truth", "pair", "tick")}
-        # The same, as bound methods: the hot path calls them without attribute lookups.
-        self._feed_prediction = tuple(c.on_prediction for c in self._takes["on_prediction"])
-        self._feed_truth = tuple(c.on_truth for c in self._takes["on_truth"])
-        self._feed_pair = tuple(c.on_pair for c in self._takes["on_pair"])
-        self._ask = {kind: tuple((n, c.evaluate) for n, c in judges) for kind, judges in self._judges.items()}
-        self._ask_prediction = self._ask["prediction"]
-        self._ask_truth = self._ask["truth"]
-        self._ask_pair = self._ask["pair"]
+        # Per input kind, in check order: (name, its verb for the input or None, its evaluate
+        # or None), as bound methods. A verb that returns False says evaluate would have
+        # nothing new to say: the call is skipped (see Check.on_prediction).
+        def route(kind: str, verb: str) -> tuple[tuple[str, Any, Any], ...]:
+            return tuple((n, getattr(c, verb) if overrides(c, verb) else None,
+                          c.evaluate if kind in c.reacts_to else None)
+                         for n, c in items if overrides(c, verb) or kind in c.reacts_to)
+
+        self._on_prediction = route("prediction", "on_prediction")
+        self._on_truth = route("truth", "on_truth")
+        self._on_pair = route("pair", "on_pair")
+        self._on_tick = tuple((n, c.evaluate) for n, c in self._judges["tick"])
         self.book = AlertBook(agent, settings.id)
         self.keeps_features = any(c.pair_features for c in self._takes["on_pair"])
         self.version: str | None = None
@@ -116,10 +120,10 @@ class ModelTrack:
         if v is not None and v != self.version:
             self._new_version(p, out)
         self.version_seen = True
-        for take in self._feed_prediction:
-            take(p)
         t = p.t
-        for name, ask in self._ask_prediction:
+        for name, take, ask in self._on_prediction:
+            if take is not None and take(p) is False or ask is None:
+                continue
             verdict = ask(t)
             if verdict is not None:
                 self._verdict(name, verdict, t, out)
@@ -134,10 +138,10 @@ class ModelTrack:
         self.version = p.model_version
 
     def truth(self, tr: Truth, out: list[Event]) -> None:
-        for take in self._feed_truth:
-            take(tr)
         t = tr.t
-        for name, ask in self._ask_truth:
+        for name, take, ask in self._on_truth:
+            if take is not None and take(tr) is False or ask is None:
+                continue
             verdict = ask(t)
             if verdict is not None:
                 self._verdict(name, verdict, t, out)
@@ -150,16 +154,16 @@ class ModelTrack:
             return
         self.pairs += 1
         loss = self.loss(pr.truth.value, p.value)
-        for take in self._feed_pair:
-            take(pr, loss)
         t = pr.t
-        for name, ask in self._ask_pair:
+        for name, take, ask in self._on_pair:
+            if take is not None and take(pr, loss) is False or ask is None:
+                continue
             verdict = ask(t)
             if verdict is not None:
                 self._verdict(name, verdict, t, out)
 
     def tick(self, t: float, out: list[Event]) -> None:
-        for name, ask in self._ask["tick"]:
+        for name, ask in self._on_tick:
             verdict = ask(t)
             if verdict is not None:
                 self._verdict(name, verdict, t, out)

@@ -74,14 +74,21 @@ class Check:
         self.settings = settings
         self.context = context
 
-    def on_prediction(self, prediction: Prediction) -> None:
+    # The verbs may return False to say that ``evaluate`` at this input's time would return
+    # None: the core then skips the call. Anything else (None, the default) means "ask me".
+    # Saying False wrongly loses alerts, so a check says it only where it is sure.
+
+    def on_prediction(self, prediction: Prediction) -> bool | None:
         """Take one prediction (as it arrives, before any truth)."""
+        return None
 
-    def on_truth(self, truth: Truth) -> None:
+    def on_truth(self, truth: Truth) -> bool | None:
         """Take one truth as it arrives (paired or not)."""
+        return None
 
-    def on_pair(self, pair: Pair, loss: float) -> None:
+    def on_pair(self, pair: Pair, loss: float) -> bool | None:
         """Take one pair and its loss (in the card's loss kind)."""
+        return None
 
     def evaluate(self, t: float) -> Verdict | None:
         """The check's level now, or ``None`` when it has nothing new to say."""

@@ -93,10 +93,10 @@ class RangeCheck(Check):
         self._gate.reset()
         self._figures: dict[str, Any] = {}
 
-    def on_prediction(self, prediction: Prediction) -> None:
+    def on_prediction(self, prediction: Prediction) -> bool:
         feats = prediction.features
         if not feats or not self._bounds:
-            return
+            return False  # not counted: evaluate has nothing new
         far: dict[str, float] | None = None
         for fname, lo, hi in self._bounds:
             x = feats.get(fname)
@@ -108,6 +108,7 @@ class RangeCheck(Check):
         if far is not None:
             self._details.append((self._seq, far))
         self._seq += 1
+        return self._seq - self._last_eval >= self.settings.evaluate_every
 
     @property
     def _filled(self) -> int:

@@ -87,13 +87,15 @@ class GapCheck(Check):
         self._figures: dict[str, Any] = {}
         self._stale = False  # the window moved since the figures were computed
 
-    def on_pair(self, pair: Pair, loss: float) -> None:
+    def on_pair(self, pair: Pair, loss: float) -> bool:
         self.window.push(pair.t, loss)
         self._since_eval += 1
         if self._evaluated and self._level == "ok":
             self._clean_pairs += 1
             if self._clean_pairs >= self.context.window_size:
                 self._healthy_seen = True
+        # Between evaluations nothing is due, unless an age bound may drop pairs.
+        return self._since_eval >= self.settings.evaluate_every or self.context.window_max_age_s is not None
 
     def evaluate(self, t: float) -> Verdict | None:
         if self.context.window_max_age_s is not None:

@@ -170,11 +170,12 @@ class ShiftCheck(Check):
         self._gate.reset()
         self._figures: dict[str, Any] = {}
 
-    def on_prediction(self, prediction: Prediction) -> None:
+    def on_prediction(self, prediction: Prediction) -> bool:
         feats = prediction.features
         if feats and self.names:
             self._pending.append(feats)
             self._since_eval += 1
+        return self._since_eval >= self._every  # evaluate resets it, so below: nothing new
 
     def _flush(self) -> None:
         """Bin the queued predictions into the window."""

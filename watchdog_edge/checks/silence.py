@@ -92,7 +92,7 @@ class SilenceCheck(Check):
         self._reported = "ok"
         self._fresh = True
 
-    def on_prediction(self, prediction: Prediction) -> None:
+    def on_prediction(self, prediction: Prediction) -> bool:
         t = prediction.t
         if self._start is None:
             self._start = t
@@ -100,8 +100,9 @@ class SilenceCheck(Check):
             self._last_prediction = t
         if self._quiet_predictions:
             self._fresh = True
+        return self._due(t)
 
-    def on_truth(self, truth: Truth) -> None:
+    def on_truth(self, truth: Truth) -> bool:
         t = truth.t
         if self._start is None:
             self._start = t
@@ -109,6 +110,13 @@ class SilenceCheck(Check):
             self._last_truth = t
         if self._quiet_truths:
             self._fresh = True
+        return self._due(t)
+
+    def _due(self, t: float) -> bool:
+        """Move the clock to ``t`` as evaluate would; False when evaluate at ``t`` has nothing new."""
+        if self._now is None or t > self._now:
+            self._now = t
+        return self._fresh or self._now > self._next
 
     def _since(self, last: float | None, t: float) -> float:
         ref = last if last is not None else self._start
