@@ -28,12 +28,13 @@ SETTINGS = {
     "range": {"window": 60, "min_predictions": 30, "evaluate_every": 9},
     "shift": {"window": 100, "evaluate_every": 25},
     "silence": {"prediction_timeout_s": 40.0, "truth_timeout_s": 90.0},
-    "drift": {},
+    "drift": {"detector": "page_hinkley"},
+    "baseline": {"learners": ["mean", "linear"], "window": 80, "min_pairs": 40, "evaluate_every": 5},
 }
 
 
 def stream(seed: int):
-    """(kind, time, item) of a stream that passes through every level of every check.
+    """(kind, time, item) of a stream that raises and clears every check.
 
     Ticks come every ten predictions, except while the truths stop: that silence must be
     noticed at a prediction.
@@ -55,7 +56,9 @@ def stream(seed: int):
         truths_stop = 1000 <= i < 1150  # the meter stops while predictions go on, untimed
         while waiting and not truths_stop and (rng.random() < 0.5 or len(waiting) > 5):
             q = waiting.pop(0)
-            err = rng.normal(0.0, 2.5 if phase == 3 else 1.0)
+            # errors grow in the fourth phase; in the fifth the truth moves off the model's
+            # zero, which a running mean learns (baseline)
+            err = rng.normal(1.5 if phase == 4 else 0.0, 2.5 if phase == 3 else 1.0)
             tr = Truth("kiln", q.id, err, t)
             out.append(("truth", t, tr))
             out.append(("pair", t, Pair(q, tr, t)))
@@ -95,3 +98,4 @@ def test_skipping_evaluate_after_false_changes_no_verdict(name, seed):
     every = drive(name, items, skip=False)
     assert drive(name, items, skip=True) == every
     assert {level for _, level, _ in every} >= {"ok", "warning"} or name == "drift"
+    assert every

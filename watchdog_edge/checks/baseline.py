@@ -252,13 +252,13 @@ class BaselineCheck(Check):
         self._n_imputed += imputed
         return x
 
-    def on_pair(self, pair: Pair, loss: float) -> None:
+    def on_pair(self, pair: Pair, loss: float) -> bool:
         feats = pair.prediction.features
         if not feats:
             self._n_no_features += 1
-            return
+            return self._due()
         if self._budgeted and not self._admit(pair):
-            return
+            return self._due()
         if None not in feats.values() and tuple(feats) == self._fast_keys:
             # the usual case, inline: the known features in the known order, none missing;
             # its values join the imputation sums in batches (see _fold)
@@ -289,6 +289,11 @@ class BaselineCheck(Check):
         if self._filled < self.size:
             self._filled += 1
         self._since_eval += 1
+        return self._since_eval >= self._every and self._filled >= self.min_pairs  # _due() inline
+
+    def _due(self) -> bool:
+        """Whether evaluate would test now (its own guard)."""
+        return self._since_eval >= self._every and self._filled >= self.min_pairs
 
     # -- verdict --------------------------------------------------------------------------
     def _ordered(self, a: list[float]) -> np.ndarray:
@@ -317,7 +322,7 @@ class BaselineCheck(Check):
 
     def evaluate(self, t: float) -> Verdict | None:
         # kept tiny: it runs after every record, and the test below needs closures (cells)
-        if self._since_eval < self._every or self._filled < self.min_pairs:
+        if not self._due():
             return None
         return self._test()
 

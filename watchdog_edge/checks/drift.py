@@ -142,7 +142,7 @@ class DriftCheck(Check):
         self._change: dict[str, Any] = {}
         self._figures: dict[str, Any] = {}
 
-    def on_pair(self, pair: Pair, loss: float) -> None:
+    def on_pair(self, pair: Pair, loss: float) -> bool:
         exp = self.context.expected_loss
         ratio = min(loss / exp, self.settings.clip) if exp > 0 else (self.settings.clip if loss > 0 else 0.0)
         seq = self._seq
@@ -155,6 +155,7 @@ class DriftCheck(Check):
         det.update(ratio)
         if det.drift_detected:
             self._on_change(pair.t)
+        return self._pending or self._level != "ok"  # else evaluate has nothing to say
 
     def _on_change(self, t: float) -> None:
         self._detections += 1
