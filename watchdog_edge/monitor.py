@@ -143,6 +143,8 @@ class ModelTrack:
         self.version = p.model_version
 
     def truth(self, tr: Truth, out: list[Event]) -> None:
+        # the loop of prediction() and pair(), written out in each: a shared helper would cost
+        # one more call for every record
         t = tr.t
         for name, take, ask in self._on_truth:
             if take is not None and take(tr) is False or ask is None:

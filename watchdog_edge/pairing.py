@@ -53,6 +53,7 @@ class Pairer:
         self._preds: OrderedDict[str, tuple] = OrderedDict()
         self._truths: OrderedDict[str, tuple] = OrderedDict()
         self._done: OrderedDict[str, float] = OrderedDict()  # paired ids -> pairing time
+        self._expiring = ((self._preds, "expired_predictions"), (self._truths, "expired_truths"))
         self.counts = dict.fromkeys(COUNTERS, 0)
         self.due = float("inf")  # no record can expire before this core time
 
@@ -121,19 +122,14 @@ class Pairer:
         if now <= self.due:
             return
         limit = now - self.horizon_s
-        preds, truths, done = self._preds, self._truths, self._done
-        n = 0
-        while preds and next(iter(preds.values()))[3] < limit:
-            preds.popitem(last=False)
-            n += 1
-        if n:
-            self.counts["expired_predictions"] += n
+        for store, key in self._expiring:
             n = 0
-        while truths and next(iter(truths.values()))[3] < limit:
-            truths.popitem(last=False)
-            n += 1
-        if n:
-            self.counts["expired_truths"] += n
+            while store and next(iter(store.values()))[3] < limit:
+                store.popitem(last=False)
+                n += 1
+            if n:
+                self.counts[key] += n
+        done = self._done
         while done and next(iter(done.values())) < limit:
             done.popitem(last=False)
         self._set_due()
@@ -157,8 +153,11 @@ class Pairer:
         }
 
     def restore(self, data: dict[str, Any]) -> None:
-        self._preds = OrderedDict((d["id"], _fields(Prediction(**d))) for d in data["preds"])
-        self._truths = OrderedDict((d["id"], astuple(Truth(**d))) for d in data["truths"])
+        # in place: _expiring holds these very stores
+        self._preds.clear()
+        self._preds.update((d["id"], _fields(Prediction(**d))) for d in data["preds"])
+        self._truths.clear()
+        self._truths.update((d["id"], astuple(Truth(**d))) for d in data["truths"])
         self._done = OrderedDict((k, float(t)) for k, t in data["done"])
         self.counts.update(data["counts"])
         self._set_due()
