@@ -127,7 +127,7 @@ class ModelTrack:
         self.version_seen = True
         t = p.t
         for name, take, ask in self._on_prediction:
-            if take is not None and take(p) is False or ask is None:
+            if (take is not None and take(p) is False) or ask is None:
                 continue
             verdict = ask(t)
             if verdict is not None:
@@ -147,7 +147,7 @@ class ModelTrack:
         # one more call for every record
         t = tr.t
         for name, take, ask in self._on_truth:
-            if take is not None and take(tr) is False or ask is None:
+            if (take is not None and take(tr) is False) or ask is None:
                 continue
             verdict = ask(t)
             if verdict is not None:
@@ -163,7 +163,7 @@ class ModelTrack:
         loss = self.loss(pr.truth.value, p.value)
         t = pr.t
         for name, take, ask in self._on_pair:
-            if take is not None and take(pr, loss) is False or ask is None:
+            if (take is not None and take(pr, loss) is False) or ask is None:
                 continue
             verdict = ask(t)
             if verdict is not None:

@@ -1,7 +1,8 @@
 """Payload bytes to records: JSON object or array, field remapping, strict validation.
 
 Validation is written out by hand rather than through pydantic: it runs once per record on the
-hot path, and a hand check of a few fields costs well under a microsecond.
+hot path, and a hand check of a few fields costs well under a microsecond. JSON is read with
+orjson, with the ``json`` module behind it (see :func:`loads_json`).
 """
 
 from __future__ import annotations
@@ -157,7 +158,7 @@ class FieldMap:
 class RecordParser:
     """Turns decoded JSON elements into records for one model and one kind.
 
-    The checks are written out for the common case first (text or integer id, finite float
+    Validation is written out for the common case first (text or integer id, finite float
     value, features all finite floats, top-level keys); anything else goes through the full
     rules, which name what is wrong. ``x - x == 0.0`` holds exactly for finite floats.
 

@@ -60,7 +60,7 @@ def parse_lines(texts: Iterable[str | bytes], source: str = "recording", first: 
                 if type(t) is float and type(payload) is str and "tick" not in obj:
                     topic = obj.get("topic")
                     if type(topic) is str and topic:
-                        yield RecordLine(t, topic, payload.encode("utf-8", "surrogatepass"))
+                        yield RecordLine(t, topic, payload.encode())
                         continue
             yield _check_line(obj, i, source)
     finally:
