@@ -15,6 +15,7 @@ from pathlib import Path
 
 from .errors import BrokerError, WatchdogError
 
+
 def _fail(message: str, code: int) -> int:
     print(f"watchdog-edge: {message}", file=sys.stderr, flush=True)
     return code

@@ -13,7 +13,6 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator, model_validator
 
 from . import checks as registry
-from .cards import format_validation
 from .errors import ConfigError
 from .files import read_document
 from .parsing import FieldMap

@@ -24,7 +24,7 @@ from .cards import ModelCard, expected_loss, load_card
 from .checks.base import Check, CheckContext, Verdict
 from .config import Config, ModelSettings, load_config
 from .errors import CardError, ConfigError
-from .events import Alert, DeadLetter, Event, VersionStarted
+from .events import DeadLetter, Event, VersionStarted
 from .losses import loss_function
 from .pairing import COUNTERS as PAIR_COUNTERS
 from .pairing import Pairer
