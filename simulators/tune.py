@@ -463,18 +463,6 @@ def rank_key(row: Row, with_incidents: bool, budget: float) -> tuple:
     return (robust > budget, row.setting.tightness, s.false_alarms_per_day, row.setting.index)
 
 
-def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[str, Any]] | None = None,
-         grid: dict[str, list] | None = None, workers: int | None = None,
-         holdout: str | Path | None = None, holdout_incidents: list[dict[str, Any]] | None = None,
-         models: list[str] | None = None, grace_s: float | None = None, alarm_budget: float = 0.5,
-         tick_every: float | None = None, progress: Callable[[int, int], None] | None = None,
-         checks: list[str] | None = None) -> TuneResult:
-    """Evaluate every grid setting on a recording and rank them; see the module docstring."""
-    with _collector_paused():
-        return _tune(config_path, recording, incidents, grid, workers, holdout, holdout_incidents, models,
-                     grace_s, alarm_budget, tick_every, progress, checks)
-
-
 @contextmanager
 def _collector_paused() -> Iterator[None]:
     """Python's cyclic garbage collector off for a tuning run, as it was after.
@@ -494,11 +482,14 @@ def _collector_paused() -> Iterator[None]:
             gc.enable()
 
 
-def _tune(config_path: str | Path, recording: str | Path, incidents: list[dict[str, Any]] | None,
-          grid: dict[str, list] | None, workers: int | None, holdout: str | Path | None,
-          holdout_incidents: list[dict[str, Any]] | None, models: list[str] | None, grace_s: float | None,
-          alarm_budget: float, tick_every: float | None, progress: Callable[[int, int], None] | None,
-          checks: list[str] | None) -> TuneResult:
+@_collector_paused()
+def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[str, Any]] | None = None,
+         grid: dict[str, list] | None = None, workers: int | None = None,
+         holdout: str | Path | None = None, holdout_incidents: list[dict[str, Any]] | None = None,
+         models: list[str] | None = None, grace_s: float | None = None, alarm_budget: float = 0.5,
+         tick_every: float | None = None, progress: Callable[[int, int], None] | None = None,
+         checks: list[str] | None = None) -> TuneResult:
+    """Evaluate every grid setting on a recording and rank them; see the module docstring."""
     p = Path(config_path)
     try:
         raw = tomllib.loads(p.read_text(encoding="utf-8"))

@@ -14,7 +14,7 @@ import base64
 from collections import deque
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any, Callable, Iterable
 
 import orjson
 
@@ -53,16 +53,10 @@ class Lane:
     """Where the records of one topic filter go: one model's parser, pairer and track."""
 
     model: str
-    kind: str  # "prediction" | "truth"
-    parser: RecordParser
+    prediction: bool  # predictions, else truths
+    parse: Callable[[Any, float], Prediction | Truth]  # the parser's bound method
     pairer: Pairer
     track: "ModelTrack"
-    prediction: bool = False
-    parse: Any = None
-
-    def __post_init__(self) -> None:
-        self.prediction = self.kind == "prediction"
-        self.parse = self.parser.parse
 
 
 class ModelTrack:
@@ -236,7 +230,8 @@ class Monitor:
             self.pairers[m.id] = Pairer(m.pairing.horizon_s, m.pairing.max_unpaired)
             self.tracks[m.id] = ModelTrack(self.agent, m, cards[m.id])
             for flt, kind in ((m.prediction_topic, "prediction"), (m.truth_topic, "truth")):
-                routes.append((flt, Lane(m.id, kind, self.parsers[(m.id, kind)], self.pairers[m.id], self.tracks[m.id])))
+                routes.append((flt, Lane(m.id, kind == "prediction", self.parsers[(m.id, kind)].parse,
+                                         self.pairers[m.id], self.tracks[m.id])))
         self.router: Router[Lane] = Router(routes)
         self._routes = self.router.cache  # looked up first: most topics are already there
         self.max_payload = config.agent.max_payload_bytes
