@@ -22,18 +22,19 @@ import argparse
 import json
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from watchdog_edge.cards import ModelCard  # noqa: E402
-from watchdog_edge.checks import check_class, settings_class  # noqa: E402
-from watchdog_edge.checks.base import Check, CheckContext, CheckSettings  # noqa: E402
-from watchdog_edge.checks.baseline import make_learner  # noqa: E402
-from watchdog_edge.records import Pair, Prediction, Truth  # noqa: E402
+from watchdog_edge.core.cards import ModelCard
+from watchdog_edge.core.checks import check_class, settings_class
+from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings
+from watchdog_edge.core.checks.baseline import make_learner
+from watchdog_edge.core.records import Pair, Prediction, Truth
 
 FEATURES = ("a", "b", "c", "d", "e")
 
@@ -50,16 +51,24 @@ def build(n: int, seed: int = 1) -> tuple[ModelCard, list[Prediction], list[Trut
         edges = np.quantile(train[:, j], np.linspace(0, 1, 11))
         idx = np.searchsorted(edges[1:-1], train[:, j], side="right")
         shares = np.bincount(idx, minlength=10) / len(train)
-        feats[name] = {"min": float(train[:, j].min()), "max": float(train[:, j].max()),
-                       "histogram": {"edges": edges.tolist(), "shares": shares.tolist()}}
-    card = ModelCard(model_id="bench", training={"loss": 1.0, "count": 5000}, fitted_parameters=6,
-                     least_squares=True, holdout={"loss": 1.0, "count": 1000}, features=feats)
+        feats[name] = {
+            "min": float(train[:, j].min()),
+            "max": float(train[:, j].max()),
+            "histogram": {"edges": edges.tolist(), "shares": shares.tolist()},
+        }
+    card = ModelCard(
+        model_id="bench",
+        training={"loss": 1.0, "count": 5000},
+        fitted_parameters=6,
+        least_squares=True,
+        holdout={"loss": 1.0, "count": 1000},
+        features=feats,
+    )
     t0 = 1_780_000_000.0
     preds, truths, pairs, losses = [], [], [], []
     for i in range(n):
         t = t0 + i
-        p = Prediction("bench", str(i), float(pred[i]), t, ts=t,
-                       features={k: float(v) for k, v in zip(FEATURES, X[i])})
+        p = Prediction("bench", str(i), float(pred[i]), t, ts=t, features={k: float(v) for k, v in zip(FEATURES, X[i])})
         tr = Truth("bench", str(i), float(y[i]), t + 0.5, ts=t + 0.5)
         preds.append(p)
         truths.append(tr)
@@ -84,9 +93,15 @@ def drive(checks: dict[str, Any], preds, truths, pairs, losses) -> None:
     """One prediction, one truth and one pair per row, routed as the core routes them: a
     check's verb only where it has one, then its ``evaluate`` where the input is among its
     ``reacts_to`` and the verb did not say False (nothing new)."""
+
     def route(kind: str, verb: str) -> list[tuple[Any, Any]]:
-        return [(getattr(c, verb) if getattr(type(c), verb) is not getattr(Check, verb) else None,
-                 c.evaluate if kind in c.reacts_to else None) for c in checks.values()]
+        return [
+            (
+                getattr(c, verb) if getattr(type(c), verb) is not getattr(Check, verb) else None,
+                c.evaluate if kind in c.reacts_to else None,
+            )
+            for c in checks.values()
+        ]
 
     on_p, on_t, on_pr = route("prediction", "on_prediction"), route("truth", "on_truth"), route("pair", "on_pair")
     for p, tr, pr, loss in zip(preds, truths, pairs, losses):
@@ -150,7 +165,9 @@ def main() -> None:
     for learner in ("mean", "linear", "tree"):
         jobs[f"river-{learner}"] = (lambda learner=learner: make_learner(learner, 0), run_learner)
         jobs[f"baseline-{learner}"] = (
-            lambda learner=learner: {"baseline": make("baseline", card, learners=[learner], window=500)}, run_checks)
+            lambda learner=learner: {"baseline": make("baseline", card, learners=[learner], window=500)},
+            run_checks,
+        )
 
     best = dict.fromkeys(jobs, float("inf"))
     for _ in range(args.rounds):  # interleaved rounds: a busy moment on the machine hits every job alike
@@ -158,32 +175,42 @@ def main() -> None:
             best[key] = min(best[key], timed(setup, run))
     us = {k: v / n * 1e6 for k, v in best.items()}  # microseconds per row (one pair, two records)
 
-    print(f"{n} rows a run (one prediction, one truth and one pair each; {len(FEATURES)} features); "
-          f"fastest of {args.rounds} interleaved rounds")
+    print(
+        f"{n} rows a run (one prediction, one truth and one pair each; {len(FEATURES)} features); "
+        f"fastest of {args.rounds} interleaved rounds"
+    )
     print()
     print("check            us per record   us per pair")
     print(f"{'(no-op check)':<16} {us['noop'] / 2:>13.2f}   {us['noop']:>11.2f}   three evaluate calls a row alone")
     for name in default_names + ["drift"]:
         print(f"{name:<16} {us[name] / 2:>13.2f}   {us[name]:>11.2f}")
     d = us["default"] / 2
-    print(f"{'default four':<16} {d:>13.2f}   {us['default']:>11.2f}   target <= 3 us per record: "
-          f"{'met' if d <= 3 else 'NOT met'}")
+    print(
+        f"{'default four':<16} {d:>13.2f}   {us['default']:>11.2f}   target <= 3 us per record: "
+        f"{'met' if d <= 3 else 'NOT met'}"
+    )
     print(f"{'without gap':<16} {us['input'] / 2:>13.2f}   {us['input']:>11.2f}   range, shift and silence together")
-    print(f"{'(json.loads)':<16} {us['json']:>13.2f}                 of one prediction payload; "
-          f"default checks per record / json.loads = {d / us['json']:.2f}")
+    print(
+        f"{'(json.loads)':<16} {us['json']:>13.2f}                 of one prediction payload; "
+        f"default checks per record / json.loads = {d / us['json']:.2f}"
+    )
     over = us["drift"] - us["adwin"]
     allowed = max(0.25 * us["adwin"], 3.0)
-    print(f"drift: {us['drift']:.2f} us per pair, river ADWIN.update alone {us['adwin']:.2f} us "
-          f"(ratio {us['drift'] / us['adwin']:.1f}); overhead {over:.2f} us, target <= {allowed:.2f} us: "
-          f"{'met' if over <= allowed else 'NOT met'}")
+    print(
+        f"drift: {us['drift']:.2f} us per pair, river ADWIN.update alone {us['adwin']:.2f} us "
+        f"(ratio {us['drift'] / us['adwin']:.1f}); overhead {over:.2f} us, target <= {allowed:.2f} us: "
+        f"{'met' if over <= allowed else 'NOT met'}"
+    )
     print()
     print("learner   river loop us/pair   baseline check us/pair   overhead us   overhead %   target")
     for learner in ("mean", "linear", "tree"):
         r, o = us[f"river-{learner}"], us[f"baseline-{learner}"]
         over = o - r
         allowed = max(0.25 * r, 3.0)
-        print(f"{learner:<9} {r:>18.2f}   {o:>22.2f}   {over:>11.2f}   {over / r:>10.1%}   "
-              f"<= {allowed:.2f} us: {'met' if over <= allowed else 'NOT met'}")
+        print(
+            f"{learner:<9} {r:>18.2f}   {o:>22.2f}   {over:>11.2f}   {over / r:>10.1%}   "
+            f"<= {allowed:.2f} us: {'met' if over <= allowed else 'NOT met'}"
+        )
 
 
 if __name__ == "__main__":

@@ -65,16 +65,25 @@ def start_broker(folder: Path) -> tuple[subprocess.Popen, int]:
     conf = folder / "mosquitto.conf"
     import getpass
 
-    conf.write_text("\n".join([
-        f"user {getpass.getuser()}", f"listener {port} 127.0.0.1", "allow_anonymous true",
-        "persistence false",
-        # Room for the whole benchmark in each session's queue; mosquitto's default inflight
-        # window of 20 is kept on purpose: it is what the field sees.
-        "max_queued_messages 0", "max_queued_bytes 0", "max_inflight_messages 20",
-        # Small QoS 1 packets go out at once instead of waiting on Nagle's algorithm.
-        "set_tcp_nodelay true",
-        "log_type error",
-    ]) + "\n")
+    conf.write_text(
+        "\n".join(
+            [
+                f"user {getpass.getuser()}",
+                f"listener {port} 127.0.0.1",
+                "allow_anonymous true",
+                "persistence false",
+                # Room for the whole benchmark in each session's queue; mosquitto's default inflight
+                # window of 20 is kept on purpose: it is what the field sees.
+                "max_queued_messages 0",
+                "max_queued_bytes 0",
+                "max_inflight_messages 20",
+                # Small QoS 1 packets go out at once instead of waiting on Nagle's algorithm.
+                "set_tcp_nodelay true",
+                "log_type error",
+            ]
+        )
+        + "\n"
+    )
     proc = subprocess.Popen([exe, "-c", str(conf)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     for _ in range(200):
         try:
@@ -115,8 +124,10 @@ def payloads(n_messages: int, per_message: int, start: int, seed: int) -> list[t
     for _ in range(n_messages // 2):
         ids = range(i, i + per_message)
         feats = rng.uniform(0.0, 1.0, (per_message, 3))
-        preds = [{"id": k, "value": 10.0, "features": {"x1": float(f[0]), "x2": float(f[1]), "x3": float(f[2])}}
-                 for k, f in zip(ids, feats)]
+        preds = [
+            {"id": k, "value": 10.0, "features": {"x1": float(f[0]), "x2": float(f[1]), "x3": float(f[2])}}
+            for k, f in zip(ids, feats)
+        ]
         truths = [{"id": k, "value": 10.0 + float(e)} for k, e in zip(ids, rng.normal(0, 1, per_message))]
         body_p = json.dumps(preds[0] if per_message == 1 else preds).encode()
         body_t = json.dumps(truths[0] if per_message == 1 else truths).encode()
@@ -163,19 +174,30 @@ def role_bare(port: int, expect: int) -> None:
     c.disconnect()
     c.loop_stop()
     span = max(state["last"] - state["first"], 1e-9)
-    print(json.dumps({"messages": state["n"], "records": state["records"], "seconds": span,
-                      "msg_rate": (state["n"] - 1) / span}), flush=True)
+    print(
+        json.dumps(
+            {"messages": state["n"], "records": state["records"], "seconds": span, "msg_rate": (state["n"] - 1) / span}
+        ),
+        flush=True,
+    )
 
 
 # --- the agent -----------------------------------------------------------------------------
 def write_agent_setup(folder: Path, port: int, state: str, window: str = "", checks: str = "") -> Path:
-    from watchdog_edge.cards import ModelCard, save_card
+    from watchdog_edge.core.cards import ModelCard
+    from watchdog_edge.files.cardfile import save_card
 
     edges = [0.0, 0.2, 0.4, 0.6, 0.8, 1.0]
     hist = {"edges": edges, "shares": [0.2] * 5, "missing": 0.0}
-    card = ModelCard(model_id="pump", loss="squared", training={"loss": 1.0, "count": 10000}, fitted_parameters=4,
-                     least_squares=True, holdout={"loss": 1.0, "count": 2000},
-                     features={f"x{k}": {"min": 0.0, "max": 1.0, "histogram": hist} for k in (1, 2, 3)})
+    card = ModelCard(
+        model_id="pump",
+        loss="squared",
+        training={"loss": 1.0, "count": 10000},
+        fitted_parameters=4,
+        least_squares=True,
+        holdout={"loss": 1.0, "count": 2000},
+        features={f"x{k}": {"min": 0.0, "max": 1.0, "histogram": hist} for k in (1, 2, 3)},
+    )
     save_card(card, folder / "pump.card.json")
     cfg = folder / f"{state}.toml"
     cfg.write_text(f"""
@@ -207,7 +229,9 @@ class StatusWatch:
         self.c.loop_start()
         self.c.publish(STATUS, b"", qos=1, retain=True).wait_for_publish(10)  # empty retained = none
         self.c.loop_stop()
-        self.c.on_message = lambda c, u, m: m.payload and self.points.append((time.perf_counter(), json.loads(m.payload)))
+        self.c.on_message = lambda c, u, m: (
+            m.payload and self.points.append((time.perf_counter(), json.loads(m.payload)))
+        )
         self.c.subscribe(STATUS, qos=0)
         self.c.loop_start()
 
@@ -218,8 +242,13 @@ class StatusWatch:
 
 def start_agent(cfg: Path, log: Path) -> subprocess.Popen:
     env = dict(os.environ, PYTHONPATH=str(REPO))
-    return subprocess.Popen([sys.executable, "-m", "watchdog_edge.cli", "run", "--config", str(cfg)],
-                            stdout=open(log, "w"), stderr=subprocess.STDOUT, env=env, cwd=cfg.parent)
+    return subprocess.Popen(
+        [sys.executable, "-m", "watchdog_edge.cli.app", "run", "--config", str(cfg)],
+        stdout=open(log, "w"),
+        stderr=subprocess.STDOUT,
+        env=env,
+        cwd=cfg.parent,
+    )
 
 
 def peak_rss_mb(pid: int) -> float:
@@ -261,23 +290,34 @@ def agent_drain(folder: Path, port: int, n_messages: int, per_message: int, tag:
     # status interval do not count.
     inside = [(t, s["received"]) for t, s in watch.points if 0 < s.get("received", 0) < n_messages]
     if len(inside) < 2:
-        sys.exit(f"the agent drained too fast to measure ({tag}: {[(round(t, 3), s.get('received')) for t, s in watch.points]}); raise the message count")
+        sys.exit(
+            f"the agent drained too fast to measure ({tag}: {[(round(t, 3), s.get('received')) for t, s in watch.points]}); raise the message count"
+        )
     (t0, c0), (t1, c1) = inside[0], inside[-1]
     rate = (c1 - c0) / (t1 - t0)
     last = watch.points[-1][1]
-    return {"msg_rate": rate, "record_rate": rate * per_message, "rss_mb": rss, "rss_run_mb": rss_run,
-            "paired": last.get("paired"),
-            "journal_batches": last.get("link", {}).get("journal_batches"),
-            "received": last.get("received")}
+    return {
+        "msg_rate": rate,
+        "record_rate": rate * per_message,
+        "rss_mb": rss,
+        "rss_run_mb": rss_run,
+        "paired": last.get("paired"),
+        "journal_batches": last.get("link", {}).get("journal_batches"),
+        "received": last.get("received"),
+    }
 
 
 # --- latency ---------------------------------------------------------------------------------
 def latency(folder: Path, port: int, alerts_wanted: int) -> dict:
     # A window of 10 with evaluation on every pair: 10 truths with error 100 raise the gap,
     # 10 exact ones clear it, so about one truth in ten decides an alert.
-    cfg = write_agent_setup(folder, port, "state-latency",
-                            window="[models.window]\nsize = 10\nmin_pairs = 10",
-                            checks="[models.checks.gap]\nevaluate_every = 1\nclear_after = 1")
+    cfg = write_agent_setup(
+        folder,
+        port,
+        "state-latency",
+        window="[models.window]\nsize = 10\nmin_pairs = 10",
+        checks="[models.checks.gap]\nevaluate_every = 1\nclear_after = 1",
+    )
     arrivals: list[tuple[float, dict]] = []
     w = client("bench-alerts", port)
     w.on_message = lambda c, u, m: arrivals.append((time.time(), json.loads(m.payload)))
@@ -322,9 +362,14 @@ def latency(folder: Path, port: int, alerts_wanted: int) -> dict:
             inbound.append(core_t - sent_arr[k])
     lat_ms = np.array(lat) * 1000
     in_ms = np.array(inbound) * 1000
-    return {"alerts": len(lat), "p50_ms": float(np.percentile(lat_ms, 50)), "p99_ms": float(np.percentile(lat_ms, 99)),
-            "max_ms": float(lat_ms.max()), "inbound_p50_ms": float(np.percentile(in_ms, 50)),
-            "inbound_p99_ms": float(np.percentile(in_ms, 99))}
+    return {
+        "alerts": len(lat),
+        "p50_ms": float(np.percentile(lat_ms, 50)),
+        "p99_ms": float(np.percentile(lat_ms, 99)),
+        "max_ms": float(lat_ms.max()),
+        "inbound_p50_ms": float(np.percentile(in_ms, 50)),
+        "inbound_p99_ms": float(np.percentile(in_ms, 99)),
+    }
 
 
 # --- main ------------------------------------------------------------------------------------
@@ -364,15 +409,29 @@ def main() -> None:
             # load changes between runs, and the best run is the least disturbed one
             # (common practice, no single source).
             for rep in range(a.repeats):
-                pubr = run_child(["--role", "publish", "--port", str(port), "--messages", str(n),
-                                  "--per-message", str(per), "--start", str(start)])
+                pubr = run_child(
+                    [
+                        "--role",
+                        "publish",
+                        "--port",
+                        str(port),
+                        "--messages",
+                        str(n),
+                        "--per-message",
+                        str(per),
+                        "--start",
+                        str(start),
+                    ]
+                )
                 start += n * per
                 bare = run_child(["--role", "bare", "--port", str(port), "--messages", str(n)])
                 agent = agent_drain(folder, port, n, per, f"{tag}-{rep}")
                 runs.append({"publish": pubr, "bare": bare, "agent": agent})
-            results[tag] = {"bare": max((r["bare"] for r in runs), key=lambda r: r["msg_rate"]),
-                            "agent": max((r["agent"] for r in runs), key=lambda r: r["msg_rate"]),
-                            "runs": runs}
+            results[tag] = {
+                "bare": max((r["bare"] for r in runs), key=lambda r: r["msg_rate"]),
+                "agent": max((r["agent"] for r in runs), key=lambda r: r["msg_rate"]),
+                "runs": runs,
+            }
         results["latency"] = latency(folder, port, a.alerts)
     finally:
         broker.send_signal(signal.SIGTERM)
@@ -381,7 +440,9 @@ def main() -> None:
     ratio = s["agent"]["msg_rate"] / s["bare"]["msg_rate"]
     ratio_b = b["agent"]["msg_rate"] / b["bare"]["msg_rate"]
     rss = {tag: max(r["agent"]["rss_mb"] for r in shape["runs"]) for tag, shape in (("single", s), ("batched", b))}
-    rss_run = {tag: max(r["agent"]["rss_run_mb"] for r in shape["runs"]) for tag, shape in (("single", s), ("batched", b))}
+    rss_run = {
+        tag: max(r["agent"]["rss_run_mb"] for r in shape["runs"]) for tag, shape in (("single", s), ("batched", b))
+    }
     worst = max(rss_run.values())
 
     def mark(ok: bool) -> str:
@@ -390,19 +451,29 @@ def main() -> None:
     print(f"mosquitto {port}, one machine ({os.cpu_count()} cores); messages at QoS 1, persistent sessions\n")
     print(f"1 record/message,   {a.messages} messages:")
     print(f"  bare paho subscriber  {s['bare']['msg_rate']:10.0f} msg/s")
-    print(f"  agent                 {s['agent']['msg_rate']:10.0f} msg/s   ratio {ratio:.2f}  (target >= 0.8: {mark(ratio >= 0.8)})")
+    print(
+        f"  agent                 {s['agent']['msg_rate']:10.0f} msg/s   ratio {ratio:.2f}  (target >= 0.8: {mark(ratio >= 0.8)})"
+    )
     print(f"100 records/message, {a.batched_messages} messages:")
     print(f"  bare paho subscriber  {b['bare']['msg_rate'] * 100:10.0f} records/s")
-    print(f"  agent                 {b['agent']['record_rate']:10.0f} records/s   ratio {ratio_b:.2f}  "
-          f"(target >= 50000: {mark(b['agent']['record_rate'] >= 50000)})")
+    print(
+        f"  agent                 {b['agent']['record_rate']:10.0f} records/s   ratio {ratio_b:.2f}  "
+        f"(target >= 50000: {mark(b['agent']['record_rate'] >= 50000)})"
+    )
     print(f"latency, deciding truth published -> alert received, {lat['alerts']} alerts:")
-    print(f"  p50 {lat['p50_ms']:.1f} ms   p99 {lat['p99_ms']:.1f} ms   max {lat['max_ms']:.1f} ms  "
-          f"(target p99 <= 50: {mark(lat['p99_ms'] <= 50)})")
-    print(f"  of which publish -> agent receipt: p50 {lat['inbound_p50_ms']:.1f} ms, p99 {lat['inbound_p99_ms']:.1f} ms")
+    print(
+        f"  p50 {lat['p50_ms']:.1f} ms   p99 {lat['p99_ms']:.1f} ms   max {lat['max_ms']:.1f} ms  "
+        f"(target p99 <= 50: {mark(lat['p99_ms'] <= 50)})"
+    )
+    print(
+        f"  of which publish -> agent receipt: p50 {lat['inbound_p50_ms']:.1f} ms, p99 {lat['inbound_p99_ms']:.1f} ms"
+    )
     print("agent peak RSS, default checks, at 1 / 100 records per message:")
     print(f"  during the drain (VmHWM)              {rss['single']:5.1f} / {rss['batched']:5.1f} MB")
-    print(f"  whole run, shutdown snapshot included {rss_run['single']:5.1f} / {rss_run['batched']:5.1f} MB  "
-          f"(target <= 64: {mark(worst <= 64)})")
+    print(
+        f"  whole run, shutdown snapshot included {rss_run['single']:5.1f} / {rss_run['batched']:5.1f} MB  "
+        f"(target <= 64: {mark(worst <= 64)})"
+    )
     print("\n" + json.dumps(results))
     shutil.rmtree(folder, ignore_errors=True)
 

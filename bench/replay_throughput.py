@@ -23,8 +23,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from watchdog_edge.cards import ModelCard, save_card  # noqa: E402
-from watchdog_edge.replay import RecordingWriter, read_recording  # noqa: E402
+from watchdog_edge.core.cards import ModelCard
+from watchdog_edge.files.cardfile import save_card
+from watchdog_edge.replay.recording import RecordingWriter, read_recording
 
 
 def write_recording(path: Path, records: int, models: int, seed: int = 1) -> None:
@@ -38,11 +39,21 @@ def write_recording(path: Path, records: int, models: int, seed: int = 1) -> Non
             t = t0 + i * 0.05
             m = i % models
             x = rng.normal(size=3)
-            body = {"id": i, "value": float(x.sum()), "features": {"a": float(x[0]), "b": float(x[1]), "c": float(x[2])}}
+            body = {
+                "id": i,
+                "value": float(x.sum()),
+                "features": {"a": float(x[0]), "b": float(x[1]), "c": float(x[2])},
+            }
             w.message(round(t, 3), f"bench/m{m}/pred", json.dumps(body).encode())
             written += 1
             if i % 2 == 0:
-                pending.append((t + 120, f"bench/m{m}/truth", json.dumps({"id": i, "value": float(x.sum() + rng.normal())}).encode()))
+                pending.append(
+                    (
+                        t + 120,
+                        f"bench/m{m}/truth",
+                        json.dumps({"id": i, "value": float(x.sum() + rng.normal())}).encode(),
+                    )
+                )
             while pending and pending[0][0] <= t:
                 tt, topic, payload = pending.pop(0)
                 w.message(round(tt, 3), topic, payload)
@@ -53,14 +64,28 @@ def write_recording(path: Path, records: int, models: int, seed: int = 1) -> Non
 
 def build(folder: Path, models: int) -> Path:
     lines = ["[agent]", 'name = "bench"', ""]
-    feats = {k: {"min": -4.0, "max": 4.0, "histogram": {"edges": [-4, -1, 0, 1, 4], "shares": [0.16, 0.34, 0.34, 0.16]}}
-             for k in "abc"}
+    feats = {
+        k: {"min": -4.0, "max": 4.0, "histogram": {"edges": [-4, -1, 0, 1, 4], "shares": [0.16, 0.34, 0.34, 0.16]}}
+        for k in "abc"
+    }
     for m in range(models):
-        card = ModelCard(model_id=f"m{m}", training={"loss": 1.0, "count": 5000}, fitted_parameters=4,
-                         least_squares=True, holdout={"loss": 1.0, "count": 1000}, features=feats)
+        card = ModelCard(
+            model_id=f"m{m}",
+            training={"loss": 1.0, "count": 5000},
+            fitted_parameters=4,
+            least_squares=True,
+            holdout={"loss": 1.0, "count": 1000},
+            features=feats,
+        )
         save_card(card, folder / f"m{m}.json")
-        lines += ["[[models]]", f'id = "m{m}"', f'card = "m{m}.json"', f'prediction_topic = "bench/m{m}/pred"',
-                  f'truth_topic = "bench/m{m}/truth"', ""]
+        lines += [
+            "[[models]]",
+            f'id = "m{m}"',
+            f'card = "m{m}.json"',
+            f'prediction_topic = "bench/m{m}/pred"',
+            f'truth_topic = "bench/m{m}/truth"',
+            "",
+        ]
     cfg = folder / "config.toml"
     cfg.write_text("\n".join(lines))
     return cfg
@@ -84,8 +109,13 @@ def main() -> None:
         bare = time.perf_counter() - t
 
         # The replay itself runs in a fresh process, so its peak memory is what a gateway sees.
-        out = subprocess.run([sys.executable, "-c", _CHILD, str(cfg), str(rec)], capture_output=True,
-                             text=True, check=True, cwd=Path(__file__).resolve().parents[1])
+        out = subprocess.run(
+            [sys.executable, "-c", _CHILD, str(cfg), str(rec)],
+            capture_output=True,
+            text=True,
+            check=True,
+            cwd=Path(__file__).resolve().parents[1],
+        )
         res = json.loads(out.stdout)
     full = res["seconds"]
     print(f"records: {n:,} over {args.models} models; alerts: {res['alerts']}")
@@ -98,9 +128,10 @@ def main() -> None:
 
 _CHILD = """
 import json, resource, sys, time
-from watchdog_edge.monitor import Monitor
-from watchdog_edge.replay import read_recording, replay
-mon = Monitor.from_files(sys.argv[1])
+from watchdog_edge.core.monitor import Monitor
+from watchdog_edge.files.configfile import load_monitor
+from watchdog_edge.replay.recording import read_recording, replay
+mon = load_monitor(sys.argv[1])
 t = time.perf_counter()
 events = replay(mon, read_recording(sys.argv[2]))
 seconds = time.perf_counter() - t

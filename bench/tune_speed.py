@@ -26,13 +26,15 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from simulators.bundle import write_bundle  # noqa: E402
-from simulators.generate import simulate  # noqa: E402
-from simulators.scenario import load_scenario  # noqa: E402
-from simulators.tune import default_grid, expand, tune  # noqa: E402
-from watchdog_edge.config import load_config  # noqa: E402
-from watchdog_edge.monitor import Monitor  # noqa: E402
-from watchdog_edge.replay import read_recording, replay  # noqa: E402
+from simulators.bundle import write_bundle
+from simulators.generate import simulate
+from simulators.scenario import load_scenario
+from simulators.tune import default_grid, expand, tune
+from watchdog_edge.files.configfile import (
+    load_config,
+    load_monitor,
+)
+from watchdog_edge.replay.recording import read_recording, replay
 
 GAP_GRID = {
     "window.size": [60, 120, 240, 480],
@@ -69,23 +71,35 @@ def main() -> None:
         grid = default_grid(cfg) if args.grid == "default" else GAP_GRID
         g = len(expand(grid))
         one = {k: v[:1] for k, v in grid.items()}
-        print(f"recording: {len(run.messages)} messages over {args.hours:g} h; grid '{args.grid}': {g} settings; "
-              f"{cpus} CPUs")
+        print(
+            f"recording: {len(run.messages)} messages over {args.hours:g} h; grid '{args.grid}': {g} settings; "
+            f"{cpus} CPUs"
+        )
 
-        t = best_times({
-            "full": lambda: replay(Monitor.from_files(paths.config), read_recording(paths.recording)),
-            "one": lambda: tune(paths.config, paths.recording, None, grid=one, workers=1),
-            "g1": lambda: tune(paths.config, paths.recording, None, grid=grid, workers=1),
-            "gn": lambda: tune(paths.config, paths.recording, None, grid=grid, workers=cpus),
-        }, args.repeat)
+        t = best_times(
+            {
+                "full": lambda: replay(load_monitor(paths.config), read_recording(paths.recording)),
+                "one": lambda: tune(paths.config, paths.recording, None, grid=one, workers=1),
+                "g1": lambda: tune(paths.config, paths.recording, None, grid=grid, workers=1),
+                "gn": lambda: tune(paths.config, paths.recording, None, grid=grid, workers=cpus),
+            },
+            args.repeat,
+        )
         full, t_one, t_g1, t_gn = t["full"], t["one"], t["g1"], t["gn"]
         # the same in-process runs in CPU time of this process: what one added setting costs,
         # whatever else the machine is doing (the pool's children are not in it, so not gn)
-        c = best_times({k: v for k, v in {
-            "full": lambda: replay(Monitor.from_files(paths.config), read_recording(paths.recording)),
-            "one": lambda: tune(paths.config, paths.recording, None, grid=one, workers=1),
-            "g1": lambda: tune(paths.config, paths.recording, None, grid=grid, workers=1),
-        }.items()}, args.repeat, clock=time.process_time)
+        c = best_times(
+            {
+                k: v
+                for k, v in {
+                    "full": lambda: replay(load_monitor(paths.config), read_recording(paths.recording)),
+                    "one": lambda: tune(paths.config, paths.recording, None, grid=one, workers=1),
+                    "g1": lambda: tune(paths.config, paths.recording, None, grid=grid, workers=1),
+                }.items()
+            },
+            args.repeat,
+            clock=time.process_time,
+        )
 
     marginal = (t_g1 - t_one) / (g - 1)
     per_min_1 = g / t_g1 * 60

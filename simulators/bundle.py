@@ -12,11 +12,11 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from watchdog_edge import tomlout
-from watchdog_edge.cards import save_card
-from watchdog_edge.files import read_document
 from watchdog_edge.errors import RecordingError
-from watchdog_edge.replay import RecordingWriter
+from watchdog_edge.files import tomlout
+from watchdog_edge.files.cardfile import save_card
+from watchdog_edge.files.documents import read_document
+from watchdog_edge.replay.recording import RecordingWriter
 
 from .generate import Run
 from .scenario import Scenario
@@ -36,8 +36,9 @@ def sibling(recording: Path, suffix: str) -> Path:
     return recording.with_name(stem + suffix)
 
 
-def config_data(sc: Scenario, card_file: str, agent: str | None = None,
-                broker: tuple[str, int] | None = None) -> dict[str, Any]:
+def config_data(
+    sc: Scenario, card_file: str, agent: str | None = None, broker: tuple[str, int] | None = None
+) -> dict[str, Any]:
     """The config (plain data) that watches this scenario's model."""
     model: dict[str, Any] = {
         "id": sc.model.id,
@@ -90,8 +91,10 @@ def write_bundle(run: Run, recording: str | Path, scenario_name: str = "") -> Bu
     inc_path = sibling(rec, ".incidents.json")
     inc_path.write_text(json.dumps(incidents_data(run, scenario_name), indent=2) + "\n", encoding="utf-8")
     cfg_path = sibling(rec, ".config.toml")
-    header = (f"# Config for replaying a simulated run of {run.scenario.site.name!r} (seed {run.seed}).\n"
-              f"# Written by watchdog-edge simulate; edit freely.\n\n")
+    header = (
+        f"# Config for replaying a simulated run of {run.scenario.site.name!r} (seed {run.seed}).\n"
+        f"# Written by watchdog-edge simulate; edit freely.\n\n"
+    )
     cfg_path.write_text(header + tomlout.dumps(config_data(run.scenario, card_path.name)), encoding="utf-8")
     return BundlePaths(rec, inc_path, cfg_path, card_path)
 
@@ -113,8 +116,12 @@ def load_incidents(path: str | Path) -> list[dict[str, Any]]:
         for key in ("start", "end"):
             v = inc.get(key)
             if isinstance(v, bool) or not isinstance(v, (int, float)):
-                raise RecordingError(f"incidents file {p}: incidents[{i}].{key} must be a time in Unix seconds, got {v!r}")
+                raise RecordingError(
+                    f"incidents file {p}: incidents[{i}].{key} must be a time in Unix seconds, got {v!r}"
+                )
         if inc["end"] < inc["start"]:
-            raise RecordingError(f"incidents file {p}: incidents[{i}] ends ({inc['end']}) before it starts ({inc['start']})")
+            raise RecordingError(
+                f"incidents file {p}: incidents[{i}] ends ({inc['end']}) before it starts ({inc['start']})"
+            )
         out.append({**inc, "kind": str(inc.get("kind", f"incident {i + 1}"))})
     return out

@@ -4,22 +4,30 @@ from __future__ import annotations
 
 import numpy as np
 
-from watchdog_edge.cardbuild import mean_loss, quantile_histogram
-from watchdog_edge.cards import FeatureProfile, LossFigure, ModelCard, TargetRange
+from watchdog_edge.core.cards import FeatureProfile, LossFigure, ModelCard, TargetRange
+from watchdog_edge.files.cardbuild import mean_loss, quantile_histogram
 
 from .fit import PolynomialModel
 
 
-def build_card(model: PolynomialModel, model_id: str, version: str, loss: str,
-               x_train: np.ndarray, y_train: np.ndarray,
-               x_hold: np.ndarray | None = None, y_hold: np.ndarray | None = None,
-               notes: str | None = None) -> ModelCard:
+def build_card(
+    model: PolynomialModel,
+    model_id: str,
+    version: str,
+    loss: str,
+    x_train: np.ndarray,
+    y_train: np.ndarray,
+    x_hold: np.ndarray | None = None,
+    y_hold: np.ndarray | None = None,
+    notes: str | None = None,
+) -> ModelCard:
     """A card from the training rows (and optional holdout rows) of a least-squares fit."""
     features = {}
     for j, name in enumerate(model.features):
         col = x_train[:, j]
-        features[name] = FeatureProfile(min=float(np.nanmin(col)), max=float(np.nanmax(col)),
-                                        histogram=quantile_histogram(col))
+        features[name] = FeatureProfile(
+            min=float(np.nanmin(col)), max=float(np.nanmax(col)), histogram=quantile_histogram(col)
+        )
     holdout = None
     if x_hold is not None and y_hold is not None and len(y_hold):
         holdout = LossFigure(loss=mean_loss(y_hold, model.predict(x_hold), loss), count=len(y_hold))

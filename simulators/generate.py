@@ -15,8 +15,8 @@ from typing import Any
 
 import numpy as np
 
-from watchdog_edge.cards import ModelCard
-from watchdog_edge.events import rfc3339
+from watchdog_edge.core.cards import ModelCard
+from watchdog_edge.core.events import rfc3339
 
 from .card import build_card
 from .fit import PolynomialModel, fit_polynomial
@@ -85,21 +85,32 @@ def train(sc: Scenario, seed: int) -> tuple[PolynomialModel, ModelCard]:
     n = int(sc.model.training_days * 86400.0 / step)
     need = sc.model.training_rows + sc.model.holdout_rows
     if need > n:
-        raise ValueError(f"model.training_rows + holdout_rows = {need} exceeds the {n} rows of "
-                         f"{sc.model.training_days} training days; lengthen model.training_days")
+        raise ValueError(
+            f"model.training_rows + holdout_rows = {need} exceeds the {n} rows of "
+            f"{sc.model.training_days} training days; lengthen model.training_days"
+        )
     t = start + step * np.arange(n)
     real = _real_sensors(sc, t, rng)
     y = process_truth(sc.process, real, step, rng)
     x = np.column_stack([np.round(real[f], 3) for f in sc.model.features])
     rows = rng.permutation(n)[:need]
-    train_rows, hold_rows = np.sort(rows[: sc.model.training_rows]), np.sort(rows[sc.model.training_rows:])
+    train_rows, hold_rows = np.sort(rows[: sc.model.training_rows]), np.sort(rows[sc.model.training_rows :])
     model = fit_polynomial(sc.model.features, x[train_rows], y[train_rows], sc.model.degree)
-    notes = (f"simulated training: {sc.model.training_rows} rows drawn from {sc.model.training_days:g} days "
-             f"at {sc.site.name}; polynomial degree {sc.model.degree}, {model.parameters} parameters")
-    card = build_card(model, sc.model.id, sc.model.version, sc.model.loss,
-                      x[train_rows], y[train_rows],
-                      x[hold_rows] if len(hold_rows) else None, y[hold_rows] if len(hold_rows) else None,
-                      notes=notes)
+    notes = (
+        f"simulated training: {sc.model.training_rows} rows drawn from {sc.model.training_days:g} days "
+        f"at {sc.site.name}; polynomial degree {sc.model.degree}, {model.parameters} parameters"
+    )
+    card = build_card(
+        model,
+        sc.model.id,
+        sc.model.version,
+        sc.model.loss,
+        x[train_rows],
+        y[train_rows],
+        x[hold_rows] if len(hold_rows) else None,
+        y[hold_rows] if len(hold_rows) else None,
+        notes=notes,
+    )
     return model, card
 
 
@@ -155,9 +166,18 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
             stalls.append((a, b))
         elif not isinstance(inc, Overfit):  # pragma: no cover - the union is closed
             raise TypeError(inc)
-        incidents.append({"kind": inc.kind, "model": sc.model.id, "start": a, "end": b,
-                          "start_ts": rfc3339(a), "end_ts": rfc3339(b),
-                          "sensor": getattr(inc, "sensor", None), "detail": _describe(inc)})
+        incidents.append(
+            {
+                "kind": inc.kind,
+                "model": sc.model.id,
+                "start": a,
+                "end": b,
+                "start_ts": rfc3339(a),
+                "end_ts": rfc3339(b),
+                "sensor": getattr(inc, "sensor", None),
+                "detail": _describe(inc),
+            }
+        )
 
     truth = process_truth(sc.process, real, step, _rng(seed, _PROCESS))
     measured = {k: np.round(real[k] + measured_offset[k], 3) for k in real}

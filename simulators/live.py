@@ -9,7 +9,7 @@ from __future__ import annotations
 import os
 import threading
 import time
-from typing import Callable
+from collections.abc import Callable
 
 import paho.mqtt.client as mqtt
 
@@ -40,10 +40,16 @@ def parse_broker(text: str) -> tuple[str, int]:
     return host.strip("[]"), p
 
 
-def publish_live(messages: list[Message], host: str, port: int, speed: float = 1.0,
-                 client_id: str | None = None, start_t: float | None = None,
-                 on_progress: Callable[[int], None] | None = None,
-                 connect_timeout: float = 10.0) -> int:
+def publish_live(
+    messages: list[Message],
+    host: str,
+    port: int,
+    speed: float = 1.0,
+    client_id: str | None = None,
+    start_t: float | None = None,
+    on_progress: Callable[[int], None] | None = None,
+    connect_timeout: float = 10.0,
+) -> int:
     """Publish ``messages`` at QoS 1 on their topics, paced at ``speed`` x real time.
 
     Returns the number of messages the broker acknowledged (PUBACK). Raises BrokerError when
@@ -59,8 +65,9 @@ def publish_live(messages: list[Message], host: str, port: int, speed: float = 1
             refused.append(str(reason_code))
         connected.set()
 
-    client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2,
-                         client_id=client_id or f"watchdog-sim-{os.getpid()}", protocol=mqtt.MQTTv311)
+    client = mqtt.Client(
+        mqtt.CallbackAPIVersion.VERSION2, client_id=client_id or f"watchdog-sim-{os.getpid()}", protocol=mqtt.MQTTv311
+    )
     client.on_connect = on_connect
     try:
         client.connect(host, port, keepalive=30)

@@ -9,10 +9,10 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from watchdog_edge.cards import ModelCard
-from watchdog_edge.config import Config
-from watchdog_edge.events import Alert
-from watchdog_edge.monitor import Monitor, Step
+from watchdog_edge.core.cards import ModelCard
+from watchdog_edge.core.events import Alert
+from watchdog_edge.core.monitor import Monitor, Step
+from watchdog_edge.core.settings import Config
 
 WIDTH_PX, HEIGHT_PX, DPI = 1400, 700, 100
 
@@ -60,12 +60,26 @@ def trace(config: Config, cards: dict[str, ModelCard], steps: list[Step], model:
     return tr
 
 
-_CHECK_COLOURS = {"gap": "#c0392b", "range": "#8e44ad", "shift": "#2c7fb8", "silence": "#7f8c8d",
-                  "drift": "#d35400", "baseline": "#16a085"}
+_CHECK_COLOURS = {
+    "gap": "#c0392b",
+    "range": "#8e44ad",
+    "shift": "#2c7fb8",
+    "silence": "#7f8c8d",
+    "drift": "#d35400",
+    "baseline": "#16a085",
+}
 
 
-def draw(tr: Trace, incidents: list[dict[str, Any]], path: str | Path, title: str,
-         start: float, end: float, width_px: int = WIDTH_PX, height_px: int = HEIGHT_PX) -> Path:
+def draw(
+    tr: Trace,
+    incidents: list[dict[str, Any]],
+    path: str | Path,
+    title: str,
+    start: float,
+    end: float,
+    width_px: int = WIDTH_PX,
+    height_px: int = HEIGHT_PX,
+) -> Path:
     """Write the PNG (``width_px`` x ``height_px``); time is hours from ``start``."""
     import matplotlib
 
@@ -76,14 +90,28 @@ def draw(tr: Trace, incidents: list[dict[str, Any]], path: str | Path, title: st
     fig, ax = plt.subplots(figsize=(width_px / DPI, height_px / DPI), dpi=DPI)
     try:
         for i, inc in enumerate(incidents):
-            ax.axvspan(hours(inc["start"]), hours(inc["end"]), color="#f4d03f", alpha=0.25,
-                       label="incident" if i == 0 else None)
-            ax.text(hours(inc["start"]), 1.0, f" {inc['kind']}", transform=ax.get_xaxis_transform(),
-                    va="top", ha="left", fontsize=8, color="#7d6608")
+            ax.axvspan(
+                hours(inc["start"]),
+                hours(inc["end"]),
+                color="#f4d03f",
+                alpha=0.25,
+                label="incident" if i == 0 else None,
+            )
+            ax.text(
+                hours(inc["start"]),
+                1.0,
+                f" {inc['kind']}",
+                transform=ax.get_xaxis_transform(),
+                va="top",
+                ha="left",
+                fontsize=8,
+                color="#7d6608",
+            )
         x = [hours(t) for t in tr.t]
         if x:
-            ax.fill_between(x, tr.lower, tr.upper, step="post", color="#5dade2", alpha=0.35,
-                            label="interval on the live mean loss")
+            ax.fill_between(
+                x, tr.lower, tr.upper, step="post", color="#5dade2", alpha=0.35, label="interval on the live mean loss"
+            )
             ax.step(x, tr.live, where="post", color="#1b4f72", lw=1.2, label="live mean loss")
         if tr.expected is not None:
             ax.axhspan(tr.expected, tr.warning, color="#27ae60", alpha=0.15, label="expected loss to warning limit")
@@ -94,9 +122,14 @@ def draw(tr: Trace, incidents: list[dict[str, Any]], path: str | Path, title: st
         for a in tr.alerts:
             colour = _CHECK_COLOURS.get(a.check, "black")
             raised = a.state == "raised"
-            ax.axvline(hours(a.t), color=colour, lw=1.0 if raised else 0.8, ls="-" if raised else ":",
-                       alpha=0.8 if raised else 0.6,
-                       label=f"{a.check} {a.state}" if (a.check, a.state) not in seen else None)
+            ax.axvline(
+                hours(a.t),
+                color=colour,
+                lw=1.0 if raised else 0.8,
+                ls="-" if raised else ":",
+                alpha=0.8 if raised else 0.6,
+                label=f"{a.check} {a.state}" if (a.check, a.state) not in seen else None,
+            )
             seen.add((a.check, a.state))
         ax.set_xlim(0, max(hours(end), 1e-9))
         positive = [v for v in tr.lower + tr.live + tr.upper if v > 0]

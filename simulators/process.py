@@ -38,8 +38,9 @@ def daily_cycle(sensor: Sensor, hours: np.ndarray) -> np.ndarray:
     return sensor.mean + sensor.daily_amplitude * np.cos(2.0 * np.pi * (hours - sensor.peak_hour) / 24.0)
 
 
-def sensor_series(sensor: Sensor, t: np.ndarray, step_s: float, utc_offset_h: float,
-                  rng: np.random.Generator) -> np.ndarray:
+def sensor_series(
+    sensor: Sensor, t: np.ndarray, step_s: float, utc_offset_h: float, rng: np.random.Generator
+) -> np.ndarray:
     """Real values of one sensor at the times ``t`` (evenly spaced by ``step_s``)."""
     level = daily_cycle(sensor, local_hour(t, utc_offset_h))
     if sensor.kind == "counts":
@@ -73,8 +74,7 @@ def process_mean(process: Process, real: dict[str, np.ndarray]) -> np.ndarray:
     return y
 
 
-def process_truth(process: Process, real: dict[str, np.ndarray], step_s: float,
-                  rng: np.random.Generator) -> np.ndarray:
+def process_truth(process: Process, real: dict[str, np.ndarray], step_s: float, rng: np.random.Generator) -> np.ndarray:
     """Measured truth: process mean, an autocorrelated disturbance and meter noise."""
     mean = process_mean(process, real)
     n = len(mean)

@@ -14,7 +14,7 @@ from typing import Annotated, Literal, Union
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-from watchdog_edge.cards import format_validation
+from watchdog_edge.core.cards import format_validation
 from watchdog_edge.errors import ConfigError
 
 if sys.version_info >= (3, 11):
@@ -77,11 +77,13 @@ class Sensor(_Strict):
     max: float | None = None
 
     @model_validator(mode="after")
-    def _bounds(self) -> "Sensor":
+    def _bounds(self) -> Sensor:
         if self.min is not None and self.max is not None and self.max <= self.min:
             raise ValueError(f"sensor {self.name!r}: max {self.max} must be above min {self.min}")
         if self.kind == "counts" and self.mean < self.daily_amplitude:
-            raise ValueError(f"sensor {self.name!r}: a count rate needs mean >= daily_amplitude (rates cannot go negative)")
+            raise ValueError(
+                f"sensor {self.name!r}: a count rate needs mean >= daily_amplitude (rates cannot go negative)"
+            )
         return self
 
 
@@ -99,9 +101,11 @@ class Term(_Strict):
     above: float | None = None
 
     @model_validator(mode="after")
-    def _shape(self) -> "Term":
+    def _shape(self) -> Term:
         if (self.hinge is None) == (not self.of):
-            raise ValueError("a term has either 'of' (a product of sensor powers) or 'hinge' (with 'above'), not both or neither")
+            raise ValueError(
+                "a term has either 'of' (a product of sensor powers) or 'hinge' (with 'above'), not both or neither"
+            )
         if self.hinge is not None and self.above is None:
             raise ValueError(f"hinge term on {self.hinge!r} needs 'above' (the knee of the hinge)")
         if any(p < 1 for p in self.of.values()):
@@ -148,7 +152,7 @@ class Timing(_Strict):
     latency_max_s: float = Field(0.2, ge=0, description="Network latency between publish and receipt.")
 
     @model_validator(mode="after")
-    def _delays(self) -> "Timing":
+    def _delays(self) -> Timing:
         if self.truth_delay_max_s < self.truth_delay_min_s:
             raise ValueError("truth_delay_max_s must be >= truth_delay_min_s")
         return self
@@ -182,7 +186,7 @@ class _Incident(_Strict):
     note: str = ""
 
     @model_validator(mode="after")
-    def _order(self) -> "_Incident":
+    def _order(self) -> _Incident:
         if self.end_h is not None and self.end_h <= self.start_h:
             raise ValueError(f"end_h {self.end_h} must be after start_h {self.start_h}")
         return self
@@ -241,7 +245,7 @@ class Scenario(_Strict):
     incidents: list[Incident] = Field(default_factory=list)
 
     @model_validator(mode="after")
-    def _names(self) -> "Scenario":
+    def _names(self) -> Scenario:
         names = [s.name for s in self.sensors]
         dup = {n for n in names if names.count(n) > 1}
         if dup:
@@ -259,11 +263,15 @@ class Scenario(_Strict):
             if sensor is not None and sensor not in known:
                 raise ValueError(f"incidents[{i}] ({inc.kind}) names sensor {sensor!r}, which is not a sensor")
             if inc.start_h >= self.site.duration_h:
-                raise ValueError(f"incidents[{i}] ({inc.kind}) starts at hour {inc.start_h}, after the run ends "
-                                 f"(site.duration_h = {self.site.duration_h})")
+                raise ValueError(
+                    f"incidents[{i}] ({inc.kind}) starts at hour {inc.start_h}, after the run ends "
+                    f"(site.duration_h = {self.site.duration_h})"
+                )
         if self.model.loss == "absolute" and self.model.holdout_rows == 0:
-            raise ValueError("model.loss = 'absolute' needs model.holdout_rows > 0: only a squared-loss "
-                             "least-squares card can take its expected loss from the training loss")
+            raise ValueError(
+                "model.loss = 'absolute' needs model.holdout_rows > 0: only a squared-loss "
+                "least-squares card can take its expected loss from the training loss"
+            )
         if self.monitor.min_pairs > self.monitor.window_size:
             raise ValueError("monitor.min_pairs must not exceed monitor.window_size")
         return self

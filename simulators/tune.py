@@ -34,18 +34,20 @@ import math
 import multiprocessing as mp
 import os
 import sys
+from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterable, Iterator
+from typing import Any
 
-from watchdog_edge.cards import ModelCard
-from watchdog_edge.config import Config, parse_config
-from watchdog_edge.files import read_document
+from watchdog_edge.core.cards import ModelCard
+from watchdog_edge.core.events import Alert
+from watchdog_edge.core.monitor import Monitor, Step
+from watchdog_edge.core.settings import Config, parse_config
 from watchdog_edge.errors import ConfigError, WatchdogError
-from watchdog_edge.events import Alert
-from watchdog_edge.monitor import Monitor, Step, load_cards
-from watchdog_edge.replay import read_recording, with_ticks
+from watchdog_edge.files.configfile import load_cards
+from watchdog_edge.files.documents import read_document
+from watchdog_edge.replay.recording import read_recording, with_ticks
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -66,7 +68,7 @@ class Setting:
     tightness: float
     position: tuple[int, ...] = ()  # index of each value in its grid list
 
-    def neighbours(self, others: Iterable["Setting"]) -> list["Setting"]:
+    def neighbours(self, others: Iterable[Setting]) -> list[Setting]:
         """Settings one step away along exactly one numeric grid key.
 
         A switch (``enabled = [true, false]``) or a choice of text (a detector's name) is not a
@@ -75,7 +77,7 @@ class Setting:
         out = []
         for o in others:
             steps = 0
-            for (key, v), a, b in zip(self.values.items(), self.position, o.position):
+            for (_key, v), a, b in zip(self.values.items(), self.position, o.position):
                 if a == b:
                     continue
                 if not _is_number(v) or abs(a - b) != 1:
@@ -134,8 +136,9 @@ def load_grid(path: str | Path) -> dict[str, list]:
     p = Path(path)
     raw = read_document(p, "grid file", tomllib.loads, ConfigError, "TOML")
     if not isinstance(raw.get("grid"), dict) or not raw["grid"]:
-        raise ConfigError(f"grid file {p} needs a [grid] table of keys -> lists, "
-                          "e.g. \"checks.gap.warning_tolerance\" = [0.25, 0.5]")
+        raise ConfigError(
+            f'grid file {p} needs a [grid] table of keys -> lists, e.g. "checks.gap.warning_tolerance" = [0.25, 0.5]'
+        )
     extra = [k for k in raw if k != "grid"]
     if extra:
         raise ConfigError(f"grid file {p}: unknown top-level key {extra[0]!r}; only [grid] is read")
@@ -148,11 +151,15 @@ def expand(grid: dict[str, list]) -> list[Setting]:
     """Every combination of the grid's values, in a stable order."""
     for key in grid:
         if key.split(".")[0] in _FIXED_PREFIXES:
-            raise ConfigError(f"grid key {key!r} cannot vary: parsing and pairing run once for all "
-                              "settings; tune window and check settings only")
+            raise ConfigError(
+                f"grid key {key!r} cannot vary: parsing and pairing run once for all "
+                "settings; tune window and check settings only"
+            )
         if not key.startswith(("window.", "checks.")):
-            raise ConfigError(f"grid key {key!r}: give a key inside a [[models]] entry that starts "
-                              "with 'window.' or 'checks.' (e.g. checks.gap.confidence)")
+            raise ConfigError(
+                f"grid key {key!r}: give a key inside a [[models]] entry that starts "
+                "with 'window.' or 'checks.' (e.g. checks.gap.confidence)"
+            )
     keys = list(grid)
     out = []
     for i, combo in enumerate(itertools.product(*(range(len(grid[k])) for k in keys))):
@@ -200,8 +207,9 @@ class Intake:
         return (n - 1) / (b - a) if n > 1 and b > a else 0.0
 
 
-def intake_recording(config: Config, cards: dict[str, ModelCard], recording: str | Path,
-                     tick_every: float | None = None) -> Intake:
+def intake_recording(
+    config: Config, cards: dict[str, ModelCard], recording: str | Path, tick_every: float | None = None
+) -> Intake:
     """Parse and pair a recording once, through the same core as replay."""
     mon = Monitor(config, cards)
     steps: list[Step] = []
@@ -225,8 +233,10 @@ def intake_recording(config: Config, cards: dict[str, ModelCard], recording: str
                     a, _ = span.get(s.model, (s.t, s.t))
                     span[s.model] = (a, s.t)
     if not steps:
-        raise WatchdogError(f"recording {recording} gave no predictions or truths on the config's topics; "
-                            "check the topics in the config against the recording")
+        raise WatchdogError(
+            f"recording {recording} gave no predictions or truths on the config's topics; "
+            "check the topics in the config against the recording"
+        )
     return Intake(steps, start, end, pairs, span)
 
 
@@ -255,7 +265,7 @@ def varied_checks(keys: Iterable[str]) -> set[str]:
     so its alerts are computed once and shared; each varied check runs on its own, once per
     distinct value of the keys that reach it (see ``tune``).
     """
-    from watchdog_edge.checks import CHECK_NAMES
+    from watchdog_edge.core.checks import CHECK_NAMES
 
     return {n for n in CHECK_NAMES for k in keys if reaches(k, n)}
 
@@ -264,7 +274,7 @@ def only_checks(raw: dict, drop: set[str], models: list[str] | None) -> dict:
     """Config data with the ``drop`` checks switched off (in the chosen models; every check in
     the others, whose alerts are not looked at)."""
     data = copy.deepcopy(raw)
-    from watchdog_edge.checks import registered
+    from watchdog_edge.core.checks import registered
 
     for m in data.get("models", []):
         chosen = models is None or m.get("id") in models
@@ -274,7 +284,7 @@ def only_checks(raw: dict, drop: set[str], models: list[str] | None) -> dict:
     return data
 
 
-def _sort_marks(marks: list["Mark"]) -> list["Mark"]:
+def _sort_marks(marks: list[Mark]) -> list[Mark]:
     return sorted(marks, key=lambda m: (m.t, m.model, m.check, m.severity))
 
 
@@ -289,8 +299,13 @@ class Mark:
     severity: str
 
 
-def apply_setting(config: Config, cards: dict[str, ModelCard], steps: list[Step],
-                  models: list[str] | None = None, checks: list[str] | None = None) -> list[Mark]:
+def apply_setting(
+    config: Config,
+    cards: dict[str, ModelCard],
+    steps: list[Step],
+    models: list[str] | None = None,
+    checks: list[str] | None = None,
+) -> list[Mark]:
     """The raised alerts of one setting on the shared steps (of ``models`` and ``checks``)."""
     mon = Monitor(config, cards)
     # Settings with the same checks switched on need the same steps: filter once per check set.
@@ -301,17 +316,25 @@ def apply_setting(config: Config, cards: dict[str, ModelCard], steps: list[Step]
         _W["relevant_of"] = steps
     if key not in cache:
         cache[key] = mon.relevant(steps)
-    return _sort_marks([Mark(e.t, e.model, e.check, e.severity) for e in mon.apply(cache[key])
-                        if isinstance(e, Alert) and e.state == "raised" and (models is None or e.model in models)
-                        and (checks is None or e.check in checks)])
+    return _sort_marks(
+        [
+            Mark(e.t, e.model, e.check, e.severity)
+            for e in mon.apply(cache[key])
+            if isinstance(e, Alert)
+            and e.state == "raised"
+            and (models is None or e.model in models)
+            and (checks is None or e.check in checks)
+        ]
+    )
 
 
 _W: dict[str, Any] = {}
 _SHARED = -1  # job index of the run of the checks the grid does not reach
 
 
-def _init_worker(steps: list[Step], cards: dict[str, ModelCard], base_dir: str, models: list[str] | None,
-                 checks: list[str] | None) -> None:
+def _init_worker(
+    steps: list[Step], cards: dict[str, ModelCard], base_dir: str, models: list[str] | None, checks: list[str] | None
+) -> None:
     _W.update(steps=steps, cards=cards, base_dir=Path(base_dir), models=models, checks=checks)
 
 
@@ -321,10 +344,16 @@ def _run_one(job: tuple[int, dict]) -> tuple[int, list[Mark]]:
     return index, apply_setting(cfg, _W["cards"], _W["steps"], _W["models"], _W["checks"])
 
 
-def evaluate_all(jobs: list[tuple[int, dict]], steps: list[Step], cards: dict[str, ModelCard],
-                 base_dir: Path, models: list[str] | None, workers: int,
-                 progress: Callable[[int], None] | None = None,
-                 checks: list[str] | None = None) -> dict[int, list[Mark]]:
+def evaluate_all(
+    jobs: list[tuple[int, dict]],
+    steps: list[Step],
+    cards: dict[str, ModelCard],
+    base_dir: Path,
+    models: list[str] | None,
+    workers: int,
+    progress: Callable[[int], None] | None = None,
+    checks: list[str] | None = None,
+) -> dict[int, list[Mark]]:
     """Alerts of every job (index, config data); ``workers`` processes, or in-process for 1."""
     results: dict[int, list[Mark]] = {}
     if workers <= 1 or len(jobs) <= 1:
@@ -367,11 +396,16 @@ class Score:
         return sum(delays) / len(delays) if delays else math.nan
 
     def to_dict(self) -> dict[str, Any]:
-        return {"alerts": self.alerts, "false_alarms": self.false_alarms,
-                "false_alarms_per_day": self.false_alarms_per_day, "healthy_days": self.healthy_days,
-                "grace_s": self.grace_s, "missed": self.missed,
-                "mean_delay_s": None if math.isnan(self.mean_delay_s) else self.mean_delay_s,
-                "detections": self.detections}
+        return {
+            "alerts": self.alerts,
+            "false_alarms": self.false_alarms,
+            "false_alarms_per_day": self.false_alarms_per_day,
+            "healthy_days": self.healthy_days,
+            "grace_s": self.grace_s,
+            "missed": self.missed,
+            "mean_delay_s": None if math.isnan(self.mean_delay_s) else self.mean_delay_s,
+            "detections": self.detections,
+        }
 
 
 def _union_length(spans: Iterable[tuple[float, float]], lo: float, hi: float) -> float:
@@ -390,23 +424,28 @@ def _union_length(spans: Iterable[tuple[float, float]], lo: float, hi: float) ->
     return total
 
 
-def score(marks: list[Mark], incidents: list[dict[str, Any]], start: float, end: float,
-          grace_s: float) -> Score:
+def score(marks: list[Mark], incidents: list[dict[str, Any]], start: float, end: float, grace_s: float) -> Score:
     """Detections, delays and false alarms of one setting's raised alerts."""
     spans = [(float(inc["start"]), float(inc["end"]) + grace_s) for inc in incidents]
     detections = []
     for inc, (a, b) in zip(incidents, spans):
         hit = next((m for m in marks if a <= m.t <= b and inc.get("model") in (None, m.model)), None)
-        detections.append({
-            "kind": inc["kind"], "start": inc["start"], "end": inc["end"],
-            "detected_at": None if hit is None else hit.t,
-            "delay_s": None if hit is None else hit.t - float(inc["start"]),
-            "check": None if hit is None else hit.check,
-            "severity": None if hit is None else hit.severity,
-        })
-    false = [m for m in marks
-             if not any(a <= m.t <= b and inc.get("model") in (None, m.model)
-                        for inc, (a, b) in zip(incidents, spans))]
+        detections.append(
+            {
+                "kind": inc["kind"],
+                "start": inc["start"],
+                "end": inc["end"],
+                "detected_at": None if hit is None else hit.t,
+                "delay_s": None if hit is None else hit.t - float(inc["start"]),
+                "check": None if hit is None else hit.check,
+                "severity": None if hit is None else hit.severity,
+            }
+        )
+    false = [
+        m
+        for m in marks
+        if not any(a <= m.t <= b and inc.get("model") in (None, m.model) for inc, (a, b) in zip(incidents, spans))
+    ]
     healthy_s = max(0.0, (end - start) - _union_length(spans, start, end))
     days = healthy_s / 86400.0
     per_day = len(false) / days if days > 0 else (math.inf if false else 0.0)
@@ -427,7 +466,7 @@ class Row:
 
 @dataclass
 class TuneResult:
-    rows: list[Row]             # ranked, best first
+    rows: list[Row]  # ranked, best first
     best: Row
     with_incidents: bool
     alarm_budget: float
@@ -483,12 +522,21 @@ def _collector_paused() -> Iterator[None]:
 
 
 @_collector_paused()
-def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[str, Any]] | None = None,
-         grid: dict[str, list] | None = None, workers: int | None = None,
-         holdout: str | Path | None = None, holdout_incidents: list[dict[str, Any]] | None = None,
-         models: list[str] | None = None, grace_s: float | None = None, alarm_budget: float = 0.5,
-         tick_every: float | None = None, progress: Callable[[int, int], None] | None = None,
-         checks: list[str] | None = None) -> TuneResult:
+def tune(
+    config_path: str | Path,
+    recording: str | Path,
+    incidents: list[dict[str, Any]] | None = None,
+    grid: dict[str, list] | None = None,
+    workers: int | None = None,
+    holdout: str | Path | None = None,
+    holdout_incidents: list[dict[str, Any]] | None = None,
+    models: list[str] | None = None,
+    grace_s: float | None = None,
+    alarm_budget: float = 0.5,
+    tick_every: float | None = None,
+    progress: Callable[[int, int], None] | None = None,
+    checks: list[str] | None = None,
+) -> TuneResult:
     """Evaluate every grid setting on a recording and rank them; see the module docstring."""
     p = Path(config_path)
     try:
@@ -502,8 +550,9 @@ def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[st
     if models is not None:
         unknown = [m for m in models if m not in {x.id for x in cfg.models}]
         if unknown:
-            raise ConfigError(f"--model {unknown[0]!r} is not in {p}; models there: "
-                              f"{', '.join(x.id for x in cfg.models)}")
+            raise ConfigError(
+                f"--model {unknown[0]!r} is not in {p}; models there: {', '.join(x.id for x in cfg.models)}"
+            )
     cards = load_cards(cfg)
     grid = grid if grid is not None else default_grid(cfg)
     settings = expand(grid)
@@ -546,7 +595,7 @@ def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[st
             progress(done, len(jobs))
 
     if checks is not None:
-        from watchdog_edge.checks import CHECK_NAMES
+        from watchdog_edge.core.checks import CHECK_NAMES
 
         unknown = [c for c in checks if c not in CHECK_NAMES]
         if unknown:
@@ -566,8 +615,10 @@ def tune(config_path: str | Path, recording: str | Path, incidents: list[dict[st
         rows.append(Row(s, score(ms, incidents or [], intake.start, intake.end, g), marks=ms))
     by_index = {r.setting.index: r for r in rows}
     for r in rows:
-        near = [by_index[n.index].score.false_alarms_per_day
-                for n in r.setting.neighbours(by_index[i].setting for i in by_index)]
+        near = [
+            by_index[n.index].score.false_alarms_per_day
+            for n in r.setting.neighbours(by_index[i].setting for i in by_index)
+        ]
         r.robust_alarms_per_day = max([r.score.false_alarms_per_day, *near])
     rows.sort(key=lambda r: rank_key(r, with_inc, alarm_budget))
     best = rows[0]
@@ -592,7 +643,7 @@ def snippet(result: TuneResult, where: Path, recording: str | Path) -> str:
     Card paths are rewritten relative to ``where`` (the snippet's folder), so the snippet on
     its own also loads in ``check-config``.
     """
-    from watchdog_edge import tomlout
+    from watchdog_edge.files import tomlout
 
     data = with_setting(result.raw_config, result.best.setting, result.models)
     out_models = []
@@ -612,15 +663,18 @@ def snippet(result: TuneResult, where: Path, recording: str | Path) -> str:
         f"#   {result.best.setting.label()}",
     ]
     if result.with_incidents:
-        lines.append(f"#   missed {s.missed} of {len(s.detections)} incidents, "
-                     f"{s.false_alarms_per_day:.2f} false alarms per day, mean delay "
-                     f"{_fmt_delay(s.mean_delay_s)}")
+        lines.append(
+            f"#   missed {s.missed} of {len(s.detections)} incidents, "
+            f"{s.false_alarms_per_day:.2f} false alarms per day, mean delay "
+            f"{_fmt_delay(s.mean_delay_s)}"
+        )
     else:
         lines.append(f"#   {s.false_alarms_per_day:.2f} alarms per day (budget {result.alarm_budget:g})")
     if result.best.holdout is not None:
         h = result.best.holdout
-        lines.append(f"#   holdout: missed {h.missed} of {len(h.detections)}, "
-                     f"{h.false_alarms_per_day:.2f} false alarms per day")
+        lines.append(
+            f"#   holdout: missed {h.missed} of {len(h.detections)}, {h.false_alarms_per_day:.2f} false alarms per day"
+        )
     lines.append("# Paste over the matching [[models]] entry of your config.")
     return "\n".join(lines) + "\n\n" + tomlout.dumps({"models": out_models})
 

@@ -68,38 +68,72 @@ def _make_tls_cryptography(folder: Path, name: str, server_host: str) -> TLSFile
         return ec.generate_private_key(ec.SECP256R1())
 
     def write_key(k, path: Path) -> None:
-        path.write_bytes(k.private_bytes(serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8,
-                                         serialization.NoEncryption()))
+        path.write_bytes(
+            k.private_bytes(serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8, serialization.NoEncryption())
+        )
 
     def subject(cn: str):
         return x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, cn)])
 
     ca_key = key()
-    ca_cert = (x509.CertificateBuilder().subject_name(subject(f"{name} CA")).issuer_name(subject(f"{name} CA"))
-               .public_key(ca_key.public_key()).serial_number(x509.random_serial_number())
-               .not_valid_before(now - dt.timedelta(minutes=5)).not_valid_after(now + dt.timedelta(days=2))
-               .add_extension(x509.BasicConstraints(ca=True, path_length=None), critical=True)
-               .add_extension(x509.KeyUsage(digital_signature=True, key_cert_sign=True, crl_sign=True,
-                                            content_commitment=False, key_encipherment=False,
-                                            data_encipherment=False, key_agreement=False,
-                                            encipher_only=False, decipher_only=False), critical=True)
-               .sign(ca_key, hashes.SHA256()))
+    ca_cert = (
+        x509.CertificateBuilder()
+        .subject_name(subject(f"{name} CA"))
+        .issuer_name(subject(f"{name} CA"))
+        .public_key(ca_key.public_key())
+        .serial_number(x509.random_serial_number())
+        .not_valid_before(now - dt.timedelta(minutes=5))
+        .not_valid_after(now + dt.timedelta(days=2))
+        .add_extension(x509.BasicConstraints(ca=True, path_length=None), critical=True)
+        .add_extension(
+            x509.KeyUsage(
+                digital_signature=True,
+                key_cert_sign=True,
+                crl_sign=True,
+                content_commitment=False,
+                key_encipherment=False,
+                data_encipherment=False,
+                key_agreement=False,
+                encipher_only=False,
+                decipher_only=False,
+            ),
+            critical=True,
+        )
+        .sign(ca_key, hashes.SHA256())
+    )
 
     def leaf(cn: str, server: bool):
         k = key()
-        b = (x509.CertificateBuilder().subject_name(subject(cn)).issuer_name(ca_cert.subject)
-             .public_key(k.public_key()).serial_number(x509.random_serial_number())
-             .not_valid_before(now - dt.timedelta(minutes=5)).not_valid_after(now + dt.timedelta(days=2))
-             .add_extension(x509.BasicConstraints(ca=False, path_length=None), critical=True)
-             .add_extension(x509.ExtendedKeyUsage([ExtendedKeyUsageOID.SERVER_AUTH if server
-                                                   else ExtendedKeyUsageOID.CLIENT_AUTH]), critical=False))
+        b = (
+            x509.CertificateBuilder()
+            .subject_name(subject(cn))
+            .issuer_name(ca_cert.subject)
+            .public_key(k.public_key())
+            .serial_number(x509.random_serial_number())
+            .not_valid_before(now - dt.timedelta(minutes=5))
+            .not_valid_after(now + dt.timedelta(days=2))
+            .add_extension(x509.BasicConstraints(ca=False, path_length=None), critical=True)
+            .add_extension(
+                x509.ExtendedKeyUsage([ExtendedKeyUsageOID.SERVER_AUTH if server else ExtendedKeyUsageOID.CLIENT_AUTH]),
+                critical=False,
+            )
+        )
         if server:
-            b = b.add_extension(x509.SubjectAlternativeName(
-                [x509.DNSName(server_host), x509.IPAddress(ipaddress.ip_address("127.0.0.1"))]), critical=False)
+            b = b.add_extension(
+                x509.SubjectAlternativeName(
+                    [x509.DNSName(server_host), x509.IPAddress(ipaddress.ip_address("127.0.0.1"))]
+                ),
+                critical=False,
+            )
         return k, b.sign(ca_key, hashes.SHA256())
 
-    files = TLSFiles(folder / f"{name}-ca.crt", folder / f"{name}-server.crt", folder / f"{name}-server.key",
-                     folder / f"{name}-client.crt", folder / f"{name}-client.key")
+    files = TLSFiles(
+        folder / f"{name}-ca.crt",
+        folder / f"{name}-server.crt",
+        folder / f"{name}-server.key",
+        folder / f"{name}-client.crt",
+        folder / f"{name}-client.key",
+    )
     files.ca.write_bytes(ca_cert.public_bytes(serialization.Encoding.PEM))
     sk, sc = leaf(server_host, True)
     write_key(sk, files.server_key)
@@ -113,26 +147,67 @@ def _make_tls_cryptography(folder: Path, name: str, server_host: str) -> TLSFile
 def _make_tls_openssl(folder: Path, name: str, server_host: str) -> TLSFiles:
     openssl = shutil.which("openssl")
     if not openssl:
-        pytest.fail("neither the 'cryptography' package nor the openssl binary is available to make test "
-                    "certificates: pip install cryptography")
-    files = TLSFiles(folder / f"{name}-ca.crt", folder / f"{name}-server.crt", folder / f"{name}-server.key",
-                     folder / f"{name}-client.crt", folder / f"{name}-client.key")
+        pytest.fail(
+            "neither the 'cryptography' package nor the openssl binary is available to make test "
+            "certificates: pip install cryptography"
+        )
+    files = TLSFiles(
+        folder / f"{name}-ca.crt",
+        folder / f"{name}-server.crt",
+        folder / f"{name}-server.key",
+        folder / f"{name}-client.crt",
+        folder / f"{name}-client.key",
+    )
     ca_key = folder / f"{name}-ca.key"
 
     def run(*args: str) -> None:
         subprocess.run([openssl, *args], check=True, capture_output=True, cwd=folder)
 
-    run("req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "2", "-subj", f"/CN={name} CA",
-        "-keyout", str(ca_key), "-out", str(files.ca))
-    for cn, key, crt, ext in ((server_host, files.server_key, files.server_cert,
-                               f"subjectAltName=DNS:{server_host},IP:127.0.0.1\nextendedKeyUsage=serverAuth"),
-                              (f"{name}-client", files.client_key, files.client_cert, "extendedKeyUsage=clientAuth")):
+    run(
+        "req",
+        "-x509",
+        "-newkey",
+        "rsa:2048",
+        "-nodes",
+        "-days",
+        "2",
+        "-subj",
+        f"/CN={name} CA",
+        "-keyout",
+        str(ca_key),
+        "-out",
+        str(files.ca),
+    )
+    for cn, key, crt, ext in (
+        (
+            server_host,
+            files.server_key,
+            files.server_cert,
+            f"subjectAltName=DNS:{server_host},IP:127.0.0.1\nextendedKeyUsage=serverAuth",
+        ),
+        (f"{name}-client", files.client_key, files.client_cert, "extendedKeyUsage=clientAuth"),
+    ):
         csr = folder / f"{cn}.csr"
         extfile = folder / f"{cn}.ext"
         extfile.write_text(ext + "\n")
         run("req", "-newkey", "rsa:2048", "-nodes", "-subj", f"/CN={cn}", "-keyout", str(key), "-out", str(csr))
-        run("x509", "-req", "-in", str(csr), "-CA", str(files.ca), "-CAkey", str(ca_key), "-CAcreateserial",
-            "-days", "2", "-extfile", str(extfile), "-out", str(crt))
+        run(
+            "x509",
+            "-req",
+            "-in",
+            str(csr),
+            "-CA",
+            str(files.ca),
+            "-CAkey",
+            str(ca_key),
+            "-CAcreateserial",
+            "-days",
+            "2",
+            "-extfile",
+            str(extfile),
+            "-out",
+            str(crt),
+        )
     return files
 
 
@@ -156,9 +231,15 @@ class Broker:
     notes advise for the field.
     """
 
-    def __init__(self, folder: Path, tls: TLSFiles | None = None, passwords: dict[str, str] | None = None,
-                 require_client_cert: bool = False, max_queued: int = 10000,
-                 acl: str | None = None) -> None:
+    def __init__(
+        self,
+        folder: Path,
+        tls: TLSFiles | None = None,
+        passwords: dict[str, str] | None = None,
+        require_client_cert: bool = False,
+        max_queued: int = 10000,
+        acl: str | None = None,
+    ) -> None:
         self.folder = folder
         folder.mkdir(parents=True, exist_ok=True)
         self.port = free_port()
@@ -194,8 +275,12 @@ class Broker:
             acl_path.write_text(acl)
             lines.append(f"acl_file {acl_path}")
         if tls is not None:
-            lines += [f"cafile {tls.ca}", f"certfile {tls.server_cert}", f"keyfile {tls.server_key}",
-                      "tls_version tlsv1.2"]
+            lines += [
+                f"cafile {tls.ca}",
+                f"certfile {tls.server_cert}",
+                f"keyfile {tls.server_key}",
+                "tls_version tlsv1.2",
+            ]
             if require_client_cert:
                 lines += ["require_certificate true"]
         self.conf = folder / "mosquitto.conf"
@@ -204,14 +289,15 @@ class Broker:
 
     def start(self, timeout: float = 10.0) -> None:
         exe = mosquitto_binary()
-        self.proc = subprocess.Popen([exe, "-c", str(self.conf)], stdout=subprocess.DEVNULL,
-                                     stderr=subprocess.PIPE)
+        self.proc = subprocess.Popen([exe, "-c", str(self.conf)], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
                 err = self.proc.stderr.read().decode(errors="replace") if self.proc.stderr else ""
-                pytest.fail(f"mosquitto could not start on port {self.port}: {err.strip()} {self.log_text()[-800:]}"
-                            f" (is it installed? {INSTALL_HINT})")
+                pytest.fail(
+                    f"mosquitto could not start on port {self.port}: {err.strip()} {self.log_text()[-800:]}"
+                    f" (is it installed? {INSTALL_HINT})"
+                )
             try:
                 with socket.create_connection((self.host, self.port), timeout=0.2):
                     return
@@ -239,16 +325,8 @@ class Broker:
         except FileNotFoundError:
             return ""
 
-    def __enter__(self) -> "Broker":
+    def __enter__(self) -> Broker:
         return self
 
     def __exit__(self, *exc: object) -> None:
         self.stop()
-
-
-@pytest.fixture
-def broker(tmp_path):
-    """A plain (anonymous, no TLS) broker for one test."""
-    b = Broker(tmp_path / "broker")
-    yield b
-    b.stop()

@@ -1,7 +1,7 @@
 """The live agent as a real process against a real mosquitto: alerts, state, crashes, TLS, replay.
 
 Each test starts its own broker on a free port (tests/broker.py) and runs
-``python -m watchdog_edge.cli run`` as a subprocess; nothing is mocked.
+``python -m watchdog_edge.cli.app run`` as a subprocess; nothing is mocked.
 """
 
 from __future__ import annotations
@@ -16,18 +16,18 @@ import time
 from pathlib import Path
 
 import numpy as np
-import pytest
 import paho.mqtt.client as paho
+import pytest
+from broker import Broker, make_tls
 from paho.mqtt.enums import CallbackAPIVersion
 
-from broker import Broker, make_tls  # noqa: F401  (fixture module beside the tests)
-from broker import broker  # noqa: F401  pytest fixture
-from watchdog_edge.cards import ModelCard, save_card
-from watchdog_edge.events import Alert
-from watchdog_edge.monitor import Monitor, load_cards
-from watchdog_edge.config import load_config
-from watchdog_edge.replay import read_recording, replay
-from watchdog_edge.store import Store, read_dead_letters, state_path
+from watchdog_edge.agent.store import Store, read_dead_letters, state_path
+from watchdog_edge.core.cards import ModelCard
+from watchdog_edge.core.events import Alert
+from watchdog_edge.core.monitor import Monitor
+from watchdog_edge.files.cardfile import save_card
+from watchdog_edge.files.configfile import load_cards, load_config
+from watchdog_edge.replay.recording import read_recording, replay
 
 PRED = "plant/pump/pred"
 TRUTH = "plant/pump/truth"
@@ -38,16 +38,29 @@ REPO = Path(__file__).resolve().parents[1]
 
 
 # --- set-up helpers ------------------------------------------------------------------------
-def write_setup(tmp: Path, broker: Broker, broker_extra: str = "", agent_extra: str = "",
-                checks: str = "", window: str = "size = 60\nmin_pairs = 40", snapshot_every_s: float = 1.0) -> Path:
+def write_setup(
+    tmp: Path,
+    broker: Broker,
+    broker_extra: str = "",
+    agent_extra: str = "",
+    checks: str = "",
+    window: str = "size = 60\nmin_pairs = 40",
+    snapshot_every_s: float = 1.0,
+) -> Path:
     """A card with held-out squared loss 1.0 and a config for model 'pump' talking to ``broker``."""
-    card = ModelCard(model_id="pump", model_version="v1", loss="squared", training={"loss": 0.9, "count": 5000},
-                     fitted_parameters=4, least_squares=True, holdout={"loss": 1.0, "count": 1000})
+    card = ModelCard(
+        model_id="pump",
+        model_version="v1",
+        loss="squared",
+        training={"loss": 0.9, "count": 5000},
+        fitted_parameters=4,
+        least_squares=True,
+        holdout={"loss": 1.0, "count": 1000},
+    )
     save_card(card, tmp / "pump.card.json")
-    checks = checks or ('[models.checks.gap]\nevaluate_every = 5\n'
-                        '[models.checks.silence]\nenabled = false\n')
+    checks = checks or ("[models.checks.gap]\nevaluate_every = 5\n[models.checks.silence]\nenabled = false\n")
     # the card has no feature profiles, so the input checks have nothing to watch here
-    checks += '[models.checks.range]\nenabled = false\n[models.checks.shift]\nenabled = false\n'
+    checks += "[models.checks.range]\nenabled = false\n[models.checks.shift]\nenabled = false\n"
     text = f"""
 [agent]
 name = "edge-1"
@@ -58,7 +71,7 @@ state_every_s = 0.5
 {agent_extra}
 
 [broker]
-host = "{broker.host_name if hasattr(broker, 'host_name') else broker.host}"
+host = "{broker.host_name if hasattr(broker, "host_name") else broker.host}"
 port = {broker.port}
 keepalive = 5
 reconnect_min_s = 0.1
@@ -82,8 +95,16 @@ truth_topic = "{TRUTH}"
 class Client:
     """A test-side MQTT client that records what it receives (a subscriber and a publisher)."""
 
-    def __init__(self, broker: Broker, client_id: str, subscribe: list[str] = (), clean: bool = True,
-                 tls: dict | None = None, auth: tuple[str, str] | None = None, host: str | None = None) -> None:
+    def __init__(
+        self,
+        broker: Broker,
+        client_id: str,
+        subscribe: list[str] = (),
+        clean: bool = True,
+        tls: dict | None = None,
+        auth: tuple[str, str] | None = None,
+        host: str | None = None,
+    ) -> None:
         self.messages: list[paho.MQTTMessage] = []
         self.lock = threading.Lock()
         self.c = paho.Client(CallbackAPIVersion.VERSION2, client_id=client_id, clean_session=clean)
@@ -149,8 +170,13 @@ class AgentProc:
         e = dict(os.environ, PYTHONPATH=str(REPO) + os.pathsep + os.environ.get("PYTHONPATH", ""))
         if env:
             e.update(env)
-        self.proc = subprocess.Popen([sys.executable, "-m", "watchdog_edge.cli", "run", "--config", str(config),
-                                      *extra], stdout=self._fh, stderr=subprocess.STDOUT, env=e, cwd=config.parent)
+        self.proc = subprocess.Popen(
+            [sys.executable, "-m", "watchdog_edge.cli.app", "run", "--config", str(config), *extra],
+            stdout=self._fh,
+            stderr=subprocess.STDOUT,
+            env=e,
+            cwd=config.parent,
+        )
 
     def text(self) -> str:
         if not self._fh.closed:
@@ -213,10 +239,25 @@ def test_end_to_end_gap_alert_and_retained_state(tmp_path, broker, protocol):
         watcher.wait_for(lambda: watcher.json_on(ALERTS), what="a gap alert")
         a = watcher.json_on(ALERTS)[0]
         assert (a["check"], a["state"], a["severity"], a["model"], a["agent"]) == (
-            "gap", "raised", "critical", "pump", "edge-1")
+            "gap",
+            "raised",
+            "critical",
+            "pump",
+            "edge-1",
+        )
         assert a["model_version"] == "v1"
-        assert set(a) == {"alert_id", "agent", "model", "model_version", "check", "state", "severity", "ts",
-                          "summary", "figures"}
+        assert set(a) == {
+            "alert_id",
+            "agent",
+            "model",
+            "model_version",
+            "check",
+            "state",
+            "severity",
+            "ts",
+            "summary",
+            "figures",
+        }
         assert a["figures"]["expected_loss"] == 1.0
         # retained state, read by a client that connects afterwards
         late = Client(broker, "late-reader", [STATE, STATUS])
@@ -224,8 +265,9 @@ def test_end_to_end_gap_alert_and_retained_state(tmp_path, broker, protocol):
         # the first one comes from the broker's retained copy (later ones are live updates)
         assert late.on(STATE)[0].retain and late.on(STATUS)[0].retain
         # the state is republished right after the alert goes out
-        late.wait_for(lambda: late.json_on(STATE)[-1]["checks"]["gap"]["state"] == "critical",
-                      what="state showing the gap")
+        late.wait_for(
+            lambda: late.json_on(STATE)[-1]["checks"]["gap"]["state"] == "critical", what="state showing the gap"
+        )
         state = late.json_on(STATE)[-1]
         assert state["pairs"] >= 40
         # the status is refreshed every agent.state_every_s with the core's counters
@@ -247,16 +289,20 @@ def test_last_will_sets_status_offline_after_sigkill(tmp_path, broker):
     watcher = Client(broker, "watcher", [STATUS])
     agent = AgentProc(cfg)
     agent.wait_ready()
-    watcher.wait_for(lambda: watcher.on(STATUS) and watcher.json_on(STATUS)[-1]["state"] == "online",
-                     what="status online")
+    watcher.wait_for(
+        lambda: watcher.on(STATUS) and watcher.json_on(STATUS)[-1]["state"] == "online", what="status online"
+    )
     agent.stop(signal.SIGKILL)
     # MQTT 3.1.1 section 3.1.2.5: the server publishes the will when the network connection
     # closes without a DISCONNECT; it was set retained, so a later reader sees it too (section number from memory).
     watcher.wait_for(lambda: watcher.json_on(STATUS)[-1]["state"] == "offline", what="the last will")
     late = Client(broker, "late", [STATUS])
     late.wait_for(lambda: late.on(STATUS), what="retained status")
-    assert late.json_on(STATUS)[-1] == {"agent": "edge-1", "state": "offline",
-                                        "version": late.json_on(STATUS)[-1]["version"]}
+    assert late.json_on(STATUS)[-1] == {
+        "agent": "edge-1",
+        "state": "offline",
+        "version": late.json_on(STATUS)[-1]["version"],
+    }
     assert late.on(STATUS)[-1].retain
     late.close()
     watcher.close()
@@ -275,13 +321,15 @@ def _alerts_by_id(msgs: list[dict]) -> dict[str, dict]:
 def _replay_alerts(cfg: Path, recording: Path) -> list[dict]:
     config = load_config(cfg)
     mon = Monitor(config, load_cards(config))
-    from watchdog_edge.agent import alert_payload
+    from watchdog_edge.agent.agent import alert_payload
 
     return [json.loads(alert_payload(e)) for e in replay(mon, read_recording(recording)) if isinstance(e, Alert)]
 
 
-SILENCE = ('[models.checks.gap]\nevaluate_every = 5\n'
-           '[models.checks.silence]\nprediction_timeout_s = 1.0\ntruth_timeout_s = 1.0\n')
+SILENCE = (
+    "[models.checks.gap]\nevaluate_every = 5\n"
+    "[models.checks.silence]\nprediction_timeout_s = 1.0\ntruth_timeout_s = 1.0\n"
+)
 
 
 def test_broker_down_while_the_model_degrades_every_alert_arrives(tmp_path, broker):
@@ -309,12 +357,15 @@ def test_broker_down_while_the_model_degrades_every_alert_arrives(tmp_path, brok
             nonlocal expected
             got = _alerts_by_id(watcher.json_on(ALERTS))
             return {"gap", "silence"} <= {a["check"] for a in got.values()} and any(
-                a["state"] == "cleared" for a in got.values() if a["check"] == "silence")
+                a["state"] == "cleared" for a in got.values() if a["check"] == "silence"
+            )
 
         try:
             watcher.wait_for(all_arrived, timeout=20, what="gap and silence alerts after the restart")
         except AssertionError:
-            raise AssertionError(f"{[(a['check'], a['state']) for a in watcher.json_on(ALERTS)]}\n{agent.text()}")
+            raise AssertionError(
+                f"{[(a['check'], a['state']) for a in watcher.json_on(ALERTS)]}\n{agent.text()}"
+            ) from None
         pub.close()
     finally:
         rc = agent.stop()
@@ -381,10 +432,15 @@ def test_sigkill_mid_stream_then_restart_counts_each_acknowledged_record_once(tm
         stop.set()
         th.join(20)
         n = len(acked_preds)
-        watcher.wait_for(lambda: watcher.json_on(STATUS)[-1].get("predictions", -1) == n
-                         and watcher.json_on(STATUS)[-1].get("truths", -1) == len(acked_truths),
-                         timeout=20, what=f"status counting {n} predictions, {len(acked_truths)} truths",
-                         detail=lambda: f"{watcher.json_on(STATUS)[-1]}\n{agent.text()}\n{agent2.text()}")
+        watcher.wait_for(
+            lambda: (
+                watcher.json_on(STATUS)[-1].get("predictions", -1) == n
+                and watcher.json_on(STATUS)[-1].get("truths", -1) == len(acked_truths)
+            ),
+            timeout=20,
+            what=f"status counting {n} predictions, {len(acked_truths)} truths",
+            detail=lambda: f"{watcher.json_on(STATUS)[-1]}\n{agent.text()}\n{agent2.text()}",
+        )
     finally:
         stop.set()
         rc = agent2.stop() if "agent2" in locals() else None
@@ -409,7 +465,7 @@ def test_sigkill_mid_stream_then_restart_counts_each_acknowledged_record_once(tm
 def _outbox(db_path: Path) -> list:
     import sqlite3
 
-    from watchdog_edge.store import OutboxItem
+    from watchdog_edge.agent.store import OutboxItem
 
     if not db_path.exists():
         return []
@@ -428,7 +484,7 @@ def test_tls_and_password_accepted_wrong_password_and_untrusted_ca_refused(tmp_p
     b = Broker(tmp_path / "broker", tls=tls, passwords={"edge": "right-one"})
     try:
         (tmp_path / "pw-bad").write_text("wrong-one\n")
-        base = (f'username = "edge"\n[broker.tls]\nca_file = "{tls.ca}"\n')
+        base = f'username = "edge"\n[broker.tls]\nca_file = "{tls.ca}"\n'
         good = write_setup(tmp_path, b, broker_extra='password_env = "WD_TEST_BROKER_PW"\n' + base)
         agent = AgentProc(good, env={"WD_TEST_BROKER_PW": "right-one"})
         agent.wait_ready()
@@ -445,9 +501,13 @@ def test_tls_and_password_accepted_wrong_password_and_untrusted_ca_refused(tmp_p
         assert len(line) == 1 and "refused the connection" in line[0] and "password" in line[0], out
         assert "wrong-one" not in out
 
-        untrusted = write_setup(tmp_path, b, broker_extra=(
-            'username = "edge"\npassword_env = "WD_TEST_BROKER_PW"\n'
-            f'[broker.tls]\nca_file = "{rogue.ca}"\n'))
+        untrusted = write_setup(
+            tmp_path,
+            b,
+            broker_extra=(
+                f'username = "edge"\npassword_env = "WD_TEST_BROKER_PW"\n[broker.tls]\nca_file = "{rogue.ca}"\n'
+            ),
+        )
         a3 = AgentProc(untrusted, env={"WD_TEST_BROKER_PW": "right-one"})
         rc = a3.proc.wait(20)
         out = a3.text()
@@ -460,7 +520,7 @@ def test_tls_and_password_accepted_wrong_password_and_untrusted_ca_refused(tmp_p
 
 
 def test_live_alerts_equal_replay_of_the_recording(tmp_path, broker):
-    cfg = write_setup(tmp_path, broker, checks=SILENCE + '[models.checks.drift]\nenabled = false\n')
+    cfg = write_setup(tmp_path, broker, checks=SILENCE + "[models.checks.drift]\nenabled = false\n")
     rec = tmp_path / "live.jsonl"
     watcher = Client(broker, "watcher", [ALERTS])
     agent = AgentProc(cfg, "--record", str(rec))
@@ -531,18 +591,36 @@ def test_bad_payloads_go_to_dead_letters_with_their_reason_and_good_ones_pair(tm
         assert d.size == (1024 if reason == "oversize" else len(payload))
     assert f"{len(bad[-1][1])} bytes" in letters[len(bad) - 1].detail
     assert json.loads(letters[-1].payload) == {"id": 2001}
-    assert status["bad"] == {"not_json": 2, "not_object": 1, "missing_id": 1, "missing_value": 2, "bad_type": 1,
-                             "not_finite": 2, "bad_ts": 1, "oversize": 1}
+    assert status["bad"] == {
+        "not_json": 2,
+        "not_object": 1,
+        "missing_id": 1,
+        "missing_value": 2,
+        "bad_type": 1,
+        "not_finite": 2,
+        "bad_ts": 1,
+        "oversize": 1,
+    }
     # and the operator's command shows them
     env = dict(os.environ, PYTHONPATH=str(REPO))
-    out = subprocess.run([sys.executable, "-m", "watchdog_edge.cli", "deadletters", "--config", str(cfg), "--json"],
-                         capture_output=True, text=True, env=env, timeout=30)
+    out = subprocess.run(
+        [sys.executable, "-m", "watchdog_edge.cli.app", "deadletters", "--config", str(cfg), "--json"],
+        capture_output=True,
+        text=True,
+        env=env,
+        timeout=30,
+    )
     assert out.returncode == 0, out.stderr
     rows = [json.loads(x) for x in out.stdout.splitlines()]
     assert [r["reason"] for r in rows] == [d.reason for d in letters]
     assert "payload_b64" in rows[1] and rows[0]["payload"] == "{not json"
-    table = subprocess.run([sys.executable, "-m", "watchdog_edge.cli", "deadletters", "--config", str(cfg),
-                            "--last", "2"], capture_output=True, text=True, env=env, timeout=30)
+    table = subprocess.run(
+        [sys.executable, "-m", "watchdog_edge.cli.app", "deadletters", "--config", str(cfg), "--last", "2"],
+        capture_output=True,
+        text=True,
+        env=env,
+        timeout=30,
+    )
     assert table.returncode == 0 and "oversize" in table.stdout and "missing_value" in table.stdout
 
 
@@ -569,9 +647,14 @@ def test_refusal_while_running_is_logged_counted_and_survived(tmp_path):
         make_password_file(b.folder / "passwords", {"edge": "first", "reader": "r"})
         b.start()
         reader = Client(b, "reader", [STATUS], auth=("reader", "r"))
-        reader.wait_for(lambda: any(s.get("link", {}).get("connection_refused", 0) >= 1
-                                    and s["state"] == "online" for s in reader.json_on(STATUS)),
-                        timeout=20, what="status counting the refusal")
+        reader.wait_for(
+            lambda: any(
+                s.get("link", {}).get("connection_refused", 0) >= 1 and s["state"] == "online"
+                for s in reader.json_on(STATUS)
+            ),
+            timeout=20,
+            what="status counting the refusal",
+        )
         last = [s for s in reader.json_on(STATUS) if s.get("link")][-1]
         assert "password" in last["link"]["last_refusal"]
         reader.close()
@@ -585,8 +668,8 @@ def test_a_redelivered_message_already_journaled_is_acknowledged_and_not_fed_twi
     # MQTT 3.1.1, 4.4: a message whose PUBACK did not reach the broker comes again with DUP
     # set and the same packet id. The agent's own batch step is driven here with such
     # messages; the link is never started (nothing goes over the network).
-    from watchdog_edge.agent import Agent
-    from watchdog_edge.mqtt import Inbound
+    from watchdog_edge.agent.agent import Agent
+    from watchdog_edge.agent.link import Inbound
 
     cfg = write_setup(tmp_path, broker)
     config = load_config(cfg)

@@ -1,7 +1,7 @@
 """Alert state rules: transitions only, ids stable and distinct as the contract says."""
 
-from watchdog_edge.alerts import AlertBook, alert_id
-from watchdog_edge.checks.base import Verdict
+from watchdog_edge.core.alerts import AlertBook, alert_id
+from watchdog_edge.core.checks.base import Verdict
 
 OK, WARN, CRIT = Verdict("ok", "fine"), Verdict("warning", "up"), Verdict("critical", "way up")
 
@@ -23,17 +23,32 @@ def test_ids_differ_between_raise_and_clear_and_repeat_for_resends():
     assert c.alert_id == alert_id("gw", "m", "v1", "gap", 10.0, "cleared", "warning")  # episode start, not clear time
     # Every input of the id matters.
     base = ("gw", "m", "v1", "gap", 10.0, "raised", "warning")
-    variants = [("gw2",) + base[1:], base[:1] + ("m2",) + base[2:], base[:2] + ("v2",) + base[3:],
-                base[:3] + ("drift",) + base[4:], base[:4] + (11.0,) + base[5:],
-                base[:6] + ("critical",)]
+    variants = [
+        ("gw2",) + base[1:],
+        base[:1] + ("m2",) + base[2:],
+        base[:2] + ("v2",) + base[3:],
+        base[:3] + ("drift",) + base[4:],
+        base[:4] + (11.0,) + base[5:],
+        base[:6] + ("critical",),
+    ]
     assert len({alert_id(*v) for v in variants} | {alert_id(*base)}) == len(variants) + 1
 
 
 def test_contract_json_fields():
     a = AlertBook("gw", "m").update("gap", Verdict("warning", "Live loss is up.", {"pairs": 500}), 1764600000.25, None)
     d = a.to_dict()
-    assert list(d) == ["alert_id", "agent", "model", "model_version", "check", "state", "severity",
-                       "ts", "summary", "figures"]
+    assert list(d) == [
+        "alert_id",
+        "agent",
+        "model",
+        "model_version",
+        "check",
+        "state",
+        "severity",
+        "ts",
+        "summary",
+        "figures",
+    ]
     assert d["ts"] == "2025-12-01T14:40:00.250Z"
     assert d["figures"] == {"pairs": 500}
 
@@ -43,5 +58,8 @@ def test_new_version_closes_open_episodes():
     b.update("gap", WARN, 1.0, "v1")
     b.update("range", CRIT, 2.0, "v1")
     closed = b.close_all(3.0, "v1", "new version")
-    assert {(a.check, a.state, a.severity) for a in closed} == {("gap", "cleared", "warning"), ("range", "cleared", "critical")}
+    assert {(a.check, a.state, a.severity) for a in closed} == {
+        ("gap", "cleared", "warning"),
+        ("range", "cleared", "critical"),
+    }
     assert b.level("gap") == "ok"

@@ -9,10 +9,11 @@ import typer
 from sklearn.metrics import mean_absolute_error, mean_squared_error
 from typer.testing import CliRunner
 
-from watchdog_edge.cardbuild import build_card, quantile_histogram, read_table, render_card
-from watchdog_edge.cards import expected_loss, load_card
-from watchdog_edge.cli_card import app as card_app
+from watchdog_edge.cli.card import app as card_app
+from watchdog_edge.core.cards import expected_loss
 from watchdog_edge.errors import CardError, DataError
+from watchdog_edge.files.cardbuild import build_card, quantile_histogram, read_table, render_card
+from watchdog_edge.files.cardfile import load_card
 
 cli = typer.Typer()
 cli.add_typer(card_app, name="card")
@@ -38,9 +39,11 @@ def rows():
 @pytest.fixture()
 def files(tmp_path, rows):
     x1, x2, y, pred = rows
-    train = write(tmp_path / "t.csv", ["id", "flow", "site", "valve", "y", "p"],
-                  [[i, a, "north", b, c, d] for i, (a, b, c, d) in
-                   enumerate(zip(x1[:200], x2[:200], y[:200], pred[:200]))])
+    train = write(
+        tmp_path / "t.csv",
+        ["id", "flow", "site", "valve", "y", "p"],
+        [[i, a, "north", b, c, d] for i, (a, b, c, d) in enumerate(zip(x1[:200], x2[:200], y[:200], pred[:200]))],
+    )
     hold = write(tmp_path / "h.csv", ["flow", "y", "p"], list(zip(x1[200:], y[200:], pred[200:])))
     return train, hold
 
@@ -80,8 +83,9 @@ def test_losses_and_counts_match_numpy_and_scikit_learn(files, rows):
     assert card.holdout.loss == pytest.approx(mean_squared_error(y[200:], pred[200:]), rel=1e-12)
     assert (card.training.count, card.holdout.count) == (200, 100)
     assert expected_loss(card) == (card.holdout.loss, "holdout")
-    ab = build_card(train, target="y", prediction="p", params=3, loss="absolute", least_squares=False,
-                    holdout_path=hold)
+    ab = build_card(
+        train, target="y", prediction="p", params=3, loss="absolute", least_squares=False, holdout_path=hold
+    )
     assert ab.loss == "absolute"
     assert ab.training.loss == pytest.approx(mean_absolute_error(y[:200], pred[:200]), rel=1e-12)
     assert ab.holdout.loss == pytest.approx(np.mean(np.abs(y[200:] - pred[200:])), rel=1e-12)
@@ -97,8 +101,9 @@ def test_defaults_features_id_and_envelope(files, rows):
     assert card.model_id == "t" and card.model_version is None
     assert card.features["flow"].min == pytest.approx(x1[:200].min())
     assert card.features["valve"].max == pytest.approx(x2[:200].max())
-    chosen = build_card(train, target="y", prediction="p", params=3, features=["valve"], model_id="pump-7",
-                        version="1.2", bins=4)
+    chosen = build_card(
+        train, target="y", prediction="p", params=3, features=["valve"], model_id="pump-7", version="1.2", bins=4
+    )
     assert list(chosen.features) == ["valve"] and chosen.model_id == "pump-7" and chosen.model_version == "1.2"
     assert len(chosen.features["valve"].histogram.shares) == 4
 
@@ -187,9 +192,30 @@ def test_cli_build_then_show_round_trip(tmp_path, rows):
     x1, x2, y, pred = rows
     train = write(tmp_path / "train.csv", ["flow", "valve", "y", "p"], list(zip(x1, x2, y, pred)))
     out = tmp_path / "card.json"
-    r = CliRunner().invoke(cli, ["card", "build", str(train), "--target", "y", "--prediction", "p", "--params", "3",
-                                 "--features", "flow", "--id", "pump-7", "--version", "1.2", "--bins", "5",
-                                 "-o", str(out)])
+    r = CliRunner().invoke(
+        cli,
+        [
+            "card",
+            "build",
+            str(train),
+            "--target",
+            "y",
+            "--prediction",
+            "p",
+            "--params",
+            "3",
+            "--features",
+            "flow",
+            "--id",
+            "pump-7",
+            "--version",
+            "1.2",
+            "--bins",
+            "5",
+            "-o",
+            str(out),
+        ],
+    )
     assert r.exit_code == 0, r.output
     data = json.loads(out.read_text())
     assert data["model_id"] == "pump-7" and data["model_version"] == "1.2" and list(data["features"]) == ["flow"]
@@ -207,8 +233,27 @@ def test_cli_build_then_show_round_trip(tmp_path, rows):
 def test_cli_show_with_holdout_prints_its_loss(tmp_path, files):
     train, hold = files
     out = tmp_path / "c.json"
-    r = CliRunner().invoke(cli, ["card", "build", str(train), "--target", "y", "--prediction", "p", "--params", "3",
-                                 "--loss", "absolute", "--not-least-squares", "--holdout", str(hold), "-o", str(out)])
+    r = CliRunner().invoke(
+        cli,
+        [
+            "card",
+            "build",
+            str(train),
+            "--target",
+            "y",
+            "--prediction",
+            "p",
+            "--params",
+            "3",
+            "--loss",
+            "absolute",
+            "--not-least-squares",
+            "--holdout",
+            str(hold),
+            "-o",
+            str(out),
+        ],
+    )
     assert r.exit_code == 0, r.output
     card = load_card(out)
     assert card.loss == "absolute" and card.least_squares is False
@@ -219,8 +264,9 @@ def test_cli_show_with_holdout_prints_its_loss(tmp_path, files):
 def test_cli_errors_are_one_line_on_stderr_with_exit_code_2(tmp_path, files):
     train, _ = files
     out = tmp_path / "card.json"
-    r = CliRunner().invoke(cli, ["card", "build", str(train), "--target", "nope", "--prediction", "p",
-                                 "--params", "3", "-o", str(out)])
+    r = CliRunner().invoke(
+        cli, ["card", "build", str(train), "--target", "nope", "--prediction", "p", "--params", "3", "-o", str(out)]
+    )
     assert r.exit_code == 2 and r.stdout == ""
     assert r.stderr.count("\n") == 1 and "no target column 'nope'" in r.stderr
     assert "Traceback" not in r.output and not out.exists()

@@ -4,11 +4,11 @@ import json
 
 import numpy as np
 import pytest
-
-from watchdog_edge.cards import ModelCard, expected_loss, final_prediction_error, load_card
-from watchdog_edge.errors import CardError
-
 from helpers import card
+
+from watchdog_edge.core.cards import ModelCard, expected_loss, final_prediction_error
+from watchdog_edge.errors import CardError
+from watchdog_edge.files.cardfile import load_card
 
 
 def test_load_errors_name_the_file_and_field(tmp_path):
@@ -80,5 +80,9 @@ def test_final_prediction_error_formula_and_its_limit():
 
 def test_histogram_shape_is_validated():
     with pytest.raises(ValueError, match="one share per bin"):
-        ModelCard(model_id="m", training={"loss": 1, "count": 10}, fitted_parameters=1,
-                  features={"a": {"min": 0, "max": 1, "histogram": {"edges": [0, 1], "shares": [0.5, 0.5]}}})
+        ModelCard(
+            model_id="m",
+            training={"loss": 1, "count": 10},
+            fitted_parameters=1,
+            features={"a": {"min": 0, "max": 1, "histogram": {"edges": [0, 1], "shares": [0.5, 0.5]}}},
+        )

@@ -11,17 +11,22 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from watchdog_edge.cards import ModelCard
-from watchdog_edge.checks import check_class, settings_class
-from watchdog_edge.checks.base import CheckContext
-from watchdog_edge.records import Pair, Prediction, Truth
+from watchdog_edge.core.cards import ModelCard
+from watchdog_edge.core.checks import check_class, settings_class
+from watchdog_edge.core.checks.base import CheckContext
+from watchdog_edge.core.records import Pair, Prediction, Truth
 
 EDGES = [-3.0, -1.0, 0.0, 1.0, 3.0]
 CARD = ModelCard(
-    model_id="kiln", training={"loss": 1.0, "count": 2000}, fitted_parameters=4, least_squares=True,
+    model_id="kiln",
+    training={"loss": 1.0, "count": 2000},
+    fitted_parameters=4,
+    least_squares=True,
     holdout={"loss": 1.0, "count": 500},
-    features={n: {"min": -3.0, "max": 3.0, "histogram": {"edges": EDGES, "shares": [0.16, 0.34, 0.34, 0.16]}}
-              for n in ("a", "b")},
+    features={
+        n: {"min": -3.0, "max": 3.0, "histogram": {"edges": EDGES, "shares": [0.16, 0.34, 0.34, 0.16]}}
+        for n in ("a", "b")
+    },
 )
 SETTINGS = {
     "gap": {"evaluate_every": 7},

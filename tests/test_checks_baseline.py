@@ -11,29 +11,40 @@ import pytest
 from pydantic import ValidationError
 from scipy import stats as sps
 
-from watchdog_edge.cards import ModelCard, format_validation
-from watchdog_edge.checks import settings_class
-from watchdog_edge.checks.base import CheckContext
-from watchdog_edge.checks.baseline import BaselineCheck, BaselineSettings, hash_share
-from watchdog_edge.records import Pair, Prediction, Truth
+from watchdog_edge.core.cards import ModelCard, format_validation
+from watchdog_edge.core.checks import settings_class
+from watchdog_edge.core.checks.base import CheckContext
+from watchdog_edge.core.checks.baseline import BaselineCheck, BaselineSettings, hash_share
+from watchdog_edge.core.records import Pair, Prediction, Truth
 
 
 def make_check(window: int = 400, loss: str = "squared", **settings) -> BaselineCheck:
-    card = ModelCard(model_id="oven", loss=loss, training={"loss": 1.0, "count": 1000}, fitted_parameters=3,
-                     holdout={"loss": 1.0, "count": 300})
+    card = ModelCard(
+        model_id="oven",
+        loss=loss,
+        training={"loss": 1.0, "count": 1000},
+        fitted_parameters=3,
+        holdout={"loss": 1.0, "count": 300},
+    )
     ctx = CheckContext("oven", card, loss, 1.0, "holdout", window_size=window, min_pairs=100)
     return BaselineCheck(BaselineSettings(**settings), ctx)
 
 
-def stream(check: BaselineCheck, X: list[dict], y: np.ndarray, pred: np.ndarray, dt: float = 1.0,
-           start: int = 0, ids: list[str] | None = None) -> list:
+def stream(
+    check: BaselineCheck,
+    X: list[dict],
+    y: np.ndarray,
+    pred: np.ndarray,
+    dt: float = 1.0,
+    start: int = 0,
+    ids: list[str] | None = None,
+) -> list:
     out = []
     for i in range(len(y)):
         k = start + i
         t = 1000.0 + k * dt
         pid = ids[i] if ids else str(k)
-        pair = Pair(Prediction("oven", pid, float(pred[i]), t, features=X[i]),
-                    Truth("oven", pid, float(y[i]), t), t)
+        pair = Pair(Prediction("oven", pid, float(pred[i]), t, features=X[i]), Truth("oven", pid, float(y[i]), t), t)
         check.on_pair(pair, (float(y[i]) - float(pred[i])) ** 2)
         v = check.evaluate(t)
         if v is not None:
@@ -65,7 +76,7 @@ def newey_west(d: np.ndarray, bandwidth: float) -> float:
 def test_a_model_worse_than_the_mean_raises_against_mean_with_the_published_statistic():
     rng = np.random.default_rng(3)
     X, y, _ = data(rng, 1200)
-    model = np.full(1200, 3.0) + 1.8          # constant and biased: worse than the running mean
+    model = np.full(1200, 3.0) + 1.8  # constant and biased: worse than the running mean
     check = make_check(learners=["mean"], window=400)
     out = stream(check, X, y, model)
     last = out[-1]
@@ -100,14 +111,14 @@ def test_a_good_model_is_not_beaten_by_any_learner():
     assert out and {v.level for v in out} == {"ok"}
     res = out[-1].figures["learners"]
     assert set(res) == {"mean", "linear", "tree"}
-    assert res["mean"]["margin"] < -1               # the mean is far worse than the true function
+    assert res["mean"]["margin"] < -1  # the mean is far worse than the true function
     assert "No online learner beats" in out[-1].summary
 
 
 def test_a_model_that_ignores_an_input_is_beaten_by_linear_and_critical_past_the_margin():
     rng = np.random.default_rng(7)
     X, y, f = data(rng, 2500)
-    poor = 3 + 2 * np.array([x["a"] for x in X])    # ignores b: extra squared error of 1
+    poor = 3 + 2 * np.array([x["a"] for x in X])  # ignores b: extra squared error of 1
     check = make_check(learners=["mean", "linear"], window=500, critical_margin=0.3)
     out = stream(check, X, y, poor)
     assert out[-1].level == "critical" and out[-1].figures["learner"] == "linear"
@@ -122,11 +133,11 @@ def test_learner_losses_match_river_driven_directly_with_imputation_written_out(
     rng = np.random.default_rng(9)
     X, y, f = data(rng, 600)
     for i in range(0, 600, 7):
-        X[i] = {"a": None, "b": X[i]["b"]}           # null value
+        X[i] = {"a": None, "b": X[i]["b"]}  # null value
     for i in range(3, 600, 11):
-        X[i] = {"a": X[i]["a"]}                      # absent key
+        X[i] = {"a": X[i]["a"]}  # absent key
     for i in range(300, 600):
-        X[i] = dict(X[i], c=float(rng.normal()))     # a feature that appears mid-stream
+        X[i] = dict(X[i], c=float(rng.normal()))  # a feature that appears mid-stream
     check = make_check(learners=["linear"], window=600, min_pairs=600, evaluate_every=600)
     [v] = stream(check, X, y, f)
     ref = preprocessing.StandardScaler() | linear_model.LinearRegression()
@@ -160,8 +171,7 @@ def test_cpu_budget_share_is_chosen_by_a_stable_hash_and_the_rate_is_capped():
     check = make_check(learners=["mean"], learn_share=0.25)
     stream(check, X, y, f, ids=ids)
     # hash_share is BLAKE2b over the id, written out here with hashlib.
-    expect = sum(int.from_bytes(hashlib.blake2b(i.encode(), digest_size=8).digest(), "big") / 2**64 < 0.25
-                 for i in ids)
+    expect = sum(int.from_bytes(hashlib.blake2b(i.encode(), digest_size=8).digest(), "big") / 2**64 < 0.25 for i in ids)
     assert hash_share("batch-7") == int.from_bytes(hashlib.blake2b(b"batch-7", digest_size=8).digest(), "big") / 2**64
     figs = check.figures()
     assert figs["scored"] == expect and figs["skipped_share"] == 2000 - expect
@@ -182,7 +192,7 @@ def test_clears_when_the_model_is_fixed():
     rng = np.random.default_rng(13)
     X, y, f = data(rng, 3000)
     model = f.copy()
-    model[:1000] = 3.0                                # no better than a constant at first
+    model[:1000] = 3.0  # no better than a constant at first
     check = make_check(learners=["linear"], window=300, evaluate_every=50, clear_after=3)
     levels = [v.level for v in stream(check, X, y, model)]
     assert "warning" in levels[:10] and levels[-1] == "ok"

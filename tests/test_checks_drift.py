@@ -10,18 +10,22 @@ import numpy as np
 import pytest
 from pydantic import ValidationError
 
-from watchdog_edge.cards import ModelCard, format_validation
-from watchdog_edge.checks import settings_class
-from watchdog_edge.checks.base import CheckContext
-from watchdog_edge.checks.drift import DriftCheck, DriftSettings, change_point
-from watchdog_edge.records import Pair, Prediction, Truth
+from watchdog_edge.core.cards import ModelCard, format_validation
+from watchdog_edge.core.checks import settings_class
+from watchdog_edge.core.checks.base import CheckContext
+from watchdog_edge.core.checks.drift import DriftCheck, DriftSettings, change_point
+from watchdog_edge.core.records import Pair, Prediction, Truth
 
 EXPECTED = 4.0  # expected squared error: residual standard deviation 2
 
 
 def make_check(window: int = 300, min_pairs: int = 50, **settings) -> DriftCheck:
-    card = ModelCard(model_id="boiler", training={"loss": EXPECTED, "count": 1000}, fitted_parameters=4,
-                     holdout={"loss": EXPECTED, "count": 300})
+    card = ModelCard(
+        model_id="boiler",
+        training={"loss": EXPECTED, "count": 1000},
+        fitted_parameters=4,
+        holdout={"loss": EXPECTED, "count": 300},
+    )
     ctx = CheckContext("boiler", card, "squared", EXPECTED, "holdout", window_size=window, min_pairs=min_pairs)
     return DriftCheck(DriftSettings(**settings), ctx)
 
@@ -35,8 +39,11 @@ def run(check: DriftCheck, err: np.ndarray, start: int = 0, dt: float = 10.0) ->
     out = []
     for i, e in enumerate(err, start):
         t = 1_700_000_000.0 + i * dt
-        pair = Pair(Prediction("boiler", str(i), 50.0, t - 5, ts=t - 7),
-                    Truth("boiler", str(i), 50.0 + float(e), t, ts=t - 2), t)
+        pair = Pair(
+            Prediction("boiler", str(i), 50.0, t - 5, ts=t - 7),
+            Truth("boiler", str(i), 50.0 + float(e), t, ts=t - 2),
+            t,
+        )
         check.on_pair(pair, float(e) ** 2)
         v = check.evaluate(t)
         if v is not None:
@@ -46,22 +53,22 @@ def run(check: DriftCheck, err: np.ndarray, start: int = 0, dt: float = 10.0) ->
 
 def test_a_rise_in_the_loss_is_raised_with_its_change_point_and_the_loss_before_and_after():
     rng = np.random.default_rng(4)
-    err = errors(rng, (3000, 2.0), (1500, 4.0))      # mean squared error 4, then 16
+    err = errors(rng, (3000, 2.0), (1500, 4.0))  # mean squared error 4, then 16
     out = run(make_check(), err)
     assert out, "the rise was not detected"
     i, v = out[0]
     assert v.level == "warning"
-    assert 3000 <= i <= 3000 + 200                     # stated delay: within 200 pairs
+    assert 3000 <= i <= 3000 + 200  # stated delay: within 200 pairs
     f = v.figures
     cp = round((f["change_t"] - 1_700_000_000.0) / 10)
     assert abs(cp - 3000) <= 30
-    assert f["change_ts"] == pytest.approx(f["change_t"] - 2)   # the truth's source time
+    assert f["change_ts"] == pytest.approx(f["change_t"] - 2)  # the truth's source time
     # The means are plain means of the squared errors on each side of the change point; the
     # before side is the segment kept (the last ``history`` pairs, 2000 by default).
-    sq = err ** 2
+    sq = err**2
     assert f["pairs_before"] + f["pairs_after"] == 2000
-    assert f["mean_before"] == pytest.approx(sq[cp - f["pairs_before"]:cp].mean())
-    assert f["mean_after"] == pytest.approx(sq[cp:i + 1].mean())
+    assert f["mean_before"] == pytest.approx(sq[cp - f["pairs_before"] : cp].mean())
+    assert f["mean_after"] == pytest.approx(sq[cp : i + 1].mean())
     assert f["mean_before"] == pytest.approx(4.0, rel=0.1) and f["mean_after"] > 10
     assert f["detector"] == "ADWIN"
     assert "changed for the worse" in v.summary and "ADWIN" in v.summary
@@ -151,8 +158,7 @@ def test_change_point_is_the_least_squares_split():
         n = int(rng.integers(12, 200))
         k0 = int(rng.integers(5, n - 5))
         x = np.r_[rng.normal(0, 1, k0), rng.normal(rng.uniform(-3, 3), 1, n - k0)]
-        rss = [((x[:k] - x[:k].mean()) ** 2).sum() + ((x[k:] - x[k:].mean()) ** 2).sum()
-               for k in range(5, n - 4)]
+        rss = [((x[:k] - x[:k].mean()) ** 2).sum() + ((x[k:] - x[k:].mean()) ** 2).sum() for k in range(5, n - 4)]
         assert change_point(x) == 5 + int(np.argmin(rss))
 
 
@@ -160,7 +166,7 @@ def test_snapshot_restore_mid_episode_gives_identical_verdicts():
     rng = np.random.default_rng(14)
     err = errors(rng, (1500, 2.0), (800, 4.5), (1500, 2.0), (700, 5.0))
     live = make_check()
-    run(live, err[:2100])                 # inside the first episode
+    run(live, err[:2100])  # inside the first episode
     assert live.figures()["level"] == "warning"
     copy = make_check()
     copy.restore(json.loads(json.dumps(live.snapshot())))
@@ -170,10 +176,12 @@ def test_snapshot_restore_mid_episode_gives_identical_verdicts():
 
 
 def test_settings_do_not_import_river_and_are_explained():
-    code = ("import sys; from watchdog_edge.checks import settings_class as s\n"
-            "for n in ('gap', 'range', 'shift', 'silence', 'drift', 'baseline'):\n"
-            "    try:\n        s(n)\n    except ModuleNotFoundError:\n        pass\n"
-            "print(sorted(m for m in ('river', 'scipy') if m in sys.modules))")
+    code = (
+        "import sys; from watchdog_edge.core.checks import settings_class as s\n"
+        "for n in ('gap', 'range', 'shift', 'silence', 'drift', 'baseline'):\n"
+        "    try:\n        s(n)\n    except ModuleNotFoundError:\n        pass\n"
+        "print(sorted(m for m in ('river', 'scipy') if m in sys.modules))"
+    )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]"
     assert settings_class("drift") is DriftSettings

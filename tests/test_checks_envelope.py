@@ -8,18 +8,20 @@ import numpy as np
 import pytest
 from pydantic import ValidationError
 
-from watchdog_edge.cards import ModelCard, format_validation
-from watchdog_edge.checks import settings_class
-from watchdog_edge.checks.base import CheckContext
-from watchdog_edge.checks.envelope import RangeCheck, RangeSettings
-from watchdog_edge.records import Prediction
+from watchdog_edge.core.cards import ModelCard, format_validation
+from watchdog_edge.core.checks import settings_class
+from watchdog_edge.core.checks.base import CheckContext
+from watchdog_edge.core.checks.range import RangeCheck, RangeSettings
+from watchdog_edge.core.records import Prediction
 
 ENVELOPE = {"temp": (10.0, 60.0), "flow": (0.0, 4.0)}
 
 
 def make_check(**settings) -> RangeCheck:
     card = ModelCard(
-        model_id="kiln", training={"loss": 2.0, "count": 500}, fitted_parameters=3,
+        model_id="kiln",
+        training={"loss": 2.0, "count": 500},
+        fitted_parameters=3,
         holdout={"loss": 2.0, "count": 100},
         features={k: {"min": lo, "max": hi} for k, (lo, hi) in ENVELOPE.items()},
     )
@@ -45,7 +47,7 @@ def test_inputs_beyond_the_envelope_raise_and_name_the_features_and_distances():
     rng = np.random.default_rng(1)
     temp = rng.uniform(10, 60, 400)
     flow = rng.uniform(0, 4, 400)
-    temp[300:] = rng.uniform(61, 75, 100)   # the last quarter runs hotter than ever in training
+    temp[300:] = rng.uniform(61, 75, 100)  # the last quarter runs hotter than ever in training
     flow[350] = -0.5
     check = make_check(window=200, evaluate_every=50, min_predictions=200)
     verdicts = run(check, [{"temp": a, "flow": b} for a, b in zip(temp, flow)])
@@ -80,9 +82,16 @@ def test_margin_widens_the_envelope_by_a_share_of_the_range():
 
 
 def test_clears_only_after_the_share_stays_below_the_hysteresis_limit():
-    check = make_check(window=100, min_predictions=100, evaluate_every=10, warning_share=0.1,
-                       critical_share=0.5, hysteresis=0.5, clear_after=3)
-    rows = [{"temp": 30.0}] * 85 + [{"temp": 70.0}] * 15    # 15% outside: warning
+    check = make_check(
+        window=100,
+        min_predictions=100,
+        evaluate_every=10,
+        warning_share=0.1,
+        critical_share=0.5,
+        hysteresis=0.5,
+        clear_after=3,
+    )
+    rows = [{"temp": 30.0}] * 85 + [{"temp": 70.0}] * 15  # 15% outside: warning
     levels = [v.level for v in run(check, rows)]
     assert levels == ["warning"]
     # Ten more inside rows each step: share 14%, 13%, ... The clear needs <= 5% three times.
@@ -99,7 +108,7 @@ def test_clears_only_after_the_share_stays_below_the_hysteresis_limit():
 def test_missing_values_and_rows_without_features_are_not_outside():
     check = make_check(window=20, min_predictions=20, evaluate_every=20)
     for i in range(20):
-        check.on_prediction(Prediction("kiln", str(i), 1.0, float(i)))           # no features
+        check.on_prediction(Prediction("kiln", str(i), 1.0, float(i)))  # no features
     assert check.evaluate(20.0) is None
     [v] = run(check, [{"temp": None, "flow": 2.0, "unknown": 1e9}] * 20)
     assert v.level == "ok" and v.figures["predictions"] == 20
@@ -107,8 +116,7 @@ def test_missing_values_and_rows_without_features_are_not_outside():
 
 def test_snapshot_restore_mid_stream_gives_identical_verdicts():
     rng = np.random.default_rng(7)
-    rows = [{"temp": float(t), "flow": float(f)} for t, f in
-            zip(rng.normal(45, 12, 1200), rng.normal(2, 1.5, 1200))]
+    rows = [{"temp": float(t), "flow": float(f)} for t, f in zip(rng.normal(45, 12, 1200), rng.normal(2, 1.5, 1200))]
     live = make_check(window=150, evaluate_every=7)
     first = run(live, rows[:500])
     copy = make_check(window=150, evaluate_every=7)

@@ -10,13 +10,16 @@ import pytest
 from pydantic import ValidationError
 from scipy import stats as sps
 
-from watchdog_edge.cards import ModelCard, format_validation
-from watchdog_edge.checks import settings_class
-from watchdog_edge.checks.base import CheckContext
-from watchdog_edge.checks.shift import (
-    ShiftCheck, ShiftSettings, population_stability_index, settings_warnings,
+from watchdog_edge.core.cards import ModelCard, format_validation
+from watchdog_edge.core.checks import settings_class
+from watchdog_edge.core.checks.base import CheckContext
+from watchdog_edge.core.checks.shift import (
+    ShiftCheck,
+    ShiftSettings,
+    population_stability_index,
+    settings_warnings,
 )
-from watchdog_edge.records import Prediction
+from watchdog_edge.core.records import Prediction
 
 TRAIN_ROWS = 10_000
 
@@ -24,16 +27,23 @@ TRAIN_ROWS = 10_000
 def training_card(rng: np.random.Generator, bins: int = 10) -> ModelCard:
     """A card whose histograms are the deciles of a training sample (edges from its quantiles)."""
     feats = {}
-    for name, sample in (("pressure", rng.normal(5.0, 1.0, TRAIN_ROWS)),
-                         ("speed", rng.gamma(2.0, 3.0, TRAIN_ROWS))):
+    for name, sample in (("pressure", rng.normal(5.0, 1.0, TRAIN_ROWS)), ("speed", rng.gamma(2.0, 3.0, TRAIN_ROWS))):
         edges = np.quantile(sample, np.linspace(0, 1, bins + 1))
         inner = edges[1:-1]
         idx = np.searchsorted(inner, sample, side="right")
         shares = np.bincount(idx, minlength=bins) / TRAIN_ROWS
-        feats[name] = {"min": float(sample.min()), "max": float(sample.max()),
-                       "histogram": {"edges": edges.tolist(), "shares": shares.tolist()}}
-    return ModelCard(model_id="press", training={"loss": 1.0, "count": TRAIN_ROWS},
-                     fitted_parameters=3, holdout={"loss": 1.0, "count": 500}, features=feats)
+        feats[name] = {
+            "min": float(sample.min()),
+            "max": float(sample.max()),
+            "histogram": {"edges": edges.tolist(), "shares": shares.tolist()},
+        }
+    return ModelCard(
+        model_id="press",
+        training={"loss": 1.0, "count": TRAIN_ROWS},
+        fitted_parameters=3,
+        holdout={"loss": 1.0, "count": 500},
+        features=feats,
+    )
 
 
 def make_check(card: ModelCard, **settings) -> ShiftCheck:
@@ -43,8 +53,7 @@ def make_check(card: ModelCard, **settings) -> ShiftCheck:
 def feed(check: ShiftCheck, pressure, speed, start: int = 0) -> list:
     out = []
     for i, (p, s) in enumerate(zip(pressure, speed), start):
-        check.on_prediction(Prediction("press", str(i), 0.0, float(i),
-                                       features={"pressure": p, "speed": s}))
+        check.on_prediction(Prediction("press", str(i), 0.0, float(i), features={"pressure": p, "speed": s}))
         v = check.evaluate(float(i))
         if v is not None:
             out.append(v)
@@ -57,7 +66,8 @@ def test_worked_example_by_hand():
     #   (0.3 - 0.4) ln(0.3/0.4) = 0.1 x 0.287682 = 0.0287682
     #   the three equal bins add 0;  PSI = 0.0980829
     assert population_stability_index([0.1, 0.2, 0.4, 0.2, 0.1], [20, 20, 30, 20, 10], 0.0) == pytest.approx(
-        0.0980829, abs=1e-7)
+        0.0980829, abs=1e-7
+    )
     # With smoothing 0.5 and an empty bin: expected 50/50 %, observed 10 and 0 (n = 10, 2 bins):
     #   a = (10.5/11, 0.5/11) = (0.954545, 0.045455);  e = (5.5/11, 5.5/11) = (0.5, 0.5)
     #   0.454545 ln(1.909091) + 0.454545 ln(11) = 0.293921 + 1.089952 = 1.383873
@@ -81,10 +91,19 @@ def test_index_is_the_symmetric_kullback_leibler_divergence():
 
 
 def test_bins_follow_the_card_edges_with_open_outer_bins():
-    card = ModelCard(model_id="press", training={"loss": 1.0, "count": 10}, fitted_parameters=1,
-                     holdout={"loss": 1.0, "count": 10},
-                     features={"pressure": {"min": 0, "max": 3, "histogram": {
-                         "edges": [0.0, 1.0, 2.0, 3.0], "shares": [0.3, 0.4, 0.3], "missing": 0.1}}})
+    card = ModelCard(
+        model_id="press",
+        training={"loss": 1.0, "count": 10},
+        fitted_parameters=1,
+        holdout={"loss": 1.0, "count": 10},
+        features={
+            "pressure": {
+                "min": 0,
+                "max": 3,
+                "histogram": {"edges": [0.0, 1.0, 2.0, 3.0], "shares": [0.3, 0.4, 0.3], "missing": 0.1},
+            }
+        },
+    )
     check = make_check(card, window=50, evaluate_every=50)
     values = [-100.0, 0.0, 0.99, 1.0, 1.5, 2.0, 2.999, 3.0, 1e6, None] * 5
     feed(check, values, [1.0] * 50)
@@ -104,7 +123,7 @@ def test_false_alarm_rate_on_unshifted_data_at_the_default_window_is_below_one_p
     settings = ShiftSettings()
     assert settings.window == 1000
     windows = 300
-    check = make_check(card, evaluate_every=settings.window)   # disjoint windows
+    check = make_check(card, evaluate_every=settings.window)  # disjoint windows
     n = windows * settings.window
     verdicts = feed(check, rng.normal(5.0, 1.0, n).tolist(), rng.gamma(2.0, 3.0, n).tolist())
     assert len(verdicts) == windows
@@ -176,9 +195,20 @@ def test_small_windows_are_warned_about_and_bad_settings_explained():
 
 
 def test_check_config_prints_the_small_window_warning():
-    from watchdog_edge.config import config_warnings, parse_config
+    from watchdog_edge.core.settings import config_warnings, parse_config
 
-    cfg = parse_config({"models": [{"id": "press", "card": "press.json", "prediction_topic": "p/pred",
-                                    "truth_topic": "p/truth", "checks": {"shift": {"window": 400}}}]})
+    cfg = parse_config(
+        {
+            "models": [
+                {
+                    "id": "press",
+                    "card": "press.json",
+                    "prediction_topic": "p/pred",
+                    "truth_topic": "p/truth",
+                    "checks": {"shift": {"window": 400}},
+                }
+            ]
+        }
+    )
     [w] = config_warnings(cfg)
     assert w.startswith("models[press].checks.shift: window = 400 is below 1000")

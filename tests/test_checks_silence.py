@@ -7,16 +7,17 @@ import json
 import pytest
 from pydantic import ValidationError
 
-from watchdog_edge.cards import ModelCard, format_validation
-from watchdog_edge.checks import settings_class
-from watchdog_edge.checks.base import CheckContext
-from watchdog_edge.checks.silence import SilenceCheck, SilenceSettings
-from watchdog_edge.records import Prediction, Truth
+from watchdog_edge.core.cards import ModelCard, format_validation
+from watchdog_edge.core.checks import settings_class
+from watchdog_edge.core.checks.base import CheckContext
+from watchdog_edge.core.checks.silence import SilenceCheck, SilenceSettings
+from watchdog_edge.core.records import Prediction, Truth
 
 
 def make_check(**settings) -> SilenceCheck:
-    card = ModelCard(model_id="pump", training={"loss": 1.0, "count": 100}, fitted_parameters=2,
-                     holdout={"loss": 1.0, "count": 50})
+    card = ModelCard(
+        model_id="pump", training={"loss": 1.0, "count": 100}, fitted_parameters=2, holdout={"loss": 1.0, "count": 50}
+    )
     return SilenceCheck(SilenceSettings(**settings), CheckContext("pump", card, "squared", 1.0, "holdout"))
 
 
@@ -46,15 +47,15 @@ def test_ticks_alone_reveal_a_feed_that_stops():
     check = make_check(prediction_timeout_s=60, truth_timeout_s=None)
     check.on_prediction(Prediction("pump", "1", 1.0, 100.0))
     assert check.evaluate(100.0) is None
-    assert check.evaluate(160.0) is None           # exactly the timeout: not longer than it
+    assert check.evaluate(160.0) is None  # exactly the timeout: not longer than it
     v = check.evaluate(161.0)
     assert v.level == "warning" and v.figures["seconds_since_truth"] == 61.0
-    assert check.evaluate(170.0) is None           # no change, nothing new to say
+    assert check.evaluate(170.0) is None  # no change, nothing new to say
 
 
 def test_a_feed_that_never_starts_counts_from_the_first_moment_watched():
     check = make_check(prediction_timeout_s=300, truth_timeout_s=900)
-    assert check.evaluate(1000.0) is None          # the watch starts here (agent start)
+    assert check.evaluate(1000.0) is None  # the watch starts here (agent start)
     for t in range(1000, 1900, 30):
         check.on_prediction(Prediction("pump", str(t), 1.0, float(t)))
         check.evaluate(float(t))
@@ -77,9 +78,9 @@ def test_a_new_model_version_reports_a_lasting_silence_afresh():
     check.on_truth(Truth("pump", "1", 1.0, 0.0))
     check.on_prediction(Prediction("pump", "2", 1.0, 150.0))
     assert check.evaluate(150.0).level == "warning"
-    check.reset()                                   # the alert book closed the episode
+    check.reset()  # the alert book closed the episode
     check.on_prediction(Prediction("pump", "3", 1.0, 160.0, model_version="v2"))
-    assert check.evaluate(160.0).level == "warning"   # truths are still missing
+    assert check.evaluate(160.0).level == "warning"  # truths are still missing
 
 
 def test_snapshot_restore_gives_identical_verdicts():

@@ -14,16 +14,23 @@ from functools import lru_cache
 import numpy as np
 import pytest
 
-from watchdog_edge.cards import ModelCard
-from watchdog_edge.config import parse_config
-from watchdog_edge.events import Alert
-from watchdog_edge.monitor import Monitor
+from watchdog_edge.core.cards import ModelCard
+from watchdog_edge.core.events import Alert
+from watchdog_edge.core.monitor import Monitor
+from watchdog_edge.core.settings import parse_config
 
 T0 = 1_750_000_000.0
 
 
-def histogram_card(model: str, X: np.ndarray, names: list[str], train_resid: np.ndarray, d: int,
-                   holdout_resid: np.ndarray | None = None, bins: int = 10) -> ModelCard:
+def histogram_card(
+    model: str,
+    X: np.ndarray,
+    names: list[str],
+    train_resid: np.ndarray,
+    d: int,
+    holdout_resid: np.ndarray | None = None,
+    bins: int = 10,
+) -> ModelCard:
     """A card as made at training time: envelope and quantile histogram of every input."""
     feats = {}
     for j, name in enumerate(names):
@@ -31,18 +38,32 @@ def histogram_card(model: str, X: np.ndarray, names: list[str], train_resid: np.
         edges = np.quantile(col, np.linspace(0, 1, bins + 1))
         idx = np.searchsorted(edges[1:-1], col, side="right")
         shares = np.bincount(idx, minlength=bins) / len(col)
-        feats[name] = {"min": float(col.min()), "max": float(col.max()),
-                       "histogram": {"edges": edges.tolist(), "shares": shares.tolist()}}
+        feats[name] = {
+            "min": float(col.min()),
+            "max": float(col.max()),
+            "histogram": {"edges": edges.tolist(), "shares": shares.tolist()},
+        }
     holdout = None
     if holdout_resid is not None:
-        holdout = {"loss": float(np.mean(holdout_resid ** 2)), "count": len(holdout_resid)}
-    return ModelCard(model_id=model, training={"loss": float(np.mean(train_resid ** 2)), "count": len(train_resid)},
-                     fitted_parameters=d, least_squares=True, holdout=holdout, features=feats)
+        holdout = {"loss": float(np.mean(holdout_resid**2)), "count": len(holdout_resid)}
+    return ModelCard(
+        model_id=model,
+        training={"loss": float(np.mean(train_resid**2)), "count": len(train_resid)},
+        fitted_parameters=d,
+        least_squares=True,
+        holdout=holdout,
+        features=feats,
+    )
 
 
 def config(model: str, checks: dict, window: dict | None = None):
-    entry = {"id": model, "card": f"{model}.json", "prediction_topic": f"{model}/pred",
-             "truth_topic": f"{model}/truth", "checks": checks}
+    entry = {
+        "id": model,
+        "card": f"{model}.json",
+        "prediction_topic": f"{model}/pred",
+        "truth_topic": f"{model}/truth",
+        "checks": checks,
+    }
     if window:
         entry["window"] = window
     return parse_config({"agent": {"name": "streams"}, "models": [entry]})
@@ -67,8 +88,7 @@ def friedman_rows(ds, n: int) -> tuple[np.ndarray, np.ndarray]:
 
 def friedman_basis(X: np.ndarray) -> np.ndarray:
     """The terms of Friedman's function; a least-squares fit on them is a well specified model."""
-    return np.column_stack([np.sin(np.pi * X[:, 0] * X[:, 1]), (X[:, 2] - 0.5) ** 2,
-                            X[:, 3], X[:, 4], np.ones(len(X))])
+    return np.column_stack([np.sin(np.pi * X[:, 0] * X[:, 1]), (X[:, 2] - 0.5) ** 2, X[:, 3], X[:, 4], np.ones(len(X))])
 
 
 def fit_friedman(X: np.ndarray, y: np.ndarray, n_train: int, n_holdout: int) -> tuple[np.ndarray, ModelCard]:
@@ -76,8 +96,9 @@ def fit_friedman(X: np.ndarray, y: np.ndarray, n_train: int, n_holdout: int) -> 
     coef, *_ = np.linalg.lstsq(B, y[:n_train], rcond=None)
     pred = friedman_basis(X) @ coef
     resid = y - pred
-    card = histogram_card("fr", X[:n_train], FRIEDMAN_NAMES, resid[:n_train], d=5,
-                          holdout_resid=resid[n_train:n_train + n_holdout])
+    card = histogram_card(
+        "fr", X[:n_train], FRIEDMAN_NAMES, resid[:n_train], d=5, holdout_resid=resid[n_train : n_train + n_holdout]
+    )
     return pred, card
 
 
@@ -87,8 +108,15 @@ def friedman_messages(X, y, pred, start: int, stop: int, batch: int = 1):
     for b in range(start, stop, batch):
         idx = range(b, min(b + batch, stop))
         t = T0 + b
-        preds = [{"id": i, "value": float(pred[i]), "ts": T0 + i - 0.2,
-                  "features": dict(zip(FRIEDMAN_NAMES, map(float, X[i])))} for i in idx]
+        preds = [
+            {
+                "id": i,
+                "value": float(pred[i]),
+                "ts": T0 + i - 0.2,
+                "features": dict(zip(FRIEDMAN_NAMES, map(float, X[i]))),
+            }
+            for i in idx
+        ]
         truths = [{"id": i, "value": float(y[i])} for i in idx]
         if batch == 1:
             preds, truths = preds[0], truths[0]
@@ -106,7 +134,7 @@ def friedman_drift():
 
     ds = synth.FriedmanDrift(drift_type="gra", position=(DRIFT_AT, 2 * DRIFT_AT), seed=7)
     X, y = friedman_rows(ds, 6000)
-    pred, card = fit_friedman(X, y, n_train=1500, n_holdout=500)   # frozen before the drift
+    pred, card = fit_friedman(X, y, n_train=1500, n_holdout=500)  # frozen before the drift
     return friedman_messages(X, y, pred, 2000, 6000), card
 
 
@@ -124,7 +152,7 @@ def test_a_model_frozen_before_the_drift_is_flagged_after_it_and_not_before():
     drift = [a for a in got if a.check == "drift"]
     assert drift and drift[0].state == "raised"
     f = drift[0].figures
-    assert abs(f["change_t"] - (drift_t + 0.5)) <= 20         # truths arrive at t + 0.5
+    assert abs(f["change_t"] - (drift_t + 0.5)) <= 20  # truths arrive at t + 0.5
     assert f["change_ts"] == pytest.approx(f["change_t"] - 0.7)  # the prediction's source time
     assert f["mean_after"] > 10 * f["mean_before"]
     assert any(a.check == "gap" and a.state == "raised" for a in got)
@@ -134,7 +162,7 @@ def test_snapshot_and_restore_mid_episode_through_the_monitor_gives_the_same_ale
     messages, card = friedman_drift()
     cfg = config("fr", {"drift": {}, "baseline": {"learners": ["mean", "linear", "tree"]}})
     live = Monitor(cfg, {"fr": card})
-    cut = 2 * (DRIFT_AT + 25 - 2000)   # after the drift alert, before gap's
+    cut = 2 * (DRIFT_AT + 25 - 2000)  # after the drift alert, before gap's
     head = []
     for t, topic, payload in messages[:cut]:
         head += alerts(live.feed(topic, payload, t))
@@ -172,6 +200,7 @@ def test_a_stationary_friedman_stream_of_100000_raises_nothing_with_every_check_
 
 # -- diabetes ----------------------------------------------------------------------------
 
+
 @lru_cache(maxsize=1)
 def diabetes_split():
     from sklearn.datasets import load_diabetes
@@ -193,9 +222,14 @@ def diabetes_alerts(offset: float, start: int) -> tuple[list[Alert], Monitor]:
     mon = Monitor(config("db", {"drift": {}}), {"db": card})
     got = []
     for k in range(len(y)):
-        t = T0 + 60 * k     # a lab sample every minute, the result half a minute later
-        got += alerts(mon.feed("db/pred", json.dumps(
-            {"id": k, "value": float(pred[k]), "features": dict(zip(names, map(float, X[k])))}), t))
+        t = T0 + 60 * k  # a lab sample every minute, the result half a minute later
+        got += alerts(
+            mon.feed(
+                "db/pred",
+                json.dumps({"id": k, "value": float(pred[k]), "features": dict(zip(names, map(float, X[k])))}),
+                t,
+            )
+        )
         truth = float(y[k]) + (offset if k >= start else 0.0)
         got += alerts(mon.feed("db/truth", json.dumps({"id": k, "value": truth}), t + 30))
     return got, mon
@@ -205,7 +239,7 @@ def test_diabetes_linear_model_on_the_other_split_raises_no_gap():
     got, mon = diabetes_alerts(0.0, 0)
     assert [a for a in got if a.check in ("gap", "drift")] == []
     gap = mon.state("db")["checks"]["gap"]["figures"]
-    assert gap["pairs"] >= 200 and gap["expected_source"] == "fpe"   # gap did evaluate
+    assert gap["pairs"] >= 200 and gap["expected_source"] == "fpe"  # gap did evaluate
 
 
 def test_diabetes_with_an_offset_from_mid_stream_raises_gap_and_drift_near_the_change():
@@ -217,5 +251,5 @@ def test_diabetes_with_an_offset_from_mid_stream_raises_gap_and_drift_near_the_c
     drift = [a for a in got if a.check == "drift" and a.state == "raised"]
     assert gap and drift
     assert all(a.t >= change_t for a in gap + drift)
-    assert abs(drift[0].figures["change_t"] - change_t) <= 5 * 60      # within 5 pairs
+    assert abs(drift[0].figures["change_t"] - change_t) <= 5 * 60  # within 5 pairs
     assert drift[0].figures["mean_after"] > 4 * drift[0].figures["mean_before"]

@@ -8,13 +8,12 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import card
 from typer.testing import CliRunner
 
-from watchdog_edge.cards import save_card
-from watchdog_edge.cli import app
-from watchdog_edge.replay import RecordingWriter
-
-from helpers import card
+from watchdog_edge.cli.app import app
+from watchdog_edge.files.cardfile import save_card
+from watchdog_edge.replay.recording import RecordingWriter
 
 runner = CliRunner()
 
@@ -58,8 +57,19 @@ def site(tmp_path: Path) -> Path:
 
 def test_replay_is_deterministic_byte_for_byte(site):
     for name in ("a.jsonl", "b.jsonl"):
-        r = runner.invoke(app, ["replay", str(site / "rec.jsonl"), "--config", str(site / "config.toml"),
-                                "--alerts", str(site / name), "--tick-every", "60"])
+        r = runner.invoke(
+            app,
+            [
+                "replay",
+                str(site / "rec.jsonl"),
+                "--config",
+                str(site / "config.toml"),
+                "--alerts",
+                str(site / name),
+                "--tick-every",
+                "60",
+            ],
+        )
         assert r.exit_code == 0, r.output
     a, b = (site / "a.jsonl").read_bytes(), (site / "b.jsonl").read_bytes()
     assert a == b and a
@@ -105,7 +115,20 @@ def test_missing_card_is_named(site):
 
 
 def test_console_script_runs_as_a_real_process(site):
-    out = subprocess.run([sys.executable, "-m", "watchdog_edge.cli", "replay", str(site / "rec.jsonl"),
-                          "--config", str(site / "config.toml"), "--quiet"], capture_output=True, text=True, timeout=60)
+    out = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "watchdog_edge.cli.app",
+            "replay",
+            str(site / "rec.jsonl"),
+            "--config",
+            str(site / "config.toml"),
+            "--quiet",
+        ],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert out.returncode == 0, out.stderr
     assert "alerts" in out.stdout

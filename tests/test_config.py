@@ -2,8 +2,9 @@
 
 import pytest
 
-from watchdog_edge.config import load_config, parse_config
+from watchdog_edge.core.settings import parse_config
 from watchdog_edge.errors import ConfigError
+from watchdog_edge.files.configfile import load_config
 
 MODEL = {"id": "m", "card": "m.json", "prediction_topic": "a/pred", "truth_topic": "a/truth"}
 
@@ -78,21 +79,26 @@ def test_paths_resolve_against_the_config_folder(tmp_path):
 
 
 def test_model_id_from_a_topic_level(tmp_path):
-    from watchdog_edge.cards import save_card
-    from watchdog_edge.events import DeadLetter
-    from watchdog_edge.monitor import Monitor, load_cards
-
     from helpers import card, pred, truth
+
+    from watchdog_edge.core.events import DeadLetter
+    from watchdog_edge.core.monitor import Monitor
+    from watchdog_edge.files.cardfile import save_card
+    from watchdog_edge.files.configfile import load_cards
 
     (tmp_path / "cards").mkdir()
     for mid in ("pump-1", "pump-2"):
         save_card(card(mid), tmp_path / "cards" / f"{mid}.json")
     cfgfile = tmp_path / "c.toml"
-    cfgfile.write_text('[[models]]\nid = "pumps"\ncard = "cards/{model}.json"\nmodel_level = 2\n'
-                       'prediction_topic = "station/+/pred"\ntruth_topic = "station/+/truth"\n')
+    cfgfile.write_text(
+        '[[models]]\nid = "pumps"\ncard = "cards/{model}.json"\nmodel_level = 2\n'
+        'prediction_topic = "station/+/pred"\ntruth_topic = "station/+/truth"\n'
+    )
     cfg = load_config(cfgfile)
-    assert [(m.id, m.prediction_topic) for m in cfg.models] == [("pump-1", "station/pump-1/pred"),
-                                                                ("pump-2", "station/pump-2/pred")]
+    assert [(m.id, m.prediction_topic) for m in cfg.models] == [
+        ("pump-1", "station/pump-1/pred"),
+        ("pump-2", "station/pump-2/pred"),
+    ]
     mon = Monitor(cfg, load_cards(cfg))
     mon.feed("station/pump-2/pred", pred(1, 3.0), 1.0)
     mon.feed("station/pump-2/truth", truth(1, 3.5), 2.0)

@@ -4,16 +4,15 @@ import warnings
 
 import numpy as np
 import pytest
+from helpers import config
 from numpy.polynomial import Polynomial
 
-from watchdog_edge.cards import ModelCard
-from watchdog_edge.checks.base import CheckContext
-from watchdog_edge.checks.gap import GapCheck, GapSettings
-from watchdog_edge.events import Alert
-from watchdog_edge.monitor import Monitor
-from watchdog_edge.records import Pair, Prediction, Truth
-
-from helpers import config
+from watchdog_edge.core.cards import ModelCard
+from watchdog_edge.core.checks.base import CheckContext
+from watchdog_edge.core.checks.gap import GapCheck, GapSettings
+from watchdog_edge.core.events import Alert
+from watchdog_edge.core.monitor import Monitor
+from watchdog_edge.core.records import Pair, Prediction, Truth
 
 GAP_ONLY = {"range": {"enabled": False}, "shift": {"enabled": False}, "silence": {"enabled": False}}
 
@@ -31,8 +30,9 @@ def polynomial_deployment(seed: int, degree: int, n_train: int, n_field: int = 1
         warnings.simplefilter("ignore")
         fit = Polynomial.fit(x, y, degree)
     train_mse = float(np.mean((y - fit(x)) ** 2))
-    card = ModelCard(model_id="m", training={"loss": train_mse, "count": n_train},
-                     fitted_parameters=degree + 1, least_squares=True)
+    card = ModelCard(
+        model_id="m", training={"loss": train_mse, "count": n_train}, fitted_parameters=degree + 1, least_squares=True
+    )
     mon = Monitor(config(checks=GAP_ONLY, window={"size": 500, "min_pairs": 500}), {"m": card})
     xf = rng.uniform(0, 1, n_field)
     yf = smooth(xf) + rng.normal(0, sigma, n_field)
@@ -65,8 +65,12 @@ def test_overfit_polynomial_raises_gap_from_deployment_and_sensible_fits_do_not(
 
 
 def ctx(expected=1.0, size=100, min_pairs=100):
-    card = ModelCard(model_id="m", training={"loss": expected, "count": 1000}, fitted_parameters=2,
-                     holdout={"loss": expected, "count": 500})
+    card = ModelCard(
+        model_id="m",
+        training={"loss": expected, "count": 1000},
+        fitted_parameters=2,
+        holdout={"loss": expected, "count": 500},
+    )
     return CheckContext("m", card, "squared", expected, "holdout", window_size=size, min_pairs=min_pairs)
 
 
@@ -103,7 +107,9 @@ def test_a_healthy_window_skips_the_interval_but_keeps_its_figures():
 def test_limits_relative_and_absolute():
     rel = GapCheck(GapSettings(), ctx(expected=2.0))
     assert (rel.warning_limit, rel.critical_limit) == (2.5, 4.0)
-    ab = GapCheck(GapSettings(tolerance_kind="absolute", warning_tolerance=0.3, critical_tolerance=1.0), ctx(expected=2.0))
+    ab = GapCheck(
+        GapSettings(tolerance_kind="absolute", warning_tolerance=0.3, critical_tolerance=1.0), ctx(expected=2.0)
+    )
     assert (ab.warning_limit, ab.critical_limit) == (2.3, 3.0)
     with pytest.raises(ValueError, match="critical_tolerance"):
         GapSettings(warning_tolerance=0.5, critical_tolerance=0.2)

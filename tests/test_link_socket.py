@@ -7,7 +7,7 @@ import socket
 
 import pytest
 
-from watchdog_edge.link_socket import BufferedSocket
+from watchdog_edge.agent.link_socket import BufferedSocket
 
 
 @pytest.fixture

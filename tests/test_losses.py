@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from sklearn.metrics import mean_absolute_error, mean_squared_error
 
-from watchdog_edge.losses import LossWindow, absolute_loss, loss_function, squared_loss
+from watchdog_edge.core.losses import LossWindow, absolute_loss, loss_function, squared_loss
 
 
 def test_mean_losses_match_scikit_learn():

@@ -4,11 +4,10 @@ import json
 
 import numpy as np
 import pytest
-
-from watchdog_edge.events import Alert, DeadLetter, VersionStarted
-from watchdog_edge.monitor import Monitor
-
 from helpers import card, config, pred, truth
+
+from watchdog_edge.core.events import Alert, DeadLetter, VersionStarted
+from watchdog_edge.core.monitor import Monitor
 
 GAP_ONLY = {"range": {"enabled": False}, "shift": {"enabled": False}, "silence": {"enabled": False}}
 
@@ -67,16 +66,32 @@ def test_bad_records_are_counted_by_reason_and_good_array_elements_kept():
     ev += mon.feed("m/pred", b'{"id": 4, "value": 1, "pad": "' + b"x" * 300 + b'"}', 4.0)
     ev += mon.feed("m/truth", truth(1, 1.5), 5.0)
     dead = [e for e in ev if isinstance(e, DeadLetter)]
-    assert [d.reason for d in dead] == ["not_finite", "missing_id", "not_object", "not_json", "unknown_topic", "oversize"]
+    assert [d.reason for d in dead] == [
+        "not_finite",
+        "missing_id",
+        "not_object",
+        "not_json",
+        "unknown_topic",
+        "oversize",
+    ]
     assert json.loads(dead[0].payload) == {"id": 2, "value": float("nan")} or b"NaN" in dead[0].payload
     st = mon.status()
-    assert st["bad"] == {"not_finite": 1, "missing_id": 1, "not_object": 1, "not_json": 1, "unknown_topic": 1, "oversize": 1}
+    assert st["bad"] == {
+        "not_finite": 1,
+        "missing_id": 1,
+        "not_object": 1,
+        "not_json": 1,
+        "unknown_topic": 1,
+        "oversize": 1,
+    }
     assert st["paired"] == 1
     assert len(mon.dead_letters()) == 6
 
 
 def test_dead_letters_are_bounded_by_count_and_bytes():
-    mon = Monitor(config(checks=GAP_ONLY, agent={"dead_letter_max_count": 5, "dead_letter_max_bytes": 2000}), {"m": card()})
+    mon = Monitor(
+        config(checks=GAP_ONLY, agent={"dead_letter_max_count": 5, "dead_letter_max_bytes": 2000}), {"m": card()}
+    )
     for i in range(20):
         mon.feed("m/pred", b"x" * 300, float(i))
     kept = mon.dead_letters()
@@ -138,6 +153,7 @@ def test_one_meter_topic_can_serve_two_models():
 
 def test_missing_card_and_unusable_card_are_clear_errors():
     from watchdog_edge.errors import ConfigError
+
     with pytest.raises(ConfigError, match="no model card"):
         Monitor(config(), {})
     with pytest.raises(ConfigError, match="holdout"):
@@ -157,8 +173,11 @@ def test_feed_gives_the_same_events_as_apply_of_intake():
     a, b = Monitor(cfg, cards), Monitor(cfg, cards)
     got_a, got_b = [], []
     for i, e in enumerate(np.concatenate([rng.normal(0, 1, 500), rng.normal(0, 2, 500)])):
-        for topic, payload, t in (("m/pred", pred(i, 0.0), 10.0 * i), ("m/truth", truth(i, float(e)), 10.0 * i + 5),
-                                  ("m/truth", b"{bad", 10.0 * i + 6)):
+        for topic, payload, t in (
+            ("m/pred", pred(i, 0.0), 10.0 * i),
+            ("m/truth", truth(i, float(e)), 10.0 * i + 5),
+            ("m/truth", b"{bad", 10.0 * i + 6),
+        ):
             got_a += a.feed(topic, payload, t)
             got_b += b.apply(b.intake(topic, payload, t))
     assert got_a == got_b and any(isinstance(x, Alert) for x in got_a)

@@ -8,13 +8,13 @@ import time
 
 import paho.mqtt.client as paho
 import pytest
+from broker import Broker, make_tls
 from paho.mqtt.enums import CallbackAPIVersion
 
-from broker import Broker, broker, make_tls  # noqa: F401  (broker is a pytest fixture)
-from watchdog_edge.config import BrokerSettings
+from watchdog_edge.agent.link import Backoff, Link, check_topic_name, outbound_topic, read_password
+from watchdog_edge.agent.link_socket import BufferedSocket
+from watchdog_edge.core.settings import BrokerSettings
 from watchdog_edge.errors import BrokerError, ConfigError
-from watchdog_edge.link_socket import BufferedSocket
-from watchdog_edge.mqtt import Backoff, Link, check_topic_name, outbound_topic, read_password
 
 
 def _publish(b: Broker, topic: str, payloads: list[bytes]) -> None:
@@ -68,10 +68,25 @@ def _broker_saw_disconnects(b: Broker, n: int, client_id: str = "wd-test", timeo
 
 
 def _link(b: Broker, tmp_path, taker: _Taker, protocol: str = "3.1.1", **kw) -> Link:
-    s = BrokerSettings(host="localhost" if "tls" in kw else b.host, port=b.port, protocol=protocol, keepalive=5,
-                       reconnect_min_s=0.1, reconnect_max_s=0.3, **kw)
-    taker.link = Link(s, "wd-test", ["site/#"], "watchdog/agents/t/status", b'{"state":"offline"}', tmp_path,
-                      taker.messages.append, taker.events.append)
+    s = BrokerSettings(
+        host="localhost" if "tls" in kw else b.host,
+        port=b.port,
+        protocol=protocol,
+        keepalive=5,
+        reconnect_min_s=0.1,
+        reconnect_max_s=0.3,
+        **kw,
+    )
+    taker.link = Link(
+        s,
+        "wd-test",
+        ["site/#"],
+        "watchdog/agents/t/status",
+        b'{"state":"offline"}',
+        tmp_path,
+        taker.messages.append,
+        taker.events.append,
+    )
     return taker.link
 
 

@@ -1,7 +1,7 @@
 """Pairing edge cases: either side first, duplicates, expiry, the memory cap."""
 
-from watchdog_edge.pairing import Pairer
-from watchdog_edge.records import Prediction, Truth
+from watchdog_edge.core.pairing import Pairer
+from watchdog_edge.core.records import Prediction, Truth
 
 
 def P(i, t, v=1.0):

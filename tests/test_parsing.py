@@ -4,14 +4,13 @@ import json
 import math
 
 import pytest
+from helpers import card, config
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from watchdog_edge.events import DeadLetter
-from watchdog_edge.monitor import Monitor
-from watchdog_edge.parsing import BadRecord, FieldMap, RecordParser, decode, loads_json, loads_json_exact, parse_ts
-
-from helpers import card, config
+from watchdog_edge.core.events import DeadLetter
+from watchdog_edge.core.monitor import Monitor
+from watchdog_edge.core.parsing import BadRecord, FieldMap, RecordParser, decode, loads_json, loads_json_exact, parse_ts
 
 PRED = RecordParser("m", "prediction", FieldMap())
 TRUTH = RecordParser("m", "truth", FieldMap())
@@ -91,8 +90,11 @@ def test_features_allow_null_as_missing_and_version_as_text():
 # --- the fast reader against the standard library's json module (the reference) -----------
 # Integers within 64 bits (signed or unsigned); beyond them see the next two tests.
 JSON_VALUES = st.recursive(
-    st.none() | st.booleans() | st.integers(min_value=-(2**63), max_value=2**64 - 1)
-    | st.floats(allow_nan=False, allow_infinity=False) | st.text(),
+    st.none()
+    | st.booleans()
+    | st.integers(min_value=-(2**63), max_value=2**64 - 1)
+    | st.floats(allow_nan=False, allow_infinity=False)
+    | st.text(),
     lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=5), inner, max_size=4),
     max_leaves=12,
 )
@@ -118,7 +120,7 @@ def test_an_integer_beyond_64_bits_reads_as_the_float_the_parser_would_make_of_i
 
 
 def test_literals_orjson_refuses_are_read_as_the_json_module_reads_them():
-    for text in ('{"v": NaN}', '{"v": -Infinity}', '{"v": 1e999}', '{"v": "\\ud800"}', ' [1] '):
+    for text in ('{"v": NaN}', '{"v": -Infinity}', '{"v": 1e999}', '{"v": "\\ud800"}', " [1] "):
         assert repr(loads_json(text)) == repr(json.loads(text))
 
 

@@ -11,20 +11,20 @@ import paho.mqtt.client as mqtt
 import pytest
 from typer.testing import CliRunner
 
-from broker import broker  # noqa: F401  (pytest fixture: a real mosquitto on a free port)
 from simulators.bundle import config_data, load_incidents, write_bundle
 from simulators.fit import fit_polynomial
 from simulators.generate import simulate, train
 from simulators.live import parse_broker, publish_live
 from simulators.process import ar1, daily_cycle, local_hour
 from simulators.scenario import load_scenario, parse_scenario, scenario_names
-from watchdog_edge.cards import expected_loss, load_card
-from watchdog_edge.cli import app
-from watchdog_edge.config import load_config
+from watchdog_edge.cli.app import app
+from watchdog_edge.core.cards import expected_loss
+from watchdog_edge.core.events import Alert
+from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.errors import ConfigError, RecordingError
-from watchdog_edge.events import Alert
-from watchdog_edge.monitor import Monitor
-from watchdog_edge.replay import read_recording, replay
+from watchdog_edge.files.cardfile import load_card
+from watchdog_edge.files.configfile import load_config, load_monitor
+from watchdog_edge.replay.recording import read_recording, replay
 
 
 def _tomlish(sc) -> dict:
@@ -79,7 +79,7 @@ def test_ar1_noise_has_the_stated_spread_and_lag_one_correlation():
     phi = np.exp(-60.0 / 600.0)
     assert x.std() == pytest.approx(2.0, rel=0.03)
     assert np.corrcoef(x[:-1], x[1:])[0, 1] == pytest.approx(phi, abs=0.01)
-    assert np.corrcoef(x[:-5], x[5:])[0, 1] == pytest.approx(phi ** 5, abs=0.02)
+    assert np.corrcoef(x[:-5], x[5:])[0, 1] == pytest.approx(phi**5, abs=0.02)
 
 
 def test_sensor_values_are_in_real_units_and_bounds():
@@ -120,7 +120,7 @@ def test_card_figures_are_the_training_rows_figures():
     assert card.least_squares and card.loss == "squared"
     assert set(card.features) == set(sc.model.features)
     # a well-specified fit on thousands of rows: held-out loss close to the noise variance
-    noise = sc.process.noise_sd ** 2 + sc.process.meter_sd ** 2
+    noise = sc.process.noise_sd**2 + sc.process.meter_sd**2
     assert card.holdout.loss == pytest.approx(noise, rel=0.25)
 
 
@@ -128,12 +128,15 @@ def test_over_complex_model_looks_good_in_training_and_is_poor_from_the_first_pr
     sc = load_scenario("greenhouse")
     run = simulate(sc, duration_h=6)
     assert run.card.fitted_parameters == 35 and run.card.training.count == 40
-    noise = sc.process.noise_sd ** 2 + sc.process.meter_sd ** 2
+    noise = sc.process.noise_sd**2 + sc.process.meter_sd**2
     assert run.card.training.loss < noise / 2  # it fits its 40 rows too well
     paths = write_bundle(run, tmp_path / "gh.jsonl", "greenhouse")
-    mon = Monitor.from_files(paths.config)
-    gaps = [e for e in replay(mon, read_recording(paths.recording))
-            if isinstance(e, Alert) and e.check == "gap" and e.state == "raised"]
+    mon = load_monitor(paths.config)
+    gaps = [
+        e
+        for e in replay(mon, read_recording(paths.recording))
+        if isinstance(e, Alert) and e.check == "gap" and e.state == "raised"
+    ]
     assert gaps, "the over-complex model must raise a gap"
     assert gaps[0].figures["diagnosis"] == "present from deployment"
     assert [i["kind"] for i in run.incidents][0] == "overfit"
@@ -193,8 +196,19 @@ def test_truths_are_late_sparse_and_stop_during_a_stall():
 def test_same_seed_same_recording_byte_for_byte(tmp_path):
     runner = CliRunner()
     for name, seed in (("a", 5), ("b", 5), ("c", 6)):
-        res = runner.invoke(app, ["simulate", "dairy-chiller", "--to-recording", str(tmp_path / name / "r.jsonl"),
-                                  "--seed", str(seed), "--duration", "90m"])
+        res = runner.invoke(
+            app,
+            [
+                "simulate",
+                "dairy-chiller",
+                "--to-recording",
+                str(tmp_path / name / "r.jsonl"),
+                "--seed",
+                str(seed),
+                "--duration",
+                "90m",
+            ],
+        )
         assert res.exit_code == 0, res.output
     a, b, c = ((tmp_path / n / "r.jsonl").read_bytes() for n in "abc")
     assert a == b and a != c
@@ -216,7 +230,7 @@ def test_bundle_replays_with_its_config_and_card(tmp_path):
     assert expected_loss(card)[1] == "fpe"
     incidents = load_incidents(paths.incidents)
     assert [i["kind"] for i in incidents] == ["drift", "step"]  # the later ones start after 10 h
-    mon = Monitor.from_files(paths.config)
+    mon = load_monitor(paths.config)
     events = replay(mon, read_recording(paths.recording))
     st = mon.status()
     assert st["bad_total"] == 0 and st["paired"] == run.counts["truths"]
@@ -230,7 +244,7 @@ def test_nested_payload_fields_are_mapped_in_the_written_config(tmp_path):
     assert data["models"][0]["fields"] == {"prediction": {"value": "estimate.kw"}, "truth": {"value": "meter.kw"}}
     run = simulate(sc, duration_h=3)
     paths = write_bundle(run, tmp_path / "pw.jsonl")
-    mon = Monitor.from_files(paths.config)
+    mon = load_monitor(paths.config)
     replay(mon, read_recording(paths.recording))
     assert mon.status()["bad_total"] == 0 and mon.status()["paired"] == run.counts["truths"]
 
@@ -258,7 +272,7 @@ def test_parse_broker():
         parse_broker("gw:0")
 
 
-def test_live_publishing_delivers_every_message_at_qos1(broker):  # noqa: F811
+def test_live_publishing_delivers_every_message_at_qos1(broker):
     sc = load_scenario("dairy-chiller")
     run = simulate(sc, seed=4, duration_h=0.25)
     got: list[tuple[str, bytes, int]] = []
@@ -286,6 +300,7 @@ def test_live_publishing_delivers_every_message_at_qos1(broker):  # noqa: F811
 
 def test_live_publishing_fails_clearly_without_a_broker():
     from broker import free_port
+
     from watchdog_edge.errors import BrokerError
 
     with pytest.raises(BrokerError, match="cannot reach the broker"):
@@ -293,7 +308,7 @@ def test_live_publishing_fails_clearly_without_a_broker():
 
 
 # -- live, watched by the agent ---------------------------------------------------------------
-def test_scenario_streamed_live_and_watched_by_run_gives_the_alerts_of_its_replay(tmp_path, broker):  # noqa: F811
+def test_scenario_streamed_live_and_watched_by_run_gives_the_alerts_of_its_replay(tmp_path, broker):
     """simulate --broker -> broker -> watchdog-edge run --record; replay of that recording."""
     import os
     import signal
@@ -301,17 +316,33 @@ def test_scenario_streamed_live_and_watched_by_run_gives_the_alerts_of_its_repla
     import sys
     from pathlib import Path
 
-    from watchdog_edge.agent import alert_payload
-    from watchdog_edge.monitor import load_cards
+    from watchdog_edge.agent.agent import alert_payload
+    from watchdog_edge.files.configfile import load_cards
 
     repo = Path(__file__).resolve().parents[1]
     env = dict(os.environ, PYTHONPATH=str(repo) + os.pathsep + os.environ.get("PYTHONPATH", ""))
     files = tmp_path / "site"
-    cli = [sys.executable, "-m", "watchdog_edge.cli"]
+    cli = [sys.executable, "-m", "watchdog_edge.cli.app"]
     # the card and config (pointing at the test broker) come from simulate itself
-    prep = subprocess.run(cli + ["simulate", "dairy-chiller", "--broker", f"{broker.host}:{broker.port}",
-                                 "--files", str(files), "--duration", "1s", "--seed", "3"],
-                          env=env, capture_output=True, text=True, timeout=60)
+    prep = subprocess.run(
+        cli
+        + [
+            "simulate",
+            "dairy-chiller",
+            "--broker",
+            f"{broker.host}:{broker.port}",
+            "--files",
+            str(files),
+            "--duration",
+            "1s",
+            "--seed",
+            "3",
+        ],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     assert prep.returncode == 0, prep.stderr
     config = files / "dairy-chiller.config.toml"
     assert load_config(config).broker.port == broker.port
@@ -326,8 +357,13 @@ def test_scenario_streamed_live_and_watched_by_run_gives_the_alerts_of_its_repla
     watcher.loop_start()
     rec = tmp_path / "live.jsonl"
     log = open(tmp_path / "agent.log", "w")
-    agent = subprocess.Popen(cli + ["run", "--config", str(config), "--record", str(rec)],
-                             stdout=log, stderr=subprocess.STDOUT, env=env, cwd=files)
+    agent = subprocess.Popen(
+        cli + ["run", "--config", str(config), "--record", str(rec)],
+        stdout=log,
+        stderr=subprocess.STDOUT,
+        env=env,
+        cwd=files,
+    )
     try:
         assert subscribed.wait(10)
         deadline = time.monotonic() + 20
@@ -335,9 +371,25 @@ def test_scenario_streamed_live_and_watched_by_run_gives_the_alerts_of_its_repla
             assert agent.poll() is None and time.monotonic() < deadline, (tmp_path / "agent.log").read_text()
             time.sleep(0.05)
         # two simulated hours (the step incident at 1 h) at 1200x: about six seconds
-        pub = subprocess.run(cli + ["simulate", "dairy-chiller", "--broker", f"{broker.host}:{broker.port}",
-                                    "--duration", "2h", "--speed", "1200", "--seed", "3"],
-                             env=env, capture_output=True, text=True, timeout=120)
+        pub = subprocess.run(
+            cli
+            + [
+                "simulate",
+                "dairy-chiller",
+                "--broker",
+                f"{broker.host}:{broker.port}",
+                "--duration",
+                "2h",
+                "--speed",
+                "1200",
+                "--seed",
+                "3",
+            ],
+            env=env,
+            capture_output=True,
+            text=True,
+            timeout=120,
+        )
         assert pub.returncode == 0, pub.stderr
         sent = len(simulate(load_scenario("dairy-chiller"), seed=3, duration_h=2).messages)
         deadline = time.monotonic() + 20
@@ -356,8 +408,9 @@ def test_scenario_streamed_live_and_watched_by_run_gives_the_alerts_of_its_repla
     assert rc == 0, (tmp_path / "agent.log").read_text()
 
     cfg = load_config(config)
-    replayed = [alert_payload(e) for e in replay(Monitor(cfg, load_cards(cfg)), read_recording(rec))
-                if isinstance(e, Alert)]
+    replayed = [
+        alert_payload(e) for e in replay(Monitor(cfg, load_cards(cfg)), read_recording(rec)) if isinstance(e, Alert)
+    ]
     live: dict[str, bytes] = {}
     for a in alerts:  # QoS 1 may deliver a message twice: same id, same bytes
         live.setdefault(json.loads(a)["alert_id"], a)

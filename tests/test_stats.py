@@ -1,4 +1,4 @@
-"""Tests for watchdog_edge.stats against scipy, closed forms and the published formulas."""
+"""Tests for watchdog_edge.core.stats against scipy, closed forms and the published formulas."""
 
 from __future__ import annotations
 
@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 from scipy import stats as sps
 
-from watchdog_edge import stats
-from watchdog_edge.stats import (
+from watchdog_edge.core import stats
+from watchdog_edge.core.stats import (
     andrews_bandwidth,
     diebold_mariano,
     long_run_variance,
@@ -89,8 +89,7 @@ def test_t_ppf_inverts_t_sf():
 
 def test_normal_ppf_matches_scipy():
     # External check: scipy.stats.norm.ppf, including deep tails.
-    ps = np.concatenate([np.logspace(-300, -1, 120), np.linspace(0.01, 0.99, 99),
-                         1.0 - np.logspace(-15, -1, 40)])
+    ps = np.concatenate([np.logspace(-300, -1, 120), np.linspace(0.01, 0.99, 99), 1.0 - np.logspace(-15, -1, 40)])
     for p in ps:
         ref = float(sps.norm.ppf(p))
         if ref == 0.0:

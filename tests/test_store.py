@@ -11,9 +11,9 @@ import textwrap
 
 import pytest
 
+from watchdog_edge.agent.store import JournalEntry, OutboxItem, Store, read_dead_letters
+from watchdog_edge.core.events import DeadLetter
 from watchdog_edge.errors import WatchdogError
-from watchdog_edge.events import DeadLetter
-from watchdog_edge.store import JournalEntry, OutboxItem, Store, read_dead_letters
 
 
 def _msg(i: int, t: float = 0.0) -> JournalEntry:
@@ -39,8 +39,11 @@ def test_journal_keeps_messages_and_ticks_in_order_and_bytes_exact(tmp_path):
     last = s.append([_msg(1), JournalEntry(t=1001.5, tick=True), JournalEntry(t=1002.0, topic="x/y", payload=raw)])
     assert last == 3
     tail = list(s.journal_tail(0))
-    assert [(e.t, e.topic, e.tick) for e in tail] == [(1001.0, "plant/pred", False), (1001.5, None, True),
-                                                     (1002.0, "x/y", False)]
+    assert [(e.t, e.topic, e.tick) for e in tail] == [
+        (1001.0, "plant/pred", False),
+        (1001.5, None, True),
+        (1002.0, "x/y", False),
+    ]
     assert tail[2].payload == raw and tail[0].mid == 1
     assert [e.seq for e in s.journal_tail(2)] == [3]
     s.close()
@@ -121,7 +124,7 @@ def test_a_killed_writer_never_leaves_alerts_without_their_journal_rows(tmp_path
     path = tmp_path / "s.sqlite"
     code = textwrap.dedent(f"""
         import sys
-        from watchdog_edge.store import Store, JournalEntry, OutboxItem
+        from watchdog_edge.agent.store import Store, JournalEntry, OutboxItem
         s = Store({str(path)!r})
         i = 0
         while True:
@@ -206,16 +209,20 @@ def test_snapshot_text_is_exactly_what_json_dumps_writes():
     import json
     import random
 
-    from hypothesis import given, settings, strategies as st
+    from hypothesis import given, settings
+    from hypothesis import strategies as st
 
-    from watchdog_edge.store import _PIECE, snapshot_text
+    from watchdog_edge.agent.store import _PIECE, snapshot_text
 
     def dumps(x):
         return json.dumps(x, separators=(",", ":"))
 
     leaves = st.none() | st.booleans() | st.integers() | st.floats() | st.text(max_size=8)
-    values = st.recursive(leaves, lambda inner: st.lists(inner, max_size=5) | st.dictionaries(st.text(max_size=5), inner,
-                                                                                             max_size=5), max_leaves=30)
+    values = st.recursive(
+        leaves,
+        lambda inner: st.lists(inner, max_size=5) | st.dictionaries(st.text(max_size=5), inner, max_size=5),
+        max_leaves=30,
+    )
 
     @settings(max_examples=200, deadline=None)
     @given(values)
@@ -225,7 +232,10 @@ def test_snapshot_text_is_exactly_what_json_dumps_writes():
     small()
     rng = random.Random(5)
     n = 2 * _PIECE + 7  # past the piece size, with a remainder
-    big = {"pairers": {"m": {"done": [[str(i), 1.7e9 + rng.random()] for i in range(n)], "preds": []}},
-           "ids": {f"k{i}": (i, float("inf") if i % 97 == 0 else i / 7, "é") for i in range(n)},
-           "window": tuple(rng.gauss(0, 1) for _ in range(n)), "mixed": {1: "a", "b": [float("nan")]}}
+    big = {
+        "pairers": {"m": {"done": [[str(i), 1.7e9 + rng.random()] for i in range(n)], "preds": []}},
+        "ids": {f"k{i}": (i, float("inf") if i % 97 == 0 else i / 7, "é") for i in range(n)},
+        "window": tuple(rng.gauss(0, 1) for _ in range(n)),
+        "mixed": {1: "a", "b": [float("nan")]},
+    }
     assert snapshot_text(big) == dumps(big)

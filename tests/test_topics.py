@@ -2,27 +2,30 @@
 
 import pytest
 
-from watchdog_edge.topics import Router, matches, validate_filter, validate_level
+from watchdog_edge.core.topics import Router, matches, validate_filter, validate_level
 
 
-@pytest.mark.parametrize("flt,topic,expected", [
-    # MQTT 3.1.1, 4.7.1.2: "sport/tennis/player1/#" matches these three.
-    ("sport/tennis/player1/#", "sport/tennis/player1", True),
-    ("sport/tennis/player1/#", "sport/tennis/player1/ranking", True),
-    ("sport/tennis/player1/#", "sport/tennis/player1/score/wimbledon", True),
-    # 4.7.1.2: "sport/#" also matches the singular "sport".
-    ("sport/#", "sport", True),
-    # 4.7.1.3: "sport/tennis/+" matches "sport/tennis/player1" but not "sport/tennis/player1/ranking".
-    ("sport/tennis/+", "sport/tennis/player1", True),
-    ("sport/tennis/+", "sport/tennis/player1/ranking", False),
-    # 4.7.1.3: "sport/+" does not match "sport" but does match "sport/".
-    ("sport/+", "sport", False),
-    ("sport/+", "sport/", True),
-    # 4.7.2: "#" and "+/monitor/Clients" do not match topics beginning with "$".
-    ("#", "$SYS/monitor/Clients", False),
-    ("+/monitor/Clients", "$SYS/monitor/Clients", False),
-    ("$SYS/#", "$SYS/monitor/Clients", True),
-])
+@pytest.mark.parametrize(
+    "flt,topic,expected",
+    [
+        # MQTT 3.1.1, 4.7.1.2: "sport/tennis/player1/#" matches these three.
+        ("sport/tennis/player1/#", "sport/tennis/player1", True),
+        ("sport/tennis/player1/#", "sport/tennis/player1/ranking", True),
+        ("sport/tennis/player1/#", "sport/tennis/player1/score/wimbledon", True),
+        # 4.7.1.2: "sport/#" also matches the singular "sport".
+        ("sport/#", "sport", True),
+        # 4.7.1.3: "sport/tennis/+" matches "sport/tennis/player1" but not "sport/tennis/player1/ranking".
+        ("sport/tennis/+", "sport/tennis/player1", True),
+        ("sport/tennis/+", "sport/tennis/player1/ranking", False),
+        # 4.7.1.3: "sport/+" does not match "sport" but does match "sport/".
+        ("sport/+", "sport", False),
+        ("sport/+", "sport/", True),
+        # 4.7.2: "#" and "+/monitor/Clients" do not match topics beginning with "$".
+        ("#", "$SYS/monitor/Clients", False),
+        ("+/monitor/Clients", "$SYS/monitor/Clients", False),
+        ("$SYS/#", "$SYS/monitor/Clients", True),
+    ],
+)
 def test_standard_examples(flt, topic, expected):
     assert matches(flt, topic) is expected
 

@@ -12,14 +12,24 @@ from typer.testing import CliRunner
 from simulators.bundle import load_incidents, write_bundle
 from simulators.generate import simulate
 from simulators.scenario import load_scenario
-from simulators.tune import (Mark, apply_setting, evaluate_all, expand, intake_recording, load_grid,
-                             score, tune, with_setting)
-from watchdog_edge.cli import app
-from watchdog_edge.config import load_config, parse_config
+from simulators.tune import (
+    Mark,
+    apply_setting,
+    evaluate_all,
+    expand,
+    intake_recording,
+    load_grid,
+    score,
+    tune,
+    with_setting,
+)
+from watchdog_edge.cli.app import app
+from watchdog_edge.core.events import Alert
+from watchdog_edge.core.monitor import Monitor
+from watchdog_edge.core.settings import parse_config
 from watchdog_edge.errors import ConfigError
-from watchdog_edge.events import Alert
-from watchdog_edge.monitor import Monitor, load_cards
-from watchdog_edge.replay import read_recording, replay
+from watchdog_edge.files.configfile import load_cards, load_config
+from watchdog_edge.replay.recording import read_recording, replay
 
 
 @pytest.fixture(scope="module")
@@ -34,8 +44,14 @@ def recordings(tmp_path_factory):
 
 def test_setting_chosen_on_one_seed_detects_every_incident_on_another(recordings):
     a, b = recordings
-    res = tune(a.config, a.recording, load_incidents(a.incidents), workers=2,
-               holdout=b.recording, holdout_incidents=load_incidents(b.incidents))
+    res = tune(
+        a.config,
+        a.recording,
+        load_incidents(a.incidents),
+        workers=2,
+        holdout=b.recording,
+        holdout_incidents=load_incidents(b.incidents),
+    )
     assert len(res.rows) == 54 and not res.invalid  # the default grid: 3 x 3 x 3 x shift on/off
     best = res.best
     assert best.score.missed == 0 and best.score.false_alarms == 0
@@ -65,14 +81,18 @@ def test_shared_parse_pass_gives_the_same_alerts_as_a_full_replay(recordings):
     cards = load_cards(cfg)
     intake = intake_recording(cfg, cards, a.recording)
     raw = _raw(a.config)
-    for values in ({"window.size": 60, "checks.gap.warning_tolerance": 0.25},
-                   {"window.size": 240, "checks.gap.confidence": 0.99}):
+    for values in (
+        {"window.size": 60, "checks.gap.warning_tolerance": 0.25},
+        {"window.size": 240, "checks.gap.confidence": 0.99},
+    ):
         setting = expand({k: [v] for k, v in values.items()})[0]
         cfg_s = parse_config(with_setting(raw, setting, None), a.config.parent)
         shared = apply_setting(cfg_s, cards, intake.steps)
-        full = [Mark(e.t, e.model, e.check, e.severity)
-                for e in replay(Monitor(cfg_s, cards), read_recording(a.recording))
-                if isinstance(e, Alert) and e.state == "raised"]
+        full = [
+            Mark(e.t, e.model, e.check, e.severity)
+            for e in replay(Monitor(cfg_s, cards), read_recording(a.recording))
+            if isinstance(e, Alert) and e.state == "raised"
+        ]
         assert shared == full and full
 
 
@@ -80,11 +100,20 @@ def test_each_check_runs_once_per_distinct_setting_and_gives_the_same_alerts(rec
     a, _ = recordings
     cfg = load_config(a.config)
     cards = load_cards(cfg)
-    grid = {"window.size": [60, 240], "checks.gap.warning_tolerance": [0.25, 1.0],
-            "checks.shift.enabled": [True, False]}
+    grid = {
+        "window.size": [60, 240],
+        "checks.gap.warning_tolerance": [0.25, 1.0],
+        "checks.shift.enabled": [True, False],
+    }
     runs = []
-    res = tune(a.config, a.recording, load_incidents(a.incidents), grid=grid, workers=1,
-               progress=lambda done, total: runs.append(total))
+    res = tune(
+        a.config,
+        a.recording,
+        load_incidents(a.incidents),
+        grid=grid,
+        workers=1,
+        progress=lambda done, total: runs.append(total),
+    )
     # 8 settings, but gap runs once per (window.size, warning_tolerance), shift once (it does
     # not read the model's window), range and silence once for all
     assert len(res.rows) == 8 and runs[-1] == 4 + 1 + 1
@@ -92,9 +121,11 @@ def test_each_check_runs_once_per_distinct_setting_and_gives_the_same_alerts(rec
     for row in res.rows:
         # the same setting with every check in one monitor, over a full replay
         cfg_s = parse_config(with_setting(raw, row.setting, None), a.config.parent)
-        full = [Mark(e.t, e.model, e.check, e.severity)
-                for e in replay(Monitor(cfg_s, cards), read_recording(a.recording))
-                if isinstance(e, Alert) and e.state == "raised"]
+        full = [
+            Mark(e.t, e.model, e.check, e.severity)
+            for e in replay(Monitor(cfg_s, cards), read_recording(a.recording))
+            if isinstance(e, Alert) and e.state == "raised"
+        ]
         assert row.marks == sorted(full, key=lambda m: (m.t, m.model, m.check, m.severity))
     assert {m.check for r in res.rows for m in r.marks} >= {"gap", "range", "silence"}
 
@@ -121,16 +152,17 @@ def _raw(path):
 # -- scoring ----------------------------------------------------------------------------------
 def test_score_counts_detections_delays_and_false_alarms_per_day():
     day = 86400.0
-    incidents = [{"kind": "step", "start": 1000.0, "end": 2000.0},
-                 {"kind": "stall", "start": 5000.0, "end": 6000.0}]
-    marks = [Mark(500.0, "m", "gap", "warning"),      # before any incident: false
-             Mark(1300.0, "m", "gap", "warning"),     # detects the step, 300 s late
-             Mark(2400.0, "m", "range", "warning"),   # within the step's grace (500 s): not false
-             Mark(2600.0, "m", "gap", "critical")]    # past the grace: false
+    incidents = [{"kind": "step", "start": 1000.0, "end": 2000.0}, {"kind": "stall", "start": 5000.0, "end": 6000.0}]
+    marks = [
+        Mark(500.0, "m", "gap", "warning"),  # before any incident: false
+        Mark(1300.0, "m", "gap", "warning"),  # detects the step, 300 s late
+        Mark(2400.0, "m", "range", "warning"),  # within the step's grace (500 s): not false
+        Mark(2600.0, "m", "gap", "critical"),
+    ]  # past the grace: false
     s = score(marks, incidents, 0.0, day, grace_s=500.0)
     assert [d["delay_s"] for d in s.detections] == [300.0, None]
     assert s.missed == 1 and s.false_alarms == 2
-    healthy = day - 1500.0 - 1500.0   # two spans of 1000 s, each plus 500 s of grace
+    healthy = day - 1500.0 - 1500.0  # two spans of 1000 s, each plus 500 s of grace
     assert s.healthy_days == pytest.approx(healthy / day)
     assert s.false_alarms_per_day == pytest.approx(2 / (healthy / day))
     assert s.mean_delay_s == 300.0
@@ -146,11 +178,12 @@ def test_score_of_a_healthy_recording_is_alarms_per_day():
 # -- grids ------------------------------------------------------------------------------------
 def test_grid_file_takes_dotted_and_nested_keys(tmp_path):
     p = tmp_path / "grid.toml"
-    p.write_text('[grid]\n"window.size" = [60, 120]\nchecks.gap.confidence = [0.9, 0.95, 0.99]\n'
-                 "[grid.checks.shift]\nwarning = 0.2\n")
+    p.write_text(
+        '[grid]\n"window.size" = [60, 120]\nchecks.gap.confidence = [0.9, 0.95, 0.99]\n'
+        "[grid.checks.shift]\nwarning = 0.2\n"
+    )
     grid = load_grid(p)
-    assert grid == {"window.size": [60, 120], "checks.gap.confidence": [0.9, 0.95, 0.99],
-                    "checks.shift.warning": [0.2]}
+    assert grid == {"window.size": [60, 120], "checks.gap.confidence": [0.9, 0.95, 0.99], "checks.shift.warning": [0.2]}
     settings = expand(grid)
     assert len(settings) == 6
     assert settings[0].tightness == 0 and settings[-1].tightness == 2  # first listed = most alarm-prone
@@ -165,14 +198,14 @@ def test_grid_errors_say_what_to_change(tmp_path):
     p.write_text('[grid]\n"checks.gap.confidence" = []\n')
     with pytest.raises(ConfigError, match="empty list"):
         load_grid(p)
-    p.write_text('size = [1]\n')
+    p.write_text("size = [1]\n")
     with pytest.raises(ConfigError, match=r"needs a \[grid\] table"):
         load_grid(p)
 
 
 def test_invalid_combinations_are_skipped_with_the_reason(recordings):
     a, _ = recordings
-    grid = {"window.size": [40, 120], "checks.gap.warning_tolerance": [0.5]}   # min_pairs is 60
+    grid = {"window.size": [40, 120], "checks.gap.warning_tolerance": [0.5]}  # min_pairs is 60
     res = tune(a.config, a.recording, load_incidents(a.incidents), grid=grid, workers=1)
     assert len(res.rows) == 1 and res.rows[0].setting.values["window.size"] == 120
     assert len(res.invalid) == 1 and "min_pairs (60) must not exceed size (40)" in res.invalid[0][1]
@@ -184,8 +217,12 @@ def test_without_incidents_the_tightest_setting_within_the_budget_wins(tmp_path)
     sc = load_scenario("dairy-chiller")
     healthy = sc.model_copy(update={"incidents": []})
     paths = write_bundle(simulate(healthy, seed=8), tmp_path / "h.jsonl")
-    grid = {"window.size": [60, 120, 240], "checks.gap.warning_tolerance": [0.1, 0.25, 0.5, 1.0],
-            "checks.gap.confidence": [0.8, 0.95], "checks.shift.enabled": [True, False]}
+    grid = {
+        "window.size": [60, 120, 240],
+        "checks.gap.warning_tolerance": [0.1, 0.25, 0.5, 1.0],
+        "checks.gap.confidence": [0.8, 0.95],
+        "checks.shift.enabled": [True, False],
+    }
     res = tune(paths.config, paths.recording, None, grid=grid, workers=2, alarm_budget=0.0)
     within = [r for r in res.rows if r.robust_alarms_per_day <= 0.0]
     over = [r for r in res.rows if r.robust_alarms_per_day > 0.0]
@@ -211,10 +248,31 @@ def test_tune_command_writes_table_snippet_and_plot(recordings, tmp_path):
     grid = tmp_path / "grid.toml"
     grid.write_text('[grid]\n"window.size" = [60, 120]\n"checks.gap.warning_tolerance" = [0.5, 1.0]\n')
     snippet, plot, results = tmp_path / "best.toml", tmp_path / "tune.png", tmp_path / "res.json"
-    res = CliRunner().invoke(app, [
-        "tune", str(a.recording), "--config", str(a.config), "--incidents", str(a.incidents),
-        "--grid", str(grid), "--holdout", str(b.recording), "--holdout-incidents", str(b.incidents),
-        "--snippet", str(snippet), "--plot", str(plot), "--results", str(results), "--workers", "2"])
+    res = CliRunner().invoke(
+        app,
+        [
+            "tune",
+            str(a.recording),
+            "--config",
+            str(a.config),
+            "--incidents",
+            str(a.incidents),
+            "--grid",
+            str(grid),
+            "--holdout",
+            str(b.recording),
+            "--holdout-incidents",
+            str(b.incidents),
+            "--snippet",
+            str(snippet),
+            "--plot",
+            str(plot),
+            "--results",
+            str(results),
+            "--workers",
+            "2",
+        ],
+    )
     assert res.exit_code == 0, res.output
     assert "4 settings on a.jsonl" in res.output and "holdout" in res.output
     assert _png_size(plot.read_bytes()) == (1400, 700)

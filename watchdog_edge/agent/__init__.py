@@ -1,0 +1,1 @@
+"""The live MQTT agent: the link to the broker, its socket, and the SQLite store."""

@@ -1,0 +1,1 @@
+"""The command line: typer commands, tables and the demo."""

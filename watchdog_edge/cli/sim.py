@@ -1,0 +1,311 @@
+"""``simulate`` and ``tune``: invented field traffic, and tolerances chosen on recorded traffic.
+
+Registered on the main app by ``register(app)``; the work is done in the ``simulators`` package.
+"""
+
+from __future__ import annotations
+
+import re
+import sys
+from pathlib import Path
+from typing import Optional
+
+import typer
+from rich.console import Console
+
+from watchdog_edge.errors import ConfigError, WatchdogError
+
+_DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([smhd]?)\s*$")
+_UNIT_H = {"s": 1 / 3600, "m": 1 / 60, "h": 1.0, "d": 24.0, "": 1.0}
+
+
+def parse_duration_h(text: str) -> float:
+    """Simulated time as hours: ``90m``, ``6h``, ``2d``, ``3600s``; a bare number is hours.
+
+    >>> parse_duration_h("90m")
+    1.5
+    """
+    m = _DURATION.match(text)
+    if not m or float(m.group(1)) <= 0:
+        raise ConfigError(f"--duration {text!r}: give a positive time such as 90m, 6h or 2d")
+    return float(m.group(1)) * _UNIT_H[m.group(2)]
+
+
+def _fail(e: Exception) -> None:
+    Console(stderr=True).print(f"[bold red]error:[/bold red] {e}", highlight=False, soft_wrap=True)
+    raise typer.Exit(2)
+
+
+def simulate(
+    scenario: str = typer.Argument(
+        ...,
+        help="A scenario file, or the name of a shipped one (cold-store, pumping-station, greenhouse, dairy-chiller).",
+    ),
+    to_recording: Optional[Path] = typer.Option(
+        None,
+        "--to-recording",
+        help="Write a recording (JSON Lines) here, with its incidents file, config and card beside it.",
+    ),
+    broker: Optional[str] = typer.Option(None, "--broker", help="Publish live to this broker, HOST:PORT, at QoS 1."),
+    speed: float = typer.Option(1.0, "--speed", help="Live only: simulated seconds per wall-clock second."),
+    duration: Optional[str] = typer.Option(
+        None, "--duration", help="Simulated time, e.g. 90m, 6h, 2d (default: the scenario's)."
+    ),
+    seed: Optional[int] = typer.Option(
+        None, "--seed", help="Seed; the same seed gives the same traffic, byte for byte."
+    ),
+    files: Optional[Path] = typer.Option(
+        None,
+        "--files",
+        help="Live only: also write the card, config (pointing at --broker) and incidents file into this folder.",
+    ),
+) -> None:
+    """Simulate an invented site: train its model, then send its predictions and truths.
+
+    Exactly one of --to-recording and --broker. Live, the payloads are those the recording would hold for the same seed; they are paced by the wall clock at --speed.
+    """
+    from simulators.bundle import config_data, incidents_data, write_bundle
+    from simulators.generate import simulate as run_sim
+    from simulators.scenario import load_scenario, resolve_scenario
+
+    console = Console(stderr=True, highlight=False)
+    if (to_recording is None) == (broker is None):
+        _fail(ConfigError("give exactly one of --to-recording FILE and --broker HOST:PORT"))
+    try:
+        hours = parse_duration_h(duration) if duration else None
+        path = resolve_scenario(scenario)
+        sc = load_scenario(path)
+        run = run_sim(sc, seed=seed, duration_h=hours)
+        name = path.stem
+        if to_recording is not None:
+            paths = write_bundle(run, to_recording, name)
+            console.print(
+                f"{len(run.messages)} messages ({run.counts['predictions']} predictions, "
+                f"{run.counts['truths']} truths) from {sc.site.name}, seed {run.seed}"
+            )
+            console.print(
+                f"recording  {paths.recording}\nincidents  {paths.incidents} ({len(run.incidents)})\n"
+                f"config     {paths.config}\ncard       {paths.card}"
+            )
+            console.print(f"replay it: watchdog-edge replay {paths.recording} --config {paths.config}")
+            return
+        from simulators.live import parse_broker, publish_live
+
+        host, port = parse_broker(broker or "")
+        if files is not None:
+            import json
+
+            import watchdog_edge.files.tomlout as tomlout
+            from watchdog_edge.files.cardfile import save_card
+
+            files.mkdir(parents=True, exist_ok=True)
+            card_path = files / f"{sc.model.id}.card.json"
+            save_card(run.card, card_path)
+            (files / f"{name}.config.toml").write_text(
+                tomlout.dumps(config_data(sc, card_path.name, broker=(host, port))), encoding="utf-8"
+            )
+            (files / f"{name}.incidents.json").write_text(
+                json.dumps(incidents_data(run, name), indent=2) + "\n", encoding="utf-8"
+            )
+            console.print(f"card, config and incidents written to {files}")
+        span = run.end_t - run.start_t
+        console.print(
+            f"publishing {len(run.messages)} messages to {host}:{port} over "
+            f"{span / speed:.0f} s ({span / 3600:g} h simulated at {speed:g}x)"
+        )
+        acked = publish_live(run.messages, host, port, speed=speed, start_t=run.start_t)
+        console.print(f"{acked} messages acknowledged by the broker")
+    except (WatchdogError, ValueError) as e:
+        _fail(e)
+
+
+def tune(
+    recording: Path = typer.Argument(..., help="Recording to tune on (JSON Lines)."),
+    config: Path = typer.Option(..., "--config", "-c", help="The TOML config whose check settings are varied."),
+    incidents: Optional[Path] = typer.Option(
+        None, "--incidents", help="Incidents file (JSON): kind and span of each known incident."
+    ),
+    grid: Optional[Path] = typer.Option(
+        None,
+        "--grid",
+        help="Grid file (TOML \\[grid] table of dotted keys -> lists). Default: window size x gap confidence x gap tolerance x shift on/off (x ADWIN delta when drift is on).",
+    ),
+    holdout: Optional[Path] = typer.Option(
+        None, "--holdout", help="A second recording (another seed or day) to check the chosen setting on."
+    ),
+    holdout_incidents: Optional[Path] = typer.Option(
+        None, "--holdout-incidents", help="Incidents file of the holdout recording."
+    ),
+    model: Optional[list[str]] = typer.Option(
+        None, "--model", help="Tune only this model (repeatable); default every model."
+    ),
+    grace: Optional[float] = typer.Option(
+        None, "--grace", help="Seconds after an incident's end an alert still counts (default: one window)."
+    ),
+    alarm_budget: float = typer.Option(0.5, "--alarm-budget", help="Without incidents: alarms per day you accept."),
+    workers: Optional[int] = typer.Option(None, "--workers", help="Worker processes (default: one per CPU)."),
+    tick_every: Optional[float] = typer.Option(
+        None, "--tick-every", help="Add a timer tick every S seconds (as replay does)."
+    ),
+    snippet_out: Optional[Path] = typer.Option(
+        None, "--snippet", help="Where to write the best setting as TOML (default: RECORDING.best.toml)."
+    ),
+    plot_out: Optional[Path] = typer.Option(
+        None, "--plot", help="Where to write the PNG plot (default: RECORDING.tune.png)."
+    ),
+    results_out: Optional[Path] = typer.Option(None, "--results", help="Also write every setting's figures as JSON."),
+    checks: Optional[str] = typer.Option(
+        None,
+        "--checks",
+        help="Count only alerts of these checks, comma-separated (e.g. gap,drift); default every check.",
+    ),
+    top: int = typer.Option(15, "--top", help="Rows of the ranked table to print."),
+) -> None:
+    """Replay a recording across a grid of check settings and rank them.
+
+    The recording is parsed and paired once; each setting is applied to that one pass, spread over one worker process per CPU. With --incidents each setting is scored by missed incidents, false alarms per day outside the incidents (plus a grace of one window, the window size over the pair rate) and detection delay; settings whose grid neighbours raise false alarms rank lower. Without incidents, the tightest setting within --alarm-budget wins. The best setting is written as a \\[\\[models]] TOML snippet and a PNG plot.
+
+    Choosing on one recording is itself a fit: check the choice on --holdout (another day, or another seed).
+    """
+    import json
+
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+    from rich.table import Table
+
+    from simulators import tune as tuning
+    from simulators.bundle import load_incidents, sibling
+    from simulators.plot import draw, trace
+
+    console = Console(highlight=False, width=None if sys.stdout.isatty() else 160)
+    try:
+        inc = load_incidents(incidents) if incidents else None
+        hinc = load_incidents(holdout_incidents) if holdout_incidents else None
+        if holdout_incidents and not holdout:
+            raise ConfigError("--holdout-incidents needs --holdout RECORDING")
+        g = tuning.load_grid(grid) if grid else None
+        with Progress(
+            TextColumn("tuning"),
+            BarColumn(),
+            MofNCompleteColumn(),
+            TimeElapsedColumn(),
+            console=Console(stderr=True),
+            transient=True,
+        ) as bar:
+            task = bar.add_task("settings", total=None)
+
+            def progress(done: int, total: int) -> None:
+                bar.update(task, completed=done, total=total)
+
+            only = [c.strip() for c in checks.split(",") if c.strip()] if checks else None
+            result = tuning.tune(
+                config,
+                recording,
+                inc,
+                g,
+                workers,
+                holdout,
+                hinc,
+                model,
+                grace,
+                alarm_budget,
+                tick_every,
+                progress,
+                only,
+            )
+    except (WatchdogError, ValueError) as e:
+        _fail(e)
+        return
+    for s, why in result.invalid:
+        console.print(f"[yellow]skipped[/yellow] {s.label()}: {why.splitlines()[-1].strip()}")
+    table = Table(
+        title=f"{len(result.rows)} settings on {recording.name}"
+        + ("" if result.with_incidents else f" (no incidents: alarm budget {alarm_budget:g}/day)")
+    )
+    table.add_column("#", justify="right")
+    keys = list(result.best.setting.values)
+    for k in keys:
+        table.add_column(tuning._short(k), justify="right")
+    if result.with_incidents:
+        table.add_column("detected", justify="right")
+        table.add_column("false/day", justify="right")
+        table.add_column("near/day", justify="right")
+        for d in result.best.score.detections:
+            table.add_column(f"delay {d['kind']}", justify="right")
+    else:
+        table.add_column("alarms/day", justify="right")
+        table.add_column("near/day", justify="right")
+        table.add_column("within budget", justify="center")
+
+    def cells(sc, near: float | None) -> list[str]:
+        near_text = "-" if near is None else f"{near:.2f}"
+        if result.with_incidents:
+            n = len(sc.detections)
+            return [f"{n - sc.missed}/{n}", f"{sc.false_alarms_per_day:.2f}", near_text] + [
+                tuning._fmt_delay(d["delay_s"]) if d["delay_s"] is not None else "missed" for d in sc.detections
+            ]
+        quiet = (near if near is not None else sc.false_alarms_per_day) <= alarm_budget
+        return [f"{sc.false_alarms_per_day:.2f}", near_text, "yes" if quiet else "no"]
+
+    for rank, row in enumerate(result.rows[:top], 1):
+        table.add_row(
+            str(rank), *(str(row.setting.values[k]) for k in keys), *cells(row.score, row.robust_alarms_per_day)
+        )
+    if result.best.holdout is not None:
+        h = result.best.holdout
+        if result.with_incidents and hinc is None:
+            h_cells = ["-", f"{h.false_alarms_per_day:.2f}", "-"] + ["-"] * len(result.best.score.detections)
+        elif result.with_incidents and len(h.detections) != len(result.best.score.detections):
+            n = len(h.detections)
+            h_cells = [f"{n - h.missed}/{n}", f"{h.false_alarms_per_day:.2f}", "-"] + ["-"] * len(
+                result.best.score.detections
+            )
+        else:
+            h_cells = cells(h, None)
+        table.add_row("[bold]holdout[/bold]", *(str(result.best.setting.values[k]) for k in keys), *h_cells)
+    console.print(table)
+
+    snippet_path = snippet_out or sibling(recording, ".best.toml")
+    snippet_path.write_text(tuning.snippet(result, snippet_path.parent, recording), encoding="utf-8")
+    console.print(f"best setting: {result.best.setting.label()}\nTOML snippet: {snippet_path}")
+    plot_path = plot_out or sibling(recording, ".tune.png")
+    best_cfg = tuning.best_config(result)
+    from watchdog_edge.files.configfile import load_cards
+
+    target = (model or [m.id for m in best_cfg.models])[0]
+    tr = trace(best_cfg, load_cards(best_cfg), result.intake.steps, target)
+    draw(
+        tr,
+        [i for i in (inc or []) if i.get("model") in (None, target)],
+        plot_path,
+        f"{target}: {result.best.setting.label()}",
+        result.intake.start,
+        result.intake.end,
+    )
+    console.print(f"plot: {plot_path}")
+    if results_out:
+        data = {
+            "recording": str(recording),
+            "with_incidents": result.with_incidents,
+            "best": {
+                "setting": result.best.setting.values,
+                **result.best.score.to_dict(),
+                "holdout": result.best.holdout.to_dict() if result.best.holdout else None,
+            },
+            "rows": [
+                {
+                    "setting": r.setting.values,
+                    "tightness": r.setting.tightness,
+                    "neighbourhood_alarms_per_day": r.robust_alarms_per_day,
+                    **r.score.to_dict(),
+                }
+                for r in result.rows
+            ],
+        }
+        results_out.write_text(json.dumps(data, indent=2, default=str) + "\n", encoding="utf-8")
+        console.print(f"results: {results_out}")
+
+
+def register(app: typer.Typer) -> None:
+    """Add ``simulate`` and ``tune`` to the main ``watchdog-edge`` app."""
+    app.command("simulate")(simulate)
+    app.command("tune")(tune)

@@ -1,0 +1,303 @@
+"""``shift``: have the inputs moved away from the training data?
+
+For each feature with a training histogram on the card, the population stability index (PSI)
+compares the training shares with the last ``window`` predictions:
+
+    PSI = sum_i (a_i - e_i) * ln(a_i / e_i)
+
+over the card's k bins (outer bins open to -inf and +inf) plus one bin for missing values.
+Empty bins would make the logarithm infinite, so both sides get ``smoothing`` pseudo-counts per
+bin: a_i = (c_i + s) / (n + s (k + 1)) from the live counts c_i, and e_i = (E_i n + s) /
+(n + s (k + 1)) from the training shares E_i, as if the training side had n rows too.
+
+The index is biased upwards on small windows: for a window of n rows drawn from the training
+distribution, n x PSI is close to Pearson's chi-square statistic (ln(a/e) ~ (a - e)/e for small
+differences), so it is about chi-square with b - 1 degrees of freedom, b the number of bins with
+a training share, and its mean is about (b - 1) / n. Hence the default window of 1,000 predictions; ``check-config``
+prints :func:`settings_warnings` for smaller ones. Warning at 0.1 and critical at 0.25 are
+common practice, no single source. Needs no truth.
+
+A prediction with no features at all is not counted; in one that has features, a feature that
+is null or absent falls into the missing bin.
+"""
+
+from __future__ import annotations
+
+import math
+import operator
+from collections.abc import Sequence
+from itertools import chain
+from typing import Any
+
+import numpy as np
+from pydantic import Field, model_validator
+
+from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict
+from watchdog_edge.core.checks.levels import LevelGate
+from watchdog_edge.core.records import Prediction
+
+ADVISED_MIN_WINDOW = 1000
+
+
+class ShiftSettings(CheckSettings):
+    """Settings of ``shift``.
+
+    >>> s = ShiftSettings()
+    >>> s.window, s.warning, s.critical
+    (1000, 0.1, 0.25)
+    """
+
+    window: int = Field(
+        1000,
+        ge=50,
+        le=1_000_000,
+        description="Number of latest predictions (with features) compared with the training histogram.",
+    )
+    warning: float = Field(0.1, gt=0, description="Warning when a feature's population stability index exceeds this.")
+    critical: float = Field(
+        0.25, gt=0, description="Critical when a feature's population stability index exceeds this."
+    )
+    smoothing: float = Field(
+        0.5, gt=0, le=10, description="Pseudo-count added to every bin on both sides, so empty bins stay finite."
+    )
+    evaluate_every: int = Field(
+        250, ge=1, description="Predictions between evaluations (the index moves slowly on a window of 1000)."
+    )
+    hysteresis: float = Field(
+        0.2, ge=0, lt=1, description="Clear only when the index is at or below the limit x (1 - this)."
+    )
+    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+
+    @model_validator(mode="after")
+    def _order(self) -> ShiftSettings:
+        if self.critical < self.warning:
+            raise ValueError(f"critical ({self.critical}) must be >= warning ({self.warning})")
+        return self
+
+
+def settings_warnings(settings: ShiftSettings) -> list[str]:
+    """Advice on settings that are valid but unwise, for ``check-config`` to print.
+
+    >>> settings_warnings(ShiftSettings(window=300))[0][:40]
+    'window = 300 is below 1000: the populati'
+    """
+    out = []
+    if settings.window < ADVISED_MIN_WINDOW:
+        out.append(
+            f"window = {settings.window} is below {ADVISED_MIN_WINDOW}: the population stability "
+            f"index is biased upwards on small windows (about bins/window on unchanged inputs), so "
+            f"false alarms become likely; use window >= {ADVISED_MIN_WINDOW} or raise 'warning'"
+        )
+    return out
+
+
+def population_stability_index(
+    expected_shares: Sequence[float], actual_counts: Sequence[float], smoothing: float
+) -> float:
+    """PSI between expected shares and observed counts over the same bins, with additive smoothing.
+
+    ``smoothing`` pseudo-counts go into every bin on both sides (see the module docstring).
+
+    >>> round(population_stability_index([0.5, 0.5], [70, 30], smoothing=0.0), 6)
+    0.16946
+    """
+    k = len(expected_shares)
+    if k != len(actual_counts):
+        raise ValueError(f"{k} expected shares but {len(actual_counts)} counts; they must cover the same bins")
+    n = float(sum(actual_counts))
+    if n <= 0:
+        raise ValueError("actual_counts sum to 0; the index needs at least one observation")
+    denom = n + smoothing * k
+    total = 0.0
+    for e, c in zip(expected_shares, actual_counts):
+        a = (c + smoothing) / denom
+        q = (e * n + smoothing) / denom
+        if a == q:
+            continue
+        if a <= 0 or q <= 0:
+            return math.inf
+        total += (a - q) * math.log(a / q)
+    return total
+
+
+class ShiftCheck(Check):
+    """Population stability index per feature against the card's training histograms.
+
+    Predictions are queued as they come (one list append) and binned in a batch with numpy
+    when an evaluation is due or a snapshot is taken; binning in batches or one by one gives
+    the same counts, so this changes nothing but the cost.
+
+    >>> from watchdog_edge.core.cards import ModelCard
+    >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 100}, fitted_parameters=2,
+    ...     holdout={"loss": 1.0, "count": 50}, features={"x": {"min": 0, "max": 4,
+    ...     "histogram": {"edges": [0, 1, 2, 3, 4], "shares": [0.25, 0.25, 0.25, 0.25]}}})
+    >>> check = ShiftCheck(ShiftSettings(window=100, evaluate_every=100),
+    ...                    CheckContext("m", card, "squared", 1.0, "holdout"))
+    >>> for i in range(100):                       # every value in the top bin
+    ...     check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"x": 3.5}))
+    >>> v = check.evaluate(100.0)
+    >>> v.level, round(v.figures["index"]["x"], 2)
+    ('critical', 3.88)
+    """
+
+    name = "shift"
+    reacts_to = frozenset({"prediction"})  # its counts move only with predictions
+    settings_model = ShiftSettings
+
+    def __init__(self, settings: ShiftSettings, context: CheckContext) -> None:
+        super().__init__(settings, context)
+        self.settings: ShiftSettings = settings
+        names, inner, expected, nbins = [], [], [], []
+        for fname, prof in context.card.features.items():
+            h = prof.histogram
+            if h is not None and h.shares:
+                names.append(fname)
+                inner.append(h.edges[1:-1])  # bin i is [edges[i], edges[i+1]); outer bins open
+                present = 1.0 - h.missing
+                expected.append([sh * present for sh in h.shares] + [h.missing])
+                nbins.append(len(h.shares) + 1)  # the card's bins, then the missing bin
+        self.names: tuple[str, ...] = tuple(names)
+        self.expected: dict[str, list[float]] = dict(zip(names, expected))
+        self._nbins = np.array(nbins, dtype=np.int64)
+        # Every feature's bins side by side in one flat count vector, at these offsets.
+        self._offset = np.concatenate(([0], np.cumsum(self._nbins)[:-1])).astype(np.int64)
+        self._total = int(self._nbins.sum()) if nbins else 0
+        # Inner edges padded with +inf to one width, so that one comparison bins every
+        # feature: the bin is the number of inner edges <= x (bisect_right).
+        width = max((len(e) for e in inner), default=0)
+        self._edges = np.full((len(names), max(width, 1)), np.inf)
+        for j, e in enumerate(inner):
+            self._edges[j, : len(e)] = e
+        self._missing = self._nbins - 1
+        self._getter = operator.itemgetter(*names) if names else None
+        self._every = settings.evaluate_every
+        self._gate = LevelGate(settings.warning, settings.critical, settings.hysteresis, settings.clear_after)
+        self.reset()
+
+    def reset(self) -> None:
+        self._counts = np.zeros(self._total, dtype=np.int64)
+        # flat bin ids (offset included) of each prediction in the window; -1 where still empty
+        self._ring = np.full((self.settings.window, len(self.names)), -1, dtype=np.int32)
+        self._pos = 0
+        self._filled = 0
+        self._pending: list[dict[str, float | None]] = []
+        self._since_eval = 0
+        self._gate.reset()
+        self._figures: dict[str, Any] = {}
+
+    def on_prediction(self, prediction: Prediction) -> bool:
+        feats = prediction.features
+        if feats and self.names:
+            self._pending.append(feats)
+            self._since_eval += 1
+        return self._since_eval >= self._every  # evaluate resets it, so below: nothing new
+
+    def _flush(self) -> None:
+        """Bin the queued predictions into the window."""
+        pend = self._pending
+        if not pend:
+            return
+        size = self.settings.window
+        if len(pend) > size:  # only the newest ``size`` can stay in the window
+            pend = pend[-size:]
+        m = len(pend)
+        names = self.names
+        k = len(names)
+        try:
+            rows = map(self._getter, pend)
+            # fromiter reads a flat stream of numbers twice as fast as array() reads rows
+            x = np.fromiter(chain.from_iterable(rows) if k > 1 else rows, float, m * k)  # None -> NaN
+        except KeyError:  # some prediction lacks a feature: missing, like a null
+            x = np.array([[d.get(n) for n in names] for d in pend], dtype=float)
+        x = x.reshape(m, k)
+        bins = (x[:, :, None] >= self._edges[None, :, :]).sum(axis=2)
+        bins = np.where(np.isnan(x), self._missing, bins) + self._offset
+        slots = (self._pos + np.arange(m)) % size
+        old = self._ring[slots].ravel()
+        self._counts += np.bincount(bins.ravel(), minlength=self._total) - np.bincount(
+            old[old >= 0], minlength=self._total
+        )
+        self._ring[slots] = bins
+        self._pos = int((self._pos + m) % size)
+        self._filled = min(size, self._filled + m)
+        self._pending = []
+
+    def counts(self) -> dict[str, list[int]]:
+        """Live counts per feature: the card's bins, then the missing bin."""
+        self._flush()
+        c = self._counts.tolist()
+        return {n: c[o : o + k] for n, o, k in zip(self.names, self._offset.tolist(), self._nbins.tolist())}
+
+    def indices(self) -> dict[str, float]:
+        """The index of every feature over the current window."""
+        if not self._filled and not self._pending:
+            return {}
+        s = self.settings.smoothing
+        return {n: population_stability_index(self.expected[n], c, s) for n, c in self.counts().items()}
+
+    def evaluate(self, t: float) -> Verdict | None:
+        if self._since_eval < self._every:
+            return None
+        self._since_eval = 0
+        self._flush()
+        if self._filled < self.settings.window:
+            return None
+        s = self.settings
+        idx = self.indices()
+        top = max(idx, key=idx.__getitem__)
+        level = self._gate.update(idx[top])
+        self._figures = {
+            "index": idx,
+            "top_feature": top,
+            "predictions": self._filled,
+            "warning": s.warning,
+            "critical": s.critical,
+        }
+        return Verdict(level, self._summary(level, idx, top), dict(self._figures))
+
+    def _summary(self, level: str, idx: dict[str, float], top: str) -> str:
+        s = self.settings
+        n = self._filled
+        if level == "ok":
+            return (
+                f"The inputs of the last {n} predictions look like the training data: the largest "
+                f"population stability index is {idx[top]:.3g} ({top}), within the warning limit {s.warning:g}."
+            )
+        limit = s.critical if level == "critical" else s.warning
+        moved = [name for name, v in sorted(idx.items(), key=lambda kv: -kv[1]) if v > s.warning]
+        names = ", ".join(moved[:3]) + (f" and {len(moved) - 3} more" if len(moved) > 3 else "")
+        return (
+            f"The inputs have moved away from the training data: population stability index "
+            f"{idx[top]:.3g} for {top} over the last {n} predictions (the {level} limit is {limit:g}); "
+            f"features past the warning limit: {names or 'none now'}."
+        )
+
+    def figures(self) -> dict[str, Any]:
+        out = dict(self._figures)
+        out["level"] = self._gate.level
+        return out
+
+    def snapshot(self) -> dict[str, Any]:
+        self._flush()  # binning now or later gives the same window
+        return {
+            "features": list(self.names),
+            "ring": self._ring.tolist(),
+            "counts": self._counts.tolist(),
+            "pos": self._pos,
+            "filled": self._filled,
+            "since_eval": self._since_eval,
+            "gate": self._gate.snapshot(),
+            "figures": self._figures,
+        }
+
+    def restore(self, data: dict[str, Any]) -> None:
+        if list(data["features"]) != list(self.names):
+            raise ValueError(f"shift snapshot covers features {data['features']}, the card has {list(self.names)}")
+        self._ring = np.array(data["ring"], dtype=np.int32).reshape(self.settings.window, len(self.names))
+        self._counts = np.array(data["counts"], dtype=np.int64)
+        self._pos = int(data["pos"])
+        self._filled = int(data["filled"])
+        self._since_eval = int(data["since_eval"])
+        self._pending = []
+        self._gate.restore(data["gate"])
+        self._figures = data["figures"]

@@ -1,0 +1,560 @@
+"""The sans-I/O monitoring core: topic, payload and receive time in; events out.
+
+``feed`` and ``tick`` are all an adapter needs. Internally ``feed`` is ``apply(intake(...))``:
+``intake`` routes, parses and pairs (it owns the pairing buffers and the bad-record counters);
+``apply`` runs the live windows, the checks and the alert states. A tuner intakes a recording
+once and applies the same steps to many monitors built with other check settings.
+
+The core never reads a clock, opens a socket, starts a thread or touches disk.
+"""
+
+from __future__ import annotations
+
+import base64
+from collections import deque
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
+from typing import Any
+
+import orjson
+
+import watchdog_edge.core.checks as registry
+from watchdog_edge.core.alerts import AlertBook
+from watchdog_edge.core.cards import ModelCard, expected_loss
+from watchdog_edge.core.checks.base import Check, CheckContext, Verdict
+from watchdog_edge.core.events import DeadLetter, Event, VersionStarted
+from watchdog_edge.core.losses import loss_function
+from watchdog_edge.core.pairing import COUNTERS as PAIR_COUNTERS
+from watchdog_edge.core.pairing import Pairer
+from watchdog_edge.core.parsing import (
+    REASONS,
+    BadRecord,
+    InexactNumber,
+    RecordParser,
+    decode,
+    decode_exact,
+    element_bytes,
+)
+from watchdog_edge.core.records import Pair, Prediction, Truth
+from watchdog_edge.core.settings import Config, ModelSettings
+from watchdog_edge.core.topics import Router
+from watchdog_edge.errors import CardError, ConfigError
+
+_orjson_loads = orjson.loads
+_OrjsonError = orjson.JSONDecodeError
+
+SNAPSHOT_FORMAT = 1
+
+
+@dataclass(slots=True)
+class Step:
+    """One unit of work for ``apply``: a prediction, truth, pair or tick of one model."""
+
+    kind: str  # "prediction" | "truth" | "pair" | "tick"
+    t: float
+    model: str | None = None
+    item: Prediction | Truth | Pair | None = None
+
+
+@dataclass(slots=True, eq=False)
+class Lane:
+    """Where the records of one topic filter go: one model's parser, pairer and track."""
+
+    model: str
+    prediction: bool  # predictions, else truths
+    parse: Callable[[Any, float], Prediction | Truth]  # the parser's bound method
+    pairer: Pairer
+    track: ModelTrack
+
+
+class ModelTrack:
+    """Windows, checks and alert states of one model."""
+
+    def __init__(self, agent: str, settings: ModelSettings, card: ModelCard) -> None:
+        self.settings = settings
+        self.card = card
+        try:
+            exp, source = expected_loss(card)
+        except CardError as e:
+            raise ConfigError(f"models[{settings.id}].card: {e}") from None
+        self.context = CheckContext(
+            model=settings.id,
+            card=card,
+            loss_kind=card.loss,
+            expected_loss=exp,
+            expected_source=source,
+            window_size=settings.window.size,
+            window_max_age_s=settings.window.max_age_s,
+            min_pairs=settings.window.min_pairs,
+        )
+        self.loss = loss_function(card.loss)
+        self.checks: dict[str, Check] = {}
+        for name in settings.enabled_checks():
+            cls = registry.check_class(name)
+            self.checks[name] = cls(settings.checks[name], self.context)
+
+        # Per input kind: the checks that take it, and those whose verdict it may change.
+        def overrides(check: Check, verb: str) -> bool:
+            return getattr(type(check), verb) is not getattr(Check, verb)
+
+        items = list(self.checks.items())
+        self._takes = {
+            verb: [c for _, c in items if overrides(c, verb)] for verb in ("on_prediction", "on_truth", "on_pair")
+        }
+        self._judges = {
+            kind: [(n, c) for n, c in items if kind in c.reacts_to] for kind in ("prediction", "truth", "pair", "tick")
+        }
+
+        # Per input kind, in check order: (name, its verb for the input or None, its evaluate
+        # or None), as bound methods. A verb that returns False says evaluate would have
+        # nothing new to say: the call is skipped (see Check.on_prediction).
+        def route(kind: str, verb: str) -> tuple[tuple[str, Any, Any], ...]:
+            return tuple(
+                (n, getattr(c, verb) if overrides(c, verb) else None, c.evaluate if kind in c.reacts_to else None)
+                for n, c in items
+                if overrides(c, verb) or kind in c.reacts_to
+            )
+
+        self._on_prediction = route("prediction", "on_prediction")
+        self._on_truth = route("truth", "on_truth")
+        self._on_pair = route("pair", "on_pair")
+        self._on_tick = tuple((n, c.evaluate) for n, c in self._judges["tick"])
+        self.book = AlertBook(agent, settings.id)
+        self.keeps_features = any(c.pair_features for c in self._takes["on_pair"])
+        self.version: str | None = None
+        self.version_seen = False
+        self.pairs = 0
+        self.stale_pairs = 0
+        self.last_alert_t: float | None = None
+
+    def _verdict(self, name: str, verdict: Verdict, t: float, out: list[Event]) -> None:
+        alert = self.book.update(name, verdict, t, self.version)
+        if alert is not None:
+            self.last_alert_t = t
+            out.append(alert)
+
+    def prediction(self, p: Prediction, out: list[Event]) -> None:
+        v = p.model_version
+        if v is not None and v != self.version:
+            self._new_version(p, out)
+        self.version_seen = True
+        t = p.t
+        for name, take, ask in self._on_prediction:
+            if (take is not None and take(p) is False) or ask is None:
+                continue
+            verdict = ask(t)
+            if verdict is not None:
+                self._verdict(name, verdict, t, out)
+
+    def _new_version(self, p: Prediction, out: list[Event]) -> None:
+        if self.version_seen or self.version is not None:
+            out.extend(
+                self.book.close_all(
+                    p.t,
+                    self.version,
+                    f"Model version {p.model_version} replaced {self.version}; live windows start afresh.",
+                )
+            )
+            for check in self.checks.values():
+                check.reset()
+        out.append(VersionStarted(self.settings.id, p.t, self.version, p.model_version))
+        self.version = p.model_version
+
+    def truth(self, tr: Truth, out: list[Event]) -> None:
+        # the loop of prediction() and pair(), written out in each: a shared helper would cost
+        # one more call for every record
+        t = tr.t
+        for name, take, ask in self._on_truth:
+            if (take is not None and take(tr) is False) or ask is None:
+                continue
+            verdict = ask(t)
+            if verdict is not None:
+                self._verdict(name, verdict, t, out)
+
+    def pair(self, pr: Pair, out: list[Event]) -> None:
+        p = pr.prediction
+        v = p.model_version
+        if v is not None and v != self.version:
+            self.stale_pairs += 1  # the pair belongs to a version no longer live
+            return
+        self.pairs += 1
+        loss = self.loss(pr.truth.value, p.value)
+        t = pr.t
+        for name, take, ask in self._on_pair:
+            if (take is not None and take(pr, loss) is False) or ask is None:
+                continue
+            verdict = ask(t)
+            if verdict is not None:
+                self._verdict(name, verdict, t, out)
+
+    def tick(self, t: float, out: list[Event]) -> None:
+        for name, ask in self._on_tick:
+            verdict = ask(t)
+            if verdict is not None:
+                self._verdict(name, verdict, t, out)
+
+    def state(self) -> dict[str, Any]:
+        checks = {}
+        for name, check in self.checks.items():
+            checks[name] = {"state": self.book.level(name), "figures": check.figures()}
+        return {
+            "model": self.settings.id,
+            "model_version": self.version,
+            "pairs": self.pairs,
+            "stale_pairs": self.stale_pairs,
+            "expected_loss": self.context.expected_loss,
+            "expected_source": self.context.expected_source,
+            "loss": self.context.loss_kind,
+            "checks": checks,
+        }
+
+    def snapshot(self) -> dict[str, Any]:
+        return {
+            "version": self.version,
+            "version_seen": self.version_seen,
+            "pairs": self.pairs,
+            "stale_pairs": self.stale_pairs,
+            "book": self.book.snapshot(),
+            "checks": {n: c.snapshot() for n, c in self.checks.items()},
+        }
+
+    def restore(self, data: dict[str, Any]) -> None:
+        self.version = data["version"]
+        self.version_seen = data["version_seen"]
+        self.pairs = data["pairs"]
+        self.stale_pairs = data["stale_pairs"]
+        self.book.restore(data["book"])
+        for n, c in self.checks.items():
+            if n in data["checks"]:
+                c.restore(data["checks"][n])
+
+
+class Monitor:
+    """The core. Feed it what a recording line holds; act on the events it returns.
+
+    >>> from watchdog_edge.core.settings import parse_config
+    >>> cfg = parse_config({"models": [{"id": "m", "card": "m.json",
+    ...     "prediction_topic": "site/pred", "truth_topic": "site/truth"}]})
+    >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 200}, fitted_parameters=3,
+    ...                  least_squares=True)
+    >>> mon = Monitor(cfg, {"m": card})
+    >>> mon.feed("site/pred", b'{"id": 1, "value": 2.0}', t=100.0)
+    []
+    >>> mon.feed("site/truth", b'{"id": "1", "value": 2.5}', t=160.0)
+    []
+    >>> mon.status()["models"]["m"]["paired"]
+    1
+    """
+
+    def __init__(self, config: Config, cards: dict[str, ModelCard]) -> None:
+        self.config = config
+        self.agent = config.agent.name
+        routes: list[tuple[str, Lane]] = []
+        self.parsers: dict[tuple[str, str], RecordParser] = {}
+        self.pairers: dict[str, Pairer] = {}
+        self.tracks: dict[str, ModelTrack] = {}
+        for m in config.models:
+            if m.id not in cards:
+                raise ConfigError(f"models[{m.id}].card: no model card was given for model {m.id!r}")
+            self.parsers[(m.id, "prediction")] = RecordParser(m.id, "prediction", m.fields.prediction_map())
+            self.parsers[(m.id, "truth")] = RecordParser(m.id, "truth", m.fields.truth_map())
+            self.pairers[m.id] = Pairer(m.pairing.horizon_s, m.pairing.max_unpaired)
+            self.tracks[m.id] = ModelTrack(self.agent, m, cards[m.id])
+            for flt, kind in ((m.prediction_topic, "prediction"), (m.truth_topic, "truth")):
+                routes.append(
+                    (
+                        flt,
+                        Lane(
+                            m.id,
+                            kind == "prediction",
+                            self.parsers[(m.id, kind)].parse,
+                            self.pairers[m.id],
+                            self.tracks[m.id],
+                        ),
+                    )
+                )
+        self.router: Router[Lane] = Router(routes)
+        self._routes = self.router.cache  # looked up first: most topics are already there
+        self.max_payload = config.agent.max_payload_bytes
+        self.now = float("-inf")
+        self.received = 0
+        self.ticks = 0
+        self.clock_backwards = 0
+        self.bad = dict.fromkeys(REASONS, 0)
+        self._dead: deque[DeadLetter] = deque()
+        self._dead_bytes = 0
+        self._exact: tuple[bytes | None, list[Any]] = (None, [])
+
+    # -- time -------------------------------------------------------------------------------
+    def _clock(self, t: float) -> float:
+        t = float(t)
+        if t < self.now:
+            self.clock_backwards += 1
+            return self.now
+        self.now = t
+        return t
+
+    # -- intake: route, parse, pair ---------------------------------------------------------
+    def _dead_letter(self, topic: str, t: float, reason: str, detail: str, raw: bytes, out: list[Any]) -> None:
+        self.bad[reason] += 1
+        raw = raw[: self.max_payload]
+        dl = DeadLetter(topic, t, reason, detail, raw)
+        self._dead.append(dl)
+        self._dead_bytes += len(raw)
+        limits = self.config.agent
+        while self._dead and (
+            len(self._dead) > limits.dead_letter_max_count or self._dead_bytes > limits.dead_letter_max_bytes
+        ):
+            self._dead_bytes -= len(self._dead.popleft().payload)
+        out.append(dl)
+
+    def intake(self, topic: str, payload: bytes | str, t: float) -> list[Any]:
+        """Route, parse and pair one message; returns steps and dead letters."""
+        return self.feed(topic, payload, t, steps=True)
+
+    def feed(self, topic: str, payload: bytes | str, t: float, *, steps: bool = False) -> list[Any]:
+        """One received message at receive time ``t``; the events it causes.
+
+        With ``steps=True`` the tracks do not run: the result holds the steps (and dead
+        letters) for :meth:`apply`, which then gives the same events in the same order.
+        """
+        if type(t) is not float:
+            t = float(t)
+        if t < self.now:
+            self.clock_backwards += 1
+            t = self.now
+        else:
+            self.now = t
+        self.received += 1
+        if type(payload) is bytes:
+            raw = payload
+        else:
+            raw = payload.encode() if isinstance(payload, str) else bytes(payload)
+        out: list[Any] = []
+        lanes = self._routes.get(topic) or self.router.route(topic)
+        if not lanes:
+            self._dead_letter(topic, t, "unknown_topic", f"no model listens on topic {topic!r}", raw, out)
+            return out
+        for lane in lanes:
+            if t > lane.pairer.due:
+                lane.pairer.expire(t)
+        # decode()'s common case written out (a payload orjson reads as an object or an array);
+        # anything else goes through decode() for its rules and its reasons
+        doc = None
+        if len(raw) <= self.max_payload:
+            try:
+                doc = _orjson_loads(raw)
+            except _OrjsonError:
+                pass
+        if type(doc) is dict:
+            elements: Any = (doc,)
+        elif type(doc) is list:
+            elements = doc
+        else:
+            try:
+                elements = decode(raw, self.max_payload)
+            except BadRecord as e:
+                self._dead_letter(topic, t, e.reason, e.detail, raw, out)
+                return out
+        for lane in lanes:
+            parse, pairer, track = lane.parse, lane.pairer, lane.track
+            for el in elements:
+                try:
+                    rec = parse(el, t)
+                except BadRecord as e:
+                    rec = self._reject(e, lane, el, elements, raw, topic, t, out)
+                    if rec is None:
+                        continue
+                if lane.prediction:
+                    if steps:
+                        out.append(Step("prediction", t, lane.model, rec))
+                    else:
+                        track.prediction(rec, out)  # type: ignore[arg-type]
+                        if not track.keeps_features:
+                            rec.features = {}  # rebound, not cleared: a check may still hold the dict
+                    pr = pairer.add_prediction(rec)  # type: ignore[arg-type]
+                else:
+                    if steps:
+                        out.append(Step("truth", t, lane.model, rec))
+                    else:
+                        track.truth(rec, out)  # type: ignore[arg-type]
+                    pr = pairer.add_truth(rec)  # type: ignore[arg-type]
+                if pr is not None:
+                    if steps:
+                        out.append(Step("pair", t, lane.model, pr))
+                    else:
+                        track.pair(pr, out)
+        return out
+
+    def _reject(
+        self, e: BadRecord, lane: Lane, el: Any, elements: list[Any], raw: bytes, topic: str, t: float, out: list[Any]
+    ) -> Prediction | Truth | None:
+        """Dead-letter a bad element; an inexact number gets a second, exact reading first."""
+        if type(e) is InexactNumber:
+            k = next(i for i, x in enumerate(elements) if x is el)
+            if self._exact[0] is not raw:  # read once per payload, however many elements need it
+                self._exact = (raw, decode_exact(raw))
+            try:
+                return lane.parse(self._exact[1][k], t)
+            except BadRecord as again:
+                e = again
+        self._dead_letter(topic, t, e.reason, e.detail, raw if len(elements) == 1 else element_bytes(el), out)
+        return None
+
+    def _expire(self, t: float) -> None:
+        for p in self.pairers.values():
+            p.expire(t)
+
+    def intake_tick(self, t: float) -> list[Any]:
+        """A timer tick as a step."""
+        t = self._clock(t)
+        self.ticks += 1
+        self._expire(t)
+        return [Step("tick", t)]
+
+    # -- apply: windows, checks, alerts -----------------------------------------------------
+    def apply(self, steps: Iterable[Any]) -> list[Event]:
+        """Run steps from ``intake`` through the checks; dead letters pass through."""
+        out: list[Event] = []
+        tracks = self.tracks
+        for s in steps:
+            if type(s) is not Step:
+                out.append(s)
+                continue
+            kind = s.kind
+            if kind == "pair":
+                tracks[s.model].pair(s.item, out)  # type: ignore[index,arg-type]
+            elif kind == "prediction":
+                tracks[s.model].prediction(s.item, out)  # type: ignore[index,arg-type]
+            elif kind == "truth":
+                tracks[s.model].truth(s.item, out)  # type: ignore[index,arg-type]
+            else:
+                if s.t > self.now:
+                    self.now = s.t
+                for tr in tracks.values():
+                    tr.tick(s.t, out)
+        return out
+
+    def relevant(self, steps: Iterable[Any]) -> list[Step]:
+        """The steps that can change this monitor's alerts, for applying one recording many times.
+
+        Pairs and ticks are kept; a prediction or truth only where some enabled check of its
+        model takes or judges it, or where a prediction starts a new model version. Dead
+        letters are dropped. ``apply`` of the result gives the same alerts as ``apply`` of all.
+        """
+        wants = {
+            m: (
+                bool(tr._takes["on_prediction"] or tr._judges["prediction"]),
+                bool(tr._takes["on_truth"] or tr._judges["truth"]),
+            )
+            for m, tr in self.tracks.items()
+        }
+        version: dict[str, str | None] = {}
+        out: list[Step] = []
+        for s in steps:
+            if type(s) is not Step:
+                continue
+            if s.kind == "prediction":
+                v = s.item.model_version  # type: ignore[union-attr]
+                new_version = v is not None and v != version.get(s.model)  # type: ignore[arg-type]
+                if new_version:
+                    version[s.model] = v  # type: ignore[index]
+                if not (wants[s.model][0] or new_version):  # type: ignore[index]
+                    continue
+            elif s.kind == "truth" and not wants[s.model][1]:  # type: ignore[index]
+                continue
+            out.append(s)
+        return out
+
+    def tick(self, t: float) -> list[Event]:
+        """A timer tick at core time ``t``."""
+        return self.apply(self.intake_tick(t))
+
+    # -- state ------------------------------------------------------------------------------
+    @property
+    def records(self) -> int:
+        """Good records taken (every one reaches its model's pairer, duplicates included)."""
+        return sum(p.counts["predictions"] + p.counts["truths"] for p in self.pairers.values())
+
+    def models(self) -> list[str]:
+        return list(self.tracks)
+
+    def state(self, model: str) -> dict[str, Any]:
+        """Every check's state and latest figures for one model."""
+        st = self.tracks[model].state()
+        st["pairing"] = dict(self.pairers[model].counts)
+        st["pending"] = self.pairers[model].pending
+        return st
+
+    def status(self) -> dict[str, Any]:
+        """Counters of the whole core."""
+        totals = dict.fromkeys(PAIR_COUNTERS, 0)
+        per_model = {}
+        for m, p in self.pairers.items():
+            per_model[m] = dict(p.counts, pending=p.pending, stale_pairs=self.tracks[m].stale_pairs)
+            for k, v in p.counts.items():
+                totals[k] += v
+        return {
+            "received": self.received,
+            "records": self.records,
+            "ticks": self.ticks,
+            "bad": {k: v for k, v in self.bad.items() if v},
+            "bad_total": sum(self.bad.values()),
+            "clock_backwards": self.clock_backwards,
+            "dead_letters_kept": len(self._dead),
+            **totals,
+            "models": per_model,
+        }
+
+    def dead_letters(self) -> list[DeadLetter]:
+        """The dead letters the core still holds (bounded by count and bytes)."""
+        return list(self._dead)
+
+    # -- snapshot ---------------------------------------------------------------------------
+    def snapshot(self) -> dict[str, Any]:
+        """All state as plain JSON-able data."""
+        return {
+            "format": SNAPSHOT_FORMAT,
+            "agent": self.agent,
+            "now": self.now if self.now != float("-inf") else None,  # strict JSON has no infinity
+            "received": self.received,
+            "records": self.records,
+            "ticks": self.ticks,
+            "clock_backwards": self.clock_backwards,
+            "bad": dict(self.bad),
+            "dead": [
+                {
+                    "topic": d.topic,
+                    "t": d.t,
+                    "reason": d.reason,
+                    "detail": d.detail,
+                    "payload": base64.b64encode(d.payload).decode(),
+                }
+                for d in self._dead
+            ],
+            "pairers": {m: p.snapshot() for m, p in self.pairers.items()},
+            "tracks": {m: tr.snapshot() for m, tr in self.tracks.items()},
+        }
+
+    @classmethod
+    def restore(cls, config: Config, cards: dict[str, ModelCard], data: dict[str, Any]) -> Monitor:
+        """A monitor that continues exactly where ``snapshot`` left off."""
+        if data.get("format") != SNAPSHOT_FORMAT:
+            raise ConfigError(f"snapshot format {data.get('format')!r} is not {SNAPSHOT_FORMAT}; start without it")
+        mon = cls(config, cards)
+        mon.now = float(data["now"]) if data["now"] is not None else float("-inf")
+        mon.received = data["received"]
+        mon.ticks = data["ticks"]
+        mon.clock_backwards = data["clock_backwards"]
+        mon.bad.update(data["bad"])
+        for d in data["dead"]:
+            dl = DeadLetter(d["topic"], d["t"], d["reason"], d["detail"], base64.b64decode(d["payload"]))
+            mon._dead.append(dl)
+            mon._dead_bytes += len(dl.payload)
+        for m, snap in data["pairers"].items():
+            if m in mon.pairers:
+                mon.pairers[m].restore(snap)
+        for m, snap in data["tracks"].items():
+            if m in mon.tracks:
+                mon.tracks[m].restore(snap)
+        return mon

@@ -1,0 +1,374 @@
+"""The TOML config: agent, broker and per-model settings, validated on load.
+
+An error names the key, the value and the rule, for example
+``models[0].window.size = 0: Input should be greater than or equal to 2``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator, model_validator
+
+import watchdog_edge.core.checks as registry
+from watchdog_edge.core.parsing import FieldMap
+from watchdog_edge.core.topics import validate_filter, validate_level
+from watchdog_edge.errors import ConfigError
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class AgentSettings(_Strict):
+    """The agent itself: its name, where it keeps state, its bounds and timers."""
+
+    name: str = Field("edge-agent", description="Names this agent in alerts and in the status topic.")
+    state_dir: str = Field(
+        "watchdog-state", description="Folder of the SQLite state file (relative to the config file)."
+    )
+    max_payload_bytes: int = Field(65536, ge=64, description="Payloads over this size are dead-lettered unparsed.")
+    dead_letter_max_count: int = Field(1000, ge=1, description="Dead letters kept at most, oldest dropped first.")
+    dead_letter_max_bytes: int = Field(1_048_576, ge=1024, description="Bytes of dead letters kept at most.")
+    tick_every_s: float = Field(1.0, gt=0, description="Timer tick of the live agent (silence, age bounds).")
+    snapshot_every_s: float = Field(300.0, gt=0, description="How often the core is snapshotted to disk.")
+    state_every_s: float = Field(60.0, gt=0, description="How often retained state and status are refreshed.")
+    journal_batch_ms: float = Field(
+        20.0, gt=0, le=1000, description="Longest wait before a journal batch commits and acks."
+    )
+    journal_batch_max: int = Field(
+        10, ge=1, le=1000, description="Messages per journal batch at most (keep below the broker's inflight window)."
+    )
+    sqlite_synchronous: Literal["NORMAL", "FULL"] = Field(
+        "NORMAL", description="FULL survives a power cut at some write cost."
+    )
+
+    @field_validator("name")
+    @classmethod
+    def _name_level(cls, v: str) -> str:
+        validate_level(v, "agent name")
+        return v
+
+
+class TLSSettings(_Strict):
+    ca_file: str | None = None
+    cert_file: str | None = None
+    key_file: str | None = None
+    verify_hostname: bool = True
+
+
+class TopicTemplates(_Strict):
+    alerts: str = "watchdog/{model}/alerts"
+    state: str = "watchdog/{model}/state"
+    status: str = "watchdog/agents/{agent}/status"
+
+    @field_validator("alerts", "state", "status")
+    @classmethod
+    def _template(cls, v: str) -> str:
+        if "+" in v or "#" in v:
+            raise ValueError("an outbound topic template must not hold '+' or '#'")
+        return v
+
+
+class BrokerSettings(_Strict):
+    """Where the broker is and how to talk to it; secrets come from a file or the environment."""
+
+    host: str = "127.0.0.1"
+    port: int = Field(1883, ge=1, le=65535)
+    protocol: Literal["3.1.1", "5"] = "3.1.1"
+    client_id: str | None = Field(
+        None, description="Fixed client id of the persistent session; default watchdog-edge-<agent name>."
+    )
+    keepalive: int = Field(30, ge=5, le=65535)
+    session_expiry_s: int = Field(7 * 86400, ge=0, description="MQTT 5 session expiry interval.")
+    username: str | None = None
+    password_file: str | None = None
+    password_env: str | None = None
+    tls: TLSSettings | None = None
+    topics: TopicTemplates = TopicTemplates()
+    reconnect_min_s: float = Field(0.5, gt=0)
+    reconnect_max_s: float = Field(30.0, gt=0)
+
+    @model_validator(mode="after")
+    def _one_password_source(self) -> BrokerSettings:
+        if self.password_file and self.password_env:
+            raise ValueError("give password_file or password_env, not both")
+        return self
+
+
+class PredictionFields(_Strict):
+    id: str = "id"
+    value: str = "value"
+    ts: str = "ts"
+    features: str = "features"
+    model_version: str = "model_version"
+
+
+class TruthFields(_Strict):
+    id: str = "id"
+    value: str = "value"
+    ts: str = "ts"
+
+
+class FieldSettings(_Strict):
+    """Dotted paths of the fields in this model's payloads."""
+
+    prediction: PredictionFields = PredictionFields()
+    truth: TruthFields = TruthFields()
+
+    def prediction_map(self) -> FieldMap:
+        return FieldMap(**self.prediction.model_dump())
+
+    def truth_map(self) -> FieldMap:
+        return FieldMap(**self.truth.model_dump())
+
+
+class PairingSettings(_Strict):
+    horizon_s: float = Field(
+        7200.0, gt=0, description="How long an unpaired prediction or truth waits for its other half."
+    )
+    max_unpaired: int = Field(
+        20000, ge=1, description="Unpaired records kept at most; the oldest is evicted and counted."
+    )
+
+
+class WindowSettings(_Strict):
+    size: int = Field(500, ge=2, description="Live window: the last N pairs.")
+    max_age_s: float | None = Field(None, gt=0, description="Also drop pairs older than this (core time).")
+    min_pairs: int = Field(100, ge=2, description="Pairs needed before the first evaluation.")
+
+    @model_validator(mode="after")
+    def _min_le_size(self) -> WindowSettings:
+        if self.min_pairs > self.size:
+            raise ValueError(f"min_pairs ({self.min_pairs}) must not exceed size ({self.size})")
+        return self
+
+
+class ModelSettings(_Strict):
+    """One monitored model."""
+
+    id: str
+    card: str = Field(description="Path of the model card JSON (relative to the config file).")
+    prediction_topic: str
+    truth_topic: str
+    model_level: int | None = Field(
+        None,
+        ge=1,
+        description="Many models in one entry: the model id is this level (1 = first) of both "
+        "topics, which must be '+' there, and 'card' names the cards with {model} in the file name.",
+    )
+    fields: FieldSettings = FieldSettings()
+    pairing: PairingSettings = PairingSettings()
+    window: WindowSettings = WindowSettings()
+    checks: dict[str, Any] = Field(default_factory=dict, validate_default=True)
+
+    @field_validator("id")
+    @classmethod
+    def _id_level(cls, v: str) -> str:
+        validate_level(v, "model id")
+        return v
+
+    @field_validator("prediction_topic", "truth_topic")
+    @classmethod
+    def _filter(cls, v: str) -> str:
+        validate_filter(v)
+        return v
+
+    @model_validator(mode="after")
+    def _template(self) -> ModelSettings:
+        if self.model_level is None:
+            if "{model}" in self.card:
+                raise ValueError(
+                    "card holds {model} but model_level is not set; set model_level to the topic level of the id"
+                )
+            return self
+        for name in ("prediction_topic", "truth_topic"):
+            levels = getattr(self, name).split("/")
+            if len(levels) < self.model_level or levels[self.model_level - 1] != "+":
+                raise ValueError(
+                    f"with model_level = {self.model_level}, {name} must have '+' at level "
+                    f"{self.model_level}, got {getattr(self, name)!r}"
+                )
+        if "{model}" not in Path(self.card).name:
+            raise ValueError(
+                "with model_level set, card must name the card files with {model} in the "
+                'file name, e.g. "cards/{model}.json"'
+            )
+        return self
+
+    @field_validator("checks", mode="before")
+    @classmethod
+    def _resolve_checks(cls, raw: Any) -> dict[str, Any]:
+        if not isinstance(raw, dict):
+            raise ValueError("checks must be a table of check name -> settings")
+        known = registry.registered()
+        unknown = [k for k in raw if k not in registry.CHECK_NAMES]
+        if unknown:
+            raise ValueError(f"unknown check {unknown[0]!r}; known checks are {', '.join(registry.CHECK_NAMES)}")
+        resolved: dict[str, Any] = {}
+        for name in known:
+            cls_ = registry.settings_class(name)
+            given = raw.get(name)
+            if isinstance(given, cls_):
+                resolved[name] = given
+                continue
+            if given is None:
+                given = {} if registry.default_on(name) else {"enabled": False}
+            if not isinstance(given, dict):
+                raise ValueError(f"checks.{name} must be a table")
+            try:
+                resolved[name] = cls_.model_validate(given)
+            except ValidationError as e:
+                detail = "; ".join(
+                    f"checks.{name}.{'.'.join(str(p) for p in err['loc'])} = {err.get('input')!r}: {err['msg']}"
+                    for err in e.errors()
+                )
+                raise ValueError(detail) from None
+        missing = [k for k in raw if k not in known]
+        if missing:
+            raise ValueError(f"check {missing[0]!r} is not available in this installation")
+        return resolved
+
+    def enabled_checks(self) -> list[str]:
+        return [n for n, s in self.checks.items() if s.enabled]
+
+
+class Config(_Strict):
+    """The whole config file."""
+
+    agent: AgentSettings = AgentSettings()
+    broker: BrokerSettings = BrokerSettings()
+    models: list[ModelSettings] = Field(min_length=1)
+    _base_dir: Path = PrivateAttr(default_factory=Path.cwd)
+
+    @model_validator(mode="after")
+    def _unique_ids(self) -> Config:
+        seen: set[str] = set()
+        for m in self.models:
+            if m.id in seen:
+                raise ValueError(f"model id {m.id!r} appears twice; each [[models]] needs its own id")
+            seen.add(m.id)
+        return self
+
+    @property
+    def base_dir(self) -> Path:
+        return self._base_dir
+
+    def resolve(self, path: str) -> Path:
+        """A path from the config, relative to the config file's folder."""
+        p = Path(path).expanduser()
+        return p if p.is_absolute() else self._base_dir / p
+
+    def model(self, model_id: str) -> ModelSettings:
+        for m in self.models:
+            if m.id == model_id:
+                return m
+        raise KeyError(model_id)
+
+
+def _pretty_loc(loc: tuple, data: dict) -> str:
+    parts: list[str] = []
+    cur: Any = data
+    for p in loc:
+        if isinstance(p, int):
+            label = f"[{p}]"
+            if isinstance(cur, list) and p < len(cur) and isinstance(cur[p], dict) and "id" in cur[p]:
+                label = f"[{p}] (id {cur[p]['id']!r})"
+            parts.append(label)
+            cur = cur[p] if isinstance(cur, list) and p < len(cur) else None
+        else:
+            parts.append(("." if parts else "") + str(p))
+            cur = cur.get(p) if isinstance(cur, dict) else None
+    return "".join(parts) or "(top level)"
+
+
+def parse_config(data: dict[str, Any], base_dir: Path | None = None, source: str = "config") -> Config:
+    """Validate a config held in memory; paths resolve against ``base_dir``."""
+    try:
+        cfg = Config.model_validate(data)
+    except ValidationError as e:
+        lines = []
+        for err in e.errors():
+            key = _pretty_loc(err["loc"], data)
+            msg = err["msg"].removeprefix("Value error, ")
+            if err["type"] == "missing":
+                lines.append(f"  {key}: required but missing")
+            elif err["type"] == "extra_forbidden":
+                lines.append(f"  {key}: unknown key; check the spelling (value {err.get('input')!r})")
+            else:
+                value = err.get("input")
+                shown = "{...}" if isinstance(value, dict) else repr(value)
+                lines.append(f"  {key} = {shown}: {msg}")
+        raise ConfigError(f"{source} is invalid:\n" + "\n".join(lines)) from None
+    cfg._base_dir = (base_dir or Path.cwd()).resolve()
+    return cfg
+
+
+def _with_level(flt: str, level: int, value: str) -> str:
+    parts = flt.split("/")
+    parts[level - 1] = value
+    return "/".join(parts)
+
+
+def expand_models(cfg: Config) -> Config:
+    """Turn each entry with ``model_level`` into one model per card file that matches it.
+
+    ``card = "cards/{model}.json"`` with files ``cards/pump-1.json`` and ``cards/pump-2.json``
+    gives models ``pump-1`` and ``pump-2``, each on its own topics (the ``+`` at
+    ``model_level`` replaced by the id). A message for a model with no card then meets no
+    route and is dead-lettered as ``unknown_topic``.
+    """
+    if all(m.model_level is None for m in cfg.models):
+        return cfg
+    out: list[ModelSettings] = []
+    for m in cfg.models:
+        if m.model_level is None:
+            out.append(m)
+            continue
+        pattern = cfg.resolve(m.card)
+        head, _, tail = pattern.name.partition("{model}")
+        found = sorted(pattern.parent.glob(head + "*" + tail)) if pattern.parent.is_dir() else []
+        if not found:
+            raise ConfigError(
+                f"models[{m.id}].card = {m.card!r}: no card file matches {pattern}; "
+                "write one card per model, named by its id"
+            )
+        for f in found:
+            mid = f.name[len(head) : len(f.name) - len(tail)]
+            try:
+                validate_level(mid, "model id")
+            except ValueError as e:
+                raise ConfigError(f"models[{m.id}].card: card file {f.name}: {e}") from None
+            out.append(
+                m.model_copy(
+                    update={
+                        "id": mid,
+                        "card": str(f),
+                        "model_level": None,
+                        "prediction_topic": _with_level(m.prediction_topic, m.model_level, mid),
+                        "truth_topic": _with_level(m.truth_topic, m.model_level, mid),
+                    }
+                )
+            )
+    ids = [m.id for m in out]
+    dup = next((i for i in ids if ids.count(i) > 1), None)
+    if dup is not None:
+        raise ConfigError(
+            f"model id {dup!r} appears twice after expanding model_level entries; each model needs its own id"
+        )
+    expanded = cfg.model_copy(update={"models": out})
+    expanded._base_dir = cfg.base_dir
+    return expanded
+
+
+def config_warnings(cfg: Config) -> list[str]:
+    """Advice that is not an error (for example a window too small for a check)."""
+    out: list[str] = []
+    for m in cfg.models:
+        for name in m.enabled_checks():
+            mod = __import__(registry._REGISTRY[name][0], fromlist=["settings_warnings"])
+            fn = getattr(mod, "settings_warnings", None)
+            if fn is not None:
+                out.extend(f"models[{m.id}].checks.{name}: {w}" for w in fn(m.checks[name]))
+    return out

@@ -1,0 +1,344 @@
+"""Building a model card from training rows: losses, envelope, quantile histograms, hold-out.
+
+``card_from_arrays`` does the computation; ``build_card`` reads the rows from CSV files first;
+``render_card`` shows a card as text. Row numbers in messages count as a spreadsheet does: the
+header is row 1, the first data row is row 2.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+from collections.abc import Collection, Sequence
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+from watchdog_edge.core.cards import FeatureProfile, Histogram, LossFigure, ModelCard, TargetRange, expected_loss
+from watchdog_edge.errors import CardError, DataError
+
+LOSS_KINDS = ("squared", "absolute")
+# Cell texts read as missing: the empty cell, and the "nan" that numpy and many tools write.
+_MISSING = frozenset({"", "nan"})
+
+
+def _check_loss(kind: str) -> None:
+    if kind not in LOSS_KINDS:
+        raise CardError(f"loss {kind!r} is not known; use 'squared' or 'absolute'")
+
+
+def mean_loss(y: np.ndarray, yhat: np.ndarray, kind: str) -> float:
+    """Mean squared or absolute error of ``yhat`` against ``y``.
+
+    >>> mean_loss(np.array([1.0, 2.0]), np.array([0.0, 4.0]), "squared")
+    2.5
+    """
+    _check_loss(kind)
+    e = np.asarray(y, dtype=float) - np.asarray(yhat, dtype=float)
+    return float(np.mean(e * e)) if kind == "squared" else float(np.mean(np.abs(e)))
+
+
+def quantile_histogram(values: np.ndarray, bins: int = 10) -> Histogram:
+    """Bins cut at training quantiles (ties merged), shares counted with open outer bins.
+
+    A constant feature gets one bin with two equal edges (the schema allows it).
+
+    >>> quantile_histogram(np.arange(100.0), bins=4).shares
+    [0.25, 0.25, 0.25, 0.25]
+    """
+    if bins < 1:
+        raise CardError(f"bins must be at least 1, got {bins}")
+    v = np.asarray(values, dtype=float)
+    missing = np.isnan(v)
+    present = v[~missing]
+    if present.size == 0:
+        raise DataError("a feature with no values has no histogram; leave it out of the features")
+    edges = np.unique(np.quantile(present, np.linspace(0.0, 1.0, bins + 1)))
+    if edges.size < 2:
+        edges = np.array([edges[0], edges[0]])
+    # Bin i is [edges[i], edges[i+1]); searching only the inner edges opens the two outer bins.
+    idx = np.searchsorted(edges[1:-1], present, side="right")
+    counts = np.bincount(idx, minlength=edges.size - 1)
+    return Histogram(
+        edges=[float(e) for e in edges], shares=[float(c) / present.size for c in counts], missing=float(missing.mean())
+    )
+
+
+def card_from_arrays(
+    *,
+    model_id: str,
+    x: dict[str, np.ndarray],
+    y: np.ndarray,
+    yhat: np.ndarray,
+    params: int,
+    loss: str = "squared",
+    least_squares: bool = True,
+    holdout: tuple[np.ndarray, np.ndarray] | None = None,
+    version: str | None = None,
+    bins: int = 10,
+    notes: str | None = None,
+) -> ModelCard:
+    """A card from training arrays (NaN = missing feature); ``holdout`` is ``(truth, prediction)``."""
+    _check_loss(loss)
+    if params < 0:
+        raise CardError(f"fitted parameters must be a count >= 0, got {params}")
+    if bins < 1:
+        raise CardError(f"bins must be at least 1, got {bins}")
+    y = np.asarray(y, dtype=float)
+    if y.size < 2:
+        raise DataError(f"need at least 2 training rows, got {y.size}")
+    if loss == "squared" and least_squares and holdout is None and y.size <= params:
+        raise DataError(
+            f"{y.size} training rows for {params} fitted parameters: the final prediction error needs "
+            "more rows than parameters (N > d); give hold-out rows (--holdout) or more training rows"
+        )
+    features = {}
+    for name, col in x.items():
+        col = np.asarray(col, dtype=float)
+        present = col[~np.isnan(col)]
+        if present.size == 0:
+            raise DataError(f"feature column '{name}' has no values in any row; leave it out of --features")
+        features[name] = FeatureProfile(
+            min=float(present.min()), max=float(present.max()), histogram=quantile_histogram(col, bins)
+        )
+    hold = None
+    if holdout is not None:
+        hy, hp = holdout
+        if np.asarray(hy).size < 1:
+            raise DataError("the hold-out rows are empty; give at least one row or leave out --holdout")
+        hold = LossFigure(loss=mean_loss(hy, hp, loss), count=int(np.asarray(hy).size))
+    return ModelCard(
+        model_id=model_id,
+        model_version=version,
+        loss=loss,
+        training=LossFigure(loss=mean_loss(y, yhat, loss), count=int(y.size)),
+        fitted_parameters=params,
+        least_squares=least_squares,
+        holdout=hold,
+        features=features,
+        target=TargetRange(min=float(y.min()), max=float(y.max())),
+        created=datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        notes=notes,
+    )
+
+
+def _number(cell: str) -> float | None:
+    """The cell's value, NaN when missing, None when the text is not a number."""
+    s = cell.strip()
+    if s.lower() in _MISSING:
+        return math.nan
+    try:
+        return float(s)
+    except ValueError:
+        return None
+
+
+def read_table(path: str | Path, numeric: Collection[str] | None = None) -> tuple[list[str], dict[str, np.ndarray]]:
+    """Read a CSV with a header row into ``(columns, {column: array})``, one array per column.
+
+    Columns named in ``numeric`` (every column when None) must hold numbers: an empty cell (or
+    ``nan``) is missing and reads as NaN; other text raises DataError naming the file, column and
+    row (header = row 1). Other columns come back as float arrays when all their cells are
+    numbers or empty, else as text arrays (dtype object). Array index i is spreadsheet row i + 2.
+
+    >>> import os, tempfile
+    >>> p = os.path.join(tempfile.mkdtemp(), "t.csv")
+    >>> _ = open(p, "w").write("a,b\\n1,2\\n3,\\n")
+    >>> cols, data = read_table(p)
+    >>> cols, data["a"].tolist(), bool(np.isnan(data["b"][1]))
+    (['a', 'b'], [1.0, 3.0], True)
+    """
+    p = Path(path)
+    try:
+        with p.open(newline="", encoding="utf-8-sig") as fh:
+            rows = list(csv.reader(fh))
+    except FileNotFoundError:
+        raise DataError(f"CSV file not found: {p}") from None
+    except IsADirectoryError:
+        raise DataError(f"{p} is a folder, not a CSV file") from None
+    except UnicodeDecodeError as e:
+        raise DataError(f"{p} is not UTF-8 text (byte {e.start}); save the CSV as UTF-8") from None
+    except csv.Error as e:
+        raise DataError(f"{p} cannot be read as CSV: {e}") from None
+    if not rows or not any(c.strip() for c in rows[0]):
+        raise DataError(f"{p} has no header row; row 1 must name the columns")
+    header = [h.strip() for h in rows[0]]
+    for i, name in enumerate(header):
+        if not name:
+            raise DataError(f"{p}: column {i + 1} of the header (row 1) has no name")
+        if name in header[:i]:
+            raise DataError(f"{p}: column '{name}' appears twice in the header (row 1)")
+    body = rows[1:]
+    while body and not any(c.strip() for c in body[-1]):  # blank lines at the end are not rows
+        body.pop()
+    for i, cells in enumerate(body):
+        if not any(c.strip() for c in cells):
+            body[i] = [""] * len(header)  # a blank line inside the data: every cell missing
+        elif len(cells) != len(header):
+            raise DataError(
+                f"{p}, row {i + 2}: {len(cells)} cells, but the header has {len(header)} columns ({', '.join(header)})"
+            )
+    strict = set(header) if numeric is None else set(numeric)
+    data: dict[str, np.ndarray] = {}
+    for j, name in enumerate(header):
+        values = np.empty(len(body))
+        text = False
+        for i, cells in enumerate(body):
+            v = _number(cells[j])
+            if v is None:
+                if name in strict:
+                    raise DataError(
+                        f"{p}, column '{name}', row {i + 2}: {cells[j]!r} is not a number; "
+                        "fix the cell, or leave it empty where the value is missing"
+                    )
+                text = True
+                break
+            if math.isinf(v):
+                raise DataError(f"{p}, column '{name}', row {i + 2}: {cells[j]!r} is not a finite number")
+            values[i] = v
+        data[name] = np.array([c[j].strip() for c in body], dtype=object) if text else values
+    return header, data
+
+
+def _require(path: str | Path, header: list[str], name: str, role: str) -> None:
+    if name not in header:
+        raise DataError(f"{path}: no {role} column '{name}'; the columns are {', '.join(header)}")
+
+
+def _complete(path: str | Path, data: dict[str, np.ndarray], name: str) -> np.ndarray:
+    col = data[name]
+    gaps = np.flatnonzero(np.isnan(col))
+    if gaps.size:
+        raise DataError(
+            f"{path}, column '{name}', row {gaps[0] + 2}: empty cell; the target and the "
+            f"prediction need a value in every row ({gaps.size} empty)"
+        )
+    return col
+
+
+def _default_features(
+    path: str | Path, header: list[str], data: dict[str, np.ndarray], target: str, prediction: str
+) -> list[str]:
+    out = []
+    for name in header:
+        if name in (target, prediction) or name.lower() == "id":
+            continue
+        col = data[name]
+        if col.dtype != object:
+            out.append(name)
+            continue
+        numbers = [_number(c) for c in col]
+        if any(v is not None and not math.isnan(v) for v in numbers):
+            # Partly numbers: most likely a typo in a feature column, which must not vanish silently.
+            i = next(k for k, v in enumerate(numbers) if v is None)
+            raise DataError(
+                f"{path}, column '{name}', row {i + 2}: {col[i]!r} is not a number in an "
+                "otherwise numeric column; fix the cell, or list the feature columns "
+                "with --features"
+            )
+    return out
+
+
+def build_card(
+    train_path: str | Path,
+    *,
+    target: str,
+    prediction: str,
+    params: int,
+    features: Sequence[str] | None = None,
+    loss: str = "squared",
+    least_squares: bool = True,
+    holdout_path: str | Path | None = None,
+    model_id: str | None = None,
+    version: str | None = None,
+    bins: int = 10,
+) -> ModelCard:
+    """A card from a CSV of training rows holding the target and the model's fitted prediction.
+
+    ``features`` default to every other numeric column except one named ``id``; ``model_id``
+    defaults to the training file's stem; ``holdout_path`` is a CSV with the same target and
+    prediction columns.
+    """
+    _check_loss(loss)
+    wanted = [target, prediction] + list(features or [])
+    header, data = read_table(train_path, numeric=wanted)
+    _require(train_path, header, target, "target")
+    _require(train_path, header, prediction, "prediction")
+    if features is None:
+        features = _default_features(train_path, header, data, target, prediction)
+    for f in features:
+        _require(train_path, header, f, "feature")
+    y = _complete(train_path, data, target)
+    yhat = _complete(train_path, data, prediction)
+    hold = None
+    if holdout_path is not None:
+        hh, hd = read_table(holdout_path, numeric=[target, prediction])
+        _require(holdout_path, hh, target, "target")
+        _require(holdout_path, hh, prediction, "prediction")
+        if hd[target].size == 0:
+            raise DataError(f"{holdout_path} has a header but no rows")
+        hold = (_complete(holdout_path, hd, target), _complete(holdout_path, hd, prediction))
+    return card_from_arrays(
+        model_id=model_id or Path(train_path).stem,
+        x={f: data[f] for f in features},
+        y=y,
+        yhat=yhat,
+        params=params,
+        loss=loss,
+        least_squares=least_squares,
+        holdout=hold,
+        version=version,
+        bins=bins,
+    )
+
+
+def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> str:
+    """The card as readable text, with the expected field loss and where it comes from.
+
+    ``expected`` is ``(value, source)`` as from ``expected_loss``; computed when not given.
+    """
+    g = ".6g"
+    lines = [
+        f"model card   {card.model_id}",
+        f"  version            {card.model_version or '(none)'}",
+        f"  loss kind          {card.loss} error",
+        f"  training loss      {card.training.loss:{g}} over {card.training.count} rows",
+        f"  fitted parameters  {card.fitted_parameters}",
+        f"  least squares      {'yes' if card.least_squares else 'no'}",
+    ]
+    if card.holdout:
+        lines.append(f"  held-out loss      {card.holdout.loss:{g}} over {card.holdout.count} rows")
+    else:
+        lines.append("  held-out loss      (none)")
+    try:
+        value, source = expected if expected is not None else expected_loss(card)
+    except CardError as e:
+        lines.append(f"  expected in field  unavailable: {e}")
+    else:
+        if source == "holdout":
+            how = "the held-out loss"
+        else:
+            n, d = card.training.count, card.fitted_parameters
+            how = (
+                f"the final prediction error, training loss x (N + d) / (N - d) = "
+                f"{card.training.loss:{g}} x ({n} + {d}) / ({n} - {d})"
+            )
+        lines.append(f"  expected in field  {value:{g}}, from {how}")
+        if card.training.loss > 0:
+            lines.append(f"  optimism ratio     {value / card.training.loss:.4g} (expected / training loss)")
+        else:
+            lines.append("  optimism ratio     undefined (the training loss is 0)")
+    if card.target:
+        lines.append(f"  target range       {card.target.min:{g}} .. {card.target.max:{g}}")
+    if card.features:
+        width = max(7, *(len(n) for n in card.features))
+        lines.append(f"  {'feature':<{width}}  {'min':>12}  {'max':>12}  {'bins':>4}  {'missing':>7}")
+        for name, f in card.features.items():
+            h = f.histogram
+            nb = str(len(h.shares)) if h else "-"
+            miss = f"{h.missing:.1%}" if h else "-"
+            lines.append(f"  {name:<{width}}  {f.min:>12{g}}  {f.max:>12{g}}  {nb:>4}  {miss:>7}")
+    else:
+        lines.append("  features           (none)")
+    return "\n".join(lines)

@@ -1,0 +1,1 @@
+"""Recordings (the JSON Lines format) and replay of them through the core."""
