@@ -10,7 +10,7 @@ the check has one, then ``evaluate`` where the record's kind is among the check'
   of river (target: at most 25% or 3 us per pair, whichever is larger);
 - for ``drift``, river's detector ``update`` alone on the same loss ratios.
 
-The default checks (gap, range, shift, silence) together have an absolute target of at most
+The default checks (gap, range, shift, feed_stop) together have an absolute target of at most
 3 us per record; as a scale, the cost of ``json.loads`` of one such record is printed too.
 
     python3 bench/checks_cost.py [--pairs 5000] [--rounds 15]
@@ -133,7 +133,7 @@ def main() -> None:
     ys = [tr.value for tr in truths]
     ratios = [min(x, 10.0) for x in losses]
     payloads = [json.dumps({"id": p.id, "value": p.value, "ts": p.ts, "features": p.features}) for p in preds]
-    default_names = ["gap", "range", "shift", "silence"]
+    default_names = ["gap", "range", "shift", "feed_stop"]
 
     def run_checks(checks: dict[str, Any]) -> None:
         drive(checks, preds, truths, pairs, losses)
@@ -157,7 +157,7 @@ def main() -> None:
         "noop": (lambda: {"noop": Check(CheckSettings(), ctx)}, run_checks),
         "json": (lambda: None, run_json),
         "default": (lambda: {k: make(k, card) for k in default_names}, run_checks),
-        "input": (lambda: {k: make(k, card) for k in ("range", "shift", "silence")}, run_checks),
+        "input": (lambda: {k: make(k, card) for k in ("range", "shift", "feed_stop")}, run_checks),
         "adwin": (lambda: rdrift.ADWIN(), run_detector),
     }
     for name in default_names + ["drift"]:
@@ -189,7 +189,7 @@ def main() -> None:
         f"{'default four':<16} {d:>13.2f}   {us['default']:>11.2f}   target <= 3 us per record: "
         f"{'met' if d <= 3 else 'NOT met'}"
     )
-    print(f"{'without gap':<16} {us['input'] / 2:>13.2f}   {us['input']:>11.2f}   range, shift and silence together")
+    print(f"{'without gap':<16} {us['input'] / 2:>13.2f}   {us['input']:>11.2f}   range, shift and feed_stop together")
     print(
         f"{'(json.loads)':<16} {us['json']:>13.2f}                 of one prediction payload; "
         f"default checks per record / json.loads = {d / us['json']:.2f}"

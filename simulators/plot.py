@@ -64,7 +64,7 @@ _CHECK_COLOURS = {
     "gap": "#c0392b",
     "range": "#8e44ad",
     "shift": "#2c7fb8",
-    "silence": "#7f8c8d",
+    "feed_stop": "#7f8c8d",
     "drift": "#d35400",
     "baseline": "#16a085",
 }

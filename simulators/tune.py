@@ -243,7 +243,7 @@ def intake_recording(
 # -- which checks a grid reaches ----------------------------------------------------------------
 # Checks with windows of their own: the model's [window] table does not reach them. A check
 # not listed here is taken to read it (slower if wrong, never inexact).
-_WINDOW_FREE = frozenset({"range", "shift", "silence"})
+_WINDOW_FREE = frozenset({"range", "shift", "feed_stop"})
 
 
 def reaches(key: str, check: str) -> bool:

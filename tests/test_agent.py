@@ -58,7 +58,7 @@ def write_setup(
         holdout={"loss": 1.0, "count": 1000},
     )
     save_card(card, tmp / "pump.card.json")
-    checks = checks or ("[models.checks.gap]\nevaluate_every = 5\n[models.checks.silence]\nenabled = false\n")
+    checks = checks or ("[models.checks.gap]\nevaluate_every = 5\n[models.checks.feed_stop]\nenabled = false\n")
     # the card has no feature profiles, so the input checks have nothing to watch here
     checks += "[models.checks.range]\nenabled = false\n[models.checks.shift]\nenabled = false\n"
     text = f"""
@@ -266,21 +266,21 @@ def test_end_to_end_gap_alert_and_retained_state(tmp_path, broker, protocol):
         assert late.on(STATE)[0].retain and late.on(STATUS)[0].retain
         # the state is republished right after the alert goes out
         late.wait_for(
-            lambda: late.json_on(STATE)[-1]["checks"]["gap"]["state"] == "critical", what="state showing the gap"
+            lambda: late.json_on(STATE)[-1]["checks"]["gap"]["level"] == "critical", what="state showing the gap"
         )
         state = late.json_on(STATE)[-1]
         assert state["pairs"] >= 40
         # the status is refreshed every agent.state_every_s with the core's counters
         late.wait_for(lambda: late.json_on(STATUS)[-1]["received"] >= 16, what="status counters")
         status = late.json_on(STATUS)[-1]
-        assert status["state"] == "online" and status["paired"] >= 40 and status["alerts_sent"] >= 1
+        assert status["connection"] == "online" and status["paired"] >= 40 and status["alerts_sent"] >= 1
         assert status["outbox_depth"] == 0 and status["version"]
         late.close()
         pub.close()
     finally:
         rc = agent.stop()
     assert rc == 0, agent.text()
-    watcher.wait_for(lambda: watcher.json_on(STATUS)[-1]["state"] == "offline", what="status offline")
+    watcher.wait_for(lambda: watcher.json_on(STATUS)[-1]["connection"] == "offline", what="status offline")
     watcher.close()
 
 
@@ -290,17 +290,17 @@ def test_last_will_sets_status_offline_after_sigkill(tmp_path, broker):
     agent = AgentProc(cfg)
     agent.wait_ready()
     watcher.wait_for(
-        lambda: watcher.on(STATUS) and watcher.json_on(STATUS)[-1]["state"] == "online", what="status online"
+        lambda: watcher.on(STATUS) and watcher.json_on(STATUS)[-1]["connection"] == "online", what="status online"
     )
     agent.stop(signal.SIGKILL)
     # MQTT 3.1.1 section 3.1.2.5: the server publishes the will when the network connection
     # closes without a DISCONNECT; it was set retained, so a later reader sees it too (section number from memory).
-    watcher.wait_for(lambda: watcher.json_on(STATUS)[-1]["state"] == "offline", what="the last will")
+    watcher.wait_for(lambda: watcher.json_on(STATUS)[-1]["connection"] == "offline", what="the last will")
     late = Client(broker, "late", [STATUS])
     late.wait_for(lambda: late.on(STATUS), what="retained status")
     assert late.json_on(STATUS)[-1] == {
         "agent": "edge-1",
-        "state": "offline",
+        "connection": "offline",
         "version": late.json_on(STATUS)[-1]["version"],
     }
     assert late.on(STATUS)[-1].retain
@@ -328,7 +328,7 @@ def _replay_alerts(cfg: Path, recording: Path) -> list[dict]:
 
 SILENCE = (
     "[models.checks.gap]\nevaluate_every = 5\n"
-    "[models.checks.silence]\nprediction_timeout_s = 1.0\ntruth_timeout_s = 1.0\n"
+    "[models.checks.feed_stop]\nprediction_timeout_s = 1.0\ntruth_timeout_s = 1.0\n"
 )
 
 
@@ -344,24 +344,24 @@ def test_broker_down_while_the_model_degrades_every_alert_arrives(tmp_path, brok
         send_pairs(pub, 0, 50, 1.0, rng)  # healthy: squared error near the card's 1.0
         send_pairs(pub, 50, 80, 3.0, rng)  # degrading
         broker.stop()
-        # Down for longer than the silence timeout: the agent raises silence alerts that it
+        # Down for longer than the feed_stop timeout: the agent raises feed_stop alerts that it
         # cannot deliver; they wait in the outbox.
         time.sleep(2.5)
         broker.start()
         pub.connected.clear()
         pub.wait_for(pub.c.is_connected, what="publisher reconnect")
-        send_pairs(pub, 130, 20, 3.0, rng)  # traffic again: silence clears
+        send_pairs(pub, 130, 20, 3.0, rng)  # traffic again: feed_stop clears
         expected = None
 
         def all_arrived() -> bool:
             nonlocal expected
             got = _alerts_by_id(watcher.json_on(ALERTS))
-            return {"gap", "silence"} <= {a["check"] for a in got.values()} and any(
-                a["state"] == "cleared" for a in got.values() if a["check"] == "silence"
+            return {"gap", "feed_stop"} <= {a["check"] for a in got.values()} and any(
+                a["state"] == "cleared" for a in got.values() if a["check"] == "feed_stop"
             )
 
         try:
-            watcher.wait_for(all_arrived, timeout=20, what="gap and silence alerts after the restart")
+            watcher.wait_for(all_arrived, timeout=20, what="gap and feed_stop alerts after the restart")
         except AssertionError:
             raise AssertionError(
                 f"{[(a['check'], a['state']) for a in watcher.json_on(ALERTS)]}\n{agent.text()}"
@@ -414,15 +414,15 @@ def test_sigkill_mid_stream_then_restart_counts_each_acknowledged_record_once(tm
     th.start()
     try:
         watcher.wait_for(lambda: any(a["check"] == "gap" for a in watcher.json_on(ALERTS)), what="gap raised")
-        # Freeze the broker: inbound traffic stops, the agent's silence alert gets no PUBACK.
+        # Freeze the broker: inbound traffic stops, the agent's feed_stop alert gets no PUBACK.
         os.kill(broker.proc.pid, signal.SIGSTOP)
         db_path = state_path(tmp_path / "state")
         deadline = time.monotonic() + 10
         waiting: list[str] = []
         while time.monotonic() < deadline and not waiting:
-            waiting = [a.alert_id for a in _outbox(db_path) if b'"silence"' in a.payload]
+            waiting = [a.alert_id for a in _outbox(db_path) if b'"feed_stop"' in a.payload]
             time.sleep(0.05)
-        assert waiting, "the silence alert never reached the outbox"
+        assert waiting, "the feed_stop alert never reached the outbox"
         agent.stop(signal.SIGKILL)
         os.kill(broker.proc.pid, signal.SIGCONT)
         time.sleep(0.7)  # the publisher keeps sending; the broker queues for the dead agent
@@ -529,8 +529,8 @@ def test_live_alerts_equal_replay_of_the_recording(tmp_path, broker):
         pub = Client(broker, "publisher")
         rng = np.random.default_rng(4)
         send_pairs(pub, 0, 60, 3.0, rng)  # gap from deployment
-        time.sleep(1.6)  # silence raised by ticks alone
-        send_pairs(pub, 60, 120, 0.5, rng)  # healthy again: silence and, later, gap clear
+        time.sleep(1.6)  # feed_stop raised by ticks alone
+        send_pairs(pub, 60, 120, 0.5, rng)  # healthy again: feed_stop and, later, gap clear
         watcher.wait_for(lambda: len(_alerts_by_id(watcher.json_on(ALERTS))) >= 3, what="three alerts")
         time.sleep(0.5)
         pub.close()
@@ -649,7 +649,7 @@ def test_refusal_while_running_is_logged_counted_and_survived(tmp_path):
         reader = Client(b, "reader", [STATUS], auth=("reader", "r"))
         reader.wait_for(
             lambda: any(
-                s.get("link", {}).get("connection_refused", 0) >= 1 and s["state"] == "online"
+                s.get("link", {}).get("connection_refused", 0) >= 1 and s["connection"] == "online"
                 for s in reader.json_on(STATUS)
             ),
             timeout=20,

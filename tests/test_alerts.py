@@ -3,7 +3,7 @@
 from watchdog_edge.core.alerts import AlertBook, alert_id
 from watchdog_edge.core.checks.base import Verdict
 
-OK, WARN, CRIT = Verdict("ok", "fine"), Verdict("warning", "up"), Verdict("critical", "way up")
+OK, WARN, CRIT = Verdict("normal", "fine"), Verdict("warning", "up"), Verdict("critical", "way up")
 
 
 def test_transitions_only_never_one_alert_per_evaluation():
@@ -62,4 +62,4 @@ def test_new_version_closes_open_episodes():
         ("gap", "cleared", "warning"),
         ("range", "cleared", "critical"),
     }
-    assert b.level("gap") == "ok"
+    assert b.level("gap") == "normal"

@@ -32,7 +32,7 @@ SETTINGS = {
     "gap": {"evaluate_every": 7},
     "range": {"window": 60, "min_predictions": 30, "evaluate_every": 9},
     "shift": {"window": 100, "evaluate_every": 25},
-    "silence": {"prediction_timeout_s": 40.0, "truth_timeout_s": 90.0},
+    "feed_stop": {"prediction_timeout_s": 40.0, "truth_timeout_s": 90.0},
     "drift": {"detector": "page_hinkley"},
     "baseline": {"learners": ["mean", "linear"], "window": 80, "min_pairs": 40, "evaluate_every": 5},
 }
@@ -41,13 +41,13 @@ SETTINGS = {
 def stream(seed: int):
     """(kind, time, item) of a stream that raises and clears every check.
 
-    Ticks come every ten predictions, except while the truths stop: that silence must be
+    Ticks come every ten predictions, except while the truths stop: that stop must be
     noticed at a prediction.
     """
     rng = np.random.default_rng(seed)
     t, out, waiting = 0.0, [], []
     for i in range(1500):
-        if i in (400, 900):  # two silences of two minutes, with the timer ticking through them
+        if i in (400, 900):  # two stops of two minutes, with the timer ticking through them
             out += [("tick", t + k, None) for k in range(5, 120, 5)]
             t += 120.0
         t += 1.0
@@ -102,5 +102,5 @@ def test_skipping_evaluate_after_false_changes_no_verdict(name, seed):
     items = stream(seed)
     every = drive(name, items, skip=False)
     assert drive(name, items, skip=True) == every
-    assert {level for _, level, _ in every} >= {"ok", "warning"} or name == "drift"
+    assert {level for _, level, _ in every} >= {"normal", "warning"} or name == "drift"
     assert every

@@ -108,7 +108,7 @@ def test_a_good_model_is_not_beaten_by_any_learner():
     X, y, f = data(rng, 3000)
     check = make_check(learners=["mean", "linear", "tree"], window=500)
     out = stream(check, X, y, f)
-    assert out and {v.level for v in out} == {"ok"}
+    assert out and {v.level for v in out} == {"normal"}
     res = out[-1].figures["learners"]
     assert set(res) == {"mean", "linear", "tree"}
     assert res["mean"]["margin"] < -1  # the mean is far worse than the true function
@@ -195,9 +195,9 @@ def test_clears_when_the_model_is_fixed():
     model[:1000] = 3.0  # no better than a constant at first
     check = make_check(learners=["linear"], window=300, evaluate_every=50, clear_after=3)
     levels = [v.level for v in stream(check, X, y, model)]
-    assert "warning" in levels[:10] and levels[-1] == "ok"
-    first_ok = levels.index("ok", levels.index("warning"))
-    assert all(lv == "ok" for lv in levels[first_ok:])
+    assert "warning" in levels[:10] and levels[-1] == "normal"
+    first_ok = levels.index("normal", levels.index("warning"))
+    assert all(lv == "normal" for lv in levels[first_ok:])
 
 
 def test_snapshot_restore_mid_stream_gives_identical_verdicts():
@@ -211,7 +211,7 @@ def test_snapshot_restore_mid_stream_gives_identical_verdicts():
     copy.restore(json.loads(json.dumps(live.snapshot())))
     a = stream(live, X[700:], y[700:], model[700:], start=700)
     b = stream(copy, X[700:], y[700:], model[700:], start=700)
-    assert a == b and any(v.level != "ok" for v in a)
+    assert a == b and any(v.level != "normal" for v in a)
 
 
 def test_settings_are_explained():

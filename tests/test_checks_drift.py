@@ -115,7 +115,7 @@ def test_clears_when_the_loss_since_the_change_recovers():
     check = make_check(window=200, min_pairs=50, clear_after=3, evaluate_every=10)
     out = run(check, errors(rng, (2000, 2.0), (600, 4.0), (1500, 2.0)))
     levels = [(i, v.level) for i, v in out]
-    assert [lv for _, lv in levels] == ["warning", "ok"]
+    assert [lv for _, lv in levels] == ["warning", "normal"]
     raised_at, cleared_at = levels[0][0], levels[1][0]
     assert 2000 <= raised_at <= 2200
     assert 2600 < cleared_at <= 2600 + 600
@@ -134,7 +134,7 @@ def test_hold_clears_after_the_hold_time_on_a_tick():
     t_raise = 1_700_000_000.0 + i * 10
     assert check.evaluate(t_raise + 3599) is None
     v = check.evaluate(t_raise + 3600)
-    assert v.level == "ok" and "held for 3600 s" in v.summary
+    assert v.level == "normal" and "held for 3600 s" in v.summary
 
 
 def test_page_hinkley_detects_the_same_rise():
@@ -172,13 +172,13 @@ def test_snapshot_restore_mid_episode_gives_identical_verdicts():
     copy.restore(json.loads(json.dumps(live.snapshot())))
     a = run(live, err[2100:], start=2100)
     b = run(copy, err[2100:], start=2100)
-    assert a == b and [v.level for _, v in a] == ["ok", "warning"]
+    assert a == b and [v.level for _, v in a] == ["normal", "warning"]
 
 
 def test_settings_do_not_import_river_and_are_explained():
     code = (
         "import sys; from watchdog_edge.core.checks import settings_class as s\n"
-        "for n in ('gap', 'range', 'shift', 'silence', 'drift', 'baseline'):\n"
+        "for n in ('gap', 'range', 'shift', 'feed_stop', 'drift', 'baseline'):\n"
         "    try:\n        s(n)\n    except ModuleNotFoundError:\n        pass\n"
         "print(sorted(m for m in ('river', 'scipy') if m in sys.modules))"
     )

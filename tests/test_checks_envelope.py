@@ -52,7 +52,7 @@ def test_inputs_beyond_the_envelope_raise_and_name_the_features_and_distances():
     check = make_check(window=200, evaluate_every=50, min_predictions=200)
     verdicts = run(check, [{"temp": a, "flow": b} for a, b in zip(temp, flow)])
     # evaluations at rows 200, 250, 300 (none outside yet), 350 (25% outside), 400 (50%)
-    assert [v.level for v in verdicts] == ["ok", "ok", "ok", "critical", "critical"]
+    assert [v.level for v in verdicts] == ["normal", "normal", "normal", "critical", "critical"]
     last = verdicts[-1]
     # Share over the last 200 rows, recomputed directly with numpy from the envelope.
     lo = np.array([ENVELOPE["temp"][0], ENVELOPE["flow"][0]])
@@ -73,7 +73,7 @@ def test_margin_widens_the_envelope_by_a_share_of_the_range():
     # temp range is 50; a 10% margin admits up to 65 (and down to 5).
     check = make_check(window=20, min_predictions=20, evaluate_every=20, margin=0.1)
     [v] = run(check, [{"temp": 64.0, "flow": 1.0}] * 20)
-    assert v.level == "ok" and v.figures["share"] == 0.0
+    assert v.level == "normal" and v.figures["share"] == 0.0
     check = make_check(window=20, min_predictions=20, evaluate_every=20, margin=0.1)
     [v] = run(check, [{"temp": 66.0, "flow": 1.0}] * 20)
     assert v.level == "critical"
@@ -102,7 +102,7 @@ def test_clears_only_after_the_share_stays_below_the_hysteresis_limit():
     # Steps 1-8: the 15 outside rows are still in the window (15%). Step 9: 10%, below the
     # warning limit but above 10% x (1 - 0.5) = 5%, so no calm. Steps 10-12: 0%, calm three
     # times in a row, so the level clears at step 12 and not before.
-    assert levels[1:] == ["warning"] * 11 + ["ok"]
+    assert levels[1:] == ["warning"] * 11 + ["normal"]
 
 
 def test_missing_values_and_rows_without_features_are_not_outside():
@@ -111,7 +111,7 @@ def test_missing_values_and_rows_without_features_are_not_outside():
         check.on_prediction(Prediction("kiln", str(i), 1.0, float(i)))  # no features
     assert check.evaluate(20.0) is None
     [v] = run(check, [{"temp": None, "flow": 2.0, "unknown": 1e9}] * 20)
-    assert v.level == "ok" and v.figures["predictions"] == 20
+    assert v.level == "normal" and v.figures["predictions"] == 20
 
 
 def test_snapshot_restore_mid_stream_gives_identical_verdicts():
@@ -124,7 +124,7 @@ def test_snapshot_restore_mid_stream_gives_identical_verdicts():
     rest_live = run(live, rows[500:])
     rest_copy = run(copy, rows[500:])
     assert first and rest_live == rest_copy
-    assert any(v.level != "ok" for v in rest_live)
+    assert any(v.level != "normal" for v in rest_live)
 
 
 def test_bad_settings_name_the_key_value_and_rule():

@@ -127,7 +127,7 @@ def test_false_alarm_rate_on_unshifted_data_at_the_default_window_is_below_one_p
     n = windows * settings.window
     verdicts = feed(check, rng.normal(5.0, 1.0, n).tolist(), rng.gamma(2.0, 3.0, n).tolist())
     assert len(verdicts) == windows
-    alarms = sum(v.level != "ok" for v in verdicts)
+    alarms = sum(v.level != "normal" for v in verdicts)
     assert alarms / windows < 0.01
     # The bias the module docstring states: n x PSI is about chi-square with (bins - 1) degrees
     # of freedom (Pearson's statistic), inflated by the training sample's own noise, so the mean
@@ -145,10 +145,10 @@ def test_a_shifted_feature_raises_and_is_named():
     card = training_card(rng)
     check = make_check(card, evaluate_every=250)
     calm = feed(check, rng.normal(5.0, 1.0, 2000).tolist(), rng.gamma(2.0, 3.0, 2000).tolist())
-    assert {v.level for v in calm} == {"ok"}
+    assert {v.level for v in calm} == {"normal"}
     # Pressure moves up by half a standard deviation; speed is unchanged.
     moved = feed(check, rng.normal(5.5, 1.0, 2000).tolist(), rng.gamma(2.0, 3.0, 2000).tolist(), start=2000)
-    assert moved[-1].level != "ok"
+    assert moved[-1].level != "normal"
     figs = moved[-1].figures
     assert figs["top_feature"] == "pressure"
     assert figs["index"]["pressure"] > 0.1 > figs["index"]["speed"]
@@ -178,7 +178,7 @@ def test_snapshot_restore_mid_stream_gives_identical_verdicts():
     copy.restore(json.loads(json.dumps(live.snapshot())))
     a = feed(live, p[1300:], s[1300:], start=1300)
     b = feed(copy, p[1300:], s[1300:], start=1300)
-    assert a == b and any(v.level != "ok" for v in a)
+    assert a == b and any(v.level != "normal" for v in a)
 
 
 def test_small_windows_are_warned_about_and_bad_settings_explained():

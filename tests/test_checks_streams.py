@@ -192,7 +192,7 @@ def test_a_stationary_friedman_stream_of_100000_raises_nothing_with_every_check_
     state = mon.state("fr")
     assert state["pairs"] == n
     checks = state["checks"]
-    assert set(checks) == {"gap", "range", "shift", "silence", "drift", "baseline"}
+    assert set(checks) == {"gap", "range", "shift", "feed_stop", "drift", "baseline"}
     assert checks["baseline"]["figures"]["scored"] == n
     assert checks["shift"]["figures"]["index"]["x0"] < 0.05
     assert checks["gap"]["figures"]["pairs"] == 500

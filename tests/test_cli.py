@@ -84,7 +84,7 @@ def test_replay_json_summary(site):
     data = json.loads(r.stdout)
     assert data["status"]["paired"] == 1000
     assert data["status"]["bad"] == {"not_json": 1}
-    assert data["models"]["pump-flow"]["checks"]["gap"]["state"] in ("warning", "critical")
+    assert data["models"]["pump-flow"]["checks"]["gap"]["level"] in ("warning", "critical")
 
 
 def test_check_config_prints_resolved_settings_without_secrets(site):

@@ -35,7 +35,7 @@ def test_demo_catches_the_overfit_model_and_the_degrading_one(tmp_path):
     assert 3.5 < (raised_at - start).total_seconds() / 86400 < 4.5
     assert main["figures"]["lower"] > main["figures"]["warning_limit"]
     checks_seen = {a["check"] for a in alerts}
-    assert {"gap", "range", "silence", "drift", "baseline"} <= checks_seen
+    assert {"gap", "range", "feed_stop", "drift", "baseline"} <= checks_seen
     assert "present from deployment" in out.stdout and "bad records by reason: not_finite" in out.stdout
     for name in ("config.toml", "recording.jsonl", "compressor-kw.card.json", "compressor-kw-quick.card.json"):
         assert (folder / name).exists()

@@ -14,7 +14,7 @@ from watchdog_edge.core.events import Alert
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.records import Pair, Prediction, Truth
 
-GAP_ONLY = {"range": {"enabled": False}, "shift": {"enabled": False}, "silence": {"enabled": False}}
+GAP_ONLY = {"range": {"enabled": False}, "shift": {"enabled": False}, "feed_stop": {"enabled": False}}
 
 
 def smooth(x):
@@ -90,7 +90,7 @@ def test_evaluates_every_k_pairs_once_the_minimum_is_reached():
     gap = GapCheck(GapSettings(evaluate_every=10), ctx(size=100, min_pairs=50))
     verdicts = feed(gap, ([0.3] * 5 + [2.3] * 5) * 12)
     assert len(verdicts) == 8  # at pairs 50, 60, ..., 120
-    assert all(v.level == "ok" and v.figures["lower"] < 1.25 < v.figures["live_loss"] for v in verdicts)
+    assert all(v.level == "normal" and v.figures["lower"] < 1.25 < v.figures["live_loss"] for v in verdicts)
 
 
 def test_a_healthy_window_skips_the_interval_but_keeps_its_figures():
@@ -122,18 +122,18 @@ def test_clearing_needs_k_evaluations_under_the_hysteresis_limit():
     assert up[-1].level == "critical"
     down = feed(gap, list(rng.exponential(0.5, 300)), start=200)
     levels = [v.level for v in down]
-    first_ok = levels.index("ok")
+    first_ok = levels.index("normal")
     # The three evaluations before the clear all had the upper bound under the clearing limit.
     assert all(v.figures["upper"] < gap.clear_limit for v in down[first_ok - 2 : first_ok + 1])
-    assert levels[first_ok - 3] != "ok"
+    assert levels[first_ok - 3] != "normal"
 
 
 def test_diagnosis_distinguishes_degradation_from_a_bad_start():
     rng = np.random.default_rng(6)
     gap = GapCheck(GapSettings(evaluate_every=10), ctx(size=100, min_pairs=100))
     healthy = feed(gap, list(rng.exponential(1.0, 400)))
-    assert all(v.level == "ok" for v in healthy)
+    assert all(v.level == "normal" for v in healthy)
     worse = feed(gap, list(rng.exponential(3.0, 200)), start=400)
-    raised = next(v for v in worse if v.level != "ok")
+    raised = next(v for v in worse if v.level != "normal")
     assert raised.figures["diagnosis"] == "appeared after a healthy period"
     assert "degraded" in raised.summary

@@ -9,7 +9,7 @@ from helpers import card, config, pred, truth
 from watchdog_edge.core.events import Alert, DeadLetter, VersionStarted
 from watchdog_edge.core.monitor import Monitor
 
-GAP_ONLY = {"range": {"enabled": False}, "shift": {"enabled": False}, "silence": {"enabled": False}}
+GAP_ONLY = {"range": {"enabled": False}, "shift": {"enabled": False}, "feed_stop": {"enabled": False}}
 
 
 def stream(mon, errors, start=0, t0=1000.0, model="m"):

@@ -82,7 +82,7 @@ def _link(b: Broker, tmp_path, taker: _Taker, protocol: str = "3.1.1", **kw) -> 
         "wd-test",
         ["site/#"],
         "watchdog/agents/t/status",
-        b'{"state":"offline"}',
+        b'{"connection":"offline"}',
         tmp_path,
         taker.messages.append,
         taker.events.append,

@@ -64,7 +64,7 @@ def test_setting_chosen_on_one_seed_detects_every_incident_on_another(recordings
     # Delays on the holdout, measured when this test was written with seed 102 and the setting
     # chosen on seed 101 (window 240 pairs, gap confidence 0.9, warning tolerance 0.25, shift
     # off): step 14 min (gap), drift 28 min (range: the drifting probe leaves the envelope),
-    # regime 5 min (range), stall 15 min (silence: its 15 min truth timeout less the last
+    # regime 5 min (range), stall 15 min (feed_stop: its 15 min truth timeout less the last
     # truth's 1-4 min delay). The bounds leave room for changes inside the checks, not for a
     # different behaviour.
     assert best.setting.values["checks.shift.enabled"] is False  # shift fires on the daily cycle
@@ -115,7 +115,7 @@ def test_each_check_runs_once_per_distinct_setting_and_gives_the_same_alerts(rec
         progress=lambda done, total: runs.append(total),
     )
     # 8 settings, but gap runs once per (window.size, warning_tolerance), shift once (it does
-    # not read the model's window), range and silence once for all
+    # not read the model's window), range and feed_stop once for all
     assert len(res.rows) == 8 and runs[-1] == 4 + 1 + 1
     raw = _raw(a.config)
     for row in res.rows:
@@ -127,7 +127,7 @@ def test_each_check_runs_once_per_distinct_setting_and_gives_the_same_alerts(rec
             if isinstance(e, Alert) and e.state == "raised"
         ]
         assert row.marks == sorted(full, key=lambda m: (m.t, m.model, m.check, m.severity))
-    assert {m.check for r in res.rows for m in r.marks} >= {"gap", "range", "silence"}
+    assert {m.check for r in res.rows for m in r.marks} >= {"gap", "range", "feed_stop"}
 
 
 def test_two_workers_give_the_same_results_as_one(recordings):

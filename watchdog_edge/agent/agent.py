@@ -15,7 +15,7 @@ The rules of this file, in the order a message meets them:
    published. Acks are never held back for a snapshot.
 3. An alert leaves the outbox only when its PUBACK arrives. On every connect the outbox rows
    that paho does not hold in flight are published again, with the same ``alert_id``; while
-   the broker is away, alerts only wait in the outbox (ticks, and so the silence check, go on).
+   the broker is away, alerts only wait in the outbox (ticks, and so the feed_stop check, go on).
 4. A snapshot of the core is taken every ``agent.snapshot_every_s`` and at shutdown; it trims
    the journal. A restart restores the snapshot and feeds the journal's tail through the core;
    the alerts and dead letters this produces were committed the first time, so they are not
@@ -436,7 +436,7 @@ class Agent:
         return json_safe(
             {
                 "agent": self.name,
-                "state": state,
+                "connection": state,
                 "version": __version__,
                 "heartbeat": rfc3339(now),
                 "uptime_s": round(now - self.started, 3),

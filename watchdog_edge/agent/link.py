@@ -546,5 +546,5 @@ class Link:
 
 
 def status_payload(agent: str, state: str, **fields: Any) -> bytes:
-    """The retained agent status as JSON bytes (``state`` is ``online`` or ``offline``)."""
-    return json.dumps({"agent": agent, "state": state, **fields}, separators=(",", ":")).encode()
+    """The retained agent status as JSON bytes (``connection`` is ``online`` or ``offline``)."""
+    return json.dumps({"agent": agent, "connection": state, **fields}, separators=(",", ":")).encode()

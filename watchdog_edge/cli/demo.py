@@ -212,7 +212,7 @@ critical_tolerance = 1.0
 [models.checks.range]
 [models.checks.shift]
 window = 2160
-[models.checks.silence]
+[models.checks.feed_stop]
 truth_timeout_s = 3600
 [models.checks.drift]
 [models.checks.baseline]

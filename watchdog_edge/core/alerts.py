@@ -2,13 +2,13 @@
 
 Rules of this file:
 1. Each (model, check) is either quiet or in an episode. An episode starts when the check's
-   level leaves "ok"; its start time is the core time of that first raise.
+   level leaves "normal"; its start time is the core time of that first raise.
 2. Alerts are emitted on transitions only, never once per evaluation:
    - quiet -> warning or critical: one "raised" alert at that severity;
    - in an episode, a severity the episode has not yet had above it (warning -> critical):
      a new "raised" alert at the new severity, same episode start. A check that eases from
      critical to warning stays critical until it clears (no flapping between severities);
-   - in an episode -> ok: one "cleared" alert carrying the episode's highest severity.
+   - in an episode -> normal: one "cleared" alert carrying the episode's highest severity.
 3. A new model version ends the old version's open episodes with "cleared" alerts, since
    their windows are gone; the new version starts quiet.
 4. ``alert_id`` is a digest of agent, model, model version, check, episode start, state and
@@ -23,7 +23,7 @@ from typing import Any
 from watchdog_edge.core.checks.base import Verdict
 from watchdog_edge.core.events import Alert
 
-_RANK = {"ok": 0, "warning": 1, "critical": 2}
+_RANK = {"normal": 0, "warning": 1, "critical": 2}
 
 
 def alert_id(
@@ -49,7 +49,7 @@ class AlertBook:
 
     def level(self, check: str) -> str:
         ep = self._open.get(check)
-        return ep["severity"] if ep else "ok"
+        return ep["severity"] if ep else "normal"
 
     def _alert(
         self,
@@ -78,7 +78,7 @@ class AlertBook:
     def update(self, check: str, verdict: Verdict, t: float, version: str | None) -> Alert | None:
         """Apply one verdict; return the alert it causes, if any."""
         ep = self._open.get(check)
-        if verdict.level == "ok":
+        if verdict.level == "normal":
             if ep is None:
                 return None
             del self._open[check]

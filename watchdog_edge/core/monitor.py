@@ -196,7 +196,7 @@ class ModelTrack:
     def state(self) -> dict[str, Any]:
         checks = {}
         for name, check in self.checks.items():
-            checks[name] = {"state": self.book.level(name), "figures": check.figures()}
+            checks[name] = {"level": self.book.level(name), "figures": check.figures()}
         return {
             "model": self.settings.id,
             "model_version": self.version,

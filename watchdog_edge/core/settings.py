@@ -31,7 +31,7 @@ class AgentSettings(_Strict):
     max_payload_bytes: int = Field(65536, ge=64, description="Payloads over this size are dead-lettered unparsed.")
     dead_letter_max_count: int = Field(1000, ge=1, description="Dead letters kept at most, oldest dropped first.")
     dead_letter_max_bytes: int = Field(1_048_576, ge=1024, description="Bytes of dead letters kept at most.")
-    tick_every_s: float = Field(1.0, gt=0, description="Timer tick of the live agent (silence, age bounds).")
+    tick_every_s: float = Field(1.0, gt=0, description="Timer tick of the live agent (feed_stop, age bounds).")
     snapshot_every_s: float = Field(300.0, gt=0, description="How often the core is snapshotted to disk.")
     state_every_s: float = Field(60.0, gt=0, description="How often retained state and status are refreshed.")
     journal_batch_ms: float = Field(

@@ -47,8 +47,8 @@ def print_summary(monitor, console: Console) -> None:
         if gap.get("warning_limit") is not None:
             t.add_row("limits", f"warning {_num(gap['warning_limit'])}, critical {_num(gap['critical_limit'])}")
         for name, c in st["checks"].items():
-            colour = {"ok": "green", "warning": "yellow", "critical": "red"}[c["state"]]
-            t.add_row(f"check {name}", f"[{colour}]{c['state']}[/{colour}]")
+            colour = {"normal": "green", "warning": "yellow", "critical": "red"}[c["level"]]
+            t.add_row(f"check {name}", f"[{colour}]{c['level']}[/{colour}]")
         pc = st["pairing"]
         t.add_row("records", f"{pc['predictions']} predictions, {pc['truths']} truths, {st['pending']} pending")
         t.add_row(

@@ -12,7 +12,7 @@ _REGISTRY: dict[str, tuple[str, str, str, bool]] = {
     "gap": ("watchdog_edge.core.checks.gap", "GapCheck", "GapSettings", True),
     "range": ("watchdog_edge.core.checks.range", "RangeCheck", "RangeSettings", True),
     "shift": ("watchdog_edge.core.checks.shift", "ShiftCheck", "ShiftSettings", True),
-    "silence": ("watchdog_edge.core.checks.silence", "SilenceCheck", "SilenceSettings", True),
+    "feed_stop": ("watchdog_edge.core.checks.feed_stop", "FeedStopCheck", "FeedStopSettings", True),
     "drift": ("watchdog_edge.core.checks.drift", "DriftCheck", "DriftSettings", False),
     "baseline": ("watchdog_edge.core.checks.baseline", "BaselineCheck", "BaselineSettings", False),
 }

@@ -20,7 +20,7 @@ from pydantic import BaseModel, ConfigDict
 from watchdog_edge.core.cards import LossKind, ModelCard
 from watchdog_edge.core.records import Pair, Prediction, Truth
 
-Level = Literal["ok", "warning", "critical"]
+Level = Literal["normal", "warning", "critical"]
 
 
 class CheckSettings(BaseModel):

@@ -201,7 +201,7 @@ class BaselineCheck(Check):
         self._filled = 0
         self._since_eval = 0
         self._model_mean = math.nan
-        self._level: Level = "ok"
+        self._level: Level = "normal"
         self._calm_run = 0
         self._figures: dict[str, Any] = {}
 
@@ -362,10 +362,10 @@ class BaselineCheck(Check):
             target: Level = (
                 "critical" if s.critical_margin is not None and r["margin"] >= s.critical_margin else "warning"
             )
-            if target == "critical" or self._level == "ok":
+            if target == "critical" or self._level == "normal":
                 self._level = target
             self._calm_run = 0
-        elif self._level != "ok":
+        elif self._level != "normal":
             calm_margin = s.margin * (1 - s.hysteresis)
             still = any(v["p_value"] < alpha and v["margin"] >= calm_margin for v in res.values())
             if still:
@@ -373,7 +373,7 @@ class BaselineCheck(Check):
             else:
                 self._calm_run += 1
                 if self._calm_run >= s.clear_after:
-                    self._level = "ok"
+                    self._level = "normal"
                     self._calm_run = 0
         self._figures = {
             "learner": best,
@@ -395,7 +395,7 @@ class BaselineCheck(Check):
         kind = "squared" if self.context.loss_kind == "squared" else "absolute"
         model = self._figures["model_loss"]
         n = self._filled
-        if self._level == "ok":
+        if self._level == "normal":
             return (
                 f"No online learner beats the deployed model with confidence over the last {n} pairs "
                 f"(best: {DESCRIPTIONS[best]}, mean {kind} error {fmt(r['learner_loss'])} against "

@@ -169,7 +169,7 @@ class DriftCheck(Check):
         # (seq, t, ts, loss, ratio) of the latest pairs
         self._history: deque[tuple[int, float, float | None, float, float]] = deque(maxlen=s.history)
         self._since_change = LossWindow(self.context.window_size, self.context.window_max_age_s)
-        self._level: Level = "ok"
+        self._level: Level = "normal"
         self._pending = False
         self._raised_t: float | None = None
         self._clear_run = 0
@@ -185,14 +185,14 @@ class DriftCheck(Check):
         seq = self._seq
         self._seq = seq + 1
         self._history.append((seq, pair.t, pair.ts, loss, ratio))
-        if self._level != "ok":  # only a raised drift needs the loss since its change
+        if self._level != "normal":  # only a raised drift needs the loss since its change
             self._since_change.push(pair.t, loss)
             self._since_eval += 1
         det = self._detector
         det.update(ratio)
         if det.drift_detected:
             self._on_change(pair.t)
-        return self._pending or self._level != "ok"  # else evaluate has nothing to say
+        return self._pending or self._level != "normal"  # else evaluate has nothing to say
 
     def _on_change(self, t: float) -> None:
         self._detections += 1
@@ -233,14 +233,14 @@ class DriftCheck(Check):
             self._pending = False
             self._update_figures()
             return Verdict(self._level, self._raise_summary(), dict(self._figures))
-        if self._level == "ok":
+        if self._level == "normal":
             return None
         if s.clear_on == "hold":
             if t - self._raised_t < s.hold_s:  # type: ignore[operator]
                 return None
-            self._level = "ok"
+            self._level = "normal"
             self._update_figures()
-            return Verdict("ok", self._hold_summary(), dict(self._figures))
+            return Verdict("normal", self._hold_summary(), dict(self._figures))
         if self._since_eval < s.evaluate_every:
             return None
         self._since_eval = 0
@@ -254,10 +254,10 @@ class DriftCheck(Check):
             self._clear_run = 0
         if self._clear_run < s.clear_after:
             return None
-        self._level = "ok"
+        self._level = "normal"
         self._clear_run = 0
         self._update_figures()
-        return Verdict("ok", self._recovery_summary(), dict(self._figures))
+        return Verdict("normal", self._recovery_summary(), dict(self._figures))
 
     def _update_figures(self) -> None:
         s = self.settings

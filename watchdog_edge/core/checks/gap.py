@@ -88,7 +88,7 @@ class GapCheck(Check):
 
     def reset(self) -> None:
         self.window.clear()
-        self._level = "ok"
+        self._level = "normal"
         self._since_eval = 0
         self._clear_run = 0
         self._evaluated = False
@@ -101,7 +101,7 @@ class GapCheck(Check):
     def on_pair(self, pair: Pair, loss: float) -> bool:
         self.window.push(pair.t, loss)
         self._since_eval += 1
-        if self._evaluated and self._level == "ok":
+        if self._evaluated and self._level == "normal":
             self._clean_pairs += 1
             if self._clean_pairs >= self.context.window_size:
                 self._healthy_seen = True
@@ -118,7 +118,7 @@ class GapCheck(Check):
             return None
         self._since_eval = 0
         self._evaluated = True
-        if self._level == "ok" and self.window.mean() <= self.warning_limit:
+        if self._level == "normal" and self.window.mean() <= self.warning_limit:
             # The lower bound never exceeds the mean, so nothing can be raised: skip the
             # interval, the costliest step, while the model is healthy.
             self._stale = True
@@ -130,10 +130,10 @@ class GapCheck(Check):
         elif iv.lower > self.warning_limit:
             target = "warning"
         else:
-            target = "ok"
+            target = "normal"
 
-        if self._level == "ok":
-            if target != "ok":
+        if self._level == "normal":
+            if target != "normal":
                 self._diagnosis = AFTER_HEALTHY if self._healthy_seen else FROM_DEPLOYMENT
                 self._clean_pairs = 0
                 self._level = target
@@ -144,14 +144,14 @@ class GapCheck(Check):
         elif iv.upper < self.clear_limit:
             self._clear_run += 1
             if self._clear_run >= s.clear_after:
-                self._level = "ok"
+                self._level = "normal"
                 self._clear_run = 0
                 self._clean_pairs = 0
         else:
             self._clear_run = 0
 
         self._store_figures(iv)
-        if self._level != "ok":
+        if self._level != "normal":
             self._figures["diagnosis"] = self._diagnosis
         return Verdict(self._level, self._summary(iv), dict(self._figures))
 
@@ -179,7 +179,7 @@ class GapCheck(Check):
         kind = "squared" if self.context.loss_kind == "squared" else "absolute"
         pct = int(round(self.settings.confidence * 100))
         src = "held-out loss" if self.context.expected_source == "holdout" else "final prediction error"
-        if self._level == "ok":
+        if self._level == "normal":
             return (
                 f"Live mean {kind} error {fmt(iv.mean)} over {iv.n} pairs is back within the "
                 f"warning limit {fmt(self.warning_limit)} (upper {pct}% bound {fmt(iv.upper)})."

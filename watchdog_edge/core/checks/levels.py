@@ -16,7 +16,7 @@ class LevelGate:
 
     >>> g = LevelGate(warning=0.1, critical=0.25, hysteresis=0.2, clear_after=2)
     >>> [g.update(x) for x in (0.05, 0.3, 0.22, 0.07, 0.07)]
-    ['ok', 'critical', 'critical', 'critical', 'ok']
+    ['normal', 'critical', 'critical', 'critical', 'normal']
     """
 
     __slots__ = ("warning", "critical", "hysteresis", "clear_after", "level", "calm_run")
@@ -26,7 +26,7 @@ class LevelGate:
         self.critical = critical
         self.hysteresis = hysteresis
         self.clear_after = clear_after
-        self.level: Level = "ok"
+        self.level: Level = "normal"
         self.calm_run = 0
 
     @staticmethod
@@ -38,7 +38,7 @@ class LevelGate:
             return "critical"
         if x > self.warning * factor:
             return "warning"
-        return "ok"
+        return "normal"
 
     def update(self, x: float) -> Level:
         """Take one evaluation's figure and return the level after it."""
@@ -57,7 +57,7 @@ class LevelGate:
         return self.level
 
     def reset(self) -> None:
-        self.level = "ok"
+        self.level = "normal"
         self.calm_run = 0
 
     def snapshot(self) -> dict[str, Any]:

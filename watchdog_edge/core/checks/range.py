@@ -166,7 +166,7 @@ class RangeCheck(Check):
     def _summary(self, level: str, share: float, per: dict[str, dict[str, Any]]) -> str:
         s = self.settings
         head = f"{share:.1%} of the last {self._filled} predictions had inputs outside the training range"
-        if level == "ok":
+        if level == "normal":
             return f"{head}, within the limit of {s.warning_share:.1%}."
         limit = s.critical_share if level == "critical" else s.warning_share
         if s.margin:

@@ -258,7 +258,7 @@ class ShiftCheck(Check):
     def _summary(self, level: str, idx: dict[str, float], top: str) -> str:
         s = self.settings
         n = self._filled
-        if level == "ok":
+        if level == "normal":
             return (
                 f"The inputs of the last {n} predictions look like the training data: the largest "
                 f"population stability index is {idx[top]:.3g} ({top}), within the warning limit {s.warning:g}."

@@ -1,7 +1,7 @@
-"""``silence``: has a model's prediction feed or truth feed stopped?
+"""``feed_stop``: has a model's prediction feed or truth feed stopped?
 
 Driven by core time: ``evaluate(t)`` runs after every record and on every timer tick, so a feed
-that stops is noticed on the next tick. Each feed's silence is counted from its latest record;
+that stops is noticed on the next tick. Each feed's quiet time is counted from its latest record;
 before a feed's first record, from the first moment the check saw anything of this model (a
 record of either feed, or an evaluation, i.e. usually the agent's start). So a feed that never
 starts is reported once its timeout has passed since the watchdog began watching.
@@ -24,10 +24,10 @@ from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, L
 from watchdog_edge.core.records import Prediction, Truth
 
 
-class SilenceSettings(CheckSettings):
-    """Settings of ``silence``; a timeout of ``None`` switches that feed's watch off.
+class FeedStopSettings(CheckSettings):
+    """Settings of ``feed_stop``; a timeout of ``None`` switches that feed's watch off.
 
-    >>> SilenceSettings(truth_timeout_s=None).prediction_timeout_s
+    >>> FeedStopSettings(truth_timeout_s=None).prediction_timeout_s
     600.0
     """
 
@@ -48,7 +48,7 @@ class SilenceSettings(CheckSettings):
     )
 
     @model_validator(mode="after")
-    def _something(self) -> SilenceSettings:
+    def _something(self) -> FeedStopSettings:
         if self.enabled and self.prediction_timeout_s is None and self.truth_timeout_s is None:
             raise ValueError("both prediction_timeout_s and truth_timeout_s are null; set one, or set enabled = false")
         return self
@@ -64,13 +64,13 @@ def _duration(s: float) -> str:
     return f"{s / 86400:.1f} days"
 
 
-class SilenceCheck(Check):
+class FeedStopCheck(Check):
     """Seconds since the latest prediction and truth against their timeouts.
 
     >>> from watchdog_edge.core.cards import ModelCard
     >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 100}, fitted_parameters=2,
     ...                  holdout={"loss": 1.0, "count": 50})
-    >>> check = SilenceCheck(SilenceSettings(prediction_timeout_s=60, truth_timeout_s=600),
+    >>> check = FeedStopCheck(FeedStopSettings(prediction_timeout_s=60, truth_timeout_s=600),
     ...                      CheckContext("m", card, "squared", 1.0, "holdout"))
     >>> check.on_truth(Truth("m", "1", 2.0, t=0.0))
     >>> check.on_prediction(Prediction("m", "1", 2.0, t=0.0))
@@ -81,18 +81,18 @@ class SilenceCheck(Check):
     ('warning', 90.0)
     """
 
-    name = "silence"
-    settings_model = SilenceSettings
+    name = "feed_stop"
+    settings_model = FeedStopSettings
     # A pair comes with the truth or prediction just evaluated at the same time: nothing new.
     reacts_to = frozenset({"prediction", "truth", "tick"})
 
-    def __init__(self, settings: SilenceSettings, context: CheckContext) -> None:
+    def __init__(self, settings: FeedStopSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        self.settings: SilenceSettings = settings
+        self.settings: FeedStopSettings = settings
         self._start: float | None = None
         self._last_prediction: float | None = None
         self._last_truth: float | None = None
-        self._reported: Level = "ok"
+        self._reported: Level = "normal"
         self._now: float | None = None
         self._next = -math.inf  # no level change is possible up to this core time ...
         self._fresh = True  # ... unless a record arrived on a feed that was past its limit
@@ -101,7 +101,7 @@ class SilenceCheck(Check):
     def reset(self) -> None:
         # A new model version keeps the feeds' times (they are not a window), but the alert
         # states were closed, so the current level must be reported afresh.
-        self._reported = "ok"
+        self._reported = "normal"
         self._fresh = True
 
     def on_prediction(self, prediction: Prediction) -> bool:
@@ -137,7 +137,7 @@ class SilenceCheck(Check):
     def _level(self, t: float) -> Level:
         """The level at ``t``; also sets the next time a limit can be passed and the quiet feeds."""
         s = self.settings
-        level: Level = "ok"
+        level: Level = "normal"
         nxt = math.inf
         quiet_feeds = []
         for last, limit in ((self._last_prediction, s.prediction_timeout_s), (self._last_truth, s.truth_timeout_s)):
@@ -151,7 +151,7 @@ class SilenceCheck(Check):
             if crit is not None and quiet > crit:
                 level = "critical"
             elif quiet > limit:
-                if level == "ok":
+                if level == "normal":
                     level = "warning"
                 if crit is not None:
                     nxt = min(nxt, ref + crit)  # type: ignore[operator]
@@ -192,7 +192,7 @@ class SilenceCheck(Check):
             if quiet > limit:
                 how = "since the watchdog began watching" if last is None else "since the latest one"
                 parts.append(f"no {what} has arrived for {_duration(quiet)} {how} (limit {_duration(limit)})")
-        if level == "ok" or not parts:
+        if level == "normal" or not parts:
             return f"Predictions and truths for model {self.context.model} are arriving again within their time limits."
         return f"Model {self.context.model}: {'; '.join(parts)}; check the feed and its publisher."
 

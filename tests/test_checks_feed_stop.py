@@ -1,4 +1,4 @@
-"""``silence``: a prediction or truth feed that stops, noticed on ticks of core time."""
+"""``feed_stop``: a prediction or truth feed that stops, noticed on ticks of core time."""
 
 from __future__ import annotations
 
@@ -10,15 +10,15 @@ from pydantic import ValidationError
 from watchdog_edge.core.cards import ModelCard, format_validation
 from watchdog_edge.core.checks import settings_class
 from watchdog_edge.core.checks.base import CheckContext
-from watchdog_edge.core.checks.silence import SilenceCheck, SilenceSettings
+from watchdog_edge.core.checks.feed_stop import FeedStopCheck, FeedStopSettings
 from watchdog_edge.core.records import Prediction, Truth
 
 
-def make_check(**settings) -> SilenceCheck:
+def make_check(**settings) -> FeedStopCheck:
     card = ModelCard(
         model_id="pump", training={"loss": 1.0, "count": 100}, fitted_parameters=2, holdout={"loss": 1.0, "count": 50}
     )
-    return SilenceCheck(SilenceSettings(**settings), CheckContext("pump", card, "squared", 1.0, "holdout"))
+    return FeedStopCheck(FeedStopSettings(**settings), CheckContext("pump", card, "squared", 1.0, "holdout"))
 
 
 def test_a_stalled_truth_feed_is_reported_after_its_timeout_and_clears_when_truths_return():
@@ -33,9 +33,9 @@ def test_a_stalled_truth_feed_is_reported_after_its_timeout_and_clears_when_trut
         if v is not None:
             changes.append((t, v))
     # The last truth before the stall is at t = 960; 600 s later is 1560, so the first
-    # evaluation with more than 600 s of silence is at t = 1570; 3 x 600 s after 960 (2760) it
+    # evaluation with more than 600 s without a truth is at t = 1570; 3 x 600 s after 960 (2760) it
     # turns critical at 2770; truths resume on the first minute mark from 4000 on, 4020.
-    assert [(t, v.level) for t, v in changes] == [(1570, "warning"), (2770, "critical"), (4020, "ok")]
+    assert [(t, v.level) for t, v in changes] == [(1570, "warning"), (2770, "critical"), (4020, "normal")]
     raised = changes[0][1]
     assert raised.figures["seconds_since_truth"] == 610.0
     assert raised.figures["seconds_since_prediction"] == 0.0
@@ -72,7 +72,7 @@ def test_a_timeout_of_none_switches_that_feed_off():
         assert check.evaluate(float(t)) is None
 
 
-def test_a_new_model_version_reports_a_lasting_silence_afresh():
+def test_a_new_model_version_reports_a_lasting_feed_stop_afresh():
     check = make_check(prediction_timeout_s=60, truth_timeout_s=100)
     check.on_prediction(Prediction("pump", "1", 1.0, 0.0))
     check.on_truth(Truth("pump", "1", 1.0, 0.0))
@@ -96,11 +96,11 @@ def test_snapshot_restore_gives_identical_verdicts():
 
 
 def test_bad_settings_are_explained():
-    assert settings_class("silence") is SilenceSettings
+    assert settings_class("feed_stop") is FeedStopSettings
     with pytest.raises(ValidationError) as e:
-        SilenceSettings(prediction_timeout_s=None, truth_timeout_s=None)
+        FeedStopSettings(prediction_timeout_s=None, truth_timeout_s=None)
     assert "both prediction_timeout_s and truth_timeout_s are null" in format_validation(e.value)
     with pytest.raises(ValidationError) as e:
-        SilenceSettings(truth_timeout_s=-5)
+        FeedStopSettings(truth_timeout_s=-5)
     assert "truth_timeout_s = -5" in format_validation(e.value)
-    SilenceSettings(enabled=False, prediction_timeout_s=None, truth_timeout_s=None)
+    FeedStopSettings(enabled=False, prediction_timeout_s=None, truth_timeout_s=None)
