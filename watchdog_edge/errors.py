@@ -25,3 +25,7 @@ class DataError(WatchdogError):
 
 class BrokerError(WatchdogError):
     """The broker refused us or could not be reached; the message gives the reason."""
+
+
+class BrokerUnreachable(BrokerError):
+    """Nothing answered at the broker's address (refused, no route, no name, timeout): worth retrying."""

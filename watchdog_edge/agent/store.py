@@ -21,6 +21,7 @@ cache); a power cut can lose the last commits. ``FULL`` syncs the WAL on every c
 from __future__ import annotations
 
 import json
+import os
 import sqlite3
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
@@ -195,6 +196,25 @@ class StoredDeadLetter:
         return out
 
 
+class StoreWriteError(WatchdogError):
+    """The state file refused a write (disk full, read-only, I/O error); nothing of the batch was kept."""
+
+
+def _write_error(path: Path, e: sqlite3.Error) -> StoreWriteError:
+    text = str(e)
+    low = text.lower()
+    if "full" in low:
+        why = "the disk (or agent.state_dir's file system) is full"
+    elif "readonly" in low or "read-only" in low:
+        why = "the state file or its folder is read-only"
+    else:
+        why = "the file system reported an error"
+    return StoreWriteError(
+        f"cannot write the state file {path}: {text} ({why}); free space or make agent.state_dir "
+        "writable: the agent goes on by itself"
+    )
+
+
 class Store:
     """The agent's SQLite file. Use from one thread only (the agent's worker).
 
@@ -217,7 +237,7 @@ class Store:
         if synchronous not in ("NORMAL", "FULL"):
             raise WatchdogError(f"sqlite_synchronous = {synchronous!r}: must be 'NORMAL' or 'FULL'")
         self.path = Path(path)
-        self.path.parent.mkdir(parents=True, exist_ok=True)
+        make_private(self.path)
         self.dead_letter_max_count = dead_letter_max_count
         self.dead_letter_max_bytes = dead_letter_max_bytes
         try:
@@ -248,6 +268,13 @@ class Store:
         self._last_seq = self.last_seq()
 
     # --- plumbing -------------------------------------------------------------------------
+    def _rollback(self) -> None:
+        if self._db.in_transaction:
+            try:
+                self._db.execute("ROLLBACK")
+            except sqlite3.Error:
+                pass  # SQLite rolled back already (it does after some I/O errors)
+
     def close(self) -> None:
         """Close the file (a WAL checkpoint happens on the last close)."""
         self._db.close()
@@ -314,8 +341,11 @@ class Store:
             if dl:
                 self._insert_dead_letters(dl)
             db.execute("COMMIT")
+        except sqlite3.Error as e:
+            self._rollback()
+            raise _write_error(self.path, e) from None
         except BaseException:
-            db.execute("ROLLBACK")
+            self._rollback()
             raise
         self._last_seq = last
         return last
@@ -358,8 +388,11 @@ class Store:
             db.execute("DELETE FROM snapshots WHERE id < (SELECT MAX(id) FROM snapshots)")
             db.execute("DELETE FROM journal WHERE seq <= ?", (seq,))
             db.execute("COMMIT")
+        except sqlite3.Error as e:
+            self._rollback()
+            raise _write_error(self.path, e) from None
         except BaseException:
-            db.execute("ROLLBACK")
+            self._rollback()
             raise
         return seq
 
@@ -394,8 +427,11 @@ class Store:
                 removed += db.execute("DELETE FROM outbox WHERE alert_id = ?", (a,)).rowcount
             self._meta_set("counter.alerts_sent", str(self.counter("alerts_sent") + removed))
             db.execute("COMMIT")
+        except sqlite3.Error as e:
+            self._rollback()
+            raise _write_error(self.path, e) from None
         except BaseException:
-            db.execute("ROLLBACK")
+            self._rollback()
             raise
         return removed
 
@@ -443,6 +479,30 @@ class Store:
             "SELECT COUNT(*), COALESCE(SUM(LENGTH(payload)), 0) FROM dead_letters"
         ).fetchone()
         return {"count": int(count), "bytes": int(total), "dropped": self.counter("dead_letters_dropped")}
+
+
+def make_private(path: Path) -> None:
+    """Create the state folder (0700) and the state file (0600) private to the agent's user.
+
+    The file holds payloads and dead letters. SQLite gives its ``-wal`` and ``-shm`` files the
+    mode of the database file, so they are private as well. A folder or file that exists
+    already keeps its owner; its mode is narrowed to the same bits.
+    """
+    folder = path.parent
+    try:
+        if not folder.exists():
+            folder.mkdir(mode=0o700, parents=True)
+            os.chmod(folder, 0o700)  # mkdir's mode is filtered by the umask
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o600)
+        os.close(fd)
+        for p in (path, path.with_name(path.name + "-wal"), path.with_name(path.name + "-shm")):
+            if p.exists() and p.stat().st_mode & 0o077:
+                os.chmod(p, 0o600)
+    except OSError as e:
+        raise WatchdogError(
+            f"agent.state_dir = {str(folder)!r}: cannot create the state file there ({e.strerror}); "
+            "check that the folder exists and is writable by the agent's user"
+        ) from None
 
 
 def open_readonly(path: str | Path) -> sqlite3.Connection:
