@@ -20,6 +20,7 @@ cache); a power cut can lose the last commits. ``FULL`` syncs the WAL on every c
 
 from __future__ import annotations
 
+import errno
 import json
 import os
 import sqlite3
@@ -245,22 +246,25 @@ class Store:
             # exactly one transaction.
             self._db = sqlite3.connect(str(self.path), isolation_level=None, timeout=10.0)
             mode = self._db.execute("PRAGMA journal_mode=WAL").fetchone()[0]
+            self._db.execute(f"PRAGMA synchronous={synchronous}")
+            # The agent appends and rarely reads back: a small page cache holds the pages a commit
+            # touches (SQLite's default is 2 MB).
+            self._db.execute(f"PRAGMA cache_size=-{_CACHE_KIB}")
+            self._db.executescript(_SCHEMA)
+            found = self._meta_get("schema_version")
+            if found is None:
+                self._meta_set("schema_version", str(SCHEMA_VERSION))
         except sqlite3.Error as e:
+            low = str(e).lower()
+            if "full" in low or "readonly" in low or "read-only" in low or "disk i/o" in low:
+                raise _write_error(self.path, e) from None
             raise WatchdogError(f"cannot open the state file {self.path}: {e}; check agent.state_dir") from None
         if str(mode).lower() != "wal":
             raise WatchdogError(
                 f"the state file {self.path} cannot use WAL mode (got {mode!r}); "
                 "put agent.state_dir on a local file system"
             )
-        self._db.execute(f"PRAGMA synchronous={synchronous}")
-        # The agent appends and rarely reads back: a small page cache holds the pages a commit
-        # touches (SQLite's default is 2 MB).
-        self._db.execute(f"PRAGMA cache_size=-{_CACHE_KIB}")
-        self._db.executescript(_SCHEMA)
-        found = self._meta_get("schema_version")
-        if found is None:
-            self._meta_set("schema_version", str(SCHEMA_VERSION))
-        elif int(found) != SCHEMA_VERSION:
+        if found is not None and int(found) != SCHEMA_VERSION:
             raise WatchdogError(
                 f"the state file {self.path} has schema {found}, this version reads "
                 f"{SCHEMA_VERSION}; move it away to start fresh"
@@ -499,7 +503,8 @@ def make_private(path: Path) -> None:
             if p.exists() and p.stat().st_mode & 0o077:
                 os.chmod(p, 0o600)
     except OSError as e:
-        raise WatchdogError(
+        cls = StoreWriteError if e.errno in (errno.EROFS, errno.ENOSPC, errno.EDQUOT) else WatchdogError
+        raise cls(
             f"agent.state_dir = {str(folder)!r}: cannot create the state file there ({e.strerror}); "
             "check that the folder exists and is writable by the agent's user"
         ) from None
