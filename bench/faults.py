@@ -900,7 +900,7 @@ def row_network(root: Path, modes: tuple[str, ...], keepalive_s: int = 5) -> Row
         row.outcome = (
             f"{'pass' if row.ok else 'FAIL'}: noticed after "
             + ", ".join(f"{m} {v:.1f} s" for m, v in noticed.items())
-            + f" (keepalive {keepalive_s} s; paho closes after 1 to 2 keepalives of silence); "
+            + f" (keepalive {keepalive_s} s); "
             f"status: {link.get('disconnects')} disconnects, last: {link.get('last_disconnect')}"
         )
     finally:
@@ -943,14 +943,14 @@ def _fill(folder: Path, leave_kib: int) -> Path:
 
 def row_disk_full(root: Path) -> Row:
     """The state folder's file system fills up under load, then space comes back."""
-    row = Row("state folder full (4 MB tmpfs filled), then space freed")
+    row = Row("state folder full (32 MB tmpfs filled up), then space freed")
     if not IS_ROOT:
         row.outcome = "not run: mounting a small tmpfs needs root"
         return row
     broker = Broker(root / "broker")
     state_dir = root / "agent" / "state"
     try:
-        with tmpfs(state_dir, 4096):
+        with tmpfs(state_dir, 32768):
             cfg = write_setup(root / "agent", broker.port, snapshot_every_s=2.0)
             state = install_audit(state_dir)
             watcher = Watcher(broker.port)
@@ -1003,7 +1003,7 @@ def row_read_only(root: Path) -> Row:
             subprocess.run(["mount", "-o", "remount,ro", str(state_dir)], check=True, capture_output=True)
             pub = Publisher(broker.port).start()
             agent = AgentProc(cfg)
-            said = agent.wait_for("read-only", 20)
+            said = agent.wait_for("Read-only file system", 20)
             time.sleep(2.0)
             alive = agent.proc.poll() is None
             subprocess.run(["mount", "-o", "remount,rw", str(state_dir)], check=True, capture_output=True)

@@ -477,11 +477,36 @@ class Link:
         c = self.client
         if c.socket() is None:
             return
+        self._ping_early()
         rc = c.loop_misc()  # keepalive: a PINGREQ, or a dead connection noticed
         if rc != MQTTErrorCode.MQTT_ERR_SUCCESS or c.socket() is None:
             self._lost(rc)
         elif self.want_write():
             self.flush()
+
+    def _ping_early(self) -> None:
+        """Send the PINGREQ after half a keepalive without a byte from the broker.
+
+        paho pings only after a whole keepalive of silence and gives up one more keepalive
+        later, so a frozen connection (a stalled link, a half-dead NAT) went unnoticed for up
+        to two keepalives. Pinging at half makes paho's own check close it once a whole
+        keepalive has passed without an answer. It reads paho 2's private timers; with a
+        paho without them, paho's own timing applies.
+        """
+        c = self.client
+        last = getattr(c, "_last_bytes_received", None)
+        ping_t = getattr(c, "_ping_t", None)
+        keepalive = getattr(c, "_keepalive", 0)
+        if last is None or ping_t != 0 or not keepalive or not self.connected.is_set():
+            return
+        if paho.time_func() - last >= keepalive / 2:
+            try:
+                c._send_pingreq()
+            except Exception:
+                return  # paho's own check finds out what is wrong
+            # The PINGREQ is a packet out: without this, paho's check, seeing nothing sent for
+            # a keepalive, would treat the wait as fresh and start the silence over.
+            c._last_msg_out = paho.time_func()
 
     def _lost(self, rc: MQTTErrorCode) -> None:
         # paho has closed the socket (and called on_disconnect) by now.

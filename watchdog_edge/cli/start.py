@@ -40,7 +40,7 @@ def _open_agent(agent_class: Any, cfg: Any, cards: Any, record: Path | None, wri
                     last_log = time.monotonic()
                     log.error("%s; waiting, retried with backoff (logged once a minute)", e)
             until = time.monotonic() + wait
-            wait = min(wait * 2, 30.0)
+            wait = min(wait * 2, 10.0)
             while not stop and time.monotonic() < until:
                 time.sleep(0.1)
             if stop:
