@@ -29,6 +29,7 @@ clock, flood and fuzz rows drive the core directly.
 from __future__ import annotations
 
 import argparse
+import atexit
 import contextlib
 import errno
 import json
@@ -142,6 +143,16 @@ def wait_port(port: int, timeout: float) -> bool:
     return False
 
 
+def _reachable_by(user: str, folder: Path) -> bool:
+    """Whether ``user`` can reach ``folder`` (every parent searchable by others or owned by it)."""
+    uid = pwd.getpwnam(user).pw_uid
+    for p in [folder, *folder.parents]:
+        st = p.stat()
+        if not (st.st_mode & 0o001 or (st.st_uid == uid and st.st_mode & 0o100)) and p != folder:
+            return False
+    return True
+
+
 class Broker:
     """mosquitto on a free loopback port with persistence on; stop (SIGTERM), kill (SIGKILL), start.
 
@@ -161,8 +172,12 @@ class Broker:
         if not os.path.exists(exe):
             raise SystemExit(f"mosquitto is not installed; the campaign needs a real broker: {INSTALL_HINT}")
         self.exe = exe
-        self.folder = folder
         folder.mkdir(parents=True, exist_ok=True)
+        if IS_ROOT and not _reachable_by("mosquitto", folder):
+            # A folder under a private parent (pytest's, say): the broker gets one of its own.
+            folder = Path(tempfile.mkdtemp(prefix="wd-broker-"))
+            atexit.register(shutil.rmtree, folder, True)
+        self.folder = folder
         self.port = free_port()
         self.host = "127.0.0.1"
         self.proc: subprocess.Popen[bytes] | None = None
@@ -196,17 +211,20 @@ class Broker:
             (folder / "acl").write_text(acl)
             lines.append(f"acl_file {folder / 'acl'}")
         if tls is not None:
-            lines += [f"cafile {tls.ca}", f"certfile {tls.server_cert}", f"keyfile {tls.server_key}"]
+            for name, src in (("ca.crt", tls.ca), ("server.crt", tls.server_cert), ("server.key", tls.server_key)):
+                shutil.copyfile(src, folder / name)
+            lines += [
+                f"cafile {folder / 'ca.crt'}",
+                f"certfile {folder / 'server.crt'}",
+                f"keyfile {folder / 'server.key'}",
+            ]
         (folder / "mosquitto.conf").write_text("\n".join(lines) + "\n")
         if IS_ROOT:
             owner = pwd.getpwnam("mosquitto")
             for p in [folder, *folder.rglob("*")]:
                 os.chown(p, owner.pw_uid, owner.pw_gid)
-            for p in folder.glob("passwords"):
+            for p in [*folder.glob("passwords"), *folder.glob("server.key")]:
                 os.chmod(p, 0o600)
-            if tls is not None:
-                for p in (tls.server_key, tls.server_cert, tls.ca):
-                    os.chmod(p, 0o644)  # the broker (user mosquitto) reads them; a bench's own throwaway key
         self.start()
 
     def start(self, timeout: float = 10.0) -> None:
