@@ -95,6 +95,7 @@ def test_security_rows_are_each_visible(tmp_path):
     _check(rows)
     assert [r.fault for r in rows] == [
         "refused password at start",
+        "password refused while running",
         "untrusted broker certificate",
         "alert publish denied by the ACL (MQTT 5)",
         "password file readable by others",

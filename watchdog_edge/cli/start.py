@@ -20,7 +20,7 @@ def _fail(message: str, code: int) -> int:
     return code
 
 
-def _open_agent(agent_class: Any, cfg: Any, cards: Any, record: Path | None, write_error: type) -> Any:
+def _open_agent(agent_class: Any, cfg: Any, cards: Any, record: Path | None, write_error: type[Exception]) -> Any:
     """The agent, waiting while its state folder is read-only or full (no crash loop); None if stopped.
 
     Without its journal the agent cannot acknowledge anything, so it does not connect: the
