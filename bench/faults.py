@@ -684,6 +684,14 @@ def measure(
         row.alerts = f"equal ({len(got)})" if got == expected and same_ids else f"differ: {len(got)} vs {len(expected)}"
         row.dup_raises = duplicate_raises(live)
         row.ok &= got == expected and same_ids and row.dup_raises == 0
+        # The agent's own counters, from the status it publishes at its clean stop.
+        more = _bounded(5)
+        while more() and watcher.status().get("connection") != "offline":
+            time.sleep(0.05)
+        final = watcher.status()
+        if "paired" in final:
+            row.details["live_paired"] = final["paired"]
+            row.ok &= final["paired"] == paired
     row.ok &= row.dup_pairs == 0 and row.details["integrity"] == "ok"
     if promise_lost:
         row.ok &= lost == 0
@@ -711,6 +719,7 @@ def duplicate_raises(alerts: list[dict[str, Any]]) -> int:
 
 
 def _bounded(seconds: float) -> Callable[[], bool]:
+    """A clock that says True until ``seconds`` have passed."""
     deadline = time.monotonic() + seconds
     return lambda: time.monotonic() < deadline
 
@@ -766,11 +775,12 @@ def row_agent_kill(root: Path, kills: int, seed: int = 11) -> Row:
         measure(row, cfg, state, preds, truths, watcher)
         watcher.close()
         bad = [c for c in checks if c != "ok"]
-        row.ok &= rc == 0 and not bad and not unreadable
+        row.ok &= rc == 0 and not bad and not unreadable and "live_paired" in row.details
         row.outcome = (
             f"{'pass' if row.ok else 'FAIL'}: integrity_check ok after {len(checks) - len(bad)}/{len(checks)} kills; "
             f"--record files: {kills - unreadable}/{kills} replayable ({recorded} messages), "
-            f"{cut_recordings} cut in their last line; exit {rc} at the end"
+            f"{cut_recordings} cut in their last line; the agent's status counts "
+            f"{row.details.get('live_paired', '?')} pairs, the replay {row.details['paired']}; exit {rc} at the end"
         )
     finally:
         broker.stop()
@@ -913,7 +923,7 @@ def row_network(root: Path, modes: tuple[str, ...], keepalive_s: int = 5) -> Row
         measure(row, cfg, state, preds, truths, watcher)
         watcher.close()
         link = status.get("link", {})
-        within = all(v <= 2 * keepalive_s + 1 for v in noticed.values())
+        within = all(v <= keepalive_s + 2 for v in noticed.values())
         row.ok &= rc == 0 and within and link.get("disconnects", 0) >= len(modes)
         row.outcome = (
             f"{'pass' if row.ok else 'FAIL'}: noticed after "
