@@ -16,6 +16,8 @@ from pathlib import Path
 import pytest
 from broker import INSTALL_HINT, mosquitto_binary
 
+pytestmark = pytest.mark.broker  # every test here but the last starts brokers or agents
+
 REPO = Path(__file__).resolve().parents[1]
 _spec = importlib.util.spec_from_file_location("faults", REPO / "bench" / "faults.py")
 assert _spec is not None and _spec.loader is not None
