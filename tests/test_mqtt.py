@@ -315,3 +315,19 @@ def test_backoff_doubles_up_to_the_cap_with_jitter_and_resets():
     assert len({round(w, 6) for w in waits[3:]}) > 1  # jitter: not all the same at the cap
     b.reset()
     assert 0.25 <= b.next() <= 0.5
+
+
+def test_a_busy_spell_longer_than_the_keepalive_is_no_disconnect(tmp_path, broker):
+    # The link pings after half a keepalive of silence; a caller busy for longer than a whole
+    # keepalive must not be taken for a dead connection when it polls again (the broker itself
+    # allows 1.5 keepalives, MQTT 3.1.1 section 3.1.2.10, from memory).
+    events: list = []
+    s = BrokerSettings(host=broker.host, port=broker.port, keepalive=5)
+    link = Link(s, "busy-caller", ["a/b"], "st/busy", b"off", tmp_path, lambda m: None, events.append)
+    link.start()
+    time.sleep(5.5)
+    for _ in range(10):
+        link.poll(0.1)
+        link.flush()
+    assert link.connected.is_set() and not [e for e in events if e.kind == "disconnected"], events
+    link.stop()

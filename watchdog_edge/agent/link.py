@@ -499,7 +499,9 @@ class Link:
         keepalive = getattr(c, "_keepalive", 0)
         if last is None or ping_t != 0 or not keepalive or not self.connected.is_set():
             return
-        if paho.time_func() - last >= keepalive / 2:
+        # Past a whole keepalive already (the caller's loop was busy that long): leave it to
+        # paho, which pings first and only then waits, so a busy spell is no disconnect.
+        if keepalive / 2 <= paho.time_func() - last < keepalive:
             try:
                 c._send_pingreq()
             except Exception:
