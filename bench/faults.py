@@ -746,14 +746,15 @@ def row_agent_kill(root: Path, kills: int, seed: int = 11) -> Row:
         cfg = write_setup(root / "agent", broker.port)
         state = install_audit(root / "agent" / "state")
         watcher = Watcher(broker.port)
-        first = AgentProc(cfg)  # its session at the broker exists before anything is published
+        rec = root / "agent" / "live.jsonl"  # one recording, appended to by every run
+        first = AgentProc(cfg, "--record", str(rec))  # its session at the broker exists before anything is published
         first.wait_ready()
         first.end(signal.SIGKILL)
         pub = Publisher(broker.port).start()
         checks: list[str] = []
-        cut_recordings = unreadable = recorded = 0
-        for k in range(kills):
-            rec = root / "agent" / f"rec-{k}.jsonl"
+        cut_recordings = unreadable = 0
+        recorded: list[tuple[float, str | None, bytes | None, int]] = []
+        for _ in range(kills):
             agent = AgentProc(cfg, "--record", str(rec))
             agent.wait_ready()
             time.sleep(rng.uniform(0.2, 1.5))
@@ -762,24 +763,27 @@ def row_agent_kill(root: Path, kills: int, seed: int = 11) -> Row:
             text = rec.read_bytes()
             if text and not text.endswith(b"\n"):
                 cut_recordings += 1
-            try:
-                recorded += sum(1 for ln in read_recording(rec) if not ln.tick)
-            except WatchdogError:
-                unreadable += 1
-        agent = AgentProc(cfg)
+        agent = AgentProc(cfg, "--record", str(rec))
         agent.wait_ready()
         time.sleep(1.0)
         preds, truths = pub.finish()
         _wait_taken(state, preds, truths)
         rc = agent.end()
+        try:
+            recorded = [(ln.t, ln.topic, ln.payload, int(ln.tick)) for ln in read_recording(rec)]
+        except WatchdogError:
+            unreadable = 1
+        journal = [(t, tp, p, tick) for t, tp, p, tick in audit_rows(state)]
+        missing = len(set(journal) - set(recorded))
         measure(row, cfg, state, preds, truths, watcher)
         watcher.close()
         bad = [c for c in checks if c != "ok"]
         row.ok &= rc == 0 and not bad and not unreadable and "live_paired" in row.details
         row.outcome = (
             f"{'pass' if row.ok else 'FAIL'}: integrity_check ok after {len(checks) - len(bad)}/{len(checks)} kills; "
-            f"--record files: {kills - unreadable}/{kills} replayable ({recorded} messages), "
-            f"{cut_recordings} cut in their last line; the agent's status counts "
+            f"one --record file across the restarts: {'replayable' if not unreadable else 'UNREADABLE'}, "
+            f"{len(recorded)} lines, {missing} journal rows missing from it ({cut_recordings} kills cut a line); "
+            "the agent's status counts "
             f"{row.details.get('live_paired', '?')} pairs, the replay {row.details['paired']}; exit {rc} at the end"
         )
     finally:

@@ -132,3 +132,17 @@ def test_replay_command_reports_skipped_lines(tmp_path):
     assert out.returncode == 0, out.stderr
     assert json.loads(out.stdout)["skipped_lines"] == {"cut_last_line": 1, "bad": 1}
     assert "cut short" in out.stderr
+
+
+def test_trim_cut_line_keeps_whole_lines_only(tmp_path):
+    from watchdog_edge.replay.recording import trim_cut_line
+
+    p = tmp_path / "r.jsonl"
+    assert trim_cut_line(p) == 0  # no file yet: nothing to do
+    whole = '{"t": 1.0, "tick": true}\n' * 3
+    p.write_text(whole)
+    assert trim_cut_line(p) == 0 and p.read_text() == whole
+    p.write_text(whole + '{"t": 2.0, "to')
+    assert trim_cut_line(p) == len('{"t": 2.0, "to') and p.read_text() == whole
+    p.write_text('{"t": 2.0, "to')  # a first line cut: nothing whole is left
+    assert trim_cut_line(p) == 14 and p.read_bytes() == b""

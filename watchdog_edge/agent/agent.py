@@ -65,7 +65,7 @@ from watchdog_edge.core.events import Alert, DeadLetter, rfc3339
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import Config
 from watchdog_edge.errors import BrokerError, BrokerUnreachable
-from watchdog_edge.replay.recording import RecordingWriter
+from watchdog_edge.replay.recording import RecordingWriter, trim_cut_line
 
 log = logging.getLogger("watchdog_edge.agent.agent")
 
@@ -208,7 +208,7 @@ class Agent:
         self.started = time.time()
         self.running = False  # true once the broker accepted us
         self.monitor = self._restore()
-        self.recorder = RecordingWriter(record, private=True) if record is not None else None
+        self.recorder = self._open_recording(record) if record is not None else None
         subs = []
         for m in config.models:
             for flt in (m.prediction_topic, m.truth_topic):
@@ -224,6 +224,18 @@ class Agent:
             self._on_message,
             self.events.append,
         )
+
+    @staticmethod
+    def _open_recording(record: str | Path) -> RecordingWriter:
+        """The ``--record`` file, appended to: a restart continues the recording a crash cut.
+
+        A last line the crash cut short is removed first, so the file stays whole; replaying
+        it from the top gives what the agent gave since its state folder was fresh.
+        """
+        cut = trim_cut_line(record)
+        if cut:
+            log.warning("recording %s: removed its last line, cut short by an earlier stop (%d bytes)", record, cut)
+        return RecordingWriter(record, append=True, private=True)
 
     # --- restart ---------------------------------------------------------------------------
     def _restore(self) -> Monitor:

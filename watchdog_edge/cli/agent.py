@@ -57,7 +57,7 @@ def run(
         None,
         "--record",
         help="Also write every received message and timer tick to this JSON Lines recording "
-        "(overwritten); 'watchdog-edge replay' on it gives the same alerts as this run.",
+        "(appended to, across restarts); 'watchdog-edge replay' on it gives the same alerts as the agent.",
     ),
     log_level: str = typer.Option("info", "--log-level", help="debug, info, warning or error."),
 ) -> None:

@@ -253,6 +253,39 @@ class RecordingWriter:
         self.close()
 
 
+def trim_cut_line(path: str | Path) -> int:
+    """Cut a recording back to its last line end (a line cut short by a crash); the bytes removed.
+
+    >>> import tempfile, os
+    >>> p = os.path.join(tempfile.mkdtemp(), "r.jsonl")
+    >>> _ = open(p, "w").write('{"t": 1.0, "tick": true}\\n{"t": 2.0, "ti')
+    >>> trim_cut_line(p), open(p).read()
+    (14, '{"t": 1.0, "tick": true}\\n')
+    """
+    p = Path(path)
+    try:
+        size = p.stat().st_size
+    except FileNotFoundError:
+        return 0
+    if size == 0:
+        return 0
+    with open(p, "rb+") as fh:
+        fh.seek(size - 1)
+        if fh.read(1) == b"\n":
+            return 0
+        end, keep = size, 0
+        while end > 0:
+            start = max(0, end - 65536)
+            fh.seek(start)
+            i = fh.read(end - start).rfind(b"\n")
+            if i >= 0:
+                keep = start + i + 1
+                break
+            end = start
+        fh.truncate(keep)
+    return size - keep
+
+
 def with_ticks(lines: Iterable[RecordLine], every: float | None) -> Iterator[RecordLine]:
     """Insert ticks at whole multiples of ``every`` seconds of receive time between lines."""
     if not every:
