@@ -778,3 +778,30 @@ def test_check_config_warns_about_a_password_file_others_can_read(tmp_path, brok
     os.chmod(tmp_path / "pw", 0o600)
     out = subprocess.run(cmd, capture_output=True, text=True, env=env, timeout=60)
     assert "password_file" not in out.stderr
+
+
+def test_a_restart_completes_the_recording_a_crash_left_short(tmp_path, broker):
+    # Recording lines are written after the journal commit; a crash in between leaves the
+    # journal ahead of the recording. The next start writes what is missing (and removes a cut
+    # line first), so the one recording holds exactly what the journal held.
+    from watchdog_edge.agent.agent import Agent
+    from watchdog_edge.agent.link import Inbound
+
+    cfg = write_setup(tmp_path, broker)
+    config = load_config(cfg)
+    rec = tmp_path / "live.jsonl"
+    agent = Agent(config, load_cards(config), record=rec)
+    agent.intake_open = True
+    for i in range(6):
+        agent._on_message(Inbound(PRED, f'{{"id": {i}, "value": 2.0}}'.encode(), i + 1, 1, False))
+        agent._process(tick=i == 3)
+    journal = [(e.t, e.topic, e.payload, e.tick) for e in agent.store.journal_tail(0)]
+    agent._close_files()
+    lines = rec.read_bytes().splitlines(keepends=True)
+    assert len(lines) == len(journal) == 7
+    rec.write_bytes(b"".join(lines[:4]) + lines[4][:9])  # two rows never written, one cut
+    again = Agent(config, load_cards(config), record=rec)
+    again._close_files()
+    got = [(ln.t, ln.topic, ln.payload, ln.tick) for ln in read_recording(rec)]
+    assert got == journal
+    assert os.stat(rec).st_mode & 0o777 == 0o600

@@ -64,8 +64,8 @@ from watchdog_edge.core.cards import ModelCard
 from watchdog_edge.core.events import Alert, DeadLetter, rfc3339
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import Config
-from watchdog_edge.errors import BrokerError, BrokerUnreachable
-from watchdog_edge.replay.recording import RecordingWriter, trim_cut_line
+from watchdog_edge.errors import BrokerError, BrokerUnreachable, WatchdogError
+from watchdog_edge.replay.recording import RecordingWriter, last_line, trim_cut_line
 
 log = logging.getLogger("watchdog_edge.agent.agent")
 
@@ -225,17 +225,42 @@ class Agent:
             self.events.append,
         )
 
-    @staticmethod
-    def _open_recording(record: str | Path) -> RecordingWriter:
+    def _open_recording(self, record: str | Path) -> RecordingWriter:
         """The ``--record`` file, appended to: a restart continues the recording a crash cut.
 
-        A last line the crash cut short is removed first, so the file stays whole; replaying
-        it from the top gives what the agent gave since its state folder was fresh.
+        A last line the crash cut short is removed first, and the journal rows a crash left
+        out (committed, not yet written to the recording) are written now, so the file holds
+        what the journal held; replaying it from the top gives what the agent gave since its
+        state folder was fresh.
         """
         cut = trim_cut_line(record)
         if cut:
             log.warning("recording %s: removed its last line, cut short by an earlier stop (%d bytes)", record, cut)
-        return RecordingWriter(record, append=True, private=True)
+        try:
+            last = last_line(record)
+        except WatchdogError:
+            last = None  # not a recording we can read: append, and leave it as it is
+        writer = RecordingWriter(record, append=True, private=True)
+        if last is None:
+            return writer
+        # Rows of the journal's tail after the recording's last line (all of them if that line
+        # is older than the tail: a snapshot covered it).
+        mark = (last.t, last.tick, last.topic, last.payload)
+        start = self._restored_after
+        for e in self.store.journal_tail(self._restored_after):
+            if (e.t, e.tick, e.topic, e.payload) == mark and e.seq is not None:
+                start = e.seq
+        added = 0
+        for e in self.store.journal_tail(start):
+            if e.tick:
+                writer.tick(e.t)
+            else:
+                writer.message(e.t, e.topic or "", e.payload or b"")
+            added += 1
+        writer.flush()
+        if added:
+            log.info("recording %s: wrote %d journal rows an earlier stop left out of it", record, added)
+        return writer
 
     # --- restart ---------------------------------------------------------------------------
     def _restore(self) -> Monitor:
@@ -249,6 +274,7 @@ class Agent:
             # the snapshot is still recognised (rule 5).
             self.recent.restore(snap.data.get("recent", []))
             after = snap.journal_seq
+        self._restored_after = after
         n = 0
         for e in self.store.journal_tail(after):
             # Events are dropped on purpose: the alerts are in the outbox or already sent, the

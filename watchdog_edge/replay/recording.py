@@ -286,6 +286,27 @@ def trim_cut_line(path: str | Path) -> int:
     return size - keep
 
 
+def last_line(path: str | Path) -> RecordLine | None:
+    """The last line of a recording whose lines are whole (see :func:`trim_cut_line`); None if empty."""
+    p = Path(path)
+    try:
+        size = p.stat().st_size
+    except FileNotFoundError:
+        return None
+    with open(p, "rb") as fh:
+        end = size
+        while end > 0:
+            start = max(0, end - 65536)
+            fh.seek(start)
+            text = fh.read(size - start).rstrip(b"\r\n")
+            i = text.rfind(b"\n")
+            if i >= 0 or start == 0:
+                line = text[i + 1 :]
+                return parse_line(line, source=str(p)) if line.strip() else None
+            end = start
+    return None
+
+
 def with_ticks(lines: Iterable[RecordLine], every: float | None) -> Iterator[RecordLine]:
     """Insert ticks at whole multiples of ``every`` seconds of receive time between lines."""
     if not every:
