@@ -775,14 +775,16 @@ def row_agent_kill(root: Path, kills: int, seed: int = 11) -> Row:
             unreadable = 1
         journal = [(t, tp, p, tick) for t, tp, p, tick in audit_rows(state)]
         missing = len(set(journal) - set(recorded))
+        same = recorded == journal
         measure(row, cfg, state, preds, truths, watcher)
         watcher.close()
         bad = [c for c in checks if c != "ok"]
-        row.ok &= rc == 0 and not bad and not unreadable and "live_paired" in row.details
+        row.ok &= rc == 0 and not bad and not unreadable and same and "live_paired" in row.details
         row.outcome = (
             f"{'pass' if row.ok else 'FAIL'}: integrity_check ok after {len(checks) - len(bad)}/{len(checks)} kills; "
             f"one --record file across the restarts: {'replayable' if not unreadable else 'UNREADABLE'}, "
-            f"{len(recorded)} lines, {missing} journal rows missing from it ({cut_recordings} kills cut a line); "
+            f"{len(recorded)} lines, {'equal to the journal' if same else f'{missing} journal rows missing'} "
+            f"({cut_recordings} kills cut a line); "
             "the agent's status counts "
             f"{row.details.get('live_paired', '?')} pairs, the replay {row.details['paired']}; exit {rc} at the end"
         )
