@@ -61,8 +61,10 @@ if str(REPO) not in sys.path:
 
 from watchdog_edge.agent.store import Store, state_path  # noqa: E402
 from watchdog_edge.core.cards import LossFigure, ModelCard  # noqa: E402
+from watchdog_edge.core.checks.gap import GapSettings  # noqa: E402
 from watchdog_edge.core.events import Alert  # noqa: E402
 from watchdog_edge.core.monitor import Monitor  # noqa: E402
+from watchdog_edge.core.settings import BrokerSettings, PairingSettings, WindowSettings  # noqa: E402
 from watchdog_edge.errors import WatchdogError  # noqa: E402
 from watchdog_edge.files.cardfile import save_card  # noqa: E402
 from watchdog_edge.files.configfile import load_cards, load_config  # noqa: E402
@@ -372,8 +374,18 @@ class Relay:
 
 
 # --- the agent's files ----------------------------------------------------------------------
+def _key(model: Any, new: str, old: str) -> str:
+    """The config key by its unit-carrying name where this version has it (the keys are being renamed)."""
+    return new if new in model.model_fields else old
+
+
+KEEPALIVE = _key(BrokerSettings, "keepalive_s", "keepalive")
+WINDOW_SIZE = _key(WindowSettings, "size_pairs", "size")
+EVALUATE_EVERY = _key(GapSettings, "evaluate_every_pairs", "evaluate_every")
+MAX_UNPAIRED = _key(PairingSettings, "max_unpaired_records", "max_unpaired")
+
 CHECKS = (
-    "[models.checks.gap]\nevaluate_every = 5\n"
+    f"[models.checks.gap]\n{EVALUATE_EVERY} = 5\n"
     "[models.checks.feed_stop]\nenabled = false\n"
     "[models.checks.range]\nenabled = false\n"
     "[models.checks.shift]\nenabled = false\n"
@@ -415,7 +427,7 @@ state_every_s = 0.5
 [broker]
 host = "127.0.0.1"
 port = {port}
-keepalive = {keepalive_s}
+{KEEPALIVE} = {keepalive_s}
 reconnect_min_s = 0.1
 reconnect_max_s = 1.0
 {broker_extra}
@@ -426,7 +438,7 @@ card = "pump.card.json"
 prediction_topic = "{PRED}"
 truth_topic = "{TRUTH}"
 [models.window]
-size = 60
+{WINDOW_SIZE} = 60
 min_pairs = 40
 {CHECKS}
 """
@@ -1069,8 +1081,8 @@ def _core(max_unpaired: int = 20000, horizon_s: float = 7200.0) -> Monitor:
                     "card": "pump.card.json",
                     "prediction_topic": PRED,
                     "truth_topic": TRUTH,
-                    "window": {"size": 60, "min_pairs": 40},
-                    "pairing": {"max_unpaired": max_unpaired, "horizon_s": horizon_s},
+                    "window": {WINDOW_SIZE: 60, "min_pairs": 40},
+                    "pairing": {MAX_UNPAIRED: max_unpaired, "horizon_s": horizon_s},
                     "checks": {"range": {"enabled": False}, "shift": {"enabled": False}},
                 }
             ]
