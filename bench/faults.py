@@ -805,6 +805,42 @@ def row_agent_kill(root: Path, kills: int, seed: int = 11) -> Row:
     return row
 
 
+def row_boot_order(root: Path, wait_s: float = 3.0) -> Row:
+    """The agent starts before the broker (a gateway booting): it waits, says so, and takes everything."""
+    row = Row(f"broker up {wait_s:.0f} s after the agent (boot order)")
+    broker = Broker(root / "broker")
+    try:
+        cfg = write_setup(root / "agent", broker.port)
+        state = install_audit(root / "agent" / "state")
+        broker.stop()
+        agent = AgentProc(cfg)
+        said = agent.wait_for("cannot be reached yet", 15)
+        time.sleep(wait_s)
+        alive = agent.proc.poll() is None
+        broker.start()
+        agent.wait_ready(30)
+        watcher = Watcher(broker.port)
+        pub = Publisher(broker.port).start()
+        time.sleep(2.0)
+        preds, truths = pub.finish()
+        _wait_taken(state, preds, truths)
+        time.sleep(1.0)  # a status refresh after the last message
+        status = watcher.status()
+        rc = agent.end()
+        measure(row, cfg, state, preds, truths, watcher)
+        watcher.close()
+        link = status.get("link", {})
+        row.ok &= said and alive and rc == 0 and link.get("unreachable_at_start", 0) >= 1
+        row.outcome = (
+            f"{'pass' if row.ok else 'FAIL'}: log said it waits: {said}; still running, not exit 3: {alive}; "
+            f"status link.unreachable_at_start {link.get('unreachable_at_start')}, "
+            f"waited_for_broker_s {link.get('waited_for_broker_s')}"
+        )
+    finally:
+        broker.stop()
+    return row
+
+
 def row_broker_restart(root: Path, restarts: int, seed: int = 12) -> Row:
     """Restart the broker (SIGTERM, persistence on) under load."""
     rng = random.Random(seed)
@@ -1312,6 +1348,28 @@ def _read_status(port: int, auth: tuple[str, str]) -> dict[str, Any]:
     return got[-1] if got else {}
 
 
+def _read_status_tls(port: int, ca: Path) -> dict[str, Any]:
+    """The retained agent status read over TLS (empty if none came within 2 s)."""
+    got: list[dict[str, Any]] = []
+    c = _client(f"status-{time.monotonic_ns()}", port, clean=True)
+    c.tls_set(ca_certs=str(ca))
+    c.tls_insecure_set(True)
+    c.on_message = lambda cl, u, m: got.append(json.loads(m.payload))
+    c.on_connect = lambda cl, u, f, rc, pr: cl.subscribe(STATUS, 1)
+    try:
+        c.connect("127.0.0.1", port)
+    except OSError:
+        return {}
+    c.loop_start()
+    more = _bounded(2)
+    while more() and not got:
+        time.sleep(0.05)
+    c.loop_stop()
+    c.disconnect()
+    full = [g for g in got if "link" in g]
+    return full[-1] if full else {}
+
+
 def row_security(root: Path) -> list[Row]:
     """Refused password, untrusted certificate, a publish the ACL denies, a password file others can read."""
     sys.path.insert(0, str(REPO / "tests"))
@@ -1378,6 +1436,28 @@ def row_security(root: Path) -> list[Row]:
         ok = rc == 3 and len(lines) == 1 and "certificate" in lines[0]
         rows.append(
             Row("untrusted broker certificate", outcome=f"{'pass' if ok else 'FAIL'}: exit {rc}; {lines[:1]}", ok=ok)
+        )
+        # hostname verification switched off: accepted, and said at start and in the status
+        folder = root / "nohost"
+        cfg = write_setup(
+            folder, broker.port, broker_extra=f'[broker.tls]\nca_file = "{tls.ca}"\nverify_hostname = false\n'
+        )
+        a = AgentProc(cfg)
+        a.wait_ready()
+        seen: dict[str, Any] = {}
+        more = _bounded(10)
+        while more() and "warnings" not in seen:
+            seen = _read_status_tls(broker.port, tls.ca)
+        a.end()
+        warn = [w for w in seen.get("warnings", []) if "verify_hostname = false" in w]
+        ok = bool(warn) and "verify_hostname = false" in a.text()
+        rows.append(
+            Row(
+                "TLS hostname verification off",
+                ok=ok,
+                outcome=f"{'pass' if ok else 'FAIL'}: connects; warned in the log at start and in the status "
+                f"({len(warn)} warning)",
+            )
         )
     finally:
         broker.stop()
@@ -1484,7 +1564,7 @@ class Form:
 
 SHORT = Form(kills=3, restarts=1, broker_kills=1, flood=100_000, fuzz=60)
 FULL = Form(kills=20, restarts=5, broker_kills=3, flood=1_000_000, fuzz=400)
-ROWS = ("kill", "restart", "broker_kill", "network", "disk", "flood", "clock", "fuzz", "security")
+ROWS = ("kill", "boot", "restart", "broker_kill", "network", "disk", "flood", "clock", "fuzz", "security")
 
 
 def campaign(short: bool = False, only: tuple[str, ...] = ROWS, root: Path | None = None) -> list[Row]:
@@ -1508,6 +1588,7 @@ def campaign(short: bool = False, only: tuple[str, ...] = ROWS, root: Path | Non
             print(f"  [{r.details['seconds']:6.1f} s] {r.fault}: {r.outcome}", file=sys.stderr, flush=True)
 
     run("kill", lambda: row_agent_kill(base / "kill", p.kills))
+    run("boot", lambda: row_boot_order(base / "boot"))
     run("restart", lambda: row_broker_restart(base / "restart", p.restarts))
     run("broker_kill", lambda: row_broker_kill_under_load(base / "bkill", p.broker_kills))
     run("broker_kill", lambda: row_broker_kill_queue(base / "bkill-1", 1))

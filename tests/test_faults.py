@@ -47,6 +47,13 @@ def test_agent_sigkilled_at_random_points_loses_and_doubles_nothing(tmp_path):
     assert row.published == row.took and row.published > 0
 
 
+def test_an_agent_that_boots_before_its_broker_waits_and_takes_everything(tmp_path):
+    os.chmod(tmp_path, 0o755)
+    row = faults.row_boot_order(tmp_path, wait_s=2.0)
+    _check([row])
+    assert row.lost == 0 and "unreachable_at_start" in row.outcome
+
+
 def test_broker_restarted_under_load_loses_nothing_and_keeps_its_files_as_mosquitto(tmp_path):
     os.chmod(tmp_path, 0o755)
     row = faults.row_broker_restart(tmp_path, restarts=1)
@@ -99,6 +106,7 @@ def test_security_rows_are_each_visible(tmp_path):
         "refused password at start",
         "password refused while running",
         "untrusted broker certificate",
+        "TLS hostname verification off",
         "alert publish denied by the ACL (MQTT 5)",
         "password file readable by others",
         "alert publish denied by the ACL (MQTT 3.1.1)",
