@@ -11,7 +11,7 @@ from typing import Any
 
 from watchdog_edge.core.cards import ModelCard
 from watchdog_edge.core.events import Alert
-from watchdog_edge.core.monitor import Monitor, Step
+from watchdog_edge.core.monitor import Monitor, PairStep, Step
 from watchdog_edge.core.settings import Config
 
 WIDTH_PX, HEIGHT_PX, DPI = 1400, 700, 100
@@ -40,7 +40,7 @@ def trace(config: Config, cards: dict[str, ModelCard], steps: list[Step], model:
     for s in steps:
         events = mon.apply([s])
         tr.alerts.extend(e for e in events if isinstance(e, Alert) and e.model == model)
-        if s.kind != "pair" or s.model != model:
+        if type(s) is not PairStep or s.model != model:
             continue
         gap = mon.state(model)["checks"].get("gap")
         figs = gap["figures"] if gap else {}

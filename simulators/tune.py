@@ -41,8 +41,8 @@ from pathlib import Path
 from typing import Any
 
 from watchdog_edge.core.cards import ModelCard
-from watchdog_edge.core.events import Alert
-from watchdog_edge.core.monitor import Monitor, Step
+from watchdog_edge.core.events import Alert, DeadLetter
+from watchdog_edge.core.monitor import Monitor, PairStep, Step
 from watchdog_edge.core.settings import Config, parse_config
 from watchdog_edge.errors import ConfigError, WatchdogError
 from watchdog_edge.files.configfile import load_cards
@@ -226,12 +226,13 @@ def intake_recording(
             if math.isnan(start):
                 start = t
         for s in out:
-            if type(s) is Step:
-                add(s)
-                if s.kind == "pair":
-                    pairs[s.model] = pairs.get(s.model, 0) + 1
-                    a, _ = span.get(s.model, (s.t, s.t))
-                    span[s.model] = (a, s.t)
+            if isinstance(s, DeadLetter):
+                continue
+            add(s)
+            if type(s) is PairStep:
+                pairs[s.model] = pairs.get(s.model, 0) + 1
+                a, _ = span.get(s.model, (s.t, s.t))
+                span[s.model] = (a, s.t)
     if not steps:
         raise WatchdogError(
             f"recording {recording} gave no predictions or truths on the config's topics; "

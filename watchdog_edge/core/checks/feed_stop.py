@@ -8,7 +8,8 @@ starts is reported once its timeout has passed since the watchdog began watching
 
 A level is warning when a feed has been silent for longer than its timeout, critical when
 longer than ``critical_factor`` x the timeout. It falls back as soon as the feed delivers again
-(a record is proof the feed is alive; no hysteresis is needed). A verdict is returned only when
+(a record is proof the feed is alive; no hysteresis is needed: the one level rule of
+``core/levels.py`` with ``clear_after`` 1 and the same level as evidence both ways). A verdict is returned only when
 the level changes. The check keeps the next time at which a limit can be passed, so most calls
 of ``evaluate`` cost one comparison.
 """
@@ -21,6 +22,7 @@ from typing import Any
 from pydantic import Field, model_validator
 
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Level, Verdict
+from watchdog_edge.core.levels import LevelRule
 from watchdog_edge.core.records import Prediction, Truth
 
 
@@ -64,7 +66,7 @@ def _duration(s: float) -> str:
     return f"{s / 86400:.1f} days"
 
 
-class FeedStopCheck(Check):
+class FeedStopCheck(Check[FeedStopSettings]):
     """Seconds since the latest prediction and truth against their timeouts.
 
     >>> from watchdog_edge.core.cards import ModelCard
@@ -84,15 +86,15 @@ class FeedStopCheck(Check):
     name = "feed_stop"
     settings_model = FeedStopSettings
     # A pair comes with the truth or prediction just evaluated at the same time: nothing new.
+    takes = frozenset({"prediction", "truth"})
     reacts_to = frozenset({"prediction", "truth", "tick"})
 
     def __init__(self, settings: FeedStopSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        self.settings: FeedStopSettings = settings
         self._start: float | None = None
         self._last_prediction: float | None = None
         self._last_truth: float | None = None
-        self._reported: Level = "normal"
+        self._rule = LevelRule(clear_after=1)
         self._now: float | None = None
         self._next = -math.inf  # no level change is possible up to this core time ...
         self._fresh = True  # ... unless a record arrived on a feed that was past its limit
@@ -101,7 +103,7 @@ class FeedStopCheck(Check):
     def reset(self) -> None:
         # A new model version keeps the feeds' times (they are not a window), but the alert
         # states were closed, so the current level must be reported afresh.
-        self._reported = "normal"
+        self._rule.reset()
         self._fresh = True
 
     def on_prediction(self, prediction: Prediction) -> bool:
@@ -171,10 +173,11 @@ class FeedStopCheck(Check):
         if self._start is None:
             self._start = now
         self._fresh = False
-        level = self._level(now)
-        if level == self._reported:
+        before = self._rule.level
+        seen = self._level(now)
+        level = self._rule.update(seen, seen)
+        if level == before:
             return None
-        self._reported = level
         return Verdict(level, self._summary(level), self.figures())
 
     def _summary(self, level: Level) -> str:
@@ -200,7 +203,7 @@ class FeedStopCheck(Check):
         s = self.settings
         t = self._now
         out: dict[str, Any] = {
-            "level": self._reported,
+            "level": self._rule.level,
             "prediction_timeout_s": s.prediction_timeout_s,
             "truth_timeout_s": s.truth_timeout_s,
             "seconds_since_prediction": None,
@@ -218,7 +221,7 @@ class FeedStopCheck(Check):
             "start": self._start,
             "last_prediction": self._last_prediction,
             "last_truth": self._last_truth,
-            "reported": self._reported,
+            "reported": self._rule.level,
             "now": self._now,
         }
 
@@ -228,5 +231,5 @@ class FeedStopCheck(Check):
         self._start = data["start"]
         self._last_prediction = data["last_prediction"]
         self._last_truth = data["last_truth"]
-        self._reported = data["reported"]
+        self._rule.restore({"level": data["reported"], "calm_run": 0})
         self._now = data["now"]

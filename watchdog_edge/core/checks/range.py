@@ -22,7 +22,7 @@ from typing import Any
 from pydantic import Field, model_validator
 
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict, fmt
-from watchdog_edge.core.checks.levels import LevelGate
+from watchdog_edge.core.levels import LevelGate
 from watchdog_edge.core.records import Prediction
 
 
@@ -62,7 +62,7 @@ class RangeSettings(CheckSettings):
         return self
 
 
-class RangeCheck(Check):
+class RangeCheck(Check[RangeSettings]):
     """Share of recent predictions whose inputs lie outside the card's envelope.
 
     >>> from watchdog_edge.core.cards import ModelCard
@@ -79,12 +79,12 @@ class RangeCheck(Check):
     """
 
     name = "range"
+    takes = frozenset({"prediction"})
     reacts_to = frozenset({"prediction"})  # its counts move only with predictions
     settings_model = RangeSettings
 
     def __init__(self, settings: RangeSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        self.settings: RangeSettings = settings
         bounds = []
         for fname, prof in context.card.features.items():
             pad = settings.margin * (prof.max - prof.min)
@@ -136,7 +136,7 @@ class RangeCheck(Check):
             details.popleft()
         outside = len(details)
         share = outside / self._filled
-        level = self._gate.update(share)
+        level = self._gate.update_figure(share)
         per: dict[str, dict[str, Any]] = {}
         for _, far in details:
             for fname, d in far.items():

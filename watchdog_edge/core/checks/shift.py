@@ -33,7 +33,7 @@ import numpy as np
 from pydantic import Field, model_validator
 
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict
-from watchdog_edge.core.checks.levels import LevelGate
+from watchdog_edge.core.levels import LevelGate
 from watchdog_edge.core.records import Prediction
 
 ADVISED_MIN_WINDOW = 1000
@@ -120,7 +120,7 @@ def population_stability_index(
     return total
 
 
-class ShiftCheck(Check):
+class ShiftCheck(Check[ShiftSettings]):
     """Population stability index per feature against the card's training histograms.
 
     Predictions are queued as they come (one list append) and binned in a batch with numpy
@@ -141,12 +141,12 @@ class ShiftCheck(Check):
     """
 
     name = "shift"
+    takes = frozenset({"prediction"})
     reacts_to = frozenset({"prediction"})  # its counts move only with predictions
     settings_model = ShiftSettings
 
     def __init__(self, settings: ShiftSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        self.settings: ShiftSettings = settings
         names, inner, expected, nbins = [], [], [], []
         for fname, prof in context.card.features.items():
             h = prof.histogram
@@ -245,7 +245,7 @@ class ShiftCheck(Check):
         s = self.settings
         idx = self.indices()
         top = max(idx, key=idx.__getitem__)
-        level = self._gate.update(idx[top])
+        level = self._gate.update_figure(idx[top])
         self._figures = {
             "index": idx,
             "top_feature": top,
