@@ -44,7 +44,7 @@ from watchdog_edge.core.cards import ModelCard
 from watchdog_edge.core.events import Alert, DeadLetter
 from watchdog_edge.core.monitor import Monitor, PairStep, Step
 from watchdog_edge.core.settings import Config, parse_config
-from watchdog_edge.errors import ConfigError, WatchdogError
+from watchdog_edge.errors import ConfigError, RecordingError
 from watchdog_edge.files.configfile import load_cards
 from watchdog_edge.files.documents import read_document
 from watchdog_edge.replay.recording import read_recording, with_ticks
@@ -234,7 +234,7 @@ def intake_recording(
                 a, _ = span.get(s.model, (s.t, s.t))
                 span[s.model] = (a, s.t)
     if not steps:
-        raise WatchdogError(
+        raise RecordingError(
             f"recording {recording} gave no predictions or truths on the config's topics; "
             "check the topics in the config against the recording"
         )
