@@ -155,7 +155,7 @@ class BaselineCheck(Check[BaselineSettings]):
     >>> for i in range(300):       # the truth hovers near 10; the model always says 7
     ...     y = 10 + rng.gauss(0, 1)
     ...     pair = Pair(Prediction("m", str(i), 7.0, i, features={"x": 1.0}), Truth("m", str(i), y, i), i)
-    ...     check.on_pair(pair, (y - 7.0) ** 2)
+    ...     due = check.on_pair(pair, (y - 7.0) ** 2)   # False: evaluate is not due (may be skipped)
     ...     verdicts.append(check.evaluate(float(i)))
     >>> v = [v for v in verdicts if v is not None][-1]
     >>> v.level, v.figures["learner"], v.figures["margin"] > 0.5

@@ -142,7 +142,7 @@ class DriftCheck(Check[DriftSettings]):
     >>> raised = []
     >>> for i in range(600):
     ...     err = (1.0 if i < 400 else 2.0) * (1 if i % 2 else -1)   # squared error 1, then 4
-    ...     check.on_pair(Pair(Prediction("m", str(i), 0.0, i), Truth("m", str(i), err, i), float(i)), err * err)
+    ...     due = check.on_pair(Pair(Prediction("m", str(i), 0.0, i), Truth("m", str(i), err, i), float(i)), err * err)
     ...     v = check.evaluate(float(i))
     ...     if v is not None: raised.append((i, v))
     >>> [(i, v.level, v.figures["change_t"]) for i, v in raised]

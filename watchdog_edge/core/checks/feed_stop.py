@@ -74,8 +74,10 @@ class FeedStopCheck(Check[FeedStopSettings]):
     ...                  holdout={"loss": 1.0, "count": 50})
     >>> check = FeedStopCheck(FeedStopSettings(prediction_timeout_s=60, truth_timeout_s=600),
     ...                      CheckContext("m", card, "squared", 1.0, "holdout"))
-    >>> check.on_truth(Truth("m", "1", 2.0, t=0.0))
+    >>> check.on_truth(Truth("m", "1", 2.0, t=0.0))  # True: evaluate may have something new
+    True
     >>> check.on_prediction(Prediction("m", "1", 2.0, t=0.0))
+    True
     >>> check.evaluate(30.0) is None
     True
     >>> v = check.evaluate(90.0)

@@ -62,7 +62,7 @@ class GapCheck(Check[GapSettings]):
     >>> gap = GapCheck(GapSettings(evaluate_every=1), ctx)
     >>> for i in range(50):
     ...     err = 3.0 if i % 2 else -3.0            # squared error 9, nine times the expected 1
-    ...     gap.on_pair(Pair(Prediction("m", str(i), 0.0, i), Truth("m", str(i), err, i), i), err * err)
+    ...     due = gap.on_pair(Pair(Prediction("m", str(i), 0.0, i), Truth("m", str(i), err, i), i), err * err)
     >>> v = gap.evaluate(50.0)
     >>> v.level, v.figures["diagnosis"]
     ('critical', 'present from deployment')

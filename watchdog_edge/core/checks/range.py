@@ -72,7 +72,7 @@ class RangeCheck(Check[RangeSettings]):
     >>> ctx = CheckContext("m", card, "squared", 1.0, "holdout")
     >>> check = RangeCheck(RangeSettings(window=20, min_predictions=20, evaluate_every=20), ctx)
     >>> for i in range(20):
-    ...     check.on_prediction(Prediction("m", str(i), 1.0, float(i), features={"temp": 58.0 if i < 5 else 20.0}))
+    ...     due = check.on_prediction(Prediction("m", str(i), 1.0, float(i), features={"temp": 58.0 if i < 5 else 20.0}))
     >>> v = check.evaluate(20.0)
     >>> v.level, v.figures["share"], v.figures["features"]["temp"]["max_above"]
     ('critical', 0.25, 8.0)

@@ -134,7 +134,7 @@ class ShiftCheck(Check[ShiftSettings]):
     >>> check = ShiftCheck(ShiftSettings(window=100, evaluate_every=100),
     ...                    CheckContext("m", card, "squared", 1.0, "holdout"))
     >>> for i in range(100):                       # every value in the top bin
-    ...     check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"x": 3.5}))
+    ...     due = check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"x": 3.5}))
     >>> v = check.evaluate(100.0)
     >>> v.level, round(v.figures["index"]["x"], 2)
     ('critical', 3.88)
