@@ -113,7 +113,7 @@ def draw(
                 x, tr.lower, tr.upper, step="post", color="#5dade2", alpha=0.35, label="interval on the live mean loss"
             )
             ax.step(x, tr.live, where="post", color="#1b4f72", lw=1.2, label="live mean loss")
-        if tr.expected is not None:
+        if tr.expected is not None and tr.warning is not None and tr.critical is not None:
             ax.axhspan(tr.expected, tr.warning, color="#27ae60", alpha=0.15, label="expected loss to warning limit")
             ax.axhline(tr.expected, color="#27ae60", lw=1.0)
             ax.axhline(tr.warning, color="#e67e22", lw=1.0, ls="--", label="warning limit")

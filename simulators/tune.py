@@ -220,7 +220,11 @@ def intake_recording(
     lines = read_recording(recording)
     for line in with_ticks(lines, tick_every) if tick_every else lines:
         t = line.t
-        out = intake_tick(t) if line.tick else intake(line.topic, line.payload, t)
+        if line.tick:
+            out = intake_tick(t)
+        else:
+            assert line.topic is not None and line.payload is not None  # a message line has both
+            out = intake(line.topic, line.payload, t)
         if not t <= end:  # the first line (end is NaN) or a later receive time
             end = t
             if math.isnan(start):
@@ -410,7 +414,8 @@ class Score:
 
 
 def _union_length(spans: Iterable[tuple[float, float]], lo: float, hi: float) -> float:
-    total, cur_a, cur_b = 0.0, None, None
+    total, cur_a = 0.0, 0.0
+    cur_b: float | None = None
     for a, b in sorted((max(lo, a), min(hi, b)) for a, b in spans):
         if b <= a:
             continue

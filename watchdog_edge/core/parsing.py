@@ -237,7 +237,8 @@ class RecordParser:
 
 
 _decoder = json.JSONDecoder()
-_scan_once = _decoder.scan_once
+# the decoder's scanner: an instance attribute set by JSONDecoder.__init__ that typeshed leaves out
+_scan_once: Callable[[str, int], tuple[Any, int]] = vars(_decoder)["scan_once"]
 _decode_json = _decoder.decode
 _orjson_loads = orjson.loads
 _OrjsonError = orjson.JSONDecodeError
@@ -269,7 +270,7 @@ def loads_json_exact(text: str | bytes) -> Any:
     >>> loads_json_exact(b'{"id": 123456789012345678901234567890}')
     {'id': 123456789012345678901234567890}
     """
-    if type(text) is not str:
+    if not isinstance(text, str):
         text = text.decode("utf-8")
     try:
         try:

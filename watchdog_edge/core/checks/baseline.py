@@ -34,7 +34,7 @@ import base64
 import hashlib
 import math
 import pickle
-from typing import Any, Literal
+from typing import Any, Literal, cast
 
 import numpy as np
 from pydantic import Field, field_validator, model_validator
@@ -62,7 +62,7 @@ class BaselineSettings(CheckSettings):
     """
 
     learners: list[LearnerName] = Field(
-        default_factory=lambda: ["mean", "linear"],
+        default_factory=lambda: list[LearnerName](["mean", "linear"]),
         min_length=1,
         description="Online learners to compare the model with: mean, linear, tree.",
     )
@@ -283,11 +283,12 @@ class BaselineCheck(Check[BaselineSettings]):
         if None not in feats.values() and tuple(feats) == self._fast_keys:
             # the usual case, inline: the known features in the known order, none missing;
             # its values join the imputation sums in batches (see _fold)
+            full = cast("dict[str, float]", feats)  # no value is None: tested just above
             pend = self._pending
-            pend.append(feats)
+            pend.append(full)
             if len(pend) >= 256:
                 self._fold()
-            x = feats
+            x = full
         else:
             x = self._inputs(feats)
         y = pair.truth.value

@@ -236,7 +236,8 @@ class DriftCheck(Check[DriftSettings]):
         if self._rule.level == "normal":
             return None
         if s.clear_on == "hold":
-            if t - self._raised_t < s.hold_s:  # type: ignore[operator]
+            raised_t = self._raised_t if self._raised_t is not None else t  # set with every raise
+            if t - raised_t < s.hold_s:
                 return None
             self._rule.reset()  # the hold ran out: the evidence ends by itself
             self._update_figures()
@@ -293,7 +294,7 @@ class DriftCheck(Check[DriftSettings]):
 
     def _hold_summary(self) -> str:
         return (
-            f"The drift raised at {rfc3339(self._raised_t)} has been held for "  # type: ignore[arg-type]
+            f"The drift raised at {rfc3339(self._raised_t or 0.0)} has been held for "
             f"{self.settings.hold_s:g} s and is cleared; the gap check keeps watching the error level."
         )
 
@@ -326,7 +327,7 @@ class DriftCheck(Check[DriftSettings]):
         self._detector = pickle.loads(base64.b64decode(data["detector"]))
         self._seq = int(data["seq"])
         self._segment_start = int(data["segment_start"])
-        self._history = deque((tuple(h) for h in data["history"]), maxlen=self.settings.history)  # type: ignore[misc]
+        self._history = deque((tuple(h) for h in data["history"]), maxlen=self.settings.history)
         self._since_change.restore(data["since_change"])
         self._rule.restore(
             {"level": data["level"], "calm_run": data["clear_run"], "calm_top": data.get("calm_top", "normal")}

@@ -135,8 +135,9 @@ class FeedStopCheck(Check[FeedStopSettings]):
         return self._fresh or self._now > self._next
 
     def _since(self, last: float | None, t: float) -> float:
-        ref = last if last is not None else self._start
-        return max(0.0, t - ref)  # type: ignore[operator]
+        """Seconds from a feed's latest record (before the first, from the start) to ``t``."""
+        ref = last if last is not None else self._start if self._start is not None else t
+        return max(0.0, t - ref)
 
     def _level(self, t: float) -> Level:
         """The level at ``t``; also sets the next time a limit can be passed and the quiet feeds."""
@@ -148,8 +149,8 @@ class FeedStopCheck(Check[FeedStopSettings]):
             if limit is None:
                 quiet_feeds.append(False)
                 continue
-            ref = last if last is not None else self._start
-            quiet = max(0.0, t - ref)  # type: ignore[operator]
+            ref = last if last is not None else self._start if self._start is not None else t  # start: set by evaluate
+            quiet = max(0.0, t - ref)
             quiet_feeds.append(quiet > limit)
             crit = None if s.critical_factor is None else limit * s.critical_factor
             if crit is not None and quiet > crit:
@@ -158,9 +159,9 @@ class FeedStopCheck(Check[FeedStopSettings]):
                 if level == "normal":
                     level = "warning"
                 if crit is not None:
-                    nxt = min(nxt, ref + crit)  # type: ignore[operator]
+                    nxt = min(nxt, ref + crit)
             else:
-                nxt = min(nxt, ref + limit)  # type: ignore[operator]
+                nxt = min(nxt, ref + limit)
         self._next = nxt
         # Only a record on a feed past its limit can bring the level down before ``nxt``.
         self._quiet_predictions, self._quiet_truths = quiet_feeds

@@ -25,7 +25,7 @@ from __future__ import annotations
 
 import math
 import operator
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from itertools import chain
 from typing import Any
 
@@ -169,7 +169,8 @@ class ShiftCheck(Check[ShiftSettings]):
         for j, e in enumerate(inner):
             self._edges[j, : len(e)] = e
         self._missing = self._nbins - 1
-        self._getter = operator.itemgetter(*names) if names else None
+        # the features of one prediction, in ``names`` order (with no features nothing is queued)
+        self._getter: Callable[[dict[str, float | None]], Any] = operator.itemgetter(*names) if names else tuple
         self._every = settings.evaluate_every
         self._gate = LevelGate(settings.warning, settings.critical, settings.hysteresis, settings.clear_after)
         self.reset()
