@@ -59,12 +59,12 @@ from watchdog_edge.agent.link import (
     secret_warnings,
     status_payload,
 )
-from watchdog_edge.agent.store import OutboxItem, Store, StoreWriteError, state_path
+from watchdog_edge.agent.store import OutboxItem, Store, state_path
 from watchdog_edge.core.cards import ModelCard
 from watchdog_edge.core.events import Alert, DeadLetter, rfc3339
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import Config
-from watchdog_edge.errors import BrokerError, BrokerUnreachable, WatchdogError
+from watchdog_edge.errors import BrokerError, BrokerUnreachable, StoreWriteError, WatchdogError
 from watchdog_edge.replay.recording import RecordingWriter, last_line, trim_cut_line
 
 log = logging.getLogger("watchdog_edge.agent.agent")

@@ -31,7 +31,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 from watchdog_edge.core.events import DeadLetter
-from watchdog_edge.errors import WatchdogError
+from watchdog_edge.errors import StoreError, StoreWriteError
 
 SCHEMA_VERSION = 1
 _CACHE_KIB = 512
@@ -197,10 +197,6 @@ class StoredDeadLetter:
         return out
 
 
-class StoreWriteError(WatchdogError):
-    """The state file refused a write (disk full, read-only, I/O error); nothing of the batch was kept."""
-
-
 def _write_error(path: Path, e: sqlite3.Error) -> StoreWriteError:
     text = str(e)
     low = text.lower()
@@ -236,7 +232,7 @@ class Store:
         dead_letter_max_bytes: int = 1_048_576,
     ) -> None:
         if synchronous not in ("NORMAL", "FULL"):
-            raise WatchdogError(f"sqlite_synchronous = {synchronous!r}: must be 'NORMAL' or 'FULL'")
+            raise StoreError(f"sqlite_synchronous = {synchronous!r}: must be 'NORMAL' or 'FULL'")
         self.path = Path(path)
         make_private(self.path)
         self.dead_letter_max_count = dead_letter_max_count
@@ -258,14 +254,14 @@ class Store:
             low = str(e).lower()
             if "full" in low or "readonly" in low or "read-only" in low or "disk i/o" in low:
                 raise _write_error(self.path, e) from None
-            raise WatchdogError(f"cannot open the state file {self.path}: {e}; check agent.state_dir") from None
+            raise StoreError(f"cannot open the state file {self.path}: {e}; check agent.state_dir") from None
         if str(mode).lower() != "wal":
-            raise WatchdogError(
+            raise StoreError(
                 f"the state file {self.path} cannot use WAL mode (got {mode!r}); "
                 "put agent.state_dir on a local file system"
             )
         if found is not None and int(found) != SCHEMA_VERSION:
-            raise WatchdogError(
+            raise StoreError(
                 f"the state file {self.path} has schema {found}, this version reads "
                 f"{SCHEMA_VERSION}; move it away to start fresh"
             )
@@ -503,7 +499,7 @@ def make_private(path: Path) -> None:
             if p.exists() and p.stat().st_mode & 0o077:
                 os.chmod(p, 0o600)
     except OSError as e:
-        cls = StoreWriteError if e.errno in (errno.EROFS, errno.ENOSPC, errno.EDQUOT) else WatchdogError
+        cls = StoreWriteError if e.errno in (errno.EROFS, errno.ENOSPC, errno.EDQUOT) else StoreError
         raise cls(
             f"agent.state_dir = {str(folder)!r}: cannot create the state file there ({e.strerror}); "
             "check that the folder exists and is writable by the agent's user"
@@ -514,7 +510,7 @@ def open_readonly(path: str | Path) -> sqlite3.Connection:
     """Open a state file for reading while an agent may be writing it (WAL allows that)."""
     p = Path(path)
     if not p.exists():
-        raise WatchdogError(f"no state file at {p}; has the agent run with this config (agent.state_dir)?")
+        raise StoreError(f"no state file at {p}; has the agent run with this config (agent.state_dir)?")
     return sqlite3.connect(f"file:{p}?mode=ro", uri=True, timeout=10.0)
 
 
@@ -527,7 +523,7 @@ def read_dead_letters(path: str | Path, limit: int | None = None) -> list[Stored
                 "SELECT id, topic, t, reason, detail, payload, size FROM dead_letters ORDER BY id"
             ).fetchall()
         except sqlite3.OperationalError as e:
-            raise WatchdogError(f"{path} is not a watchdog-edge state file ({e})") from None
+            raise StoreError(f"{path} is not a watchdog-edge state file ({e})") from None
     finally:
         db.close()
     if limit is not None:

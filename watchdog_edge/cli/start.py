@@ -10,7 +10,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from watchdog_edge.errors import BrokerError, WatchdogError
+from watchdog_edge.errors import BrokerError, StoreWriteError, WatchdogError
 
 _STOP_SIGNALS = (signal.SIGTERM, signal.SIGINT)
 
@@ -62,7 +62,6 @@ def run_agent(config: Path, record: Path | None = None, log_level: str = "info")
         return _fail(f"--log-level {log_level!r} is not one of debug, info, warning, error", 2)
     logging.basicConfig(level=level, stream=sys.stderr, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     from watchdog_edge.agent.agent import Agent
-    from watchdog_edge.agent.store import StoreWriteError
     from watchdog_edge.files.configfile import load_cards, load_config
 
     try:
