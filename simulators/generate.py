@@ -121,8 +121,8 @@ def _span(sc: Scenario, inc, end_t: float) -> tuple[float, float]:
 
 
 def _describe(inc) -> str:
-    if inc.note:
-        return inc.note
+    if inc.detail:
+        return inc.detail
     if isinstance(inc, Drift):
         return f"{inc.sensor} reading drifts by {inc.rate_per_h:+g} per hour"
     if isinstance(inc, Step):
@@ -192,7 +192,7 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
     lat_pred = lrng.uniform(0.0, tim.latency_max_s, n)
     lat_truth = lrng.uniform(0.0, tim.latency_max_s, n)
 
-    pl = sc.payload
+    pl = sc.fields
     pred_topic, truth_topic = sc.topics.prediction, sc.topics.truth
     out: list[tuple[float, int, str, bytes]] = []
     counts = {"predictions": 0, "truths": 0, "truths_stalled": 0, "truths_after_end": 0}
@@ -202,8 +202,8 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
         src = round(float(ts[i]), 3)
         feats = {f: float(measured[f][i]) for f in sc.model.features}
         body = {"id": pid, "ts": src}
-        _merge(body, _nest(pl.prediction_value, round(float(pred[i]), 4)))
-        _merge(body, _nest(pl.features, feats))
+        _merge(body, _nest(pl.prediction.value, round(float(pred[i]), 4)))
+        _merge(body, _nest(pl.prediction.features, feats))
         body["model_version"] = version
         t_recv = round(float(ts[i] + lat_pred[i]), 3)
         out.append((t_recv, 2 * i, pred_topic, json.dumps(body, separators=(",", ":")).encode()))
@@ -219,7 +219,7 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
             counts["truths_after_end"] += 1
             continue
         tbody: dict[str, Any] = {"id": pid, "ts": src}
-        _merge(tbody, _nest(pl.truth_value, round(float(truth[i]), 4)))
+        _merge(tbody, _nest(pl.truth.value, round(float(truth[i]), 4)))
         out.append((t_recv, 2 * i + 1, truth_topic, json.dumps(tbody, separators=(",", ":")).encode()))
         counts["truths"] += 1
     out.sort(key=lambda m: (m[0], m[1]))

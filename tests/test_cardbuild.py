@@ -92,7 +92,7 @@ def test_losses_and_counts_match_numpy_and_scikit_learn(files, rows):
     assert (card.target.min, card.target.max) == (pytest.approx(y[:200].min()), pytest.approx(y[:200].max()))
 
 
-def test_defaults_features_id_and_envelope(files, rows):
+def test_defaults_features_id_and_training_range(files, rows):
     x1, x2, y, pred = rows
     train, _ = files
     card = build_card(train, target="y", prediction="p", params=3)
@@ -274,7 +274,7 @@ def test_cli_errors_are_one_line_on_stderr_with_exit_code_2(tmp_path, files):
     bad.write_text(json.dumps({"model_id": "m", "training": {"loss": -1, "count": 5}, "colour": 1}))
     r = CliRunner().invoke(cli, ["card", "show", str(bad)])
     assert r.exit_code == 2 and r.stderr.count("\n") == 1
-    assert "training.loss" in r.stderr and "colour: unknown key" in r.stderr
+    assert "training.loss" in r.stderr and "colour = 1: unknown key" in r.stderr
 
 
 def test_render_says_when_no_expected_loss_can_be_given(tmp_path, rows):

@@ -30,7 +30,7 @@ id = "pump-flow"
 card = "pump.json"
 prediction_topic = "station/pump/pred"
 truth_topic = "station/pump/truth"
-window = { size = 200, min_pairs = 100 }
+window = { size_pairs = 200, min_pairs = 100 }
 
 [models.checks.range]
 enabled = false
@@ -101,10 +101,10 @@ def test_check_config_prints_resolved_settings_without_secrets(site):
 
 def test_check_config_error_names_key_value_and_rule(site):
     bad = site / "bad.toml"
-    bad.write_text(CONFIG.replace("size = 200", "size = -3"))
+    bad.write_text(CONFIG.replace("size_pairs = 200", "size_pairs = -3"))
     r = runner.invoke(app, ["check-config", str(bad)])
     assert r.exit_code == 2
-    assert "models[0] (id 'pump-flow').window.size = -3" in r.output
+    assert "models[0] (id 'pump-flow').window.size_pairs = -3" in r.output
     assert "greater than or equal to 2" in r.output
 
 

@@ -18,15 +18,15 @@ def err(data) -> str:
 def test_defaults_are_filled_in():
     cfg = parse_config({"models": [MODEL]})
     m = cfg.models[0]
-    assert m.window.size == 500 and m.pairing.horizon_s == 7200
+    assert m.window.size_pairs == 500 and m.pairing.horizon_s == 7200
     assert cfg.broker.topics.alerts == "watchdog/{model}/alerts"
     assert m.checks["gap"].warning_tolerance == 0.25 and m.checks["gap"].critical_tolerance == 1.0
     assert "gap" in m.enabled_checks()
 
 
 def test_error_names_key_value_and_rule():
-    msg = err({"models": [dict(MODEL, window={"size": 0})]})
-    assert "models[0] (id 'm').window.size = 0" in msg and "greater than or equal to 2" in msg
+    msg = err({"models": [dict(MODEL, window={"size_pairs": 0})]})
+    assert "models[0] (id 'm').window.size_pairs = 0" in msg and "greater than or equal to 2" in msg
 
 
 def test_unknown_key_is_named():

@@ -225,7 +225,7 @@ def test_bundle_replays_with_its_config_and_card(tmp_path):
     run = simulate(sc, seed=2, duration_h=10)
     paths = write_bundle(run, tmp_path / "out" / "cs.jsonl", "cold-store")
     cfg = load_config(paths.config)
-    assert cfg.models[0].id == sc.model.id and cfg.models[0].window.size == sc.monitor.window_size
+    assert cfg.models[0].id == sc.model.id and cfg.models[0].window.size_pairs == sc.monitor.window.size_pairs
     card = load_card(paths.card)
     assert expected_loss(card)[1] == "fpe"
     incidents = load_incidents(paths.incidents)

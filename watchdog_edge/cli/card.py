@@ -12,7 +12,7 @@ from watchdog_edge.errors import WatchdogError
 app = typer.Typer(
     help=(
         "Model cards. A card records what the model did on its training data (loss, row count, "
-        "fitted parameters, input envelope and histograms, target range, optional held-out loss), "
+        "fitted parameters, training range and histograms of the inputs, target range, optional held-out loss), "
         "so the agent knows which error to expect in the field and which inputs are new to the "
         "model. Build one at training time from a CSV of the training rows with the model's "
         "fitted prediction on each row; show one to see the loss the agent will expect."
@@ -80,7 +80,7 @@ def build(
     ),
     out: Path = typer.Option(..., "-o", "--output", help="Where to write the card (JSON)."),
 ) -> None:
-    """Compute a card: training loss and count, envelope, histograms, target range, held-out loss."""
+    """Compute a card: training loss and count, training range of the inputs, histograms, target range, held-out loss."""
     from watchdog_edge.files.cardbuild import build_card, render_card
     from watchdog_edge.files.cardfile import save_card
 

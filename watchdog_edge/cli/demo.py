@@ -12,7 +12,7 @@ arrives about 15 minutes later for every second prediction:
   inflates its training error several times, and the field is worse still.
 
 The field traffic also has a stalled meter feed for three hours, a heat wave beyond the
-training envelope, a few garbled messages, and repeats.
+training range, a few garbled messages, and repeats.
 """
 
 from __future__ import annotations
@@ -204,14 +204,14 @@ prediction_topic = "{site}/compressor/{topic}"
 truth_topic = "{site}/meter"
 fields.truth = {{ id = "meter.id", value = "meter.kw", ts = "read_at" }}
 pairing = {{ horizon_s = 3600 }}
-window = {{ size = 300, min_pairs = 100 }}
+window = {{ size_pairs = 300, min_pairs = 100 }}
 
 [models.checks.gap]
 warning_tolerance = 0.25
 critical_tolerance = 1.0
 [models.checks.range]
 [models.checks.shift]
-window = 2160
+recent_predictions = 2160
 [models.checks.feed_stop]
 truth_timeout_s = 3600
 [models.checks.drift]

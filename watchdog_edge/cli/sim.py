@@ -130,11 +130,11 @@ def tune(
         "--grid",
         help="Grid file (TOML \\[grid] table of dotted keys -> lists). Default: window size x gap confidence x gap tolerance x shift on/off (x ADWIN delta when drift is on).",
     ),
-    holdout: Optional[Path] = typer.Option(
-        None, "--holdout", help="A second recording (another seed or day) to check the chosen setting on."
+    check_recording: Optional[Path] = typer.Option(
+        None, "--check-recording", help="A second recording (another seed or day) to check the chosen setting on."
     ),
-    holdout_incidents: Optional[Path] = typer.Option(
-        None, "--holdout-incidents", help="Incidents file of the holdout recording."
+    check_incidents: Optional[Path] = typer.Option(
+        None, "--check-incidents", help="Incidents file of the --check-recording recording."
     ),
     model: Optional[list[str]] = typer.Option(
         None, "--model", help="Tune only this model (repeatable); default every model."
@@ -142,7 +142,9 @@ def tune(
     grace: Optional[float] = typer.Option(
         None, "--grace", help="Seconds after an incident's end an alert still counts (default: one window)."
     ),
-    alarm_budget: float = typer.Option(0.5, "--alarm-budget", help="Without incidents: alarms per day you accept."),
+    false_alert_budget: float = typer.Option(
+        0.5, "--false-alert-budget", help="Without incidents: false alerts per day you accept."
+    ),
     workers: Optional[int] = typer.Option(None, "--workers", help="Worker processes (default: one per CPU)."),
     tick_every: Optional[float] = typer.Option(
         None, "--tick-every", help="Add a timer tick every S seconds (as replay does)."
@@ -163,9 +165,9 @@ def tune(
 ) -> None:
     """Replay a recording across a grid of check settings and rank them.
 
-    The recording is parsed and paired once; each setting is applied to that one pass, spread over one worker process per CPU. With --incidents each setting is scored by missed incidents, false alarms per day outside the incidents (plus a grace of one window, the window size over the pair rate) and detection delay; settings whose grid neighbours raise false alarms rank lower. Without incidents, the tightest setting within --alarm-budget wins. The best setting is written as a \\[\\[models]] TOML snippet and a PNG plot.
+    The recording is parsed and paired once; each setting is applied to that one pass, spread over one worker process per CPU. With --incidents each setting is scored by missed incidents, false alerts per day outside the incidents (plus a grace of one window, the window size over the pair rate) and detection delay; settings whose grid neighbours raise false alerts rank lower. Without incidents, the tightest setting within --false-alert-budget wins. The best setting is written as a \\[\\[models]] TOML snippet and a PNG plot.
 
-    Choosing on one recording is itself a fit: check the choice on --holdout (another day, or another seed).
+    Choosing on one recording is itself a fit: check the choice on --check-recording (another day, or another seed).
     """
     import json
 
@@ -179,9 +181,9 @@ def tune(
     console = Console(highlight=False, width=None if sys.stdout.isatty() else 160)
     try:
         inc = load_incidents(incidents) if incidents else None
-        hinc = load_incidents(holdout_incidents) if holdout_incidents else None
-        if holdout_incidents and not holdout:
-            raise ConfigError("--holdout-incidents needs --holdout RECORDING")
+        hinc = load_incidents(check_incidents) if check_incidents else None
+        if check_incidents and not check_recording:
+            raise ConfigError("--check-incidents needs --check-recording RECORDING")
         g = tuning.load_grid(grid) if grid else None
         with Progress(
             TextColumn("tuning"),
@@ -203,11 +205,11 @@ def tune(
                 inc,
                 g,
                 workers,
-                holdout,
+                check_recording,
                 hinc,
                 model,
                 grace,
-                alarm_budget,
+                false_alert_budget,
                 tick_every,
                 progress,
                 only,
@@ -219,7 +221,7 @@ def tune(
         console.print(f"[yellow]skipped[/yellow] {s.label()}: {why.splitlines()[-1].strip()}")
     table = Table(
         title=f"{len(result.rows)} settings on {recording.name}"
-        + ("" if result.with_incidents else f" (no incidents: alarm budget {alarm_budget:g}/day)")
+        + ("" if result.with_incidents else f" (no incidents: false-alert budget {false_alert_budget:g}/day)")
     )
     table.add_column("#", justify="right")
     keys = list(result.best.setting.values)
@@ -232,7 +234,7 @@ def tune(
         for d in result.best.score.detections:
             table.add_column(f"delay {d['kind']}", justify="right")
     else:
-        table.add_column("alarms/day", justify="right")
+        table.add_column("false alerts/day", justify="right")
         table.add_column("near/day", justify="right")
         table.add_column("within budget", justify="center")
 
@@ -240,28 +242,28 @@ def tune(
         near_text = "-" if near is None else f"{near:.2f}"
         if result.with_incidents:
             n = len(sc.detections)
-            return [f"{n - sc.missed}/{n}", f"{sc.false_alarms_per_day:.2f}", near_text] + [
+            return [f"{n - sc.missed}/{n}", f"{sc.false_alerts_per_day:.2f}", near_text] + [
                 tuning._fmt_delay(d["delay_s"]) if d["delay_s"] is not None else "missed" for d in sc.detections
             ]
-        quiet = (near if near is not None else sc.false_alarms_per_day) <= alarm_budget
-        return [f"{sc.false_alarms_per_day:.2f}", near_text, "yes" if quiet else "no"]
+        quiet = (near if near is not None else sc.false_alerts_per_day) <= false_alert_budget
+        return [f"{sc.false_alerts_per_day:.2f}", near_text, "yes" if quiet else "no"]
 
     for rank, row in enumerate(result.rows[:top], 1):
         table.add_row(
-            str(rank), *(str(row.setting.values[k]) for k in keys), *cells(row.score, row.robust_alarms_per_day)
+            str(rank), *(str(row.setting.values[k]) for k in keys), *cells(row.score, row.robust_false_alerts_per_day)
         )
-    if result.best.holdout is not None:
-        h = result.best.holdout
+    if result.best.check_score is not None:
+        h = result.best.check_score
         if result.with_incidents and hinc is None:
-            h_cells = ["-", f"{h.false_alarms_per_day:.2f}", "-"] + ["-"] * len(result.best.score.detections)
+            h_cells = ["-", f"{h.false_alerts_per_day:.2f}", "-"] + ["-"] * len(result.best.score.detections)
         elif result.with_incidents and len(h.detections) != len(result.best.score.detections):
             n = len(h.detections)
-            h_cells = [f"{n - h.missed}/{n}", f"{h.false_alarms_per_day:.2f}", "-"] + ["-"] * len(
+            h_cells = [f"{n - h.missed}/{n}", f"{h.false_alerts_per_day:.2f}", "-"] + ["-"] * len(
                 result.best.score.detections
             )
         else:
             h_cells = cells(h, None)
-        table.add_row("[bold]holdout[/bold]", *(str(result.best.setting.values[k]) for k in keys), *h_cells)
+        table.add_row("[bold]check recording[/bold]", *(str(result.best.setting.values[k]) for k in keys), *h_cells)
     console.print(table)
 
     snippet_path = snippet_out or sibling(recording, ".best.toml")
@@ -289,13 +291,13 @@ def tune(
             "best": {
                 "setting": result.best.setting.values,
                 **result.best.score.to_dict(),
-                "holdout": result.best.holdout.to_dict() if result.best.holdout else None,
+                "check_recording": result.best.check_score.to_dict() if result.best.check_score else None,
             },
             "rows": [
                 {
                     "setting": r.setting.values,
                     "tightness": r.setting.tightness,
-                    "neighbourhood_alarms_per_day": r.robust_alarms_per_day,
+                    "neighbourhood_false_alerts_per_day": r.robust_false_alerts_per_day,
                     **r.score.to_dict(),
                 }
                 for r in result.rows

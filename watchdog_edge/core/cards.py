@@ -6,6 +6,7 @@ from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from watchdog_edge.core.validation import format_validation as _format_validation
 from watchdog_edge.errors import CardError
 
 CARD_FORMAT = 1
@@ -54,7 +55,7 @@ class Histogram(_Strict):
 
 
 class FeatureProfile(_Strict):
-    """Training envelope and histogram of one input feature."""
+    """Training range (min, max) and histogram of one input feature."""
 
     min: float
     max: float
@@ -128,19 +129,5 @@ def expected_loss(card: ModelCard) -> tuple[float, str]:
 
 
 def format_validation(e: ValidationError) -> str:
-    """One line per problem: the dotted key, the value given and the rule broken."""
-    lines = []
-    for err in e.errors():
-        key = ".".join(str(p) for p in err["loc"]) or "(top level)"
-        value = err.get("input")
-        shown = repr(value) if not isinstance(value, dict) else "{...}"
-        if len(shown) > 60:
-            shown = shown[:57] + "..."
-        msg = err["msg"]
-        if err["type"] == "missing":
-            lines.append(f"  {key}: required but missing")
-        elif err["type"] == "extra_forbidden":
-            lines.append(f"  {key}: unknown key (value {shown}); check the spelling")
-        else:
-            lines.append(f"  {key} = {shown}: {msg}")
-    return "\n".join(lines)
+    """One line per problem: the dotted key, the value given and the rule broken (see ``validation``)."""
+    return _format_validation(e)

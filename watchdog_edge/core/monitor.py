@@ -83,7 +83,7 @@ class ModelTrack:
             loss_kind=card.loss,
             expected_loss=exp,
             expected_source=source,
-            window_size=settings.window.size,
+            window_size=settings.window.size_pairs,
             window_max_age_s=settings.window.max_age_s,
             min_pairs=settings.window.min_pairs,
         )
@@ -258,7 +258,7 @@ class Monitor:
                 raise ConfigError(f"models[{m.id}].card: no model card was given for model {m.id!r}")
             self.parsers[(m.id, "prediction")] = RecordParser(m.id, "prediction", m.fields.prediction_map())
             self.parsers[(m.id, "truth")] = RecordParser(m.id, "truth", m.fields.truth_map())
-            self.pairers[m.id] = Pairer(m.pairing.horizon_s, m.pairing.max_unpaired)
+            self.pairers[m.id] = Pairer(m.pairing.horizon_s, m.pairing.max_unpaired_records)
             self.tracks[m.id] = ModelTrack(self.agent, m, cards[m.id])
             for flt, kind in ((m.prediction_topic, "prediction"), (m.truth_topic, "truth")):
                 routes.append(

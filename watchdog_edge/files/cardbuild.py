@@ -1,4 +1,4 @@
-"""Building a model card from training rows: losses, envelope, quantile histograms, hold-out.
+"""Building a model card from training rows: losses, training range, quantile histograms, hold-out.
 
 ``card_from_arrays`` does the computation; ``build_card`` reads the rows from CSV files first;
 ``render_card`` shows a card as text. Row numbers in messages count as a spreadsheet does: the

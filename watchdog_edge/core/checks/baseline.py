@@ -7,7 +7,7 @@ from the pair's features, its loss (the card's loss kind) is taken, and then it 
 truth. A learner that cannot predict yet (or gives a non-finite value) is scored on the running
 mean of the truths.
 
-Every ``evaluate_every`` scored pairs, over the last ``window`` scored pairs, each learner's
+Every ``evaluate_every_pairs`` scored pairs, over the last ``recent_pairs`` scored pairs, each learner's
 losses are compared with the model's by a one-sided Diebold-Mariano test on the differences
 (model loss - learner loss; Newey-West long-run variance, Harvey-Leybourne-Newbold correction,
 Student t with n - 1 degrees of freedom; see ``watchdog_edge.core.stats.diebold_mariano``). The check
@@ -56,7 +56,7 @@ class BaselineSettings(CheckSettings):
     """Settings of ``baseline`` (opt-in; uses river).
 
     >>> s = BaselineSettings(learners=["mean", "tree"], learn_share=0.5)
-    >>> s.confidence, s.margin, s.window
+    >>> s.confidence, s.margin, s.recent_pairs
     (0.99, 0.1, None)
     """
 
@@ -74,11 +74,11 @@ class BaselineSettings(CheckSettings):
     critical_margin: float | None = Field(
         None, gt=0, lt=1, description="Critical when the margin is at least this (null: warning only)."
     )
-    window: int | None = Field(
-        None, ge=30, le=100_000, description="Latest scored pairs compared (null: the model's window size)."
+    recent_pairs: int | None = Field(
+        None, ge=30, le=100_000, description="Latest scored pairs compared (null: the model's window.size_pairs)."
     )
     min_pairs: int = Field(200, ge=20, description="Scored pairs needed in the window before the first test.")
-    evaluate_every: int = Field(
+    evaluate_every_pairs: int = Field(
         200, ge=1, description="Scored pairs between tests (a slow signal: each test costs about 0.1 ms per learner)."
     )
     hysteresis: float = Field(
@@ -104,8 +104,8 @@ class BaselineSettings(CheckSettings):
     def _order(self) -> BaselineSettings:
         if self.critical_margin is not None and self.critical_margin < self.margin:
             raise ValueError(f"critical_margin ({self.critical_margin}) must be >= margin ({self.margin})")
-        if self.window is not None and self.min_pairs > self.window:
-            raise ValueError(f"min_pairs ({self.min_pairs}) must be <= window ({self.window})")
+        if self.recent_pairs is not None and self.min_pairs > self.recent_pairs:
+            raise ValueError(f"min_pairs ({self.min_pairs}) must be <= recent_pairs ({self.recent_pairs})")
         return self
 
 
@@ -169,9 +169,9 @@ class BaselineCheck(Check):
         super().__init__(settings, context)
         self.settings: BaselineSettings = settings
         self.names: tuple[str, ...] = tuple(settings.learners)
-        self.size = settings.window if settings.window is not None else context.window_size
+        self.size = settings.recent_pairs if settings.recent_pairs is not None else context.window_size
         self.min_pairs = min(settings.min_pairs, self.size)
-        self._every = settings.evaluate_every
+        self._every = settings.evaluate_every_pairs
         self._absolute = context.loss_kind == "absolute"
         self.learners = {n: make_learner(n, settings.seed) for n in self.names}
         self._order = [self.learners[n] for n in self.names]
