@@ -78,6 +78,28 @@ def test_replay_is_deterministic_byte_for_byte(site):
     assert "gap" in r.output and "not_json 1" in r.output
 
 
+@pytest.mark.parametrize("every", ["60", "60s", "1m"])
+def test_replay_takes_the_tick_period_in_any_unit(site, every):
+    r = runner.invoke(
+        app,
+        ["replay", str(site / "rec.jsonl"), "--config", str(site / "config.toml"), "--quiet", "--tick-every", every],
+    )
+    assert r.exit_code == 0, r.output
+    r0 = runner.invoke(
+        app,
+        ["replay", str(site / "rec.jsonl"), "--config", str(site / "config.toml"), "--quiet", "--tick-every", "60"],
+    )
+    assert r.output == r0.output
+
+
+def test_a_duration_without_sense_is_refused_with_examples(site):
+    r = runner.invoke(
+        app, ["replay", str(site / "rec.jsonl"), "--config", str(site / "config.toml"), "--tick-every", "often"]
+    )
+    assert r.exit_code == 2
+    assert "--tick-every 'often': not a duration; give a positive time such as 60s, 15m, 6h or 2d" in r.output
+
+
 def test_replay_json_summary(site):
     r = runner.invoke(app, ["replay", str(site / "rec.jsonl"), "--config", str(site / "config.toml"), "--json"])
     assert r.exit_code == 0

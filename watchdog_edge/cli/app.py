@@ -88,10 +88,12 @@ def replay(
     recording: Path = typer.Argument(..., help="Recording (JSON Lines, one received message or tick a line)."),
     config: Path = typer.Option(..., "--config", "-c", help="The TOML config that names models, topics and cards."),
     alerts: Optional[Path] = typer.Option(None, "--alerts", help="Write every alert to this file as JSON Lines."),
-    tick_every: Optional[float] = typer.Option(
+    tick_every: Optional[str] = typer.Option(
         None,
         "--tick-every",
-        help="Add a timer tick every S seconds of receive time (recordings made elsewhere have none).",
+        metavar="DURATION",
+        help="Add a timer tick this often in receive time, e.g. 1s or 60s; a bare number is seconds "
+        "(recordings made elsewhere have none).",
     ),
     as_json: bool = typer.Option(False, "--json", help="Print the summary as JSON instead of tables."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="Do not print alerts as they happen."),
@@ -103,6 +105,7 @@ def replay(
     """
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 
+    from watchdog_edge.cli.durations import parse_duration_s
     from watchdog_edge.core.events import Alert
     from watchdog_edge.files.configfile import load_monitor
     from watchdog_edge.replay.recording import alert_line, read_recording
@@ -111,6 +114,7 @@ def replay(
 
     console = Console(stderr=as_json)
     try:
+        tick_s = parse_duration_s(tick_every, "--tick-every") if tick_every is not None else None
         mon = load_monitor(config)
         size = recording.stat().st_size if recording.exists() else 0
         out = alerts.open("w", encoding="utf-8") if alerts else None
@@ -146,9 +150,9 @@ def replay(
                             done = 0
                         yield ln
 
-                run_replay(mon, counted(), tick_every, on_event)
+                run_replay(mon, counted(), tick_s, on_event)
         else:
-            run_replay(mon, lines, tick_every, on_event)
+            run_replay(mon, lines, tick_s, on_event)
         if out:
             out.close()
     except WatchdogError as e:
@@ -166,7 +170,9 @@ def replay(
 def demo(
     folder: Path = typer.Option(Path("watchdog-demo"), "--folder", "-o", help="Where the demo leaves its files."),
     seed: int = typer.Option(7, "--seed", help="Seed of the invented data; the same seed gives the same files."),
-    days: float = typer.Option(6.0, "--days", help="Days of field traffic to simulate."),
+    duration: str = typer.Option(
+        "6d", "--duration", metavar="DURATION", help="Field traffic to simulate: 6d, 36h (a bare number is days)."
+    ),
 ) -> None:
     """Watch two invented cold-store models: one overfit from the start, one that degrades.
 
@@ -177,8 +183,10 @@ def demo(
     'watchdog-edge replay' on them yourself.
     """
     from watchdog_edge.cli.demo import run_demo
+    from watchdog_edge.cli.durations import parse_duration_s
 
     try:
+        days = parse_duration_s(duration, "--duration", bare_unit="d") / 86400
         run_demo(folder, seed=seed, days=days, console=Console(highlight=False))
     except WatchdogError as e:
         fail(e)

@@ -5,7 +5,6 @@ Registered on the main app by ``register(app)``; the work is done in the ``simul
 
 from __future__ import annotations
 
-import re
 import sys
 from pathlib import Path
 from typing import Optional
@@ -13,22 +12,8 @@ from typing import Optional
 import typer
 from rich.console import Console
 
+from watchdog_edge.cli.durations import parse_duration_s
 from watchdog_edge.errors import ConfigError, WatchdogError
-
-_DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([smhd]?)\s*$")
-_UNIT_H = {"s": 1 / 3600, "m": 1 / 60, "h": 1.0, "d": 24.0, "": 1.0}
-
-
-def parse_duration_h(text: str) -> float:
-    """Simulated time as hours: ``90m``, ``6h``, ``2d``, ``3600s``; a bare number is hours.
-
-    >>> parse_duration_h("90m")
-    1.5
-    """
-    m = _DURATION.match(text)
-    if not m or float(m.group(1)) <= 0:
-        raise ConfigError(f"--duration {text!r}: give a positive time such as 90m, 6h or 2d")
-    return float(m.group(1)) * _UNIT_H[m.group(2)]
 
 
 def _fail(e: Exception) -> None:
@@ -49,7 +34,10 @@ def simulate(
     broker: Optional[str] = typer.Option(None, "--broker", help="Publish live to this broker, HOST:PORT, at QoS 1."),
     speed: float = typer.Option(1.0, "--speed", help="Live only: simulated seconds per wall-clock second."),
     duration: Optional[str] = typer.Option(
-        None, "--duration", help="Simulated time, e.g. 90m, 6h, 2d (default: the scenario's)."
+        None,
+        "--duration",
+        metavar="DURATION",
+        help="Simulated time: 90m, 6h, 2d (a bare number is hours; default: the scenario's).",
     ),
     seed: Optional[int] = typer.Option(
         None, "--seed", help="Seed; the same seed gives the same traffic, byte for byte."
@@ -72,7 +60,7 @@ def simulate(
     if (to_recording is None) == (broker is None):
         _fail(ConfigError("give exactly one of --to-recording FILE and --broker HOST:PORT"))
     try:
-        hours = parse_duration_h(duration) if duration else None
+        hours = parse_duration_s(duration, "--duration", bare_unit="h") / 3600 if duration else None
         path = resolve_scenario(scenario)
         sc = load_scenario(path)
         run = run_sim(sc, seed=seed, duration_h=hours)
@@ -139,15 +127,21 @@ def tune(
     model: Optional[list[str]] = typer.Option(
         None, "--model", help="Tune only this model (repeatable); default every model."
     ),
-    grace: Optional[float] = typer.Option(
-        None, "--grace", help="Seconds after an incident's end an alert still counts (default: one window)."
+    grace: Optional[str] = typer.Option(
+        None,
+        "--grace",
+        metavar="DURATION",
+        help="How long after an incident's end an alert still counts: 90s, 15m, 2h (a bare number is seconds; default: one window).",
     ),
     false_alert_budget: float = typer.Option(
         0.5, "--false-alert-budget", help="Without incidents: false alerts per day you accept."
     ),
     workers: Optional[int] = typer.Option(None, "--workers", help="Worker processes (default: one per CPU)."),
-    tick_every: Optional[float] = typer.Option(
-        None, "--tick-every", help="Add a timer tick every S seconds (as replay does)."
+    tick_every: Optional[str] = typer.Option(
+        None,
+        "--tick-every",
+        metavar="DURATION",
+        help="Add a timer tick this often, e.g. 1s or 60s (a bare number is seconds), as replay does.",
     ),
     snippet_out: Optional[Path] = typer.Option(
         None, "--snippet", help="Where to write the best setting as TOML (default: RECORDING.best.toml)."
@@ -185,6 +179,8 @@ def tune(
         if check_incidents and not check_recording:
             raise ConfigError("--check-incidents needs --check-recording RECORDING")
         g = tuning.load_grid(grid) if grid else None
+        grace_s = parse_duration_s(grace, "--grace") if grace is not None else None
+        tick_s = parse_duration_s(tick_every, "--tick-every") if tick_every is not None else None
         with Progress(
             TextColumn("tuning"),
             BarColumn(),
@@ -208,9 +204,9 @@ def tune(
                 check_recording,
                 hinc,
                 model,
-                grace,
+                grace_s,
                 false_alert_budget,
-                tick_every,
+                tick_s,
                 progress,
                 only,
             )
