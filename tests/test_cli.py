@@ -118,7 +118,31 @@ def test_check_config_prints_resolved_settings_without_secrets(site):
     assert r.exit_code == 0, r.output
     assert "valid" in r.output and "warning_tolerance = 0.25" in r.output
     assert "s3cret-value" not in r.output
-    assert "WATCHDOG_TEST_PASSWORD (value not shown)" in r.output
+    assert 'password_env = "WATCHDOG_TEST_PASSWORD" # value not shown' in r.output
+
+
+def test_check_config_output_loads_again_as_the_same_config_and_ends_with_one_summary(site):
+    r = runner.invoke(app, ["check-config", str(site / "config.toml")])
+    assert r.exit_code == 0, r.output
+    lines = r.stdout.rstrip("\n").splitlines()
+    assert lines[-1] == f"# {site / 'config.toml'}: valid; 1 model, 2 checks on, cards loaded, no warnings."
+    # the derived expected loss stands as a comment, in words, not as a key
+    assert "# expected squared loss 1, from the held-out loss (card pump.json)" in r.stdout
+    (site / "again.toml").write_text(r.stdout)
+    first = runner.invoke(app, ["check-config", str(site / "config.toml"), "--json"])
+    again = runner.invoke(app, ["check-config", str(site / "again.toml"), "--json"])
+    assert again.exit_code == 0, again.output
+    assert json.loads(again.stdout) == json.loads(first.stdout)
+    assert json.loads(first.stdout)["models"][0]["expected_loss"]["source"] == "holdout"  # JSON keeps the code
+
+
+def test_help_shows_no_value_for_flags_and_plain_argument_names():
+    r = runner.invoke(app, ["check-config", "--help"], env={"COLUMNS": "120"})
+    assert r.exit_code == 0
+    assert "<bool>" not in r.output and "{config}" not in r.output
+    assert "[OPTIONS] CONFIG" in r.output
+    r = runner.invoke(app, ["card", "build", "--help"], env={"COLUMNS": "120"})
+    assert "{train}" not in r.output and "[OPTIONS] TRAIN" in r.output and "<bool>" not in r.output
 
 
 def test_check_config_error_names_key_value_and_rule(site):

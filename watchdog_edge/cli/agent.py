@@ -8,6 +8,7 @@ from typing import Optional
 
 import typer
 
+from watchdog_edge.cli.helpformat import PlainCommand
 from watchdog_edge.errors import WatchdogError
 
 RUN_HELP = """Run the live agent: subscribe to every model's prediction and truth topics, pair them, run the checks, and publish alerts, retained per-model state and a retained agent status.
@@ -98,5 +99,5 @@ def deadletters(
 
 def register(app: typer.Typer) -> None:
     """Add ``run`` and ``deadletters`` to the main command line."""
-    app.command("run", help=RUN_HELP)(run)
-    app.command("deadletters", help=DEADLETTERS_HELP)(deadletters)
+    app.command("run", help=RUN_HELP, cls=PlainCommand)(run)
+    app.command("deadletters", help=DEADLETTERS_HELP, cls=PlainCommand)(deadletters)

@@ -19,11 +19,13 @@ from __future__ import annotations
 
 import csv
 import json
+import shlex
 from pathlib import Path
 
 import numpy as np
 from rich.console import Console
 
+from watchdog_edge.caution import CAUTION
 from watchdog_edge.files.cardbuild import build_card
 from watchdog_edge.files.cardfile import save_card
 from watchdog_edge.replay.recording import RecordingWriter
@@ -236,6 +238,7 @@ def run_demo(folder: Path, seed: int = 7, days: float = 6.0, console: Console | 
 
     console = console or Console(highlight=False)
     console.print(f"[bold]watchdog-edge demo[/bold]: an invented cold store, {days:g} days of traffic, seed {seed}")
+    console.print(f"Caution: {CAUTION}\n")
     paths = build_site(folder, seed=seed, days=days)
     console.print(f"wrote model cards, config and recording to {folder}/\n")
     mon = load_monitor(paths["config"])
@@ -254,8 +257,8 @@ def run_demo(folder: Path, seed: int = 7, days: float = 6.0, console: Console | 
     console.print()
     print_summary(mon, console)
     console.print(f"\n{len(alerts)} alerts written to {folder / 'alerts.jsonl'}")
-    console.print(
-        "Replay it yourself (same alerts, byte for byte):\n"
-        f"  watchdog-edge replay {paths['recording']} --config {paths['config']} --alerts again.jsonl"
-    )
+    console.print("Replay it yourself (same alerts, byte for byte):")
+    rec, cfg = shlex.quote(str(paths["recording"])), shlex.quote(str(paths["config"]))
+    # one line however narrow the terminal, so that it pastes whole
+    console.print(f"  watchdog-edge replay {rec} --config {cfg} --alerts again.jsonl", soft_wrap=True, markup=False)
     return alerts

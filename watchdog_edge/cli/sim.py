@@ -5,6 +5,7 @@ Registered on the main app by ``register(app)``; the work is done in the ``simul
 
 from __future__ import annotations
 
+import shlex
 import sys
 from pathlib import Path
 from typing import Optional
@@ -13,6 +14,7 @@ import typer
 from rich.console import Console
 
 from watchdog_edge.cli.durations import parse_duration_s
+from watchdog_edge.cli.helpformat import PlainCommand
 from watchdog_edge.errors import ConfigError, WatchdogError
 
 
@@ -75,7 +77,12 @@ def simulate(
                 f"recording  {paths.recording}\nincidents  {paths.incidents} ({len(run.incidents)})\n"
                 f"config     {paths.config}\ncard       {paths.card}"
             )
-            console.print(f"replay it: watchdog-edge replay {paths.recording} --config {paths.config}")
+            console.print(
+                f"replay it: watchdog-edge replay {shlex.quote(str(paths.recording))} "
+                f"--config {shlex.quote(str(paths.config))}",
+                soft_wrap=True,
+                markup=False,
+            )
             return
         from simulators.live import parse_broker, publish_live
 
@@ -305,5 +312,5 @@ def tune(
 
 def register(app: typer.Typer) -> None:
     """Add ``simulate`` and ``tune`` to the main ``watchdog-edge`` app."""
-    app.command("simulate")(simulate)
-    app.command("tune")(tune)
+    app.command("simulate", cls=PlainCommand)(simulate)
+    app.command("tune", cls=PlainCommand)(tune)

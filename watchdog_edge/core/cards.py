@@ -81,7 +81,9 @@ class ModelCard(_Strict):
     model_version: str | None = None
     loss: LossKind = "squared"
     training: LossFigure
-    fitted_parameters: int = Field(ge=0)
+    fitted_parameters: int | None = Field(
+        None, ge=0, description="Fitted parameters d; needed for the final prediction error only (null: not given)."
+    )
     least_squares: bool = False
     holdout: LossFigure | None = None
     features: dict[str, FeatureProfile] = Field(default_factory=dict)
@@ -116,6 +118,12 @@ def expected_loss(card: ModelCard) -> tuple[float, str]:
     if card.holdout is not None:
         return card.holdout.loss, "holdout"
     if card.loss == "squared" and card.least_squares:
+        if card.fitted_parameters is None:
+            raise CardError(
+                f"card for model '{card.model_id}' has no 'holdout' loss and no fitted_parameters: the final "
+                "prediction error needs the count of fitted parameters; add fitted_parameters, or a 'holdout' loss "
+                "(build the card with --params D, or with --holdout HOLDOUT.csv)"
+            )
         return (
             final_prediction_error(card.training.loss, card.training.count, card.fitted_parameters),
             "fpe",

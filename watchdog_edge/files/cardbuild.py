@@ -71,7 +71,7 @@ def card_from_arrays(
     x: dict[str, np.ndarray],
     y: np.ndarray,
     yhat: np.ndarray,
-    params: int,
+    params: int | None,
     loss: str = "squared",
     least_squares: bool = True,
     holdout: tuple[np.ndarray, np.ndarray] | None = None,
@@ -81,14 +81,22 @@ def card_from_arrays(
 ) -> ModelCard:
     """A card from training arrays (NaN = missing feature); ``holdout`` is ``(truth, prediction)``."""
     _check_loss(loss)
-    if params < 0:
-        raise CardError(f"fitted parameters must be a count >= 0, got {params}")
+    if params is not None and params < 0:
+        raise CardError(
+            f"--params {params}: fitted parameters must be a count >= 0; give the model's coefficient count"
+        )
     if bins < 1:
         raise CardError(f"bins must be at least 1, got {bins}")
     y = np.asarray(y, dtype=float)
     if y.size < 2:
         raise DataError(f"need at least 2 training rows, got {y.size}")
-    if loss == "squared" and least_squares and holdout is None and y.size <= params:
+    if loss == "squared" and least_squares and holdout is None and params is None:
+        raise CardError(
+            "--params is missing: with least squares and no hold-out rows the expected loss is the final "
+            "prediction error, which needs the number of fitted parameters; give --params D, or hold-out rows "
+            "with --holdout HOLDOUT.csv"
+        )
+    if loss == "squared" and least_squares and holdout is None and params is not None and y.size <= params:
         raise DataError(
             f"{y.size} training rows for {params} fitted parameters: the final prediction error needs "
             "more rows than parameters (N > d); give hold-out rows (--holdout) or more training rows"
@@ -245,7 +253,7 @@ def build_card(
     *,
     target: str,
     prediction: str,
-    params: int,
+    params: int | None = None,
     features: Sequence[str] | None = None,
     loss: str = "squared",
     least_squares: bool = True,
@@ -304,7 +312,7 @@ def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> s
         f"  version            {card.model_version or '(none)'}",
         f"  loss kind          {card.loss} error",
         f"  training loss      {card.training.loss:{g}} over {card.training.count} rows",
-        f"  fitted parameters  {card.fitted_parameters}",
+        f"  fitted parameters  {card.fitted_parameters if card.fitted_parameters is not None else '(not given)'}",
         f"  least squares      {'yes' if card.least_squares else 'no'}",
     ]
     if card.holdout:
@@ -319,7 +327,7 @@ def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> s
         if source == "holdout":
             how = "the held-out loss"
         else:
-            n, d = card.training.count, card.fitted_parameters
+            n, d = card.training.count, card.fitted_parameters or 0
             how = (
                 f"the final prediction error, training loss x (N + d) / (N - d) = "
                 f"{card.training.loss:{g}} x ({n} + {d}) / ({n} - {d})"
