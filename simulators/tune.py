@@ -502,8 +502,38 @@ def rank_key(row: Row, with_incidents: bool, budget: float) -> tuple:
     if with_incidents:
         return (s.missed, robust, s.false_alerts_per_day, delay, row.setting.tightness, row.setting.index)
     # healthy recording: within the false-alert budget (neighbours included) first, then the
-    # tightest, then the fewest false alerts
-    return (robust > budget, row.setting.tightness, s.false_alerts_per_day, row.setting.index)
+    # tightest, then the fewest false alerts; over the budget, the fewest false alerts first, so
+    # that when nothing meets the budget the first row is the quietest, not the most alert-prone
+    over = robust > budget
+    return (over, robust if over else 0.0, row.setting.tightness, s.false_alerts_per_day, row.setting.index)
+
+
+def score_key(row: Row, with_incidents: bool, budget: float) -> tuple:
+    """The part of the ranking that scores a row; rows equal here tie and grid order decides."""
+    if with_incidents:
+        return rank_key(row, with_incidents, budget)[:4]
+    key = rank_key(row, with_incidents, budget)
+    return (key[0], key[1], key[3])
+
+
+def ties(result: TuneResult, top: int) -> list[tuple[int, int]]:
+    """Runs of rows (1-based, first and last) among the first ``top`` whose scores are equal."""
+    keys = [score_key(r, result.with_incidents, result.false_alert_budget) for r in result.rows[:top]]
+    runs = []
+    i = 0
+    while i < len(keys):
+        j = i
+        while j + 1 < len(keys) and keys[j + 1] == keys[i]:
+            j += 1
+        if j > i:
+            runs.append((i + 1, j + 1))
+        i = j + 1
+    return runs
+
+
+def meets_budget(result: TuneResult) -> bool:
+    """Without incidents: whether the first row stays within the false-alert budget, neighbours included."""
+    return result.best.robust_false_alerts_per_day <= result.false_alert_budget
 
 
 @contextmanager
@@ -672,8 +702,14 @@ def snippet(result: TuneResult, where: Path, recording: str | Path) -> str:
             f"{s.false_alerts_per_day:.2f} false alerts per day, mean delay "
             f"{_fmt_delay(s.mean_delay_s)}"
         )
-    else:
+    elif meets_budget(result):
         lines.append(f"#   {s.false_alerts_per_day:.2f} false alerts per day (budget {result.false_alert_budget:g})")
+    else:
+        lines.append(
+            f"#   NO setting meets the budget of {result.false_alert_budget:g} false alerts per day; this is the "
+            f"quietest: {s.false_alerts_per_day:.2f} per day ({result.best.robust_false_alerts_per_day:.2f} with "
+            "its grid neighbours)"
+        )
     if result.best.check_score is not None:
         h = result.best.check_score
         lines.append(

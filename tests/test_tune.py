@@ -278,7 +278,10 @@ def test_tune_command_writes_table_snippet_and_plot(recordings, tmp_path):
         ],
     )
     assert res.exit_code == 0, res.output
-    assert "4 settings on a.jsonl" in res.output and "check recording" in res.output
+    assert (
+        "4 settings on a.jsonl" in res.output
+        and "check: the first row's setting on the check recording b.jsonl" in res.output
+    )
     assert _png_size(plot.read_bytes()) == (1400, 700)
     data = json.loads(results.read_text())
     best = data["best"]["setting"]
@@ -299,3 +302,89 @@ def test_neighbours_step_along_numeric_keys_only():
     assert sorted(n.values["window.size_pairs"] for n in near) == [60, 240]
     assert all(n.values["checks.shift.enabled"] is False for n in near)
     assert [n.values["window.size_pairs"] for n in by[(60, True)].neighbours(settings)] == [120]
+
+
+# -- the screen: whole headers, the neighbour column, ties, an unmet budget, no matplotlib ------
+def test_table_headers_are_whole_at_130_columns_and_the_neighbour_column_is_explained(recordings, tmp_path):
+    a, _ = recordings
+    grid = tmp_path / "grid.toml"
+    grid.write_text(
+        '[grid]\n"window.size_pairs" = [60, 120]\n"checks.gap.confidence" = [0.9, 0.99]\n'
+        '"checks.gap.warning_tolerance" = [0.5, 1.0]\n"checks.shift.enabled" = [true, false]\n'
+    )
+    args = ["tune", str(a.recording), "--config", str(a.config), "--incidents", str(a.incidents), "--grid", str(grid)]
+    res = CliRunner().invoke(
+        app, [*args, "--snippet", str(tmp_path / "s.toml"), "--plot", str(tmp_path / "p.png")], env={"COLUMNS": "130"}
+    )
+    assert res.exit_code == 0, res.output
+    assert all(len(line) <= 130 for line in res.output.splitlines() if "│" in line or "─" in line)
+    for word in ("size_pairs", "confidence", "warning_tolerance", "enabled", "detected", "neighbours", "stall"):
+        assert f" {word} " in res.output, word
+    assert "…" not in res.output
+    assert "neighbours false/day: the most false alerts per day of the setting and its grid neighbours" in res.output
+    # four incidents and the same detections for many settings: the tie and its order are said
+    assert "score alike; among them the order is the grid's" in res.output
+
+
+def test_an_unmet_false_alert_budget_is_said_plainly(recordings, tmp_path):
+    a, _ = recordings
+    res = tune(
+        a.config,
+        a.recording,
+        None,
+        grid={"checks.gap.warning_tolerance": [0.01, 0.02]},
+        workers=1,
+        false_alert_budget=0.0,
+    )
+    assert res.best.robust_false_alerts_per_day > 0  # the troubled recording read as healthy raises alerts
+    quietest = min(r.robust_false_alerts_per_day for r in res.rows)
+    assert res.best.robust_false_alerts_per_day == quietest  # the first row is the quietest, not the most alert-prone
+    out = CliRunner().invoke(
+        app,
+        [
+            "tune",
+            str(a.recording),
+            "--config",
+            str(a.config),
+            "--false-alert-budget",
+            "0",
+            "--snippet",
+            str(tmp_path / "s.toml"),
+            "--plot",
+            str(tmp_path / "p.png"),
+        ],
+        env={"COLUMNS": "200"},
+    )
+    assert out.exit_code == 0, out.output
+    assert "No setting meets the budget of 0 false alerts per day" in out.output
+    assert "first row:" in out.output and "best setting:" not in out.output
+    assert "NO setting meets the budget" in (tmp_path / "s.toml").read_text()
+
+
+def test_tune_without_matplotlib_writes_table_and_snippet_and_says_how_to_get_the_plot(recordings, tmp_path):
+    import subprocess
+    import sys
+
+    a, _ = recordings
+    grid = tmp_path / "grid.toml"
+    grid.write_text('[grid]\n"checks.gap.warning_tolerance" = [0.5, 1.0]\n')
+    snippet, plot = tmp_path / "best.toml", tmp_path / "tune.png"
+    # matplotlib made unimportable in a fresh interpreter, as on a plain `pip install .`
+    code = (
+        "import sys; sys.modules['matplotlib'] = None; from watchdog_edge.cli.app import main; "
+        f"sys.argv = ['watchdog-edge', 'tune', {str(a.recording)!r}, '--config', {str(a.config)!r}, "
+        f"'--grid', {str(grid)!r}, '--snippet', {str(snippet)!r}, '--plot', {str(plot)!r}, '--workers', '1']; main()"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", code],
+        capture_output=True,
+        text=True,
+        timeout=300,
+        env={**__import__("os").environ, "COLUMNS": "200"},
+    )
+    assert out.returncode == 0, out.stderr
+    assert "2 settings on a.jsonl" in out.stdout
+    assert "plot skipped: matplotlib is not installed" in out.stdout
+    assert "pip install 'watchdog-edge[plot]'" in out.stdout
+    assert snippet.exists() and load_config(snippet).models and not plot.exists()
+    assert "Traceback" not in out.stderr

@@ -5,6 +5,7 @@ Registered on the main app by ``register(app)``; the work is done in the ``simul
 
 from __future__ import annotations
 
+import os
 import shlex
 import sys
 from pathlib import Path
@@ -172,6 +173,7 @@ def tune(
     """
     import json
 
+    from rich import box
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
     from rich.table import Table
 
@@ -179,7 +181,8 @@ def tune(
     from simulators.bundle import load_incidents, sibling
     from simulators.plot import draw, trace
 
-    console = Console(highlight=False, width=None if sys.stdout.isatty() else 160)
+    # a pipe or file gets 160 columns unless COLUMNS says otherwise
+    console = Console(highlight=False, width=None if sys.stdout.isatty() or "COLUMNS" in os.environ else 160)
     try:
         inc = load_incidents(incidents) if incidents else None
         hinc = load_incidents(check_incidents) if check_incidents else None
@@ -224,22 +227,30 @@ def tune(
         console.print(f"[yellow]skipped[/yellow] {s.label()}: {why.splitlines()[-1].strip()}")
     table = Table(
         title=f"{len(result.rows)} settings on {recording.name}"
-        + ("" if result.with_incidents else f" (no incidents: false-alert budget {false_alert_budget:g}/day)")
+        + ("" if result.with_incidents else f" (no incidents: false-alert budget {false_alert_budget:g}/day)"),
+        box=box.SIMPLE_HEAD,  # light rules leave the columns their room: 12 columns fit 130 characters
+        pad_edge=False,
+        collapse_padding=True,
     )
-    table.add_column("#", justify="right")
+
+    def column(header: str) -> None:
+        # headers break after dots and at spaces, and fold rather than being cut short on a narrow screen
+        table.add_column(header.replace(".", ".\n").replace(" ", "\n"), justify="right", overflow="fold")
+
+    column("#")
     keys = list(result.best.setting.values)
     for k in keys:
-        table.add_column(tuning._short(k), justify="right")
+        column(tuning._short(k))
     if result.with_incidents:
-        table.add_column("detected", justify="right")
-        table.add_column("false/day", justify="right")
-        table.add_column("near/day", justify="right")
+        column("detected")
+        column("false/day")
+        column("neighbours false/day")
         for d in result.best.score.detections:
-            table.add_column(f"delay {d['kind']}", justify="right")
+            column(f"delay {d['kind']}")
     else:
-        table.add_column("false alerts/day", justify="right")
-        table.add_column("near/day", justify="right")
-        table.add_column("within budget", justify="center")
+        column("false/day")
+        column("neighbours false/day")
+        column("within budget")
 
     def cells(sc, near: float | None) -> list[str]:
         near_text = "-" if near is None else f"{near:.2f}"
@@ -266,27 +277,43 @@ def tune(
             )
         else:
             h_cells = cells(h, None)
-        table.add_row("[bold]check recording[/bold]", *(str(result.best.setting.values[k]) for k in keys), *h_cells)
+        table.add_row("[bold]check[/bold]", *(str(result.best.setting.values[k]) for k in keys), *h_cells)
     console.print(table)
+    console.print(
+        "neighbours false/day: the most false alerts per day of the setting and its grid neighbours "
+        "(one step along one numeric key); a setting quiet by luck beside noisy ones ranks lower.",
+        soft_wrap=True,
+    )
+    if result.best.check_score is not None:
+        console.print(
+            f"check: the first row's setting on the check recording {check_recording.name if check_recording else ''}; "
+            "trust the choice only if it holds there.",
+            soft_wrap=True,
+        )
+    for first, last in tuning.ties(result, top):
+        console.print(
+            f"rows {first} to {last} score alike; among them the order is the grid's: values listed "
+            "earlier in the grid (the more alert-prone) come first.",
+            soft_wrap=True,
+        )
+    if result.with_incidents and result.best.score.missed:
+        console.print(
+            f"[bold]No setting detects every incident[/bold]: the first row misses {result.best.score.missed} "
+            f"of {len(result.best.score.detections)}. Try a grid with more alert-prone values.",
+            soft_wrap=True,
+        )
+    if not result.with_incidents and not tuning.meets_budget(result):
+        console.print(
+            f"[bold]No setting meets the budget[/bold] of {false_alert_budget:g} false alerts per day "
+            "(neighbours included); the rows are ordered quietest first, and the snippet holds the quietest, "
+            "which does not meet it. Widen the grid towards less alert-prone values, or raise --false-alert-budget.",
+            soft_wrap=True,
+        )
 
     snippet_path = snippet_out or sibling(recording, ".best.toml")
     snippet_path.write_text(tuning.snippet(result, snippet_path.parent, recording), encoding="utf-8")
-    console.print(f"best setting: {result.best.setting.label()}\nTOML snippet: {snippet_path}")
-    plot_path = plot_out or sibling(recording, ".tune.png")
-    best_cfg = tuning.best_config(result)
-    from watchdog_edge.files.configfile import load_cards
-
-    target = (model or [m.id for m in best_cfg.models])[0]
-    tr = trace(best_cfg, load_cards(best_cfg), result.intake.steps, target)
-    draw(
-        tr,
-        [i for i in (inc or []) if i.get("model") in (None, target)],
-        plot_path,
-        f"{target}: {result.best.setting.label()}",
-        result.intake.start,
-        result.intake.end,
-    )
-    console.print(f"plot: {plot_path}")
+    first = "first row" if not result.with_incidents and not tuning.meets_budget(result) else "best setting"
+    console.print(f"{first}: {result.best.setting.label()}\nTOML snippet: {snippet_path}", soft_wrap=True)
     if results_out:
         data = {
             "recording": str(recording),
@@ -308,6 +335,33 @@ def tune(
         }
         results_out.write_text(json.dumps(data, indent=2, default=str) + "\n", encoding="utf-8")
         console.print(f"results: {results_out}")
+
+    plot_path = plot_out or sibling(recording, ".tune.png")
+    best_cfg = tuning.best_config(result)
+    from watchdog_edge.files.configfile import load_cards
+
+    target = (model or [m.id for m in best_cfg.models])[0]
+    tr = trace(best_cfg, load_cards(best_cfg), result.intake.steps, target)
+    try:
+        draw(
+            tr,
+            [i for i in (inc or []) if i.get("model") in (None, target)],
+            plot_path,
+            f"{target}: {result.best.setting.label()}",
+            result.intake.start,
+            result.intake.end,
+        )
+    except ModuleNotFoundError as e:
+        if not (e.name or "").startswith("matplotlib"):
+            raise
+        console.print(
+            "plot skipped: matplotlib is not installed. The table and the snippet above are complete; "
+            "for the plot, install the extra: pip install 'watchdog-edge[plot]'",
+            soft_wrap=True,
+            markup=False,
+        )
+    else:
+        console.print(f"plot: {plot_path}")
 
 
 def register(app: typer.Typer) -> None:
