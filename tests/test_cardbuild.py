@@ -284,3 +284,27 @@ def test_render_says_when_no_expected_loss_can_be_given(tmp_path, rows):
     text = render_card(card)
     assert "expected in field  unavailable" in text and "holdout" in text
     assert "expected in field  7, from the held-out loss" in render_card(card, expected=(7.0, "holdout"))
+
+
+def test_params_is_needed_only_for_the_final_prediction_error(tmp_path, files):
+    train, hold = files
+    base = ["card", "build", str(train), "--target", "y", "--prediction", "p", "--features", "flow"]
+    # not least squares, with hold-out rows: --params means nothing and is not asked for
+    out = tmp_path / "a.json"
+    r = CliRunner().invoke(cli, [*base, "--not-least-squares", "--holdout", str(hold), "-o", str(out)])
+    assert r.exit_code == 0, r.output
+    assert load_card(out).fitted_parameters is None and "fitted parameters  (not given)" in r.stdout
+    # least squares with hold-out rows: the held-out loss is used, --params is not needed either
+    r = CliRunner().invoke(cli, [*base, "--holdout", str(hold), "-o", str(tmp_path / "b.json")])
+    assert r.exit_code == 0, r.output
+    # least squares without hold-out: the final prediction error needs it, and the error says so
+    r = CliRunner().invoke(cli, [*base, "-o", str(tmp_path / "c.json")])
+    assert r.exit_code == 2
+    assert "--params is missing" in r.stderr and "give --params D" in r.stderr
+
+
+def test_a_semicolon_separated_file_gets_the_separator_named(tmp_path):
+    p = tmp_path / "semi.csv"
+    p.write_text("flow;y;p\n1,5;2;2,1\n")
+    with pytest.raises(DataError, match=r"separated by ';', and a CSV here is separated by ','"):
+        read_table(p)

@@ -172,6 +172,12 @@ def read_table(path: str | Path, numeric: Collection[str] | None = None) -> tupl
     if not rows or not any(c.strip() for c in rows[0]):
         raise DataError(f"{p} has no header row; row 1 must name the columns")
     header = [h.strip() for h in rows[0]]
+    if len(header) == 1 and ";" in header[0]:
+        raise DataError(
+            f"{p}: the header (row 1) reads as one column {header[0]!r}: the columns seem to be separated by "
+            "';', and a CSV here is separated by ','; save the file with ',' between columns (and '.' as the "
+            "decimal mark)"
+        )
     for i, name in enumerate(header):
         if not name:
             raise DataError(f"{p}: column {i + 1} of the header (row 1) has no name")
