@@ -428,7 +428,7 @@ class Agent:
             )
             self.pending_other.add(mid)
 
-    def status(self, state: str = "online") -> dict[str, Any]:
+    def status(self, connection: str = "online") -> dict[str, Any]:
         """The agent status as published (counters of the core, the outbox, the journal, the link)."""
         core = self.monitor.status()
         core.pop("models", None)
@@ -436,7 +436,7 @@ class Agent:
         return json_safe(
             {
                 "agent": self.name,
-                "connection": state,
+                "connection": connection,
                 "version": __version__,
                 "heartbeat": rfc3339(now),
                 "uptime_s": round(now - self.started, 3),
@@ -449,11 +449,11 @@ class Agent:
             }
         )
 
-    def _publish_status(self, state: str) -> int | None:
+    def _publish_status(self, connection: str) -> int | None:
         if not self.link.connected.is_set():
             return None
         mid = self.link.publish(
-            self.status_topic, json.dumps(self.status(state), separators=(",", ":")).encode(), qos=1, retain=True
+            self.status_topic, json.dumps(self.status(connection), separators=(",", ":")).encode(), qos=1, retain=True
         )
         self.pending_other.add(mid)
         return mid

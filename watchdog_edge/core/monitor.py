@@ -480,7 +480,7 @@ class Monitor:
         return list(self.tracks)
 
     def state(self, model: str) -> dict[str, Any]:
-        """Every check's state and latest figures for one model."""
+        """Every check's level and latest figures for one model."""
         st = self.tracks[model].state()
         st["pairing"] = dict(self.pairers[model].counts)
         st["pending"] = self.pairers[model].pending
