@@ -21,7 +21,7 @@ from watchdog_edge.core.events import rfc3339
 from .card import build_card
 from .fit import PolynomialModel, fit_polynomial
 from .process import process_truth, sensor_series
-from .scenario import Drift, Overfit, Regime, Scenario, Stall, Step
+from .scenario import Drift, FeedStop, Overfit, Regime, Scenario, Step
 
 # child stream numbers of the seed; fixed so that adding a stream never shifts the others
 _TRAINING, _SENSORS, _PROCESS, _TIMING, _LATENCY = range(5)
@@ -129,8 +129,8 @@ def _describe(inc) -> str:
         return f"{inc.sensor} reading offset by {inc.offset:+g}"
     if isinstance(inc, Regime):
         return f"{inc.sensor} really moves by {inc.offset:+g}, outside the training range"
-    if isinstance(inc, Stall):
-        return "truth feed stalled"
+    if isinstance(inc, FeedStop):
+        return "truth feed stopped"
     return "deployed model too complex for its training rows"
 
 
@@ -162,7 +162,7 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
             measured_offset[inc.sensor] += np.where(inside, inc.offset, 0.0)
         elif isinstance(inc, Regime):
             real[inc.sensor] = real[inc.sensor] + np.where(inside, inc.offset, 0.0)
-        elif isinstance(inc, Stall):
+        elif isinstance(inc, FeedStop):
             stalls.append((a, b))
         elif not isinstance(inc, Overfit):  # pragma: no cover - the union is closed
             raise TypeError(inc)

@@ -14,7 +14,12 @@ from typing import Annotated, Literal, Union
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-from watchdog_edge.core.renames import SCENARIO_RENAMES, renamed_messages
+from watchdog_edge.core.renames import (
+    SCENARIO_RENAMES,
+    SCENARIO_VALUE_RENAMES,
+    renamed_messages,
+    renamed_value_messages,
+)
 from watchdog_edge.core.validation import format_validation
 from watchdog_edge.errors import ConfigError
 
@@ -233,10 +238,10 @@ class Regime(_Incident):
     offset: float
 
 
-class Stall(_Incident):
+class FeedStop(_Incident):
     """The truth feed stops: truths due in the span are never published."""
 
-    kind: Literal["stall"]
+    kind: Literal["feed_stop"]
 
 
 class Overfit(_Incident):
@@ -245,7 +250,7 @@ class Overfit(_Incident):
     kind: Literal["overfit"]
 
 
-Incident = Annotated[Union[Drift, Step, Regime, Stall, Overfit], Field(discriminator="kind")]
+Incident = Annotated[Union[Drift, Step, Regime, FeedStop, Overfit], Field(discriminator="kind")]
 
 
 class Scenario(_Strict):
@@ -320,7 +325,7 @@ def resolve_scenario(name_or_path: str | Path) -> Path:
 
 def parse_scenario(data: dict, source: str = "scenario") -> Scenario:
     """Validate scenario data held in memory; keys renamed since are refused with their new name."""
-    renamed = renamed_messages(data, SCENARIO_RENAMES)
+    renamed = renamed_messages(data, SCENARIO_RENAMES) + renamed_value_messages(data, SCENARIO_VALUE_RENAMES)
     if renamed:
         raise ConfigError(f"{source} is invalid:\n" + "\n".join("  " + line for line in renamed))
     try:

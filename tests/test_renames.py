@@ -84,6 +84,7 @@ def test_a_scenario_with_old_keys_is_refused_with_the_new_names():
     parse_scenario(data)  # the shipped file uses the new keys
     data["payload"] = {"prediction_value": "estimate.kw"}
     data["incidents"][0]["note"] = "re-ranged"
+    data["incidents"][-1]["kind"] = "stall"
     with pytest.raises(ConfigError) as e:
         parse_scenario(data, "pumping-station.toml")
     assert (
@@ -91,6 +92,10 @@ def test_a_scenario_with_old_keys_is_refused_with_the_new_names():
         in str(e.value)
     )
     assert "incidents[0].note = 're-ranged': this key was renamed; write incidents[0].detail instead" in str(e.value)
+    assert (
+        f"incidents[{len(data['incidents']) - 1}].kind = 'stall': this value was renamed; write 'feed_stop' instead"
+        in str(e.value)
+    )
 
 
 def test_a_tune_grid_with_an_old_key_is_refused_with_the_new_name():

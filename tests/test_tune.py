@@ -57,21 +57,21 @@ def test_setting_chosen_on_one_seed_detects_every_incident_on_another(recordings
     assert best.score.missed == 0 and best.score.false_alerts == 0
     hold = best.check_score
     assert hold is not None
-    assert [d["kind"] for d in hold.detections] == ["step", "drift", "regime", "stall"]
+    assert [d["kind"] for d in hold.detections] == ["step", "drift", "regime", "feed_stop"]
     assert hold.missed == 0, hold.detections
     assert hold.false_alerts == 0 and hold.healthy_days > 0.1
     delays = {d["kind"]: d["delay_s"] for d in hold.detections}
     # Delays on the check_recording, measured when this test was written with seed 102 and the setting
     # chosen on seed 101 (window 240 pairs, gap confidence 0.9, warning tolerance 0.25, shift
     # off): step 14 min (gap), drift 28 min (range: the drifting probe leaves the training range),
-    # regime 5 min (range), stall 15 min (feed_stop: its 15 min truth timeout less the last
+    # regime 5 min (range), feed_stop 15 min (feed_stop: its 15 min truth timeout less the last
     # truth's 1-4 min delay). The bounds leave room for changes inside the checks, not for a
     # different behaviour.
     assert best.setting.values["checks.shift.enabled"] is False  # shift fires on the daily cycle
     assert delays["step"] <= 25 * 60
     assert delays["drift"] <= 40 * 60
     assert delays["regime"] <= 10 * 60
-    assert 10 * 60 <= delays["stall"] <= 16 * 60
+    assert 10 * 60 <= delays["feed_stop"] <= 16 * 60
     print("check-recording delays (min):", {k: round(v / 60, 1) for k, v in delays.items()})
 
 
@@ -152,7 +152,10 @@ def _raw(path):
 # -- scoring ----------------------------------------------------------------------------------
 def test_score_counts_detections_delays_and_false_alerts_per_day():
     day = 86400.0
-    incidents = [{"kind": "step", "start": 1000.0, "end": 2000.0}, {"kind": "stall", "start": 5000.0, "end": 6000.0}]
+    incidents = [
+        {"kind": "step", "start": 1000.0, "end": 2000.0},
+        {"kind": "feed_stop", "start": 5000.0, "end": 6000.0},
+    ]
     marks = [
         Mark(500.0, "m", "gap", "warning"),  # before any incident: false
         Mark(1300.0, "m", "gap", "warning"),  # detects the step, 300 s late
@@ -318,7 +321,7 @@ def test_table_headers_are_whole_at_130_columns_and_the_neighbour_column_is_expl
     )
     assert res.exit_code == 0, res.output
     assert all(len(line) <= 130 for line in res.output.splitlines() if "│" in line or "─" in line)
-    for word in ("size_pairs", "confidence", "warning_tolerance", "enabled", "detected", "neighbours", "stall"):
+    for word in ("size_pairs", "confidence", "warning_tolerance", "enabled", "detected", "neighbours", "feed_stop"):
         assert f" {word} " in res.output, word
     assert "…" not in res.output
     assert "neighbours false/day: the most false alerts per day of the setting and its grid neighbours" in res.output

@@ -11,7 +11,7 @@ arrives about 15 minutes later for every second prediction:
   logged by hand during commissioning, with no hold-out: the final prediction error already
   inflates its training error several times, and the field is worse still.
 
-The field traffic also has a stalled meter feed for three hours, a heat wave beyond the
+The field traffic also has a meter feed that stops for three hours, a heat wave beyond the
 training range, a few garbled messages, and repeats.
 """
 

@@ -48,6 +48,13 @@ SCENARIO_RENAMES: dict[str, str] = {
 }
 
 
+# Values that were renamed: key path -> {old value: new value}.
+SCENARIO_VALUE_RENAMES: dict[str, dict[str, str]] = {
+    # the incident where the truth feed stops is named like the check that catches it
+    "incidents[].kind": {"stall": "feed_stop"},
+}
+
+
 def _split(path: str) -> list[str]:
     out: list[str] = []
     for part in path.split("."):
@@ -88,6 +95,20 @@ def old_keys(data: Any, renames: dict[str, str]) -> list[tuple[str, Any, str]]:
             pieces = new.split("[]")
             target = pieces[0] + "".join(lab + rest for lab, rest in zip(labels, pieces[1:]))
             out.append((where, value, target))
+    return out
+
+
+def renamed_value_messages(data: Any, renames: dict[str, dict[str, str]]) -> list[str]:
+    """One error line per old value: key path, value, rule, what to do.
+
+    >>> renamed_value_messages({"incidents": [{"kind": "stall"}]}, SCENARIO_VALUE_RENAMES)
+    ["incidents[0].kind = 'stall': this value was renamed; write 'feed_stop' instead"]
+    """
+    out = []
+    for path, values in renames.items():
+        for where, value, _ in _find(data, _split(path), "", ()):
+            if isinstance(value, str) and value in values:
+                out.append(f"{where} = {value!r}: this value was renamed; write {values[value]!r} instead")
     return out
 
 
