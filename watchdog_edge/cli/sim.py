@@ -312,8 +312,8 @@ def tune(
 
     snippet_path = snippet_out or sibling(recording, ".best.toml")
     snippet_path.write_text(tuning.snippet(result, snippet_path.parent, recording), encoding="utf-8")
-    first = "first row" if not result.with_incidents and not tuning.meets_budget(result) else "best setting"
-    console.print(f"{first}: {result.best.setting.label()}\nTOML snippet: {snippet_path}", soft_wrap=True)
+    which = "first row" if not result.with_incidents and not tuning.meets_budget(result) else "best setting"
+    console.print(f"{which}: {result.best.setting.label()}\nTOML snippet: {snippet_path}", soft_wrap=True)
     if results_out:
         data = {
             "recording": str(recording),
