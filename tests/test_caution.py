@@ -56,3 +56,30 @@ def test_run_start_log_line_carries_the_caution(tmp_path, broker):
     assert rc == 0, agent.text()
     first = [ln for ln in agent.text().splitlines() if "starting with" in ln]
     assert len(first) == 1 and first[0].endswith(f"Caution: {CAUTION}"), agent.text()
+
+
+def test_the_documents_a_user_reads_first_carry_the_caution():
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parent.parent
+    readme = (root / "README.md").read_text()
+    assert readme.index("not a substitute for alarms, interlocks or trips") < readme.index("pip install")
+    for name in ("README.md", "deploy/README.md", "deploy/config.toml", "simulators/README.md"):
+        text = _flat((root / name).read_text().replace("#", " ").replace(">", " "))
+        assert "not a protection" in text and "interlocks or trips" in text, name
+        assert "qualified people" in text, name
+    assert "severity` describes the model, not the plant" in readme
+
+
+def test_the_deploy_example_config_uses_the_current_keys():
+    from pathlib import Path
+
+    import tomllib
+
+    from watchdog_edge.core.settings import parse_config
+
+    root = Path(__file__).resolve().parent.parent
+    cfg = parse_config(tomllib.loads((root / "deploy/config.toml").read_text()), root / "deploy", "deploy/config.toml")
+    assert cfg.broker.keepalive_s == 30 and cfg.models[0].window.size_pairs == 500
+    unit = (root / "deploy/watchdog-edge.service").read_text()
+    assert "User=watchdog-edge\n" in unit and "Group=watchdog-edge\n" in unit
