@@ -86,11 +86,11 @@ def write_bundle(run: Run, recording: str | Path, scenario_name: str = "") -> Bu
     inc_path = sibling(rec, ".incidents.json")
     inc_path.write_text(json.dumps(incidents_data(run, scenario_name), indent=2) + "\n", encoding="utf-8")
     cfg_path = sibling(rec, ".config.toml")
-    header = (
-        f"# Config for replaying a simulated run of {run.scenario.site.name!r} (seed {run.seed}).\n"
-        f"# Written by watchdog-edge simulate; edit freely.\n\n"
-    )
-    cfg_path.write_text(header + tomlout.dumps(config_data(run.scenario, card_path.name)), encoding="utf-8")
+    header = [
+        f"Config for replaying a simulated run of {run.scenario.site.name!r} (seed {run.seed}).",
+        "Written by watchdog-edge simulate; edit freely.",
+    ]
+    cfg_path.write_text(tomlout.dumps(config_data(run.scenario, card_path.name), header=header), encoding="utf-8")
     return BundlePaths(rec, inc_path, cfg_path, card_path)
 
 

@@ -693,30 +693,30 @@ def snippet(result: TuneResult, where: Path, recording: str | Path) -> str:
         out_models.append(m)
     s = result.best.score
     lines = [
-        f"# Best of {len(result.rows)} settings from 'watchdog-edge tune' on {Path(recording).name}:",
-        f"#   {result.best.setting.label()}",
+        f"Best of {len(result.rows)} settings from 'watchdog-edge tune' on {Path(recording).name}:",
+        f"  {result.best.setting.label()}",
     ]
     if result.with_incidents:
         lines.append(
-            f"#   missed {s.missed} of {len(s.detections)} incidents, "
+            f"  missed {s.missed} of {len(s.detections)} incidents, "
             f"{s.false_alerts_per_day:.2f} false alerts per day, mean delay "
             f"{_fmt_delay(s.mean_delay_s)}"
         )
     elif meets_budget(result):
-        lines.append(f"#   {s.false_alerts_per_day:.2f} false alerts per day (budget {result.false_alert_budget:g})")
+        lines.append(f"  {s.false_alerts_per_day:.2f} false alerts per day (budget {result.false_alert_budget:g})")
     else:
         lines.append(
-            f"#   NO setting meets the budget of {result.false_alert_budget:g} false alerts per day; this is the "
+            f"  NO setting meets the budget of {result.false_alert_budget:g} false alerts per day; this is the "
             f"quietest: {s.false_alerts_per_day:.2f} per day ({result.best.robust_false_alerts_per_day:.2f} with "
             "its grid neighbours)"
         )
     if result.best.check_score is not None:
         h = result.best.check_score
         lines.append(
-            f"#   on the check recording: missed {h.missed} of {len(h.detections)}, {h.false_alerts_per_day:.2f} false alerts per day"
+            f"  on the check recording: missed {h.missed} of {len(h.detections)}, {h.false_alerts_per_day:.2f} false alerts per day"
         )
-    lines.append("# Paste over the matching [[models]] entry of your config.")
-    return "\n".join(lines) + "\n\n" + tomlout.dumps({"models": out_models})
+    lines.append("Paste over the matching [[models]] entry of your config.")
+    return tomlout.dumps({"models": out_models}, header=lines)
 
 
 def _fmt_delay(s: float | None) -> str:

@@ -56,8 +56,8 @@ def _fill(
             table.add(k, aot)
 
 
-def dumps(data: Mapping[str, Any], comments: Comments | None = None) -> str:
-    """TOML text for nested plain data, with optional comments (see ``Comments``).
+def dumps(data: Mapping[str, Any], comments: Comments | None = None, header: Sequence[str] = ()) -> str:
+    """TOML text for nested plain data, with optional comments (see ``Comments``) and header lines.
 
     >>> print(dumps({"a": 1, "b": {"c": "x", "d": None}}, {("b",): "derived: nothing"}).strip())
     a = 1
@@ -68,5 +68,9 @@ def dumps(data: Mapping[str, Any], comments: Comments | None = None) -> str:
     # d is not set
     """
     doc = tomlkit.document()
+    for line in header:
+        doc.add(tomlkit.comment(line) if line else tomlkit.nl())
+    if header:
+        doc.add(tomlkit.nl())
     _fill(doc, data, (), comments or {}, top=True)
     return tomlkit.dumps(doc).strip() + "\n"
