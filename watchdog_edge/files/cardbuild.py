@@ -335,7 +335,7 @@ def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> s
         else:
             n, d = card.training.count, card.fitted_parameters or 0
             how = (
-                f"the final prediction error, training loss x (N + d) / (N - d) = "
+                f"the training loss corrected for fitting (final prediction error), training loss x (N + d) / (N - d) = "
                 f"{card.training.loss:{g}} x ({n} + {d}) / ({n} - {d})"
             )
         lines.append(f"  expected in field  {value:{g}}, from {how}")
