@@ -124,7 +124,7 @@ def tune(
     grid: Optional[Path] = typer.Option(
         None,
         "--grid",
-        help="Grid file (TOML \\[grid] table of dotted keys -> lists). Default: window size x gap confidence x gap tolerance x shift on/off (x ADWIN delta when drift is on).",
+        help="Grid file (TOML \\[grid] table of dotted keys -> lists). Default: window.size_pairs x gap confidence x gap tolerance x shift on/off (x ADWIN delta when drift is on).",
     ),
     check_recording: Optional[Path] = typer.Option(
         None, "--check-recording", help="A second recording (another seed or day) to check the chosen setting on."
@@ -133,7 +133,7 @@ def tune(
         None, "--check-incidents", help="Incidents file of the --check-recording recording."
     ),
     model: Optional[list[str]] = typer.Option(
-        None, "--model", help="Tune only this model (repeatable); default every model."
+        None, "--model", metavar="ID", help="Tune only this model (repeatable); default every model."
     ),
     grace: Optional[str] = typer.Option(
         None,
@@ -167,7 +167,7 @@ def tune(
 ) -> None:
     """Replay a recording across a grid of check settings and rank them.
 
-    The recording is parsed and paired once; each setting is applied to that one pass, spread over one worker process per CPU. With --incidents each setting is scored by missed incidents, false alerts per day outside the incidents (plus a grace of one window, the window size over the pair rate) and detection delay; settings whose grid neighbours raise false alerts rank lower. Without incidents, the tightest setting within --false-alert-budget wins. The best setting is written as a \\[\\[models]] TOML snippet and a PNG plot.
+    The recording is parsed and paired once; each setting is applied to that one pass, spread over one worker process per CPU. With --incidents each setting is scored by missed incidents, false alerts per day outside the incidents (plus a grace of one window, window.size_pairs over the pair rate) and detection delay; settings whose grid neighbours raise false alerts rank lower. Without incidents, the tightest setting within --false-alert-budget wins. The best setting is written as a \\[\\[models]] TOML snippet and a PNG plot (the plot needs matplotlib: pip install 'watchdog-edge\\[plot]').
 
     Choosing on one recording is itself a fit: check the choice on --check-recording (another day, or another seed).
     """
