@@ -150,7 +150,7 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
     real = _real_sensors(sc, ts, _rng(seed, _SENSORS))
     measured_offset = {name: np.zeros(n) for name in real}
     incidents: list[dict[str, Any]] = []
-    stalls: list[tuple[float, float]] = []
+    feed_stops: list[tuple[float, float]] = []
     for inc in sc.incidents:
         a, b = _span(sc, inc, end_t)
         if a >= end_t:
@@ -163,7 +163,7 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
         elif isinstance(inc, Regime):
             real[inc.sensor] = real[inc.sensor] + np.where(inside, inc.offset, 0.0)
         elif isinstance(inc, FeedStop):
-            stalls.append((a, b))
+            feed_stops.append((a, b))
         elif not isinstance(inc, Overfit):  # pragma: no cover - the union is closed
             raise TypeError(inc)
         incidents.append(
@@ -195,7 +195,7 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
     pl = sc.fields
     pred_topic, truth_topic = sc.topics.prediction, sc.topics.truth
     out: list[tuple[float, int, str, bytes]] = []
-    counts = {"predictions": 0, "truths": 0, "truths_stalled": 0, "truths_after_end": 0}
+    counts = {"predictions": 0, "truths": 0, "truths_withheld": 0, "truths_after_end": 0}
     version = sc.model.version
     for i in range(n):
         pid = f"{sc.model.id_prefix}-{i:07d}"
@@ -211,8 +211,8 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
         if not has_truth[i]:
             continue
         published = float(ts[i] + delay[i])
-        if any(a <= published < b for a, b in stalls):
-            counts["truths_stalled"] += 1
+        if any(a <= published < b for a, b in feed_stops):
+            counts["truths_withheld"] += 1
             continue
         t_recv = round(published + float(lat_truth[i]), 3)
         if t_recv >= end_t:

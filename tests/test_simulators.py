@@ -188,7 +188,7 @@ def test_truths_are_late_sparse_and_stop_during_a_feed_stop():
     # share of predictions that get a truth: binomial, 4 standard deviations
     n = len(pred_t)
     expected = tim.truth_share * n
-    got = len(truths) + run.counts["truths_stalled"] + run.counts["truths_after_end"]
+    got = len(truths) + run.counts["truths_withheld"] + run.counts["truths_after_end"]
     assert abs(got - expected) < 4 * np.sqrt(n * tim.truth_share * (1 - tim.truth_share))
 
 
