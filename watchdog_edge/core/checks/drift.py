@@ -11,7 +11,7 @@ reacts to rises only: it raises when the mean loss after the change point is at 
 limit as well (a rise that ends within the limit would clear at once). Falls are counted only.
 
 Clearing, per ``clear_on``:
-- ``recovery``: the mean loss of the pairs since the change point (the last ``window_size`` of
+- ``recovery``: the mean loss of the pairs since the change point (the last ``window.size_pairs`` of
   them, and at least ``min_pairs`` of them) is at or below expected x (1 + ``warning_tolerance``)
   x (1 - ``hysteresis``) for ``clear_after`` evaluations in a row (the clearing rule of ``gap``,
   on the live mean), evaluations every ``evaluate_every_pairs`` pairs;
