@@ -193,7 +193,7 @@ def test_clears_when_the_model_is_fixed():
     X, y, f = data(rng, 3000)
     model = f.copy()
     model[:1000] = 3.0  # no better than a constant at first
-    check = make_check(learners=["linear"], recent_pairs=300, evaluate_every_pairs=50, clear_after=3)
+    check = make_check(learners=["linear"], recent_pairs=300, evaluate_every_pairs=50, clear_after_evaluations=3)
     levels = [v.level for v in stream(check, X, y, model)]
     assert "warning" in levels[:10] and levels[-1] == "normal"
     first_ok = levels.index("normal", levels.index("warning"))

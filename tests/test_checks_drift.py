@@ -112,7 +112,7 @@ def test_falls_are_ignored():
 
 def test_clears_when_the_loss_since_the_change_recovers():
     rng = np.random.default_rng(6)
-    check = make_check(window=200, min_pairs=50, clear_after=3, evaluate_every_pairs=10)
+    check = make_check(window=200, min_pairs=50, clear_after_evaluations=3, evaluate_every_pairs=10)
     out = run(check, errors(rng, (2000, 2.0), (600, 4.0), (1500, 2.0)))
     levels = [(i, v.level) for i, v in out]
     assert [lv for _, lv in levels] == ["warning", "normal"]

@@ -89,7 +89,7 @@ def test_clears_only_after_the_share_stays_below_the_hysteresis_limit():
         warning_share=0.1,
         critical_share=0.5,
         hysteresis=0.5,
-        clear_after=3,
+        clear_after_evaluations=3,
     )
     rows = [{"temp": 30.0}] * 85 + [{"temp": 70.0}] * 15  # 15% outside: warning
     levels = [v.level for v in run(check, rows)]

@@ -117,7 +117,7 @@ def test_limits_relative_and_absolute():
 
 def test_clearing_needs_k_evaluations_under_the_hysteresis_limit():
     rng = np.random.default_rng(5)
-    gap = GapCheck(GapSettings(evaluate_every_pairs=10, clear_after=3), ctx(size=100, min_pairs=100))
+    gap = GapCheck(GapSettings(evaluate_every_pairs=10, clear_after_evaluations=3), ctx(size=100, min_pairs=100))
     up = feed(gap, list(rng.exponential(3.0, 200)))
     assert up[-1].level == "critical"
     down = feed(gap, list(rng.exponential(0.5, 300)), start=200)

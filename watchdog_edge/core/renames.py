@@ -29,6 +29,10 @@ CONFIG_RENAMES: dict[str, str] = {
     "models[].checks.shift.evaluate_every": "models[].checks.shift.evaluate_every_predictions",
     "models[].checks.shift.warning": "models[].checks.shift.warning_index",
     "models[].checks.shift.critical": "models[].checks.shift.critical_index",
+    **{
+        f"models[].checks.{c}.clear_after": f"models[].checks.{c}.clear_after_evaluations"
+        for c in ("gap", "range", "shift", "drift", "baseline")
+    },
 }
 
 # A scenario says the same things as a config with the config's keys.

@@ -14,7 +14,7 @@ Student t with n - 1 degrees of freedom; see ``watchdog_edge.core.stats.diebold_
 raises when some learner is better with p < 1 - ``confidence`` and by a margin
 1 - learner loss / model loss of at least ``margin`` (critical from ``critical_margin``), and
 clears when no learner has been better, by ``margin`` x (1 - ``hysteresis``), for
-``clear_after`` evaluations in a row.
+``clear_after_evaluations`` evaluations in a row.
 
 Inputs: a missing feature (null or absent) is imputed by the mean of its earlier observed
 values (0 before any) and counted; a feature name never seen before simply joins the inputs.
@@ -84,7 +84,7 @@ class BaselineSettings(CheckSettings):
     hysteresis: float = Field(
         0.5, ge=0, lt=1, description="Clear only when no learner is better by margin x (1 - this) with confidence."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
     learn_share: float = Field(
         1.0, gt=0, le=1, description="Share of pairs the learners use, chosen by a hash of the pair id."
     )
@@ -372,7 +372,7 @@ class BaselineCheck(Check):
                 self._calm_run = 0
             else:
                 self._calm_run += 1
-                if self._calm_run >= s.clear_after:
+                if self._calm_run >= s.clear_after_evaluations:
                     self._level = "normal"
                     self._calm_run = 0
         self._figures = {

@@ -13,7 +13,7 @@ limit as well (a rise that ends within the limit would clear at once). Falls are
 Clearing, per ``clear_on``:
 - ``recovery``: the mean loss of the pairs since the change point (the last ``window.size_pairs`` of
   them, and at least ``min_pairs`` of them) is at or below expected x (1 + ``warning_tolerance``)
-  x (1 - ``hysteresis``) for ``clear_after`` evaluations in a row (the clearing rule of ``gap``,
+  x (1 - ``hysteresis``) for ``clear_after_evaluations`` evaluations in a row (the clearing rule of ``gap``,
   on the live mean), evaluations every ``evaluate_every_pairs`` pairs;
 - ``hold``: ``hold_s`` seconds of core time after the latest raising change.
 
@@ -90,7 +90,7 @@ class DriftSettings(CheckSettings):
     hysteresis: float = Field(
         0.1, ge=0, lt=1, description="Clear only when the mean loss is at or below the warning limit x (1 - this)."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
     evaluate_every_pairs: int = Field(10, ge=1, description="Pairs between evaluations of the clearing rule.")
     history_pairs: int = Field(
         2000,
@@ -252,7 +252,7 @@ class DriftCheck(Check):
             self._clear_run += 1
         else:
             self._clear_run = 0
-        if self._clear_run < s.clear_after:
+        if self._clear_run < s.clear_after_evaluations:
             return None
         self._level = "normal"
         self._clear_run = 0

@@ -38,7 +38,7 @@ class GapSettings(CheckSettings):
     hysteresis: float = Field(
         0.1, ge=0, lt=1, description="Clear only when the upper bound is below the warning limit x (1 - this)."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
     evaluate_every_pairs: int = Field(10, ge=1, description="Pairs between evaluations of the interval.")
 
     @model_validator(mode="after")
@@ -143,7 +143,7 @@ class GapCheck(Check):
             self._clear_run = 0
         elif iv.upper < self.clear_limit:
             self._clear_run += 1
-            if self._clear_run >= s.clear_after:
+            if self._clear_run >= s.clear_after_evaluations:
                 self._level = "normal"
                 self._clear_run = 0
                 self._clean_pairs = 0

@@ -65,7 +65,7 @@ class RangeSettings(CheckSettings):
     hysteresis: float = Field(
         0.2, ge=0, lt=1, description="Clear only when the share is at or below the limit x (1 - this)."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
 
     @model_validator(mode="after")
     def _order(self) -> RangeSettings:
@@ -107,7 +107,7 @@ class RangeCheck(Check):
             bounds.append((fname, prof.min - pad, prof.max + pad))
         self._bounds: tuple[tuple[str, float, float], ...] = tuple(bounds)
         self._gate = LevelGate(
-            settings.warning_share, settings.critical_share, settings.hysteresis, settings.clear_after
+            settings.warning_share, settings.critical_share, settings.hysteresis, settings.clear_after_evaluations
         )
         self.reset()
 

@@ -68,7 +68,7 @@ class ShiftSettings(CheckSettings):
     hysteresis: float = Field(
         0.2, ge=0, lt=1, description="Clear only when the index is at or below the limit x (1 - this)."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
 
     @model_validator(mode="after")
     def _order(self) -> ShiftSettings:
@@ -174,7 +174,7 @@ class ShiftCheck(Check):
         self._getter = operator.itemgetter(*names) if names else None
         self._every = settings.evaluate_every_predictions
         self._gate = LevelGate(
-            settings.warning_index, settings.critical_index, settings.hysteresis, settings.clear_after
+            settings.warning_index, settings.critical_index, settings.hysteresis, settings.clear_after_evaluations
         )
         self.reset()
 
