@@ -1,0 +1,149 @@
+"""What the workers need on the JetStream server: streams, buckets, consumers; reading the input back.
+
+Every call here is idempotent, so any number of workers may start at once.
+"""
+
+from __future__ import annotations
+
+import asyncio
+from collections.abc import AsyncIterator
+from dataclasses import dataclass
+
+import nats.js.errors
+from nats.js import JetStreamContext
+from nats.js.api import (
+    AckPolicy,
+    ConsumerConfig,
+    DeliverPolicy,
+    RetentionPolicy,
+    StorageType,
+    StreamConfig,
+)
+from nats.js.kv import KeyValue
+
+from watchdog_edge.core.settings import JetStreamSettings
+from watchdog_edge.jetstream.subjects import Subjects, delivery
+
+
+async def ensure_stream(js: JetStreamContext, config: StreamConfig) -> None:
+    """Create the stream unless it exists (a worker never changes a stream someone else made)."""
+    try:
+        await js.stream_info(config.name or "")
+    except nats.js.errors.NotFoundError:
+        try:
+            await js.add_stream(config)
+        except nats.js.errors.BadRequestError:
+            await js.stream_info(config.name or "")  # made meanwhile by another worker: fine
+
+
+async def ensure_all(js: JetStreamContext, s: JetStreamSettings, lease_ttl_s: float) -> dict[str, KeyValue]:
+    """The input and alert streams and the three buckets; returns the buckets by role."""
+    subjects = Subjects(s.subject_prefix, s.partitions)
+    if s.create_streams:
+        await ensure_stream(
+            js,
+            StreamConfig(
+                name=s.input_stream,
+                subjects=[subjects.all_inbound()],
+                retention=RetentionPolicy.LIMITS,
+                max_age=s.input_max_age_s,
+                storage=StorageType.FILE,
+                num_replicas=s.replicas,
+                duplicate_window=120.0,
+            ),
+        )
+        await ensure_stream(
+            js,
+            StreamConfig(
+                name=s.alert_stream,
+                subjects=[subjects.all_alerts()],
+                retention=RetentionPolicy.LIMITS,
+                storage=StorageType.FILE,
+                num_replicas=s.replicas,
+                duplicate_window=s.alert_duplicate_window_s,
+            ),
+        )
+    buckets = {}
+    for role, name, ttl in (
+        ("snapshots", s.snapshot_bucket, None),
+        ("state", s.state_bucket, None),
+        ("leases", s.lease_bucket, lease_ttl_s),
+    ):
+        try:
+            buckets[role] = await js.key_value(name)
+        except nats.js.errors.BucketNotFoundError:
+            if not s.create_streams:
+                raise
+            try:
+                buckets[role] = await js.create_key_value(bucket=name, history=1, ttl=ttl, replicas=s.replicas)
+            except nats.js.errors.BadRequestError:
+                buckets[role] = await js.key_value(name)
+    return buckets
+
+
+async def start_consumer(js: JetStreamContext, s: JetStreamSettings, p: int, after_seq: int) -> str:
+    """(Re)make partition ``p``'s durable consumer so that it delivers from stream sequence ``after_seq + 1``.
+
+    Only the holder of the partition's lease calls this. Starting at the snapshot's sequence
+    (rather than waiting for the previous holder's unacknowledged messages to come back after
+    their ack wait) keeps the messages of a model in stream order, which the core needs.
+    """
+    name = f"{s.durable_prefix}{p}"
+    try:
+        await js.delete_consumer(s.input_stream, name)
+    except nats.js.errors.NotFoundError:
+        pass
+    await js.add_consumer(
+        s.input_stream,
+        ConsumerConfig(
+            durable_name=name,
+            filter_subject=Subjects(s.subject_prefix, s.partitions).partition_filter(p),
+            deliver_policy=DeliverPolicy.BY_START_SEQUENCE if after_seq else DeliverPolicy.ALL,
+            opt_start_seq=after_seq + 1 if after_seq else None,
+            # acknowledged after each snapshot: one ack covers every message before it
+            ack_policy=AckPolicy.ALL,
+            ack_wait=max(60.0, 6 * s.snapshot_every_s),
+            max_ack_pending=2 * s.snapshot_every_messages + 2 * s.fetch_batch_messages,
+        ),
+    )
+    return name
+
+
+@dataclass(frozen=True, slots=True)
+class InboundMessage:
+    """One stored inbound message: partition, stream sequence, stored time, topic (None: a tick), payload."""
+
+    partition: int
+    seq: int
+    t: float
+    topic: str | None
+    payload: bytes
+
+
+async def read_input(
+    js: JetStreamContext, s: JetStreamSettings, partition: int | None = None, idle_s: float = 1.0
+) -> AsyncIterator[InboundMessage]:
+    """Every message of the input stream (or one partition) in stream order, up to the stream's last message now.
+
+    It also stops when none comes for ``idle_s``.
+
+        The time is the one the workers use: the stream's stored time, so a replay of this gives
+        the workers' alerts.
+    """
+    subjects = Subjects(s.subject_prefix, s.partitions)
+    flt = subjects.all_inbound() if partition is None else subjects.partition_filter(partition)
+    last = (await js.stream_info(s.input_stream)).state.last_seq
+    sub = await js.subscribe(flt, stream=s.input_stream, ordered_consumer=True, deliver_policy=DeliverPolicy.ALL)
+    try:
+        while True:
+            try:
+                msg = await sub.next_msg(timeout=idle_s)
+            except (asyncio.TimeoutError, nats.errors.TimeoutError):
+                return
+            d = delivery(msg.reply)
+            p, topic = subjects.split(msg.subject)
+            yield InboundMessage(p, d.stream_seq, d.timestamp_ns / 1e9, topic, msg.data)
+            if d.stream_seq >= last:
+                return
+    finally:
+        await sub.unsubscribe()
