@@ -13,6 +13,7 @@ from pathlib import Path
 from typing import Any
 
 import nats
+import nats.errors
 import numpy as np
 
 from watchdog_edge.agent.agent import alert_payload
@@ -178,9 +179,22 @@ async def _read_alerts(url: str, cfg: Config, idle_s: float) -> list[dict]:
     return out
 
 
+def _retry(make, tries: int = 5):
+    """Run a coroutine made by ``make``; again after a server-side timeout (a leader election, say)."""
+    for i in range(tries):
+        try:
+            return asyncio.run(make())
+        except (nats.errors.Error, asyncio.TimeoutError, OSError):
+            if i == tries - 1:
+                raise
+            time.sleep(1.0)
+    raise AssertionError("unreachable")
+
+
 def read_alerts(url: str, cfg_path: Path, idle_s: float = 1.0) -> list[dict]:
     """Every alert in the alert stream, in order."""
-    return asyncio.run(_read_alerts(url, load_config(cfg_path), idle_s))
+    cfg = load_config(cfg_path)
+    return _retry(lambda: _read_alerts(url, cfg, idle_s))
 
 
 async def _read_lines(url: str, cfg: Config, idle_s: float) -> dict[int, list[RecordLine]]:
@@ -200,7 +214,7 @@ def replay_stream(url: str, cfg_path: Path) -> dict[str, list[dict]]:
     cfg = load_config(cfg_path)
     cards = load_cards(cfg)
     per_model: dict[str, list[dict]] = {}
-    for p, lines in asyncio.run(_read_lines(url, cfg, 1.0)).items():
+    for p, lines in _retry(lambda: _read_lines(url, cfg, 1.0)).items():
         pc = partition_config(cfg, p)
         mon = Monitor(pc, {m.id: cards[m.id] for m in pc.models})
         for ev in replay(mon, lines):

@@ -292,7 +292,7 @@ class Config(_Strict):
 
     agent: AgentSettings = AgentSettings()
     broker: BrokerSettings = BrokerSettings()
-    jetstream: JetStreamSettings = Field(default_factory=JetStreamSettings)
+    jetstream: JetStreamSettings = JetStreamSettings()
     models: list[ModelSettings] = Field(min_length=1)
     _base_dir: Path = PrivateAttr(default_factory=Path.cwd)
 

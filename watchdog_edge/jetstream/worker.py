@@ -57,7 +57,7 @@ from watchdog_edge.core.cards import ModelCard
 from watchdog_edge.core.events import Alert, DeadLetter, rfc3339
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import Config
-from watchdog_edge.jetstream.engine import ensure_all, start_consumer
+from watchdog_edge.jetstream.engine import PullFeed, ensure_all, start_consumer
 from watchdog_edge.jetstream.subjects import Subjects, delivery, partition_of, topic_to_subject
 
 log = logging.getLogger("watchdog_edge.jetstream.worker")
@@ -202,10 +202,10 @@ class Worker:
         share = math.ceil(self.settings.partitions / live)
         working = [p for p, part in self.held.items() if not part.release]
         if len(working) > share:
-            # hand back the most recently claimed one: the others keep their warm state
-            p = max(working, key=lambda q: self.held[q].claimed_at)
-            self.held[p].release = True
-            log.info("partition %d: handing back (share is %d with %d workers)", p, share, live)
+            # hand back the most recently claimed ones: the others keep their warm state
+            for p in sorted(working, key=lambda q: self.held[q].claimed_at)[share:]:
+                self.held[p].release = True
+                log.info("partition %d: handing back (share is %d with %d workers)", p, share, live)
             return
         n = self.settings.partitions
         start = partition_of(self.id, n)  # workers start their search at different places
@@ -262,7 +262,9 @@ class Worker:
             len(cfg.models),
             part.applied,
         )
-        return await self.js.pull_subscribe_bind(durable, self.settings.input_stream)
+        feed = PullFeed(self.nc, self.settings.input_stream, durable, self.settings.fetch_batch_messages)
+        await feed.start()
+        return feed
 
     async def _work(self, part: Partition) -> None:
         p = part.number
@@ -296,17 +298,13 @@ class Worker:
         try:
             next_tick = time.monotonic() + a.tick_every_s
             next_state = time.monotonic()
-            batch = self.settings.fetch_batch_messages
             while not part.release:
                 now = time.monotonic()
                 if now >= next_tick:
                     next_tick = max(next_tick + a.tick_every_s, now)
                     assert self.nc is not None
                     await self.nc.publish(self.subjects.tick(p), b"")
-                try:
-                    msgs = await sub.fetch(batch, timeout=min(0.25, a.tick_every_s))
-                except (nats.errors.TimeoutError, asyncio.TimeoutError):
-                    msgs = []
+                msgs = await sub.take(timeout=min(0.25, a.tick_every_s))
                 if msgs:
                     await self._process(part, msgs)
                 now = time.monotonic()
@@ -321,8 +319,7 @@ class Worker:
             # handing back (rule 1)
             await self._snapshot_and_ack(part)
         finally:
-            with contextlib.suppress(Exception):
-                await sub.unsubscribe()
+            await sub.stop()
         with contextlib.suppress(nats.js.errors.APIError):
             await self.buckets["leases"].delete(f"p.{p}", last=part.lease_rev)
         self.counters["handed_back"] += 1
