@@ -1,17 +1,17 @@
 """Records per second through JetStream workers, against a bare nats-py consumer in the same run.
 
 One nats-server (JetStream, on free loopback ports, started and stopped here) is fresh for
-each measurement. Once the consumers are ready, this process publishes the same records
-(one record a
+each measurement. Once the consumers are ready they are paused (SIGSTOP), this process
+publishes the same records (one record a
 message: predictions with a truth for each, over many models, through the workers' subject
-mapping) while the consumers run:
+mapping), and the consumers are let go (SIGCONT):
 
 - reference: a bare nats-py consumer in its own process that only fetches, decodes each
   payload (orjson) and acknowledges each message;
 - one worker, then two workers (processes of ``watchdog-edge jetstream run``), once every
   partition is held, until every partition's consumer has nothing left to deliver.
 
-Each is timed from the first record published until the last is consumed.
+Each is timed from SIGCONT until the last record is consumed.
 
 It prints records per second of each, their ratios, CPU seconds per record of the workers
 (user + system time of the worker processes over the run; the figure that carries to a
@@ -54,8 +54,8 @@ async def main(url, partitions, total):
     js = nc.jetstream()
     subs = [await js.pull_subscribe(f"wd.in.{p}.>", durable=f"bare{p}", stream="WATCHDOG_IN") for p in range(partitions)]
     done = 0
-    c0 = time.process_time()
     print("ready", flush=True)
+    c0 = time.process_time()
     async def one(sub):
         nonlocal done
         while done < total:
@@ -141,6 +141,17 @@ class Probe:
             pass
         return out
 
+    async def even(self, n: int) -> None:
+        """Wait until ``n`` workers hold an even share each."""
+        for _ in range(3000):
+            owners = list((await self.held()).values())
+            if len(owners) == self.partitions and all(
+                owners.count(f"w{i + 1}") == self.partitions // n for i in range(n)
+            ):
+                return
+            await asyncio.sleep(0.02)
+        raise RuntimeError("the workers did not share the partitions evenly within 60 s")
+
     async def drained(self, durable: str) -> bool:
         """Nothing left to deliver on any partition (the last batch is then in hand)."""
         for p in range(self.partitions):
@@ -164,7 +175,7 @@ def peak_rss_mib(pid: int) -> float:
     return float("nan")
 
 
-def fresh(tmp: Path, name: str, args, msgs) -> tuple[NatsServer, Path]:
+def fresh(tmp: Path, name: str, args, lease_s: float = 8.0) -> tuple[NatsServer, Path]:
     port = free_port()
     folder = tmp / name
     models = [f"m{i}" for i in range(args.models)]
@@ -172,7 +183,7 @@ def fresh(tmp: Path, name: str, args, msgs) -> tuple[NatsServer, Path]:
     cfg = write_setup(folder, [f"nats://127.0.0.1:{port}"], models, partitions=args.partitions, jetstream_extra="")
     text = cfg.read_text()
     text = (
-        text.replace("lease_s = 1.5", "lease_s = 3.0")
+        text.replace("lease_s = 1.5", f"lease_s = {lease_s}")
         .replace("snapshot_every_s = 1.0", "snapshot_every_s = 10.0")
         .replace("snapshot_every_messages = 200\n", "")
         .replace("fetch_batch_messages = 100\n", "")
@@ -188,47 +199,60 @@ def fresh(tmp: Path, name: str, args, msgs) -> tuple[NatsServer, Path]:
 
 
 def run_workers(tmp: Path, n: int, args, msgs) -> dict:
-    srv, cfg = fresh(tmp, f"w{n}", args, msgs)
+    srv, cfg = fresh(tmp, f"w{n}", args)
     workers = [WorkerProc(cfg, f"w{i + 1}", tmp / f"w{n}-{i + 1}.log") for i in range(n)]
 
     async def measure() -> dict:
         async with Probe(srv.url, args.partitions) as probe:
-            for _ in range(3000):
-                held = await probe.held()
-                owners = list(held.values())
-                if len(held) == args.partitions and all(
-                    owners.count(f"w{i + 1}") == args.partitions // n for i in range(n)
-                ):
-                    break
-                await asyncio.sleep(0.02)
-            t0 = time.perf_counter()
+            await probe.even(n)
+            # paused (SIGSTOP) while the stream is filled, well within lease_s; timed from SIGCONT
+            for w in workers:
+                os.kill(w.proc.pid, signal.SIGSTOP)
+            await _fill(srv.url, msgs)
             c0 = sum(cpu_s(w.proc.pid) for w in workers)
             s0 = cpu_s(srv.proc.pid)
-            await _fill(srv.url, msgs)
+            t0 = time.perf_counter()
+            for w in workers:
+                os.kill(w.proc.pid, signal.SIGCONT)
             for _ in range(6000):
                 if await probe.drained("watchdog-p"):
                     break
-                await asyncio.sleep(0.1)
+                await asyncio.sleep(0.05)
             elapsed = time.perf_counter() - t0
             cpu = sum(cpu_s(w.proc.pid) for w in workers) - c0
             server_cpu = cpu_s(srv.proc.pid) - s0
-            out = {
+            return {
                 "server_cpu_per_record": server_cpu / len(msgs),
                 "rate": len(msgs) / elapsed,
                 "cpu_per_record": cpu / len(msgs),
                 "peak_mib": [peak_rss_mib(w.proc.pid) for w in workers],
             }
-            if n == 2:
-                # failover: kill the first worker, time until the other holds every partition
-                os.kill(workers[0].proc.pid, signal.SIGKILL)
-                t0 = time.perf_counter()
-                for _ in range(3000):
-                    held = await probe.held()
-                    if len(held) == args.partitions and set(held.values()) == {"w2"}:
-                        break
-                    await asyncio.sleep(0.05)
-                out["failover_s"] = time.perf_counter() - t0
-            return out
+
+    try:
+        return asyncio.run(measure())
+    finally:
+        for w in workers:
+            w.stop()
+        srv.stop()
+
+
+def run_failover(tmp: Path, args, lease_s: float) -> float:
+    """Two workers; SIGKILL the first; seconds until the second holds every partition."""
+    srv, cfg = fresh(tmp, "failover", args, lease_s)
+    workers = [WorkerProc(cfg, f"w{i + 1}", tmp / f"f-{i + 1}.log") for i in range(2)]
+
+    async def measure() -> float:
+        async with Probe(srv.url, args.partitions) as probe:
+            await probe.even(2)
+            await asyncio.sleep(1.0)
+            os.kill(workers[0].proc.pid, signal.SIGKILL)
+            t0 = time.perf_counter()
+            for _ in range(3000):
+                held = await probe.held()
+                if len(held) == args.partitions and set(held.values()) == {"w2"}:
+                    break
+                await asyncio.sleep(0.05)
+            return time.perf_counter() - t0
 
     try:
         return asyncio.run(measure())
@@ -239,7 +263,7 @@ def run_workers(tmp: Path, n: int, args, msgs) -> dict:
 
 
 def run_bare(tmp: Path, args, msgs) -> dict:
-    srv, _ = fresh(tmp, "bare", args, msgs)
+    srv, _ = fresh(tmp, "bare", args)
     proc = subprocess.Popen(
         [sys.executable, "-c", BARE, srv.url, str(args.partitions), str(len(msgs))],
         stdout=subprocess.PIPE,
@@ -247,8 +271,10 @@ def run_bare(tmp: Path, args, msgs) -> dict:
     )
     try:
         assert proc.stdout is not None and proc.stdout.readline().strip() == "ready"
-        t0 = time.perf_counter()
+        os.kill(proc.pid, signal.SIGSTOP)
         asyncio.run(_fill(srv.url, msgs))
+        t0 = time.perf_counter()
+        os.kill(proc.pid, signal.SIGCONT)
         cpu = float(proc.stdout.readline())
         elapsed = time.perf_counter() - t0
         proc.wait(timeout=60)
@@ -272,6 +298,7 @@ def main() -> None:
         bare = run_bare(tmp, args, msgs)
         one = run_workers(tmp, 1, args, msgs)
         two = run_workers(tmp, 2, args, msgs)
+        two["failover_s"] = run_failover(tmp, args, 3.0)
     print(f"{args.records} records, {args.models} models, {args.partitions} partitions, {os.cpu_count()} cores")
     print(f"bare nats-py consumer (decode + ack each): {bare['rate']:>9,.0f} records/s")
     print(

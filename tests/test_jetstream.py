@@ -9,6 +9,9 @@ from __future__ import annotations
 
 import asyncio
 import json
+import os
+import subprocess
+import sys
 import threading
 import time
 from pathlib import Path
@@ -18,6 +21,7 @@ import paho.mqtt.client as paho
 import pytest
 from broker import free_port
 from jetstream_setup import (
+    REPO,
     WorkerProc,
     by_model,
     mappings_for,
@@ -221,6 +225,32 @@ def test_mqtt_gateway_traffic_gives_the_alerts_of_a_replay(tmp_path):
             return out
 
         st = asyncio.run(state())
+
+        # the command line: export one partition with the workers' times, replay it
+        p = partition_of("a", 4)
+        rec, out = tmp_path / "p.jsonl", tmp_path / "p-alerts.jsonl"
+        cli = [sys.executable, "-m", "watchdog_edge.cli.app"]
+        env = dict(os.environ, PYTHONPATH=str(REPO))
+        done = subprocess.run(
+            [*cli, "jetstream", "export", "-c", str(cfg), "-o", str(rec), "--partition", str(p)],
+            capture_output=True,
+            text=True,
+            env=env,
+            timeout=60,
+        )
+        assert done.returncode == 0, done.stderr
+        done = subprocess.run(
+            [*cli, "replay", str(rec), "-c", str(cfg), "--alerts", str(out), "--quiet"],
+            capture_output=True,
+            text=True,
+            env=env,
+            timeout=60,
+        )
+        assert done.returncode == 0, done.stderr
+        mine = [m for m in MODELS if partition_of(m, 4) == p]
+        replayed = [json.loads(line) for line in out.read_text().splitlines()]
+        assert [a for a in replayed if a["model"] in mine] == [a for a in alerts if a["model"] in mine]
+        assert any(a["model"] == "a" for a in replayed)
         assert st["a"]["checks"]["gap"]["level"] == "normal" and st["a"]["pairs"] == 200
         assert st["b"]["partition"] == partition_of("b", 4)
     finally:

@@ -85,6 +85,10 @@ def default_worker_id() -> str:
     return f"{host}-{os.getpid()}"
 
 
+class SnapshotTooLarge(Exception):
+    """A partition's snapshot does not fit in one message of the server."""
+
+
 class LostPartition(Exception):
     """Another worker holds the partition now (a compare-and-set failed): stop working on it."""
 
@@ -391,6 +395,13 @@ class Worker:
         blob = zlib.compress(json.dumps(data, separators=(",", ":")).encode(), 1)
         snaps = self.buckets["snapshots"]
         key = f"p.{part.number}"
+        limit = self.nc.max_payload if self.nc is not None else 0
+        if limit and len(blob) > limit - 1024:
+            raise SnapshotTooLarge(
+                f"partition {part.number}: the snapshot of its {len(part.monitor.models())} models is {len(blob)} bytes "
+                f"compressed, over the server's max_payload of {limit}; raise jetstream.partitions (fewer models "
+                "a partition) or max_payload in the server's config"
+            )
         try:
             if part.snapshot_rev:
                 part.snapshot_rev = await snaps.update(key, blob, last=part.snapshot_rev)
