@@ -8,6 +8,7 @@ or killed (SIGKILL) by their pid.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import json
 import os
 import subprocess
@@ -17,6 +18,7 @@ import time
 from pathlib import Path
 
 import nats
+import nats.errors
 import paho.mqtt.client as paho
 import pytest
 from broker import free_port
@@ -187,6 +189,7 @@ def test_mqtt_gateway_traffic_gives_the_alerts_of_a_replay(tmp_path):
     cfg = write_setup(tmp_path, [f"nats://127.0.0.1:{port}"], MODELS)
     srv = NatsServer(tmp_path / "srv", port=port, mappings=mappings_for(cfg))
     msgs = traffic(MODELS, seed=3)
+    msgs.insert(5, ("plant/b/truth", b"{not json"))  # a bad record: dead-lettered, with its reason
     mirrored: list[dict] = []
     w = start_worker(tmp_path, cfg, "w1")
     sub = paho.Client(paho.CallbackAPIVersion.VERSION2, client_id="watcher")
@@ -225,6 +228,22 @@ def test_mqtt_gateway_traffic_gives_the_alerts_of_a_replay(tmp_path):
             return out
 
         st = asyncio.run(state())
+
+        async def dead() -> list:
+            nc = await nats.connect(srv.url)
+            sub = await nc.jetstream().subscribe("wd.dead.>", stream="WATCHDOG_DEAD", ordered_consumer=True)
+            out = []
+            with contextlib.suppress(nats.errors.TimeoutError):
+                while True:
+                    out.append(await sub.next_msg(timeout=0.5))
+            await nc.close()
+            return out
+
+        letters = asyncio.run(dead())
+        assert [(m.data, m.headers["Wd-Reason"], m.headers["Wd-Topic"]) for m in letters] == [
+            (b"{not json", "not_json", "plant/b/truth")
+        ]
+        assert letters[0].subject == f"wd.dead.{partition_of('b', 4)}"
 
         # the command line: export one partition with the workers' times, replay it
         p = partition_of("a", 4)

@@ -109,6 +109,10 @@ class JetStreamSettings(_Strict):
     partitions: int = Field(8, ge=1, le=1024, description="Partitions of the models (the server's mapping uses it).")
     input_stream: str = Field("WATCHDOG_IN", description="Stream holding the partitioned inbound messages.")
     alert_stream: str = Field("WATCHDOG_ALERTS", description="Stream the alerts are published to.")
+    dead_letter_stream: str = Field(
+        "WATCHDOG_DEAD",
+        description="Stream of the bad records, bounded by agent.dead_letter_max_count and agent.dead_letter_max_bytes.",
+    )
     durable_prefix: str = Field("watchdog-p", description="Durable consumer names: this and the partition number.")
     snapshot_bucket: str = Field("watchdog_snapshots", description="Key-value bucket of the per-partition snapshots.")
     state_bucket: str = Field("watchdog_state", description="Key-value bucket of the retained state per model.")

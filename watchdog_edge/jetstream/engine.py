@@ -40,8 +40,10 @@ async def ensure_stream(js: JetStreamContext, config: StreamConfig) -> None:
             await js.stream_info(config.name or "")  # made meanwhile by another worker: fine
 
 
-async def ensure_all(js: JetStreamContext, s: JetStreamSettings, lease_ttl_s: float) -> dict[str, KeyValue]:
-    """The input and alert streams and the three buckets; returns the buckets by role."""
+async def ensure_all(
+    js: JetStreamContext, s: JetStreamSettings, lease_ttl_s: float, dead_max_count: int, dead_max_bytes: int
+) -> dict[str, KeyValue]:
+    """The input, alert and dead-letter streams and the three buckets; returns the buckets by role."""
     subjects = Subjects(s.subject_prefix, s.partitions)
     if s.create_streams:
         await ensure_stream(
@@ -62,6 +64,19 @@ async def ensure_all(js: JetStreamContext, s: JetStreamSettings, lease_ttl_s: fl
                 name=s.alert_stream,
                 subjects=[subjects.all_alerts()],
                 retention=RetentionPolicy.LIMITS,
+                storage=StorageType.FILE,
+                num_replicas=s.replicas,
+                duplicate_window=s.alert_duplicate_window_s,
+            ),
+        )
+        await ensure_stream(
+            js,
+            StreamConfig(
+                name=s.dead_letter_stream,
+                subjects=[subjects.all_dead()],
+                retention=RetentionPolicy.LIMITS,
+                max_msgs=dead_max_count,
+                max_bytes=dead_max_bytes,
                 storage=StorageType.FILE,
                 num_replicas=s.replicas,
                 duplicate_window=s.alert_duplicate_window_s,

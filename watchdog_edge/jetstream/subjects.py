@@ -84,6 +84,12 @@ class Subjects:
     def all_alerts(self) -> str:
         return f"{self.prefix}.alerts.>"
 
+    def dead(self, p: int) -> str:
+        return f"{self.prefix}.dead.{p}"
+
+    def all_dead(self) -> str:
+        return f"{self.prefix}.dead.>"
+
     def split(self, subject: str) -> tuple[int, str | None]:
         """``(partition, MQTT topic)`` of an inbound subject; topic None for a tick."""
         parts = subject.split(".", 4)

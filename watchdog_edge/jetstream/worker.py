@@ -142,6 +142,7 @@ class Worker:
             "resumed": 0,
         }
         self.started = time.time()
+        self._dead_logged: dict[str, float] = {}
 
     # --- connection -------------------------------------------------------------------------
     async def connect(self) -> None:
@@ -156,7 +157,8 @@ class Worker:
             allow_reconnect=True,
         )
         self.js = self.nc.jetstream(timeout=5)
-        self.buckets = await ensure_all(self.js, s, s.lease_s)
+        a = self.config.agent
+        self.buckets = await ensure_all(self.js, s, s.lease_s, a.dead_letter_max_count, a.dead_letter_max_bytes)
 
     # --- the main loop ----------------------------------------------------------------------
     async def run(self, stop: asyncio.Event) -> int:
@@ -334,6 +336,7 @@ class Worker:
         assert mon is not None and self.js is not None
         feed, tick, split = mon.feed, mon.tick, self.subjects.split
         alerts: list[tuple[int, Alert]] = []
+        dead: list[tuple[int, DeadLetter]] = []
         last = None
         for msg in msgs:
             d = delivery(msg.reply)
@@ -354,9 +357,11 @@ class Worker:
                 if type(ev) is Alert:
                     alerts.append((d.stream_seq, ev))
                 elif type(ev) is DeadLetter:
-                    self.counters["dead_letters"] += 1
+                    dead.append((d.stream_seq, ev))
         if last is not None:
             part.last_msg = last
+        if dead:
+            await self._publish_dead(part, dead)
         if alerts:
             await self._publish_alerts(part, alerts)
 
@@ -378,6 +383,30 @@ class Worker:
             part.mark = new[-1][0]
             await self.buckets["snapshots"].put(f"p.{part.number}.mark", str(part.mark).encode())
             await self._put_states(part, sorted({a.model for _, a in new}))
+
+    async def _publish_dead(self, part: Partition, dead: list[tuple[int, DeadLetter]]) -> None:
+        """Bad records to the dead-letter stream: raw bytes, reason and detail in headers (rule 4's ids)."""
+        assert self.js is not None
+        subject = self.subjects.dead(part.number)
+        for k, (seq, d) in enumerate(dead):
+            headers = {
+                "Nats-Msg-Id": f"{part.number}-{seq}-{k}",
+                "Wd-Reason": d.reason,
+                "Wd-Topic": d.topic,
+                "Wd-Time": rfc3339(d.t),
+                "Wd-Detail": d.detail.replace("\r", " ").replace("\n", " ")[:500],
+            }
+            await self.js.publish(subject, d.payload, stream=self.settings.dead_letter_stream, headers=headers)
+            self.counters["dead_letters"] += 1
+            if self._dead_logged.get(d.reason, 0.0) + 60.0 <= time.monotonic():
+                self._dead_logged[d.reason] = time.monotonic()
+                log.warning(
+                    "bad record on %s (%s): %s; kept in stream %s (logged once a minute per reason)",
+                    d.topic,
+                    d.reason,
+                    d.detail,
+                    self.settings.dead_letter_stream,
+                )
 
     async def _put_states(self, part: Partition, models: list[str]) -> None:
         mon = part.monitor
