@@ -11,6 +11,7 @@ import asyncio
 import contextlib
 import json
 import os
+import signal
 import subprocess
 import sys
 import threading
@@ -378,3 +379,43 @@ def test_cluster_r3_loses_nothing_when_a_server_and_a_worker_die_under_load(tmp_
         for s in servers:
             s.stop()
     assert rc == 0, workers["w2"].text()[-3000:]
+
+
+def test_a_paused_worker_that_lost_its_leases_writes_nothing_over_its_successor(tmp_path):
+    """SIGSTOP past the lease: the other worker takes over; on SIGCONT the paused one's writes fail and it stands back."""
+    port = free_port()
+    cfg = write_setup(tmp_path, [f"nats://127.0.0.1:{port}"], MODELS, partitions=4)
+    srv = NatsServer(tmp_path / "srv", port=port, mappings=mappings_for(cfg), mqtt=False)
+    msgs = traffic(MODELS, seed=23)
+    workers = {n: start_worker(tmp_path, cfg, n) for n in ("w1", "w2")}
+    try:
+        wait_for(
+            lambda: all_held(srv.url, 4) and len(set(leases(srv.url).values())) == 2,
+            20,
+            "two workers sharing four partitions",
+            lambda: leases(srv.url),
+        )
+        half = len(msgs) // 2
+        publish_nats(srv.url, msgs[:half])
+        time.sleep(0.3)
+        os.kill(workers["w1"].proc.pid, signal.SIGSTOP)
+        wait_for(lambda: all_held(srv.url, 4, by={"w2"}), 15, "w2 holding every partition", lambda: leases(srv.url))
+        publish_nats(srv.url, msgs[half:])
+        os.kill(workers["w1"].proc.pid, signal.SIGCONT)
+        expected = replay_plain(cfg, msgs)
+        n = sum(len(v) for v in expected.values())
+        wait_for(lambda: len(read_alerts(srv.url, cfg, 0.3)) >= n, 30, f"{n} alerts")
+        time.sleep(1.0)
+        alerts = read_alerts(srv.url, cfg)
+        assert len({a["alert_id"] for a in alerts}) == len(alerts), "an alert raised twice"
+        assert {m: alert_keys(v) for m, v in by_model(alerts).items()} == expected
+        assert by_model(alerts) == replay_stream(srv.url, cfg)
+        wait_for(
+            lambda: "lease lost" in workers["w1"].text() or "wrote its snapshot" in workers["w1"].text(),
+            10,
+            "w1 standing back",
+        )
+    finally:
+        codes = {n: w.stop() for n, w in workers.items()}
+        srv.stop()
+    assert codes == {"w1": 0, "w2": 0}, {n: w.text()[-2000:] for n, w in workers.items()}
