@@ -41,9 +41,10 @@ from watchdog_edge.core.settings import parse_config
 from watchdog_edge.errors import ConfigError
 from watchdog_edge.files.configfile import load_cards, load_config
 from watchdog_edge.jetstream.subjects import delivery, mappings, partition_of, topic_to_subject
+from watchdog_edge.jetstream.worker import partition_config, state_key
 from watchdog_edge.replay.recording import RecordLine, replay
 
-pytestmark = pytest.mark.broker
+pytestmark = pytest.mark.nats
 
 MODELS = ["a", "b", "c", "d", "e", "f"]
 
@@ -150,6 +151,22 @@ def test_duplicate_window_must_cover_a_takeover():
                 "models": [{"id": "m", "card": "c", "prediction_topic": "a/m/p", "truth_topic": "a/m/t"}],
             }
         )
+
+
+def test_state_keys_and_partition_configs():
+    assert state_key("pump-7") == "pump-7"
+    assert state_key("pumpe ö") == "x." + "pumpe ö".encode().hex()
+    cfg = parse_config(
+        {
+            "jetstream": {"partitions": 3},
+            "models": [
+                {"id": m, "card": "c", "prediction_topic": f"a/{m}/p", "truth_topic": f"a/{m}/t"} for m in MODELS
+            ],
+        }
+    )
+    parts = [partition_config(cfg, p) for p in range(3)]
+    assert sorted(m.id for pc in parts for m in pc.models) == MODELS
+    assert all(partition_of(m.id, 3) == p for p, pc in enumerate(parts) for m in pc.models)
 
 
 def test_reply_subject_metadata_both_forms():
