@@ -176,6 +176,17 @@ def test_reply_subject_metadata_both_forms():
     assert (d.stream_seq, d.timestamp_ns, d.pending) == (42, 1700000000123456789, 3)
 
 
+def test_no_server_at_start_exits_3_and_a_stop_while_connecting_exits_0(tmp_path):
+    cfg = write_setup(tmp_path, [f"nats://127.0.0.1:{free_port()}"], ["a"], jetstream_extra="start_timeout_s = 1.0")
+    w = start_worker(tmp_path, cfg, "w1")
+    assert w.proc.wait(timeout=30) == 3
+    assert w.stop() == 3 and "cannot reach a NATS server" in w.text()
+    cfg.write_text(cfg.read_text().replace("start_timeout_s = 1.0", "start_timeout_s = 60.0"))
+    w = start_worker(tmp_path, cfg, "w2")
+    time.sleep(1.5)
+    assert w.stop(timeout=10) == 0, w.text()
+
+
 # --- one server ----------------------------------------------------------------------------
 def test_server_partition_function_is_ours(tmp_path):
     """The server's own mapping is the reference for ``partition_of`` (its FNV-1a, modulo N)."""

@@ -20,6 +20,8 @@ RUN_HELP = """Run one JetStream worker: hold a share of the partitions, feed the
 
 Start as many as you like, on one machine or many: they share the partitions through leases in a key-value bucket, and when one stops or dies the others take its partitions within about jetstream.lease_s. A partition's snapshot is kept in a key-value bucket and messages are acknowledged only after a snapshot covers them, so a replacement worker continues where the last snapshot left off and no alert is lost or raised twice.
 
+Stop it with SIGTERM or Ctrl-C: it snapshots and acknowledges its partitions, hands them back and exits 0. A bad config or card exits 2; no server reached within jetstream.start_timeout_s at start exits 3; once connected it reconnects for as long as it takes.
+
 The NATS server needs JetStream and the subject mappings printed by 'watchdog-edge jetstream mappings'; with an MQTT listener (mqtt { port: 1883 }) gateways publish to it unchanged.
 
 \b

@@ -117,6 +117,9 @@ class JetStreamSettings(_Strict):
     snapshot_bucket: str = Field("watchdog_snapshots", description="Key-value bucket of the per-partition snapshots.")
     state_bucket: str = Field("watchdog_state", description="Key-value bucket of the retained state per model.")
     lease_bucket: str = Field("watchdog_leases", description="Key-value bucket of partition leases and live workers.")
+    start_timeout_s: float = Field(
+        10.0, gt=0, description="A worker that reaches no server within this long at start exits with status 3."
+    )
     replicas: int = Field(1, ge=1, le=5, description="Replicas of the streams and buckets the workers create.")
     create_streams: bool = Field(True, description="Create missing streams and buckets at start.")
     input_max_age_s: float = Field(7 * 86400.0, gt=0, description="How long the input stream keeps messages.")

@@ -143,27 +143,63 @@ class Worker:
         }
         self.started = time.time()
         self._dead_logged: dict[str, float] = {}
+        self._errors_logged: dict[str, float] = {}
 
     # --- connection -------------------------------------------------------------------------
     async def connect(self) -> None:
-        """Connect, make the streams and buckets if missing."""
+        """Connect (NoServersError after ``jetstream.start_timeout_s``), make the streams and buckets if missing.
+
+        Once connected, the client reconnects for as long as it takes.
+        """
         s = self.settings
-        self.nc = await nats.connect(
-            servers=s.servers,
-            name=f"watchdog-edge-{self.id}",
-            max_reconnect_attempts=-1,
-            reconnect_time_wait=0.25,
-            connect_timeout=2,
-            allow_reconnect=True,
-        )
+        try:
+            self.nc = await asyncio.wait_for(
+                nats.connect(
+                    servers=s.servers,
+                    name=f"watchdog-edge-{self.id}",
+                    max_reconnect_attempts=-1,
+                    reconnect_time_wait=0.25,
+                    connect_timeout=2,
+                    allow_reconnect=True,
+                    error_cb=self._on_error,
+                    disconnected_cb=self._on_disconnected,
+                    reconnected_cb=self._on_reconnected,
+                ),
+                s.start_timeout_s,
+            )
+        except asyncio.TimeoutError:
+            raise nats.errors.NoServersError() from None
         self.js = self.nc.jetstream(timeout=5)
         a = self.config.agent
         self.buckets = await ensure_all(self.js, s, s.lease_s, a.dead_letter_max_count, a.dead_letter_max_bytes)
 
+    async def _on_error(self, e: Exception) -> None:
+        now = time.monotonic()
+        key = type(e).__name__
+        if self._errors_logged.get(key, 0.0) + 60.0 <= now:  # once a minute per kind
+            self._errors_logged[key] = now
+            log.warning("NATS connection: %s (logged once a minute per kind)", e or key)
+
+    async def _on_disconnected(self) -> None:
+        log.warning("lost the NATS server; reconnecting (unacknowledged messages wait in the stream)")
+
+    async def _on_reconnected(self) -> None:
+        url = self.nc.connected_url if self.nc is not None else None
+        log.info("reconnected to %s", url.netloc if url is not None else "a NATS server")
+
     # --- the main loop ----------------------------------------------------------------------
     async def run(self, stop: asyncio.Event) -> int:
         """Hold a share of the partitions and work on them until ``stop`` is set."""
-        await self.connect()
+        connecting = asyncio.ensure_future(self.connect())
+        stopping = asyncio.ensure_future(stop.wait())
+        await asyncio.wait([connecting, stopping], return_when=asyncio.FIRST_COMPLETED)
+        if not connecting.done():  # a signal while still connecting
+            connecting.cancel()
+            with contextlib.suppress(asyncio.CancelledError, Exception):
+                await connecting
+            return 0
+        stopping.cancel()
+        connecting.result()
         log.info(
             "worker %s on %s: %d partitions, %d models (advisory: the alerts speak of the models' error, "
             "not of the plant; site rules and qualified people decide)",
