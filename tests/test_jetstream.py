@@ -183,7 +183,7 @@ def test_no_server_at_start_exits_3_and_a_stop_while_connecting_exits_0(tmp_path
     assert w.stop() == 3 and "cannot reach a NATS server" in w.text()
     cfg.write_text(cfg.read_text().replace("start_timeout_s = 1.0", "start_timeout_s = 60.0"))
     w = start_worker(tmp_path, cfg, "w2")
-    time.sleep(1.5)
+    wait_for(lambda: "Connect call failed" in w.text(), 30, "the worker trying to connect", w.text)
     assert w.stop(timeout=10) == 0, w.text()
 
 
