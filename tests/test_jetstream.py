@@ -176,6 +176,7 @@ def test_reply_subject_metadata_both_forms():
     assert (d.stream_seq, d.timestamp_ns, d.pending) == (42, 1700000000123456789, 3)
 
 
+@pytest.mark.slow
 def test_no_server_at_start_exits_3_and_a_stop_while_connecting_exits_0(tmp_path):
     cfg = write_setup(tmp_path, [f"nats://127.0.0.1:{free_port()}"], ["a"], jetstream_extra="start_timeout_s = 1.0")
     w = start_worker(tmp_path, cfg, "w1")
@@ -212,6 +213,7 @@ def test_server_partition_function_is_ours(tmp_path):
     assert got == {m: partition_of(m, 7) for m in ids}
 
 
+@pytest.mark.slow
 def test_mqtt_gateway_traffic_gives_the_alerts_of_a_replay(tmp_path):
     """Gateways unchanged: paho publishes to the server's MQTT listener; the alerts equal a replay's."""
     port = free_port()
@@ -308,6 +310,7 @@ def test_mqtt_gateway_traffic_gives_the_alerts_of_a_replay(tmp_path):
     assert rc == 0, w.text()
 
 
+@pytest.mark.slow
 def test_killed_worker_partitions_are_taken_over_and_alerts_equal_a_replay(tmp_path):
     port = free_port()
     cfg = write_setup(tmp_path, [f"nats://127.0.0.1:{port}"], MODELS, partitions=6)
@@ -353,6 +356,7 @@ def test_killed_worker_partitions_are_taken_over_and_alerts_equal_a_replay(tmp_p
 
 
 # --- a three-server cluster ----------------------------------------------------------------
+@pytest.mark.slow
 def test_cluster_r3_loses_nothing_when_a_server_and_a_worker_die_under_load(tmp_path):
     ports = [free_port() for _ in range(3)]
     urls = [f"nats://127.0.0.1:{p}" for p in ports]
@@ -409,6 +413,7 @@ def test_cluster_r3_loses_nothing_when_a_server_and_a_worker_die_under_load(tmp_
     assert rc == 0, workers["w2"].text()[-3000:]
 
 
+@pytest.mark.slow
 def test_a_paused_worker_that_lost_its_leases_writes_nothing_over_its_successor(tmp_path):
     """SIGSTOP past the lease: the other worker takes over; on SIGCONT the paused one's writes fail and it stands back."""
     port = free_port()
