@@ -124,6 +124,7 @@ class Worker:
         self.held: dict[int, Partition] = {}
         self.nc: NATS | None = None
         self.js: JetStreamContext | None = None
+        self.lease_js: JetStreamContext | None = None
         self.buckets: dict[str, KeyValue] = {}
         self.mqtt_alert_subjects = {
             m.id: topic_to_subject(config.broker.topics.alerts.format(model=m.id, agent=config.agent.name))
@@ -172,6 +173,9 @@ class Worker:
         self.js = self.nc.jetstream(timeout=5)
         a = self.config.agent
         self.buckets = await ensure_all(self.js, s, s.lease_s, a.dead_letter_max_count, a.dead_letter_max_bytes)
+        # lease calls wait at most a third of the lease: a slow one must not outlast the lease itself
+        self.lease_js = self.nc.jetstream(timeout=max(0.5, s.lease_s / 3))
+        self.buckets["leases"] = await self.lease_js.key_value(s.lease_bucket)
 
     async def _on_error(self, e: Exception) -> None:
         now = time.monotonic()
@@ -223,8 +227,7 @@ class Worker:
 
     async def _leases(self) -> None:
         leases = self.buckets["leases"]
-        await leases.put(f"w.{self.id}", json.dumps(self.status()).encode())
-        # renew what we hold; a failed compare-and-set means the lease lapsed and someone took it
+        # renew what we hold first; a failed compare-and-set means the lease lapsed and someone took it
         for p, part in list(self.held.items()):
             if part.task is not None and part.task.done():
                 self.held.pop(p, None)
@@ -235,12 +238,12 @@ class Worker:
                 log.warning("partition %d: lease lost to another worker; stopping work on it", p)
                 self.counters["lost"] += 1
                 self._drop(p)
-        try:
-            keys = await leases.keys()
-        except nats.js.errors.NoKeysError:
-            keys = []
-        live = max(1, sum(1 for k in keys if k.startswith("w.")))
-        taken = {int(k[2:]) for k in keys if k.startswith("p.")}
+        await leases.put(f"w.{self.id}", json.dumps(self.status()).encode())
+        # the live workers: one stream request (no consumer to make, unlike listing the keys)
+        bucket = self.settings.lease_bucket
+        assert self.lease_js is not None
+        info = await self.lease_js.stream_info(f"KV_{bucket}", subjects_filter=f"$KV.{bucket}.w.>")
+        live = max(1, len(info.state.subjects or {}))
         share = math.ceil(self.settings.partitions / live)
         working = [p for p, part in self.held.items() if not part.release]
         if len(working) > share:
@@ -255,7 +258,7 @@ class Worker:
             if len(working) >= share:
                 break
             p = (start + i) % n
-            if p in taken or p in self.held:
+            if p in self.held:
                 continue
             try:
                 rev = await leases.create(f"p.{p}", self.id.encode())
@@ -508,9 +511,10 @@ class Worker:
         tasks = [part.task for part in held if part.task is not None]
         if tasks:
             await asyncio.wait(tasks, timeout=10)
-        if self.buckets:
-            with contextlib.suppress(Exception):
-                await self.buckets["leases"].delete(f"w.{self.id}")
+        if self.lease_js is not None:
+            with contextlib.suppress(Exception):  # gone at once, not after lease_s
+                bucket = self.settings.lease_bucket
+                await self.lease_js.purge_stream(f"KV_{bucket}", subject=f"$KV.{bucket}.w.{self.id}")
         if self.nc is not None:
             with contextlib.suppress(Exception):
                 await asyncio.wait_for(self.nc.flush(), 5)
