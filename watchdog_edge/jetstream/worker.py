@@ -286,13 +286,14 @@ class Worker:
             entry = await snaps.get(f"p.{p}")
         except nats.js.errors.KeyNotFoundError:
             entry = None
+        part.snapshot_rev = (entry.revision or 0) if entry is not None else 0
         if entry is not None and entry.value:
             data = json.loads(zlib.decompress(entry.value))
             part.monitor = Monitor.restore(cfg, cards, data["monitor"])
             part.applied = part.snapshotted = int(data["seq"])
-            part.snapshot_rev = entry.revision or 0
         else:
             part.monitor = Monitor(cfg, cards)
+            part.applied = part.snapshotted = 0
         try:
             mark = await snaps.get(f"p.{p}.mark")
             part.mark = int(mark.value or b"0")
