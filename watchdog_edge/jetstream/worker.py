@@ -5,9 +5,11 @@ The rules of this file, in the order a partition meets them:
 1. Leases. A partition is held by the worker whose key ``p.<n>`` is in the lease bucket; the
    bucket's age limit is ``lease_s``, so a key lapses when its holder stops renewing it (every
    ``lease_s / 3``, compare-and-set on the key's revision). Every worker also keeps a key
-   ``w.<worker id>`` there: the live workers. A worker holds about its share,
-   ceil(partitions / live workers): it claims free partitions (create-if-absent) while under
-   it and hands one back (snapshot, acknowledge, delete its key) while over it.
+   ``w.<worker id>`` there: the live workers, counted from the bucket's subjects in one
+   request. A worker holds about its share, ceil(partitions / live workers): it claims free
+   partitions (create-if-absent) while under it and hands the excess back (snapshot,
+   acknowledge, delete its key) while over it. Renewals go first in a round, and each lease
+   call gives up after ``lease_s / 3``, so one slow call cannot outlast the lease.
 2. Claim. The new holder reads the partition's snapshot (or starts fresh), writes it back at
    once (compare-and-set: a previous holder that still runs cannot write over it from now
    on), and re-makes the partition's durable consumer to deliver from the sequence after the
@@ -17,7 +19,8 @@ The rules of this file, in the order a partition meets them:
    never this worker's clock: a replacement worker, and a replay of the stream, compute the
    same alerts with the same ids. Timer ticks are messages too: the holder publishes one to
    ``PREFIX.in.<n>.t`` every ``agent.tick_every_s``.
-4. Alerts. The alerts of a fetched batch are published to the alert stream, each with its
+4. Alerts. Bad records go to the dead-letter stream first (message id: partition, stream
+   sequence, index). The alerts of a fetched batch are published to the alert stream, each with its
    ``alert_id`` as ``Nats-Msg-Id``, and their publish acknowledgements awaited. The stream
    sequence of the last message whose alerts are stored is kept in the snapshot bucket
    (``p.<n>.mark``); a holder that feeds those messages again after a claim publishes none of
