@@ -81,7 +81,7 @@ def _link(b: Broker, tmp_path, taker: _Taker, protocol: str = "3.1.1", fast_paho
         host="localhost" if "tls" in kw else b.host,
         port=b.port,
         protocol=protocol,
-        keepalive=5,
+        keepalive_s=5,
         reconnect_min_s=0.1,
         reconnect_max_s=0.3,
         **kw,
@@ -352,7 +352,7 @@ def test_a_busy_spell_longer_than_the_keepalive_is_no_disconnect(tmp_path, broke
     # keepalive must not be taken for a dead connection when it polls again (the broker itself
     # allows 1.5 keepalives, MQTT 3.1.1 section 3.1.2.10, from memory).
     events: list = []
-    s = BrokerSettings(host=broker.host, port=broker.port, keepalive=5)
+    s = BrokerSettings(host=broker.host, port=broker.port, keepalive_s=5)
     link = Link(s, "busy-caller", ["a/b"], "st/busy", b"off", tmp_path, lambda m: None, events.append)
     link.start()
     time.sleep(5.5)
