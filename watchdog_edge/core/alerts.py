@@ -12,7 +12,8 @@ Rules of this file:
    - in an episode, a severity the episode has not yet had above it (warning -> critical):
      a new "raised" alert at the new severity, same episode start. A check whose level steps
      down from critical to warning raises nothing new: the episode keeps its highest severity
-     until it clears (no alerts flapping between severities; the retained level shows warning);
+     until it clears, and so does the check's ``level`` in the retained state (no alerts
+     flapping between severities); the check's own figures show warning;
    - in an episode -> normal: one "cleared" alert carrying the episode's highest severity.
 3. A new model version ends the old version's open episodes with "cleared" alerts, since
    their windows are gone; the new version starts quiet.
