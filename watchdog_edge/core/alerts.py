@@ -13,6 +13,9 @@ Rules of this file:
    their windows are gone; the new version starts quiet.
 4. ``alert_id`` is a digest of agent, model, model version, check, episode start, state and
    severity. A raise and its clear differ; a re-send of the same alert has the same id.
+5. ``episode`` is a digest of agent, model, model version, check and episode start: the raise,
+   its escalation and its clear carry the same one. A clear lists in ``closes`` the severities
+   whose raises were published in the episode, lowest first.
 """
 
 from __future__ import annotations
@@ -24,6 +27,18 @@ from watchdog_edge.core.checks.base import Verdict
 from watchdog_edge.core.events import Alert
 
 _RANK = {"normal": 0, "warning": 1, "critical": 2}
+
+
+def episode_id(agent: str, model: str, version: str | None, check: str, episode_start: float) -> str:
+    """Stable id of one episode, shared by its raises and its clear.
+
+    >>> episode_id("gw", "m", None, "gap", 10.0) == episode_id("gw", "m", None, "gap", 10.0)
+    True
+    >>> episode_id("gw", "m", None, "gap", 10.0) == episode_id("gw", "m", None, "gap", 11.0)
+    False
+    """
+    key = "\x1f".join(["episode", agent, model, version or "", check, repr(float(episode_start))])
+    return hashlib.sha256(key.encode()).hexdigest()[:24]
 
 
 def alert_id(
@@ -61,6 +76,7 @@ class AlertBook:
         t: float,
         summary: str,
         figures: dict[str, Any],
+        closes: tuple[str, ...] = (),
     ) -> Alert:
         return Alert(
             alert_id(self.agent, self.model, version, check, start, state, severity),
@@ -73,6 +89,8 @@ class AlertBook:
             t,
             summary,
             figures,
+            episode_id(self.agent, self.model, version, check, start),
+            closes,
         )
 
     def update(self, check: str, verdict: Verdict, t: float, version: str | None) -> Alert | None:
@@ -83,13 +101,22 @@ class AlertBook:
                 return None
             del self._open[check]
             return self._alert(
-                check, version, ep["start"], "cleared", ep["severity"], t, verdict.summary, verdict.figures
+                check,
+                version,
+                ep["start"],
+                "cleared",
+                ep["severity"],
+                t,
+                verdict.summary,
+                verdict.figures,
+                _closes(ep),
             )
         if ep is None:
-            self._open[check] = {"start": t, "severity": verdict.level}
+            self._open[check] = {"start": t, "severity": verdict.level, "published": [verdict.level]}
             return self._alert(check, version, t, "raised", verdict.level, t, verdict.summary, verdict.figures)
         if _RANK[verdict.level] > _RANK[ep["severity"]]:
             ep["severity"] = verdict.level
+            ep["published"].append(verdict.level)
             return self._alert(
                 check, version, ep["start"], "raised", verdict.level, t, verdict.summary, verdict.figures
             )
@@ -98,14 +125,27 @@ class AlertBook:
     def close_all(self, t: float, version: str | None, reason: str) -> list[Alert]:
         """End every open episode (a new model version arrived)."""
         out = [
-            self._alert(c, version, ep["start"], "cleared", ep["severity"], t, reason, {})
+            self._alert(c, version, ep["start"], "cleared", ep["severity"], t, reason, {}, _closes(ep))
             for c, ep in self._open.items()
         ]
         self._open.clear()
         return out
 
     def snapshot(self) -> dict[str, Any]:
-        return {c: dict(ep) for c, ep in self._open.items()}
+        return {c: dict(ep, published=list(ep["published"])) for c, ep in self._open.items()}
 
     def restore(self, data: dict[str, Any]) -> None:
-        self._open = {c: {"start": float(ep["start"]), "severity": ep["severity"]} for c, ep in data.items()}
+        # snapshots made before episodes kept their published severities know only the highest
+        self._open = {
+            c: {
+                "start": float(ep["start"]),
+                "severity": ep["severity"],
+                "published": list(ep.get("published", [ep["severity"]])),
+            }
+            for c, ep in data.items()
+        }
+
+
+def _closes(ep: dict[str, Any]) -> tuple[str, ...]:
+    """The severities whose raises were published in an episode, lowest first."""
+    return tuple(sorted(set(ep["published"]), key=_RANK.__getitem__))
