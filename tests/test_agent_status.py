@@ -6,6 +6,8 @@ so any status that shows the alert can only come from the refresh on alerts.
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 from test_agent import ALERTS, STATUS, AgentProc, Client, send_pairs, write_setup
 
@@ -43,4 +45,44 @@ def test_status_is_refreshed_on_every_alert_not_only_on_its_period(tmp_path, bro
     assert rc == 0, agent.text()
     # the status after the stop says offline, and no later "online" overtakes it
     watcher.wait_for(lambda: watcher.json_on(STATUS)[-1]["connection"] == "offline", what="status offline")
+    watcher.close()
+
+
+COMMANDS = "watchdog/agents/edge-1/commands/planned-work"
+
+
+def test_planned_work_by_command_holds_raises_live_and_replay_gives_the_same_alerts(tmp_path, broker):
+    from test_agent import STATE, _replay_alerts
+
+    cfg = write_setup(tmp_path, broker)
+    watcher = Client(broker, "watcher", [ALERTS, STATE, STATUS])
+    recording = tmp_path / "live.jsonl"
+    agent = AgentProc(cfg, "--record", str(recording))
+    try:
+        agent.wait_ready()
+        operator = Client(broker, "operator")
+        begin = {"action": "begin", "name": "meter-calibration", "duration_s": 600, "reason": "meter calibration"}
+        assert operator.publish(COMMANDS, json.dumps(begin))
+        watcher.wait_for(
+            lambda: watcher.on(STATE) and (watcher.json_on(STATE)[-1]["planned_work"] or {}).get("name"),
+            what="the window in the retained state",
+        )
+        assert watcher.json_on(STATUS)[-1]["planned_work"][0]["name"] == "meter-calibration"
+        pub = Client(broker, "publisher")
+        send_pairs(pub, 0, 80, 3.0, np.random.default_rng(1))
+        watcher.wait_for(lambda: watcher.json_on(STATE)[-1]["held_raises"] >= 1, what="a held raise in the state")
+        assert watcher.json_on(ALERTS) == []  # held back, not published
+        assert operator.publish(COMMANDS, json.dumps({"action": "end", "name": "meter-calibration"}))
+        watcher.wait_for(lambda: watcher.json_on(ALERTS), what="the held raise, published at the end")
+        (released,) = watcher.json_on(ALERTS)
+        assert released["state"] == "raised" and "meter-calibration" in released["note"]
+        watcher.wait_for(lambda: watcher.json_on(STATE)[-1]["planned_work"] is None, what="the window gone")
+        assert "planned work 'meter-calibration' began" in agent.text()
+        operator.close()
+        pub.close()
+    finally:
+        rc = agent.stop()
+    assert rc == 0, agent.text()
+    # the commands are in the recording like any message: replay holds and releases the same way
+    assert _replay_alerts(cfg, recording) == watcher.json_on(ALERTS)
     watcher.close()

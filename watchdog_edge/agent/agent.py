@@ -44,7 +44,7 @@ from watchdog_edge import __version__
 from watchdog_edge.agent.link import Inbound, Link, LinkEvent, outbound_topic, status_payload
 from watchdog_edge.agent.store import OutboxItem, Store, state_path
 from watchdog_edge.core.cards import ModelCard
-from watchdog_edge.core.events import Alert, DeadLetter, rfc3339
+from watchdog_edge.core.events import Alert, DeadLetter, PlannedWork, rfc3339
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import Config
 from watchdog_edge.errors import BrokerError
@@ -175,6 +175,8 @@ class Agent:
             for flt in (m.prediction_topic, m.truth_topic):
                 if flt not in subs:
                     subs.append(flt)
+        # planned-work commands arrive as records the core routes (and the journal keeps)
+        subs.append(self.monitor.command_topic)
         self.link = Link(
             b,
             b.client_id or f"watchdog-edge-{a.name}",
@@ -349,7 +351,7 @@ class Agent:
         link.flush()
         if rec is not None and rows:
             rec.flush()
-        if outbox:
+        if outbox or alerted:
             self._publish_states(sorted(alerted))
             self._refresh_status()  # received and outbox depth as they are now
         if self.events:
@@ -385,6 +387,24 @@ class Agent:
                     ev.topic,
                     ev.reason,
                     ev.detail,
+                )
+            elif isinstance(ev, PlannedWork):
+                w = ev.window
+                covered = w["models"] or self.monitor.models()
+                alerted.update(covered)
+                log.warning(
+                    "planned work '%s' %s (%s, %s to %s%s): %s",
+                    w["name"],
+                    ev.state,
+                    w["source"],
+                    w["start"],
+                    w["end"],
+                    f", {w['reason']}" if w["reason"] else "",
+                    (
+                        f"raises of {', '.join(covered)} are held back and counted until it ends"
+                        if ev.state == "began"
+                        else "episodes still open are published now, with a note"
+                    ),
                 )
             else:
                 log.info("%s", ev)

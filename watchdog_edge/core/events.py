@@ -78,4 +78,13 @@ class VersionStarted:
     version: str | None
 
 
-Event = Union[Alert, DeadLetter, VersionStarted]
+@dataclass(frozen=True, slots=True)
+class PlannedWork:
+    """A planned-work window began or ended (``window`` as ``planned.Window.to_dict`` gives it)."""
+
+    t: float
+    state: str  # "began" | "ended"
+    window: dict[str, Any]
+
+
+Event = Union[Alert, DeadLetter, VersionStarted, PlannedWork]
