@@ -20,7 +20,7 @@ Where it reads:
   a state file  the agent's own copy, opened read-only; safe while
                 the agent runs, and used when the broker is away
 
-With --config it takes the broker's address and TLS CA from the agent's config and, if the broker cannot be reached, reads the agent's state file instead (and says so). Give an operator's credentials with --user and --password-file: the agent's own account may not read watchdog/#.
+With --config it takes the broker's address and TLS CA from the agent's config and, if the broker cannot be reached, reads the agent's state file instead (and says so). Without --broker-user it uses the config's account; under the shipped ACL the agent's own account may not read watchdog/#, so give a reading account (viewer in deploy/mosquitto-watchdog.acl) with --broker-user and --broker-password-file.
 
 An agent is 'late' when its status says online but its heartbeat is older than three status periods: it may have died without its last will reaching the broker.
 
@@ -31,7 +31,7 @@ This is an advisory monitor of the model's error, not a protection system.
 \b
 Examples:
   watchdog-edge status --config /etc/watchdog-edge/config.toml
-  watchdog-edge status --broker central.example:1883 --user ops --password-file ~/.ops-pass
+  watchdog-edge status --broker central.example:1883 --broker-user viewer --broker-password-file ~/.viewer-pass
   watchdog-edge status --state-file /var/lib/watchdog-edge/state/state.sqlite --json
   watchdog-edge status --broker 127.0.0.1:1883 --model pump --json | jq .models
 """
@@ -46,7 +46,7 @@ It binds to 127.0.0.1 by default; a wider --listen is for a scraper on another h
 
 \b
 Example:
-  watchdog-edge metrics --config /etc/watchdog-edge/config.toml --user ops --password-file /etc/watchdog-edge/ops.pass
+  watchdog-edge metrics --config /etc/watchdog-edge/config.toml --broker-user viewer --broker-password-file /etc/watchdog-edge/viewer.pass
   curl -H 'Accept: application/openmetrics-text' http://127.0.0.1:9710/metrics
 """
 
@@ -75,6 +75,12 @@ def _access(
         host, port = cfg.broker.host, cfg.broker.port
         if ca is None and cfg.broker.tls is not None and cfg.broker.tls.ca_file:
             ca = cfg.resolve(cfg.broker.tls.ca_file)
+        if user is None and cfg.broker.username:
+            # the agent's own account: enough where no ACL limits it (the shipped ACL does)
+            from watchdog_edge.agent.link import read_password
+
+            secret = read_password(cfg.broker, cfg.base_dir)
+            return BrokerAccess(host, port, cfg.broker.username, None, ca, client_id, secret), cfg
     if broker:
         h, sep, p = broker.rpartition(":")
         if not sep or not p.isdigit() or not h:
@@ -90,8 +96,12 @@ def status(
     broker: Optional[str] = typer.Option(
         None, "--broker", "-b", help="HOST:PORT of the broker to read (overrides --config)."
     ),
-    user: Optional[str] = typer.Option(None, "--user", "-u", help="Broker user name (an operator's account)."),
-    password_file: Optional[Path] = typer.Option(None, "--password-file", help="File holding that user's password."),
+    user: Optional[str] = typer.Option(
+        None, "--broker-user", "-u", help="Broker user name (a reading account); default the config's."
+    ),
+    password_file: Optional[Path] = typer.Option(
+        None, "--broker-password-file", help="File holding that user's broker password."
+    ),
     ca_file: Optional[Path] = typer.Option(None, "--ca-file", help="CA certificate: connect with TLS."),
     state_file: Optional[Path] = typer.Option(
         None, "--state-file", help="Read this agent state file (read-only) instead of a broker."
@@ -144,8 +154,12 @@ def metrics(
     broker: Optional[str] = typer.Option(
         None, "--broker", "-b", help="HOST:PORT of the broker to read (overrides --config)."
     ),
-    user: Optional[str] = typer.Option(None, "--user", "-u", help="Broker user name (an operator's account)."),
-    password_file: Optional[Path] = typer.Option(None, "--password-file", help="File holding that user's password."),
+    user: Optional[str] = typer.Option(
+        None, "--broker-user", "-u", help="Broker user name (a reading account); default the config's."
+    ),
+    password_file: Optional[Path] = typer.Option(
+        None, "--broker-password-file", help="File holding that user's broker password."
+    ),
     ca_file: Optional[Path] = typer.Option(None, "--ca-file", help="CA certificate: connect with TLS."),
     topic: list[str] = typer.Option(["watchdog/#"], "--topic", "-t", help="Topic filter to read; repeat for more."),
     listen: str = typer.Option("127.0.0.1:9710", "--listen", help="ADDRESS:PORT to serve /metrics on."),

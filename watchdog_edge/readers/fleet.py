@@ -66,12 +66,13 @@ class BrokerAccess:
     password_file: Path | None = None
     ca_file: Path | None = None
     client_id: str | None = None
+    password: str | None = field(default=None, repr=False)  # already read (the agent config's source)
 
     def client(self) -> paho.Client:
         """A paho client set up with these credentials (clean session: a reader keeps no queue)."""
         c = paho.Client(CallbackAPIVersion.VERSION2, client_id=self.client_id or "", clean_session=True)
         if self.username:
-            password = None
+            password = self.password
             if self.password_file is not None:
                 try:
                     password = self.password_file.read_text(encoding="utf-8").rstrip("\r\n")
