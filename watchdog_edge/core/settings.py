@@ -64,7 +64,7 @@ class TopicTemplates(_Strict):
     state: str = "watchdog/{model}/state"
     status: str = "watchdog/agents/{agent}/status"
     planned_work: str = Field(
-        "watchdog/agents/{agent}/commands/planned-work",
+        default="watchdog/agents/{agent}/commands/planned-work",
         description="Inbound: planned-work commands for this agent; let only operators publish here (deploy/acl).",
     )
 
