@@ -31,8 +31,8 @@ This is an advisory monitor of the model's error, not a protection system.
 \b
 Examples:
   watchdog-edge status --config /etc/watchdog-edge/config.toml
-  watchdog-edge status --broker central.example:1883 --broker-user viewer --broker-password-file ~/.viewer-pass
-  watchdog-edge status --state-file /var/lib/watchdog-edge/state/state.sqlite --json
+  watchdog-edge status -b central:8883 -u viewer --broker-password-file ~/.viewer-pass
+  watchdog-edge status --state-file /var/lib/watchdog-edge/state.sqlite --json
   watchdog-edge status --broker 127.0.0.1:1883 --model pump --json | jq .models
 """
 
