@@ -220,3 +220,33 @@ def test_config_windows_are_validated_with_the_key_and_the_rule(entry, words):
 def test_a_window_naming_an_unknown_model_is_refused_at_start():
     with pytest.raises(ConfigError, match="planned_work\\[cleaning\\].models: 'pump' is not a model"):
         make([{"name": "cleaning", "models": ["pump"], "daily_at": "02:00", "duration_s": 60}])
+
+
+def test_a_daily_window_occurs_once_a_day_through_both_daylight_saving_changes():
+    from datetime import datetime, timezone
+    from zoneinfo import ZoneInfo
+
+    from watchdog_edge.core.planned import Schedule
+    from watchdog_edge.core.settings import PlannedWorkSettings
+
+    zone = ZoneInfo("Europe/Berlin")
+    s = Schedule([PlannedWorkSettings(name="flush", daily_at="02:30", duration_s=1800, timezone="Europe/Berlin")])
+    t = datetime(2026, 1, 1, tzinfo=timezone.utc).timestamp()
+    end_of_year = datetime(2027, 1, 1, tzinfo=timezone.utc).timestamp()
+    starts = []
+    for _ in range(2000):  # bounded: two edges a day
+        t = s.next_change(t)
+        if t >= end_of_year:
+            break
+        w = s.active("m", t)
+        if w is not None and w.start == t:
+            starts.append(w)
+            assert w.end - w.start == 1800
+    assert len(starts) == 365
+    local = {datetime.fromtimestamp(w.start, zone).strftime("%H:%M") for w in starts}
+    # EU summer time begins on the last Sunday of March (2026-03-29) at 02:00 local, so 02:30
+    # does not exist that day and the window begins at 03:30 (rule from memory)
+    assert local == {"02:30", "03:30"}
+    odd = [datetime.fromtimestamp(w.start, zone).date().isoformat() for w in starts]
+    odd = [d for d, w in zip(odd, starts) if datetime.fromtimestamp(w.start, zone).hour != 2]
+    assert odd == ["2026-03-29"]
