@@ -250,3 +250,18 @@ def test_a_daily_window_occurs_once_a_day_through_both_daylight_saving_changes()
     odd = [datetime.fromtimestamp(w.start, zone).date().isoformat() for w in starts]
     odd = [d for d, w in zip(odd, starts) if datetime.fromtimestamp(w.start, zone).hour != 2]
     assert odd == ["2026-03-29"]
+
+
+def test_status_counts_every_published_alert_by_check_state_and_severity():
+    mon = make()
+    events = []
+    for kind, t, topic, payload in traffic():
+        if t - T0 > 2000:  # the feed_stop warning is open
+            break
+        events += mon.tick(t) if kind == "tick" else mon.feed(topic, payload, t)
+    # a new model version closes the open episode with a clear of its own
+    events += mon.feed("m/pred", json.dumps({"id": "x", "value": 1.0, "model_version": "v2"}).encode(), T0 + 2001)
+    published = [a for a in events if isinstance(a, Alert)]
+    assert [(a.state, a.severity) for a in published] == [("raised", "warning"), ("cleared", "warning")]
+    assert mon.status()["alerts"] == {"feed_stop": {"raised": {"warning": 1}, "cleared": {"warning": 1}}}
+    assert mon.state("m")["last_alert"]["state"] == "cleared"

@@ -172,13 +172,14 @@ class ModelTrack:
 
     def _new_version(self, p: Prediction, out: list[Event]) -> None:
         if self.version_seen or self.version is not None:
-            out.extend(
-                self.book.close_all(
-                    p.t,
-                    self.version,
-                    f"Model version {p.model_version} replaced {self.version}; live windows start afresh.",
-                )
+            closed = self.book.close_all(
+                p.t,
+                self.version,
+                f"Model version {p.model_version} replaced {self.version}; live windows start afresh.",
             )
+            for a in closed:
+                self._note(a)
+            out.extend(closed)
             for check in self.checks.values():
                 check.reset()
         out.append(VersionStarted(self.settings.id, p.t, self.version, p.model_version))
