@@ -51,6 +51,7 @@ class Window:
     by: str | None = None
 
     def covers(self, model: str) -> bool:
+        """True when this window holds ``model``'s raises."""
         return self.models is None or model in self.models
 
     def to_dict(self) -> dict[str, Any]:
@@ -66,6 +67,7 @@ class Window:
         }
 
     def snapshot(self) -> dict[str, Any]:
+        """Plain data with times as Unix seconds (``restore`` reads it back)."""
         return {
             "name": self.name,
             "start": self.start,
@@ -78,6 +80,7 @@ class Window:
 
     @classmethod
     def restore(cls, d: dict[str, Any]) -> Window:
+        """The window ``snapshot`` gave."""
         models = d.get("models")
         return cls(
             d["name"],
@@ -215,7 +218,9 @@ class Schedule:
         return "began", w
 
     def snapshot(self) -> list[dict[str, Any]]:
+        """The command windows (config windows come from the config again)."""
         return [w.snapshot() for w in self.commands.values()]
 
     def restore(self, data: list[dict[str, Any]]) -> None:
+        """Take back the command windows of a snapshot."""
         self.commands = {d["name"]: Window.restore(d) for d in data}

@@ -37,6 +37,7 @@ class FleetCollector(Collector):
         self.clock = clock
 
     def collect(self) -> Iterator[Metric]:
+        """One family per metric, built from the latest status and state of every agent."""
         v = self.view.copy()
         now = self.clock()
         p = _PREFIX
