@@ -49,6 +49,7 @@ def test_the_real_agent_works_under_the_shipped_acl(tmp_path):
     import numpy as np
     from broker import Broker
     from test_agent import AgentProc, Client
+    from test_readers import cli
 
     from watchdog_edge.core.cards import ModelCard
     from watchdog_edge.files.cardfile import save_card
@@ -126,10 +127,24 @@ enabled = false
             operator.wait_for(lambda: operator.on("watchdog/steam-flow/state"), what="retained state under the ACL")
             status = operator.json_on("watchdog/agents/boiler-house-1/status")
             assert status and status[-1]["connection"] == "online"
-            operator.publish(cmd, json.dumps({"action": "begin", "name": "from-operator", "duration_s": 60}))
-            operator.wait_for(
-                lambda: "planned work 'from-operator' began" in agent.text(), what="the operator's command"
-            )
+            # the operator's tool: the command goes out and the agent's status confirms it
+            (tmp_path / "op.pass").write_text(secret["operator"])
+            (tmp_path / "viewer.pass").write_text(secret["viewer"])
+            where = ["--agent", "boiler-house-1", "--broker", f"127.0.0.1:{broker.port}"]
+            op = ["--broker-user", "operator", "--broker-password-file", str(tmp_path / "op.pass")]
+            begin = ["planned-work", "begin", "from-operator", *where, "--for", "60", "--model", "steam-flow"]
+            r = cli(*begin, "--reason", "meter check", *op)
+            assert r.returncode == 0, r.stdout + r.stderr
+            assert "planned work 'from-operator' began on boiler-house-1" in r.stdout
+            assert "planned work 'from-operator' began" in agent.text()
+            # a viewer is refused by the broker (MQTT 5 reason code), and the tool says so
+            r = cli(
+                "planned-work", "begin", "from-viewer-tool", *where, "--for", "60",
+                "--broker-user", "viewer", "--broker-password-file", str(tmp_path / "viewer.pass"),
+            )  # fmt: skip
+            assert r.returncode == 2 and "refused the command" in r.stderr, r.stdout + r.stderr
+            r = cli("planned-work", "end", "from-operator", *where, *op)
+            assert r.returncode == 0 and "'from-operator' ended" in r.stdout, r.stdout + r.stderr
             assert "from-viewer" not in agent.text()
             for c in (model, meter, viewer):
                 c.close()

@@ -1,4 +1,4 @@
-"""The ``status`` and ``metrics`` commands (registered on the main app by ``register``)."""
+"""The ``status``, ``metrics`` and ``planned-work`` commands (registered on the main app by ``register``)."""
 
 from __future__ import annotations
 
@@ -177,7 +177,77 @@ def metrics(
     raise typer.Exit(code)
 
 
+PLANNED_HELP = """Begin or end planned work on an agent: its raises (of the given models, or all) are held back and counted while the window runs; when it ends, episodes still open are published as raised with a note. The checks keep computing throughout.
+
+It publishes a command on the agent's planned-work topic (watchdog/agents/AGENT/commands/planned-work by default) and then watches the agent's status until the window shows begun or ended. The shipped ACL lets only the operator account publish there; a refusal is reported (MQTT 5 reason code). A command the agent cannot apply is set aside as a dead letter with reason bad_command ('watchdog-edge deadletters' says why).
+
+Windows that recur or are known in advance belong in the config ([[planned_work]]).
+
+\\b
+Examples:
+  watchdog-edge planned-work begin meter-calibration --agent boiler-house-1 --for 3600 \\
+      --model steam-flow --reason "flow meter calibration" --broker-user operator --broker-password-file ~/.op-pass
+  watchdog-edge planned-work begin plant-stop --agent boiler-house-1 --until 2026-12-03T06:00:00Z ...
+  watchdog-edge planned-work end meter-calibration --agent boiler-house-1 ...
+"""
+
+
+def planned_work(
+    action: str = typer.Argument(..., help="begin or end."),
+    name: str = typer.Argument(..., help="The window's name (end takes the name begin gave)."),
+    agent: str = typer.Option(..., "--agent", "-a", help="The agent's name (agent.name in its config)."),
+    duration_s: Optional[float] = typer.Option(None, "--for", help="begin: length of the window in seconds."),
+    until: Optional[str] = typer.Option(None, "--until", help="begin: end of the window, RFC 3339 with an offset."),
+    model: list[str] = typer.Option([], "--model", "-m", help="begin: a model to hold; repeat; none means all."),
+    reason: str = typer.Option("", "--reason", help="begin: why, shown in state, status and the note."),
+    by: Optional[str] = typer.Option(None, "--by", help="begin: who, shown with the window."),
+    config: Optional[Path] = typer.Option(None, "--config", "-c", help="An agent config: broker address and TLS CA."),
+    broker: Optional[str] = typer.Option(None, "--broker", "-b", help="HOST:PORT of the broker (overrides --config)."),
+    user: Optional[str] = typer.Option(None, "--broker-user", "-u", help="Broker user name (an operator account)."),
+    password_file: Optional[Path] = typer.Option(
+        None, "--broker-password-file", help="File holding that user's broker password."
+    ),
+    ca_file: Optional[Path] = typer.Option(None, "--ca-file", help="CA certificate: connect with TLS."),
+    topic: str = typer.Option(
+        "watchdog/agents/{agent}/commands/planned-work",
+        "--topic",
+        help="Command topic template (broker.topics.planned_work).",
+    ),
+    status_topic: str = typer.Option(
+        "watchdog/agents/{agent}/status", "--status-topic", help="Status topic template (broker.topics.status)."
+    ),
+    wait: float = typer.Option(5.0, "--wait", min=0, max=120, help="Seconds to watch the agent's status."),
+) -> None:
+    from watchdog_edge.readers.commands import command_doc, send_command
+
+    if action not in ("begin", "end"):
+        _fail(f"action {action!r}: give begin or end")
+    if action == "begin" and (duration_s is None) == (until is None):
+        _fail("begin needs exactly one of --for SECONDS or --until TIME")
+    if action == "end" and (duration_s is not None or until is not None or model or reason or by):
+        _fail("end takes only the window's name")
+    doc = command_doc(action, name, duration_s, until, model, reason, by)
+    try:
+        access, _ = _access(broker, config, user, password_file, ca_file, "")
+        seen = send_command(
+            access, topic.replace("{agent}", agent), status_topic.replace("{agent}", agent), doc, wait_s=wait
+        )
+    except WatchdogError as e:
+        _fail(str(e).replace("\n", " "))
+    done = "began" if action == "begin" else "ended"
+    if seen:
+        typer.echo(f"planned work '{name}' {done} on {agent} (its status shows it)")
+        return
+    typer.echo(
+        f"watchdog-edge: the command was delivered, but {agent}'s status did not show '{name}' {done} within "
+        f"{wait:g} s; is the agent running? A command it cannot apply is in 'watchdog-edge deadletters' as bad_command",
+        err=True,
+    )
+    raise typer.Exit(1)
+
+
 def register(app: typer.Typer) -> None:
-    """Add ``status`` and ``metrics`` to the main command line."""
+    """Add ``status``, ``metrics`` and ``planned-work`` to the main command line."""
     app.command("status", help=STATUS_HELP)(status)
     app.command("metrics", help=METRICS_HELP)(metrics)
+    app.command("planned-work", help=PLANNED_HELP)(planned_work)

@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any
 
 import paho.mqtt.client as paho
-from paho.mqtt.enums import CallbackAPIVersion
+from paho.mqtt.enums import CallbackAPIVersion, MQTTProtocolVersion
 
 from watchdog_edge.agent.store import read_published
 from watchdog_edge.errors import BrokerError, WatchdogError
@@ -68,9 +68,14 @@ class BrokerAccess:
     client_id: str | None = None
     password: str | None = field(default=None, repr=False)  # already read (the agent config's source)
 
-    def client(self) -> paho.Client:
+    def client(self, mqtt5: bool = False) -> paho.Client:
         """A paho client set up with these credentials (clean session: a reader keeps no queue)."""
-        c = paho.Client(CallbackAPIVersion.VERSION2, client_id=self.client_id or "", clean_session=True)
+        if mqtt5:
+            c = paho.Client(
+                CallbackAPIVersion.VERSION2, client_id=self.client_id or "", protocol=MQTTProtocolVersion.MQTTv5
+            )
+        else:
+            c = paho.Client(CallbackAPIVersion.VERSION2, client_id=self.client_id or "", clean_session=True)
         if self.username:
             password = self.password
             if self.password_file is not None:
