@@ -12,6 +12,8 @@ from broker import INSTALL_HINT
 DEPLOY = Path(__file__).resolve().parents[1] / "deploy"
 
 
+@pytest.mark.broker
+@pytest.mark.slow
 def test_deploy_check_proves_the_acl_and_the_bridge():
     for tool in ("mosquitto_pub", "mosquitto_sub", "mosquitto_passwd"):
         if not shutil.which(tool):
@@ -41,6 +43,8 @@ def test_units_run_the_commands_as_the_service_user():
         assert "User=watchdog-edge" in text and command in text, unit
 
 
+@pytest.mark.broker
+@pytest.mark.slow
 def test_the_real_agent_works_under_the_shipped_acl(tmp_path):
     """The agent as a process, with the shipped ACL and accounts: it reads its feeds and its
     commands, publishes alerts, state and status; a viewer's command never reaches it."""

@@ -14,6 +14,7 @@ import time
 import urllib.request
 
 import numpy as np
+import pytest
 from broker import free_port
 from prometheus_client.openmetrics.parser import text_string_to_metric_families as parse_openmetrics
 from prometheus_client.parser import text_string_to_metric_families as parse_text
@@ -57,6 +58,7 @@ def samples(text: str, parser) -> dict[tuple, float]:
     return out
 
 
+@pytest.mark.slow
 def test_status_and_metrics_of_a_fleet_of_two_agents_then_the_state_file_with_no_broker(tmp_path, broker):
     cfg1 = write_setup(tmp_path, broker)
     cfg2 = second_agent(tmp_path, cfg1)
