@@ -38,7 +38,7 @@ make_passwords() { # file user...
   for u in "$@"; do mosquitto_passwd -b "$file" "$u" "$(pw "$u")"; done
   chmod 600 "$file"
 }
-make_passwords "$WORK/gateway.passwd" watchdog-agent model-steam-flow meter-steam-flow operator viewer watchdog-page
+make_passwords "$WORK/gateway.passwd" watchdog-edge model-steam-flow meter-steam-flow operator viewer watchdog-page
 make_passwords "$WORK/central.passwd" bridge-boiler-house-1 operator viewer watchdog-page
 mkdir -p "$WORK/gateway" "$WORK/central"
 
@@ -96,7 +96,7 @@ has() { grep -q -- "$2" "$WORK/$1"; }
 # 1. Wait for the bridge: the agent's retained status, published on the gateway, must reach
 #    the central broker.
 STATUS=watchdog/agents/boiler-house-1/status
-pub "$GW_PORT" watchdog-agent "$STATUS" '{"agent":"boiler-house-1","connection":"online"}' -r
+pub "$GW_PORT" watchdog-edge "$STATUS" '{"agent":"boiler-house-1","connection":"online"}' -r
 bridged=0
 for _ in $(seq 1 30); do
   if mosquitto_sub -h 127.0.0.1 -p "$CENTRAL_PORT" -u viewer -P "$(pw viewer)" -t "$STATUS" -C 1 -W 1 \
@@ -108,7 +108,7 @@ done
 
 # 2. Every rule at once: listeners first, then the publishers.
 CMD=watchdog/agents/boiler-house-1/commands/planned-work
-sub "$GW_PORT" watchdog-agent agent.txt 4 plant/boiler/steam-flow/pred plant/boiler/steam-flow/meter "$CMD"
+sub "$GW_PORT" watchdog-edge agent.txt 4 plant/boiler/steam-flow/pred plant/boiler/steam-flow/meter "$CMD"
 sub "$GW_PORT" operator operator.txt 4 'watchdog/#'
 sub "$GW_PORT" model-steam-flow sensor.txt 4 'watchdog/#' 'plant/#'
 sub "$CENTRAL_PORT" operator central.txt 4 'watchdog/#'
@@ -116,11 +116,11 @@ sleep 1
 pub "$GW_PORT" model-steam-flow plant/boiler/steam-flow/pred 'sensor-own-topic'
 pub "$GW_PORT" meter-steam-flow plant/boiler/steam-flow/meter 'meter-own-topic'
 pub "$GW_PORT" model-steam-flow plant/boiler/steam-flow/meter 'sensor-other-topic'
-pub "$GW_PORT" watchdog-agent plant/boiler/steam-flow/pred 'agent-writes-inbound'
-pub "$GW_PORT" watchdog-agent "$CMD" 'agent-writes-command'
-pub "$GW_PORT" watchdog-agent watchdog/other/thing 'agent-writes-elsewhere'
-pub "$GW_PORT" watchdog-agent watchdog/steam-flow/alerts 'alert-from-agent'
-pub "$GW_PORT" watchdog-agent watchdog/steam-flow/state 'state-from-agent' -r
+pub "$GW_PORT" watchdog-edge plant/boiler/steam-flow/pred 'agent-writes-inbound'
+pub "$GW_PORT" watchdog-edge "$CMD" 'agent-writes-command'
+pub "$GW_PORT" watchdog-edge watchdog/other/thing 'agent-writes-elsewhere'
+pub "$GW_PORT" watchdog-edge watchdog/steam-flow/alerts 'alert-from-agent'
+pub "$GW_PORT" watchdog-edge watchdog/steam-flow/state 'state-from-agent' -r
 pub "$GW_PORT" viewer "$CMD" 'viewer-writes-command'
 pub "$GW_PORT" operator "$CMD" 'operator-command-on-gateway'
 pub "$CENTRAL_PORT" operator "$CMD" 'operator-command-from-central'

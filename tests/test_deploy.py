@@ -58,7 +58,7 @@ def test_the_real_agent_works_under_the_shipped_acl(tmp_path):
     from watchdog_edge.core.cards import ModelCard
     from watchdog_edge.files.cardfile import save_card
 
-    users = ["watchdog-agent", "model-steam-flow", "meter-steam-flow", "operator", "viewer"]
+    users = ["watchdog-edge", "model-steam-flow", "meter-steam-flow", "operator", "viewer"]
     secret = {u: f"pw-{u}" for u in users}
     broker = Broker(tmp_path / "broker", passwords=secret, acl=(DEPLOY / "mosquitto-watchdog.acl").read_text())
     try:
@@ -73,7 +73,7 @@ def test_the_real_agent_works_under_the_shipped_acl(tmp_path):
             ),
             tmp_path / "steam-flow.card.json",
         )
-        (tmp_path / "agent.pass").write_text(secret["watchdog-agent"] + "\n")
+        (tmp_path / "agent.pass").write_text(secret["watchdog-edge"] + "\n")
         cfg = tmp_path / "config.toml"
         cfg.write_text(
             f"""
@@ -86,7 +86,7 @@ state_every_s = 0.5
 [broker]
 host = "127.0.0.1"
 port = {broker.port}
-username = "watchdog-agent"
+username = "watchdog-edge"
 password_file = "agent.pass"
 reconnect_min_s = 0.1
 reconnect_max_s = 0.5
@@ -97,10 +97,10 @@ card = "steam-flow.card.json"
 prediction_topic = "plant/boiler/steam-flow/pred"
 truth_topic = "plant/boiler/steam-flow/meter"
 [models.window]
-size = 60
+size_pairs = 60
 min_pairs = 40
 [models.checks.gap]
-evaluate_every = 5
+evaluate_every_pairs = 5
 [models.checks.feed_stop]
 enabled = false
 [models.checks.range]

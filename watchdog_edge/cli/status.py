@@ -185,7 +185,7 @@ Windows that recur or are known in advance belong in the config ([[planned_work]
 
 \\b
 Examples:
-  watchdog-edge planned-work begin meter-calibration --agent boiler-house-1 --for 3600 \\
+  watchdog-edge planned-work begin meter-calibration --agent boiler-house-1 --for 1h \\
       --model steam-flow --reason "flow meter calibration" --broker-user operator --broker-password-file ~/.op-pass
   watchdog-edge planned-work begin plant-stop --agent boiler-house-1 --until 2026-12-03T06:00:00Z ...
   watchdog-edge planned-work end meter-calibration --agent boiler-house-1 ...
@@ -196,7 +196,9 @@ def planned_work(
     action: str = typer.Argument(..., help="begin or end."),
     name: str = typer.Argument(..., help="The window's name (end takes the name begin gave)."),
     agent: str = typer.Option(..., "--agent", "-a", help="The agent's name (agent.name in its config)."),
-    duration_s: Optional[float] = typer.Option(None, "--for", help="begin: length of the window in seconds."),
+    duration: Optional[str] = typer.Option(
+        None, "--for", help="begin: length of the window: 90m, 4h, 2d (a bare number is seconds)."
+    ),
     until: Optional[str] = typer.Option(None, "--until", help="begin: end of the window, RFC 3339 with an offset."),
     model: list[str] = typer.Option([], "--model", "-m", help="begin: a model to hold; repeat; none means all."),
     reason: str = typer.Option("", "--reason", help="begin: why, shown in state, status and the note."),
@@ -218,8 +220,13 @@ def planned_work(
     ),
     wait: float = typer.Option(5.0, "--wait", min=0, max=120, help="Seconds to watch the agent's status."),
 ) -> None:
+    from watchdog_edge.cli.durations import parse_duration_s
     from watchdog_edge.readers.commands import command_doc, send_command
 
+    try:
+        duration_s = parse_duration_s(duration, "--for") if duration is not None else None
+    except WatchdogError as e:
+        _fail(str(e))
     if action not in ("begin", "end"):
         _fail(f"action {action!r}: give begin or end")
     if action == "begin" and (duration_s is None) == (until is None):
