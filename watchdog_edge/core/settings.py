@@ -105,6 +105,66 @@ class BrokerSettings(_Strict):
         return self
 
 
+class JetStreamSettings(_Strict):
+    """The JetStream workers (``watchdog-edge jetstream run``): servers, streams, buckets, partitions."""
+
+    servers: list[str] = Field(
+        default_factory=lambda: ["nats://127.0.0.1:4222"], min_length=1, description="NATS server URLs."
+    )
+    subject_prefix: str = Field(
+        "wd", description="First token of the partition subjects (PREFIX.in.<partition>.m.<topic>) and alert subjects."
+    )
+    partitions: int = Field(8, ge=1, le=1024, description="Partitions of the models (the server's mapping uses it).")
+    input_stream: str = Field("WATCHDOG_IN", description="Stream holding the partitioned inbound messages.")
+    alert_stream: str = Field("WATCHDOG_ALERTS", description="Stream the alerts are published to.")
+    dead_letter_stream: str = Field(
+        "WATCHDOG_DEAD",
+        description="Stream of the bad records, bounded by agent.dead_letter_max_count and agent.dead_letter_max_bytes.",
+    )
+    durable_prefix: str = Field("watchdog-p", description="Durable consumer names: this and the partition number.")
+    snapshot_bucket: str = Field("watchdog_snapshots", description="Key-value bucket of the per-partition snapshots.")
+    state_bucket: str = Field("watchdog_state", description="Key-value bucket of the retained state per model.")
+    lease_bucket: str = Field("watchdog_leases", description="Key-value bucket of partition leases and live workers.")
+    start_timeout_s: float = Field(
+        10.0, gt=0, description="A worker that reaches no server within this long at start exits with status 3."
+    )
+    replicas: int = Field(1, ge=1, le=5, description="Replicas of the streams and buckets the workers create.")
+    create_streams: bool = Field(True, description="Create missing streams and buckets at start.")
+    input_max_age_s: float = Field(7 * 86400.0, gt=0, description="How long the input stream keeps messages.")
+    alert_duplicate_window_s: float = Field(
+        600.0, gt=0, description="The alert stream's duplicate window: a re-sent alert id within it is dropped."
+    )
+    lease_s: float = Field(
+        6.0, ge=0.5, le=600, description="A partition lease lapses this long after its worker stops renewing it."
+    )
+    snapshot_every_messages: int = Field(
+        5000, ge=1, description="Snapshot a partition (then acknowledge) after this many messages at most."
+    )
+    snapshot_every_s: float = Field(10.0, gt=0, description="... or after this long, whichever comes first.")
+    fetch_batch_messages: int = Field(2000, ge=1, le=10000, description="Messages asked for in one pull request.")
+    mirror_alerts_to_mqtt: bool = Field(
+        True, description="Also publish each alert on broker.topics.alerts, which the server's MQTT listener serves."
+    )
+
+    @field_validator("subject_prefix")
+    @classmethod
+    def _prefix(cls, v: str) -> str:
+        if not v or any(c in v for c in " .*>/\t"):
+            raise ValueError("subject_prefix must be one subject token: no spaces, '.', '*', '>' or '/'")
+        return v
+
+    @model_validator(mode="after")
+    def _windows(self) -> JetStreamSettings:
+        # A worker that takes a partition over re-sends alerts of at most one snapshot period
+        # and one lease: the duplicate window must cover that, or a re-send could slip through.
+        if self.alert_duplicate_window_s < 2 * (self.snapshot_every_s + self.lease_s):
+            raise ValueError(
+                f"alert_duplicate_window_s ({self.alert_duplicate_window_s}) must be at least twice "
+                f"snapshot_every_s + lease_s ({2 * (self.snapshot_every_s + self.lease_s)}); raise it"
+            )
+        return self
+
+
 class PredictionFields(_Strict):
     id: str = "id"
     value: str = "value"
@@ -318,6 +378,7 @@ class Config(_Strict):
 
     agent: AgentSettings = AgentSettings()
     broker: BrokerSettings = BrokerSettings()
+    jetstream: JetStreamSettings = JetStreamSettings()
     models: list[ModelSettings] = Field(min_length=1)
     planned_work: list[PlannedWorkSettings] = Field(
         default_factory=list, description="Windows in which raises are held back (see core/planned.py)."
