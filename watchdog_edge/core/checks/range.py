@@ -1,13 +1,44 @@
-"""``range``: predictions made on inputs outside the training envelope (extrapolation).
+"""``range``: predictions made on inputs outside the training range (extrapolation).
 
 Each prediction's features are compared with the card's per-feature ``min`` and ``max``, widened
 on each side by ``margin`` x (max - min). Over the last ``window`` predictions that carry
 features, the share of those with at least one input outside is the figure that raises and
 clears; the check keeps only the outside ones (with their place in the stream), so a
-prediction inside the envelope costs a comparison per feature and nothing more. Needs no
+prediction inside the range costs a comparison per feature and nothing more. Needs no
 truth. The figures give, per feature outside in the window, how many predictions were
-outside and the largest distance below ``low`` and above ``high`` (the envelope's edges), in
+outside and the largest distance below ``low`` and above ``high`` (the range's edges), in
 the feature's own units.
+
+Some inputs fall outside even when nothing has changed, the more so the fewer training rows
+the card has. By order statistics, a new value drawn like n training values falls outside
+their min-max with probability 2/(n + 1) (any continuous distribution; ties only lower it).
+For one card that probability is itself random: it is the sum of the two outer spacings,
+Beta(2, n - 1)-distributed. With d features, a prediction is outside when any feature is, so
+the card's outside rate is at most the sum of the d features' rates (the union bound; we use
+it rather than the rate under independence, 1 - (1 - 2/(n + 1))^d, because it holds whatever
+the features' dependence). The check therefore:
+
+1. bounds the card's rate from above: the sum of d Beta(2, n - 1) is bounded by a gamma
+   variable of shape 2d and scale 1/(n + 1) (each Beta(2, n - 1) is gamma(2)/(n + 1) with the
+   gamma's mean-one denominator averaged away, which only thickens the tail), whose upper
+   ``CARD_TAIL`` quantile is ``q_hi``; n is the card's row count less its missing values for
+   the feature with the most missing;
+2. raises a warning only when the outside count in the window is significant against a
+   binomial(window, ``q_hi``) at level ``significance`` (one-sided), and above
+   ``warning_share``; critical above ``critical_share`` and that same count limit.
+
+``expected_share`` in the figures is the union bound's mean, sum over features of
+2/(n_j + 1); ``warning_limit`` is the share the window must pass to raise. Where the warning
+limit is above a fifth, a fifth of the inputs leaving the range cannot be told from chance at
+this card's row count, and ``card build`` says so.
+
+A prediction with an input more than ``far_outside_ranges`` training ranges (max - min)
+beyond the training min or max raises critical at once, whatever the share. Four ranges:
+from 20 training rows or more, a new Gaussian value lands that far with a probability below
+1e-20 and an exponential one below about 1e-7 (an exponential's range of 20 rows is about
+3.6 means, and it passes max + 4 ranges with probability about e^-14 / 21); a sensor
+dropout, a fill value (-999) or a unit change lands tens of ranges away. A feature constant
+in training has no range to measure by and is left out of this rule.
 
 A feature that is null or absent in a prediction is not outside (``shift`` counts missing
 values); a feature the card does not describe is ignored; a prediction with no features at
@@ -24,6 +55,22 @@ from pydantic import Field, model_validator
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict, fmt
 from watchdog_edge.core.checks.levels import LevelGate
 from watchdog_edge.core.records import Prediction
+from watchdog_edge.core.tails import binomial_limit, erlang_isf
+
+# The share of fair cards whose own outside rate may exceed the rate the test assumes.
+CARD_TAIL = 1e-3
+
+
+def outside_rate_bound(rows: int, features: int, tail: float = CARD_TAIL) -> float:
+    """Upper ``tail`` quantile of a fair card's outside rate, for ``features`` features each
+    with ``rows`` training values (see the module docstring).
+
+    >>> round(outside_rate_bound(300, 1), 4)   # mean 2/301 = 0.0066
+    0.0307
+    """
+    if features < 1:
+        return 0.0
+    return min(1.0, erlang_isf(tail, 2 * features) / (max(rows, 1) + 1))
 
 
 class RangeSettings(CheckSettings):
@@ -52,6 +99,19 @@ class RangeSettings(CheckSettings):
         0.2, ge=0, lt=1, description="Clear only when the share is at or below the limit x (1 - this)."
     )
     clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    significance: float = Field(
+        1e-6,
+        gt=0,
+        lt=0.01,
+        description="Raise only when the outside count is this unlikely (one-sided) from the card's own "
+        "outside rate; small, because the test is repeated at every evaluation.",
+    )
+    far_outside_ranges: float = Field(
+        4.0,
+        gt=0,
+        description="An input more than this many training ranges (max - min) beyond the training min or "
+        "max raises critical at once.",
+    )
 
     @model_validator(mode="after")
     def _order(self) -> RangeSettings:
@@ -66,13 +126,13 @@ class RangeCheck(Check):
     """Share of recent predictions whose inputs lie outside the card's envelope.
 
     >>> from watchdog_edge.core.cards import ModelCard
-    >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 100}, fitted_parameters=2,
+    >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 10000}, fitted_parameters=2,
     ...                  holdout={"loss": 1.0, "count": 50},
     ...                  features={"temp": {"min": 0.0, "max": 50.0}})
     >>> ctx = CheckContext("m", card, "squared", 1.0, "holdout")
     >>> check = RangeCheck(RangeSettings(window=20, min_predictions=20, evaluate_every=20), ctx)
     >>> for i in range(20):
-    ...     check.on_prediction(Prediction("m", str(i), 1.0, float(i), features={"temp": 58.0 if i < 5 else 20.0}))
+    ...     _ = check.on_prediction(Prediction("m", str(i), 1.0, float(i), features={"temp": 58.0 if i < 5 else 20.0}))
     >>> v = check.evaluate(20.0)
     >>> v.level, v.figures["share"], v.figures["features"]["temp"]["max_above"]
     ('critical', 0.25, 8.0)
@@ -86,14 +146,37 @@ class RangeCheck(Check):
         super().__init__(settings, context)
         self.settings: RangeSettings = settings
         bounds = []
-        for fname, prof in context.card.features.items():
-            pad = settings.margin * (prof.max - prof.min)
+        far = {}
+        card = context.card
+        rows = card.training.count
+        for fname, prof in card.features.items():
+            width = prof.max - prof.min
+            pad = settings.margin * width
             bounds.append((fname, prof.min - pad, prof.max + pad))
+            if width > 0:
+                # distance past the widened edge beyond which an input is far outside
+                far[fname] = settings.far_outside_ranges * width - pad
+            if prof.histogram is not None:
+                rows = min(rows, round(card.training.count * (1.0 - prof.histogram.missing)))
         self._bounds: tuple[tuple[str, float, float], ...] = tuple(bounds)
+        self._far = far
+        self.training_rows = max(rows, 1)
+        d = len(bounds)
+        self.expected_share = min(1.0, 2.0 * d / (self.training_rows + 1))
+        self.rate_bound = outside_rate_bound(self.training_rows, d)
         self._gate = LevelGate(
             settings.warning_share, settings.critical_share, settings.hysteresis, settings.clear_after
         )
         self.reset()
+
+    def limits(self, predictions: int) -> tuple[float, float]:
+        """Warning and critical limits on the outside share over ``predictions`` predictions:
+        the share must exceed them to raise."""
+        s = self.settings
+        c = binomial_limit(predictions, self.rate_bound, s.significance)
+        chance = (c - 1) / predictions  # a share above it means a count of c or more
+        warning = max(s.warning_share, chance)
+        return warning, max(s.critical_share, warning)
 
     def reset(self) -> None:
         self._seq = 0  # predictions with features taken so far
@@ -101,6 +184,7 @@ class RangeCheck(Check):
         # the window: the share is their count over the window, so inside ones cost nothing
         self._details: deque[tuple[int, dict[str, float]]] = deque()
         self._last_eval = 0  # ``_seq`` at the latest evaluation
+        self._far_new = False  # a far-outside prediction came since the latest evaluation
         self._gate.reset()
         self._figures: dict[str, Any] = {}
 
@@ -118,8 +202,14 @@ class RangeCheck(Check):
             far[fname] = x - lo if x < lo else x - hi  # signed distance past the nearer edge
         if far is not None:
             self._details.append((self._seq, far))
+            if self._is_far(far):
+                self._far_new = True
         self._seq += 1
-        return self._seq - self._last_eval >= self.settings.evaluate_every
+        return self._far_new or self._seq - self._last_eval >= self.settings.evaluate_every
+
+    def _is_far(self, far: dict[str, float]) -> bool:
+        lim = self._far
+        return any(fname in lim and abs(d) > lim[fname] for fname, d in far.items())
 
     @property
     def _filled(self) -> int:
@@ -127,16 +217,24 @@ class RangeCheck(Check):
 
     def evaluate(self, t: float) -> Verdict | None:
         s = self.settings
-        if self._seq - self._last_eval < s.evaluate_every or self._seq < s.min_predictions:
+        due = self._seq - self._last_eval >= s.evaluate_every and self._seq >= s.min_predictions
+        if not (due or self._far_new):
             return None
+        self._far_new = False
         self._last_eval = self._seq
         oldest = self._seq - self._filled
         details = self._details
         while details and details[0][0] < oldest:
             details.popleft()
         outside = len(details)
-        share = outside / self._filled
-        level = self._gate.update(share)
+        filled = self._filled
+        share = outside / filled
+        far_count = sum(1 for _, far in details if self._is_far(far))
+        warning, critical = self.limits(filled)
+        self._gate.warning, self._gate.critical = warning, critical
+        # a far-outside input counts as a full window outside: critical now, cleared by the
+        # usual rule once it has left the window
+        level = self._gate.update(1.0 if far_count else share)
         per: dict[str, dict[str, Any]] = {}
         for _, far in details:
             for fname, d in far.items():
@@ -155,20 +253,34 @@ class RangeCheck(Check):
         self._figures = {
             "share": share,
             "outside": outside,
-            "predictions": self._filled,
+            "predictions": filled,
+            "expected_share": self.expected_share,
+            "warning_limit": warning,
+            "critical_limit": critical,
+            "far_outside": far_count,
+            "training_rows": self.training_rows,
             "warning_share": s.warning_share,
             "critical_share": s.critical_share,
             "margin": s.margin,
             "features": per,
         }
-        return Verdict(level, self._summary(level, share, per), dict(self._figures))
+        return Verdict(level, self._summary(level, share, per, far_count), dict(self._figures))
 
-    def _summary(self, level: str, share: float, per: dict[str, dict[str, Any]]) -> str:
+    def _summary(self, level: str, share: float, per: dict[str, dict[str, Any]], far_count: int) -> str:
         s = self.settings
-        head = f"{share:.1%} of the last {self._filled} predictions had inputs outside the training range"
+        head = (
+            f"{share:.1%} of the last {self._filled} predictions had inputs outside the training range "
+            f"(at most {self.expected_share:.1%} expected from {self.training_rows} training rows)"
+        )
+        warning, critical = self._gate.warning, self._gate.critical
         if level == "normal":
-            return f"{head}, within the limit of {s.warning_share:.1%}."
-        limit = s.critical_share if level == "critical" else s.warning_share
+            return f"{head}, within the limit of {warning:.1%}."
+        if far_count:
+            head += (
+                f"; {far_count} of them more than {s.far_outside_ranges:g} training ranges beyond the "
+                "training min or max"
+            )
+        limit = critical if level == "critical" else warning
         if s.margin:
             up, down = "the upper edge (training maximum plus margin)", "the lower edge (training minimum minus margin)"
         else:
@@ -196,6 +308,7 @@ class RangeCheck(Check):
             "seq": self._seq,
             "details": [[seq, far] for seq, far in self._details if seq >= oldest],
             "since_eval": self._seq - self._last_eval,
+            "far_new": self._far_new,
             "gate": self._gate.snapshot(),
             "figures": self._figures,
         }
@@ -204,5 +317,6 @@ class RangeCheck(Check):
         self._seq = int(data["seq"])
         self._details = deque((int(seq), {k: float(v) for k, v in far.items()}) for seq, far in data["details"])
         self._last_eval = self._seq - int(data["since_eval"])
+        self._far_new = bool(data.get("far_new", False))
         self._gate.restore(data["gate"])
         self._figures = data["figures"]
