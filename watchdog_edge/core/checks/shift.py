@@ -17,6 +17,19 @@ a training share, and its mean is about (b - 1) / n. Hence the default window of
 prints :func:`settings_warnings` for smaller ones. Warning at 0.1 and critical at 0.25 are
 common practice, no single source. Needs no truth.
 
+A feature with few distinct values has one bin per value on the card (``values``); a live
+value that matches none falls into an "other" bin, whose training share is 0.
+
+The card's shares are themselves estimates from n training rows, so on unchanged inputs the
+index is about chi-square(b - 1) x (1/window + 1/n) (the two-sample form of the same
+approximation): from a card of 30 rows, 10 bins give an index of about 0.3 on average
+without any change. Each feature's limits are therefore raised by the factor
+max(1, chi-square_(b-1) upper ``significance`` quantile x (1/window + 1/n) / warning), so that
+an index is reported only where it is both above the configured limit and significant given
+both sample sizes; the figures give each feature's warning limit (``warning_limits``), and
+the level is taken from the largest index relative to its factor. n is the card's row count
+less the feature's missing share.
+
 A prediction with no features at all is not counted; in one that has features, a feature that
 is null or absent falls into the missing bin.
 """
@@ -35,8 +48,24 @@ from pydantic import Field, model_validator
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict
 from watchdog_edge.core.checks.levels import LevelGate
 from watchdog_edge.core.records import Prediction
+from watchdog_edge.core.tails import chi2_isf
 
 ADVISED_MIN_WINDOW = 1000
+
+
+def limit_factor(warning: float, bins: int, window: int, rows: int, significance: float) -> float:
+    """How much a feature's limits are raised for chance: ``bins`` bins with a training share,
+    ``rows`` training rows, ``window`` live predictions (see the module docstring).
+
+    >>> limit_factor(0.1, 10, 1000, 100_000, 1e-6)   # a large card: the limits stand
+    1.0
+    >>> round(limit_factor(0.1, 10, 1000, 30, 1e-6), 1)
+    15.4
+    """
+    if bins < 2:
+        return 1.0
+    chance = chi2_isf(significance, bins - 1) * (1.0 / window + 1.0 / max(rows, 1))
+    return max(1.0, chance / warning)
 
 
 class ShiftSettings(CheckSettings):
@@ -67,6 +96,13 @@ class ShiftSettings(CheckSettings):
         0.2, ge=0, lt=1, description="Clear only when the index is at or below the limit x (1 - this)."
     )
     clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    significance: float = Field(
+        1e-6,
+        gt=0,
+        lt=0.01,
+        description="A feature's limits are raised until an index above them is this unlikely on unchanged "
+        "inputs, given the window and the card's row count.",
+    )
 
     @model_validator(mode="after")
     def _order(self) -> ShiftSettings:
@@ -134,7 +170,7 @@ class ShiftCheck(Check):
     >>> check = ShiftCheck(ShiftSettings(window=100, evaluate_every=100),
     ...                    CheckContext("m", card, "squared", 1.0, "holdout"))
     >>> for i in range(100):                       # every value in the top bin
-    ...     check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"x": 3.5}))
+    ...     _ = check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"x": 3.5}))
     >>> v = check.evaluate(100.0)
     >>> v.level, round(v.figures["index"]["x"], 2)
     ('critical', 3.88)
@@ -147,17 +183,35 @@ class ShiftCheck(Check):
     def __init__(self, settings: ShiftSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
         self.settings: ShiftSettings = settings
-        names, inner, expected, nbins = [], [], [], []
-        for fname, prof in context.card.features.items():
+        names: list[str] = []
+        inner: list[list[float]] = []
+        expected: list[list[float]] = []
+        nbins: list[int] = []
+        values: list[tuple[int, np.ndarray]] = []  # (column, values) of the one-bin-per-value features
+        factors: list[float] = []
+        card = context.card
+        for fname, prof in card.features.items():
             h = prof.histogram
             if h is not None and h.shares:
-                names.append(fname)
-                inner.append(h.edges[1:-1])  # bin i is [edges[i], edges[i+1]); outer bins open
                 present = 1.0 - h.missing
-                expected.append([sh * present for sh in h.shares] + [h.missing])
-                nbins.append(len(h.shares) + 1)  # the card's bins, then the missing bin
+                shares = [sh * present for sh in h.shares]
+                if h.values is not None:
+                    values.append((len(names), np.array(h.values, dtype=float)))
+                    inner.append([])
+                    shares.append(0.0)  # the "other" bin: values the card never saw
+                else:
+                    assert h.edges is not None
+                    inner.append(h.edges[1:-1])  # bin i is [edges[i], edges[i+1]); outer bins open
+                names.append(fname)
+                expected.append(shares + [h.missing])
+                nbins.append(len(shares) + 1)  # the card's bins, then the missing bin
+                seen = sum(1 for e in expected[-1] if e > 0)
+                rows = round(card.training.count * present) if h.missing < 1 else card.training.count
+                factors.append(limit_factor(settings.warning, seen, settings.window, rows, settings.significance))
         self.names: tuple[str, ...] = tuple(names)
         self.expected: dict[str, list[float]] = dict(zip(names, expected))
+        self.factors: dict[str, float] = dict(zip(names, factors))
+        self._values = values
         self._nbins = np.array(nbins, dtype=np.int64)
         # Every feature's bins side by side in one flat count vector, at these offsets.
         self._offset = np.concatenate(([0], np.cumsum(self._nbins)[:-1])).astype(np.int64)
@@ -211,6 +265,10 @@ class ShiftCheck(Check):
             x = np.array([[d.get(n) for n in names] for d in pend], dtype=float)
         x = x.reshape(m, k)
         bins = (x[:, :, None] >= self._edges[None, :, :]).sum(axis=2)
+        for j, vals in self._values:
+            col = x[:, j]
+            idx = np.minimum(np.searchsorted(vals, col), vals.size - 1)
+            bins[:, j] = np.where(vals[idx] == col, idx, vals.size)  # no match: the "other" bin
         bins = np.where(np.isnan(x), self._missing, bins) + self._offset
         slots = (self._pos + np.arange(m)) % size
         old = self._ring[slots].ravel()
@@ -244,32 +302,39 @@ class ShiftCheck(Check):
             return None
         s = self.settings
         idx = self.indices()
-        top = max(idx, key=idx.__getitem__)
-        level = self._gate.update(idx[top])
+        f = self.factors
+        # the level follows the index furthest above its own limits
+        top = max(idx, key=lambda n: idx[n] / f[n])
+        level = self._gate.update(idx[top] / f[top])
         self._figures = {
             "index": idx,
             "top_feature": top,
             "predictions": self._filled,
             "warning": s.warning,
             "critical": s.critical,
+            "warning_limits": {n: s.warning * f[n] for n in idx},
+            "critical_limits": {n: s.critical * f[n] for n in idx},
         }
         return Verdict(level, self._summary(level, idx, top), dict(self._figures))
 
     def _summary(self, level: str, idx: dict[str, float], top: str) -> str:
         s = self.settings
         n = self._filled
+        f = self.factors
+        warn = s.warning * f[top]
         if level == "normal":
             return (
                 f"The inputs of the last {n} predictions look like the training data: the largest "
-                f"population stability index is {idx[top]:.3g} ({top}), within the warning limit {s.warning:g}."
+                f"population stability index for its limit is {idx[top]:.3g} ({top}), within the warning limit "
+                f"{warn:.3g}."
             )
-        limit = s.critical if level == "critical" else s.warning
-        moved = [name for name, v in sorted(idx.items(), key=lambda kv: -kv[1]) if v > s.warning]
+        limit = (s.critical if level == "critical" else s.warning) * f[top]
+        moved = [name for name, v in sorted(idx.items(), key=lambda kv: -kv[1] / f[kv[0]]) if v > s.warning * f[name]]
         names = ", ".join(moved[:3]) + (f" and {len(moved) - 3} more" if len(moved) > 3 else "")
         return (
             f"The inputs have moved away from the training data: population stability index "
-            f"{idx[top]:.3g} for {top} over the last {n} predictions (the {level} limit is {limit:g}); "
-            f"features past the warning limit: {names or 'none now'}."
+            f"{idx[top]:.3g} for {top} over the last {n} predictions (the {level} limit is {limit:.3g}); "
+            f"features past their warning limit: {names or 'none now'}."
         )
 
     def figures(self) -> dict[str, Any]:
