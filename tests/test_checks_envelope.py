@@ -176,12 +176,13 @@ def test_order_statistics_outside_rate_by_simulation():
     rng = np.random.default_rng(4)
     for n in (20, 120, 1000):
         for draw in (rng.standard_normal, rng.standard_exponential):
-            train = draw((20000, n))
-            new = draw(20000)
+            reps = 20000 if n < 1000 else 4000
+            train = draw((reps, n))
+            new = draw(reps)
             outside = (new < train.min(axis=1)) | (new > train.max(axis=1))
-            se = np.sqrt(2 / (n + 1) * (1 - 2 / (n + 1)) / 20000)
+            se = np.sqrt(2 / (n + 1) * (1 - 2 / (n + 1)) / reps)
             assert abs(outside.mean() - 2 / (n + 1)) < 4.5 * se
-        u = rng.uniform(size=(20000, n))
+        u = rng.uniform(size=(4000, n))
         rate = u.min(axis=1) + 1 - u.max(axis=1)
         assert stats.kstest(rate, stats.beta(2, n - 1).cdf).pvalue > 0.001
 
@@ -195,7 +196,7 @@ def test_card_rate_bound_holds_for_independent_features_by_simulation():
     from watchdog_edge.core.checks.range import CARD_TAIL, outside_rate_bound
 
     rng = np.random.default_rng(5)
-    draws = 400_000
+    draws = 100_000
     for n, d in ((20, 1), (30, 5), (120, 3), (260, 10), (3000, 50)):
         bound = outside_rate_bound(n, d)
         assert bound == pytest.approx(min(1.0, stats.gamma(2 * d).isf(CARD_TAIL) / (n + 1)), rel=1e-9)
@@ -264,9 +265,10 @@ def test_an_input_far_outside_raises_at_once_and_clears_by_the_usual_rule():
     assert v is not None and v.level == "critical"
     assert v.figures["far_outside"] == 1 and "training ranges" in v.summary
     assert v.figures["features"]["x0"]["max_below"] == pytest.approx(train.min() - 24.0)
-    # A little outside is not far: 104 + 3 ranges stays in the share rule.
+    # A little outside is not far: 104 + 2.5 ranges stays in the share rule (1,000 rows: 3 ranges).
     check2 = RangeCheck(RangeSettings(), CheckContext("m", card_from_rows(train), "squared", 1.0, "holdout"))
-    assert not check2.on_prediction(pred0(0, float(train.max() + 3 * np.ptp(train))))
+    assert check2.far_ranges == 3.0
+    assert not check2.on_prediction(pred0(0, float(train.max() + 2.5 * np.ptp(train))))
     # The dropout leaves the window after 180 predictions; then three calm evaluations clear.
     levels = []  # (predictions taken, level)
     for i in range(6, 6 + 260):
@@ -276,3 +278,26 @@ def test_an_input_far_outside_raises_at_once_and_clears_by_the_usual_rule():
     assert all(level == "critical" for taken, level in levels if taken <= 186)  # still in the window
     first_normal = next(taken for taken, level in levels if level == "normal")
     assert first_normal >= 186 + 2 * 20  # three calm evaluations, 20 predictions apart
+
+
+def test_far_outside_distance_for_exponential_tails_by_simulation():
+    # Outside check, by simulation: for n exponential training values, a new one passes
+    # max + k ranges with probability n/(n + 1) / C(n + k, k + 1). At k = 1 and 2 the
+    # probability is large enough to count; the rule then takes the k that brings it below 1e-9.
+    from math import comb
+
+    from watchdog_edge.core.checks.range import FAR_PROBABILITY, far_ranges
+
+    rng = np.random.default_rng(9)
+    draws = 200_000
+    for n in (20, 30):
+        train = rng.standard_exponential((draws, n))
+        new = rng.standard_exponential(draws)
+        hi, width = train.max(axis=1), np.ptp(train, axis=1)
+        for k in (1, 2):
+            p = n / (n + 1) / comb(n + k, k + 1)
+            seen = (new > hi + k * width).mean()
+            assert abs(seen - p) < 4.5 * np.sqrt(p / draws) + 1e-6, (n, k, seen, p)
+        k = far_ranges(n, 0.0)
+        assert n / (n + 1) / comb(n + int(k), int(k) + 1) < FAR_PROBABILITY
+        assert n / (n + 1) / comb(n + int(k) - 1, int(k)) >= FAR_PROBABILITY  # the smallest such k

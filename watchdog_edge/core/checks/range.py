@@ -32,21 +32,21 @@ the features' dependence). The check therefore:
 limit is above a fifth, a fifth of the inputs leaving the range cannot be told from chance at
 this card's row count, and ``card build`` says so.
 
-A prediction with an input more than ``far_outside_ranges`` training ranges (max - min)
-beyond the training min or max raises critical at once, whatever the share. Four ranges:
-from 20 training rows or more, a new Gaussian value lands that far with a probability below
-1e-20 and an exponential one below about 1e-7 (an exponential's range of 20 rows is about
-3.6 means, and it passes max + 4 ranges with probability about e^-14 / 21); a sensor
-dropout, a fill value (-999) or a unit change lands tens of ranges away. A feature constant
-in training has no range to measure by and is left out of this rule.
-
-A feature that is null or absent in a prediction is not outside (``shift`` counts missing
-values); a feature the card does not describe is ignored; a prediction with no features at
-all is not counted.
+A prediction with an input far beyond the training min or max raises critical at once,
+whatever the share. Far means more than k training ranges (max - min) past the nearer edge,
+where k is the larger of ``far_outside_ranges`` (3) and what the card's row count asks for
+an exponential tail, the heaviest of the common ones: for n exponential training values a
+new one passes max + k ranges with probability n/(n + 1) / C(n + k, k + 1) (the minimum and
+the range are independent, by the memoryless property, and the range is the largest of n - 1
+exponentials), and k is the smallest with that below ``FAR_PROBABILITY`` (1e-9):
+14 ranges for 20 rows, 10 for 30, 5 for 100, 3 from 1,000. A Gaussian input never gets that far; a
+sensor dropout, a fill value (-999) or a unit change lands tens of ranges away. A feature
+constant in training has no range to measure by and is left out of this rule.
 """
 
 from __future__ import annotations
 
+import math
 from collections import deque
 from typing import Any
 
@@ -59,6 +59,24 @@ from watchdog_edge.core.tails import binomial_limit, erlang_isf
 
 # The share of fair cards whose own outside rate may exceed the rate the test assumes.
 CARD_TAIL = 1e-3
+# The chance that a fair input from an exponential tail counts as far outside.
+FAR_PROBABILITY = 1e-9
+
+
+def far_ranges(rows: int, floor: float, probability: float = FAR_PROBABILITY) -> float:
+    """Training ranges beyond the edge past which an input is far outside, for a card of
+    ``rows`` rows: at least ``floor`` (see the module docstring).
+
+    >>> [far_ranges(n, 3.0) for n in (20, 30, 100, 1000, 100_000)]
+    [14.0, 10.0, 5.0, 3.0, 3.0]
+    """
+    n = max(rows, 2)
+    target = -math.log(probability) + math.log(n / (n + 1))
+    a = 1
+    # log C(n - 1 + a, a) must reach ``target``
+    while math.lgamma(n + a) - math.lgamma(a + 1) - math.lgamma(n) < target:
+        a += 1
+    return max(floor, float(a - 1))
 
 
 def outside_rate_bound(rows: int, features: int, tail: float = CARD_TAIL) -> float:
@@ -107,10 +125,10 @@ class RangeSettings(CheckSettings):
         "outside rate; small, because the test is repeated at every evaluation.",
     )
     far_outside_ranges: float = Field(
-        4.0,
+        3.0,
         gt=0,
         description="An input more than this many training ranges (max - min) beyond the training min or "
-        "max raises critical at once.",
+        "max raises critical at once; cards with few rows raise it further (see the check's docs).",
     )
 
     @model_validator(mode="after")
@@ -146,21 +164,22 @@ class RangeCheck(Check):
         super().__init__(settings, context)
         self.settings: RangeSettings = settings
         bounds = []
-        far = {}
         card = context.card
         rows = card.training.count
         for fname, prof in card.features.items():
-            width = prof.max - prof.min
-            pad = settings.margin * width
+            pad = settings.margin * (prof.max - prof.min)
             bounds.append((fname, prof.min - pad, prof.max + pad))
-            if width > 0:
-                # distance past the widened edge beyond which an input is far outside
-                far[fname] = settings.far_outside_ranges * width - pad
             if prof.histogram is not None:
                 rows = min(rows, round(card.training.count * (1.0 - prof.histogram.missing)))
         self._bounds: tuple[tuple[str, float, float], ...] = tuple(bounds)
-        self._far = far
         self.training_rows = max(rows, 1)
+        self.far_ranges = far_ranges(self.training_rows, settings.far_outside_ranges)
+        # distance past the widened edge beyond which an input is far outside
+        self._far = {
+            fname: self.far_ranges * (prof.max - prof.min) - settings.margin * (prof.max - prof.min)
+            for fname, prof in card.features.items()
+            if prof.max > prof.min
+        }
         d = len(bounds)
         self.expected_share = min(1.0, 2.0 * d / (self.training_rows + 1))
         self.rate_bound = outside_rate_bound(self.training_rows, d)
@@ -258,6 +277,7 @@ class RangeCheck(Check):
             "warning_limit": warning,
             "critical_limit": critical,
             "far_outside": far_count,
+            "far_outside_ranges": self.far_ranges,
             "training_rows": self.training_rows,
             "warning_share": s.warning_share,
             "critical_share": s.critical_share,
@@ -277,8 +297,7 @@ class RangeCheck(Check):
             return f"{head}, within the limit of {warning:.1%}."
         if far_count:
             head += (
-                f"; {far_count} of them more than {s.far_outside_ranges:g} training ranges beyond the "
-                "training min or max"
+                f"; {far_count} of them more than {self.far_ranges:g} training ranges beyond the training min or max"
             )
         limit = critical if level == "critical" else warning
         if s.margin:
