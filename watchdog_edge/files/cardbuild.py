@@ -419,8 +419,9 @@ def card_cautions(card: ModelCard) -> list[str]:
         warning, _ = rng.limits(rng.settings.window)
         if warning >= RANGE_EXCURSION:
             out.append(
-                f"too few rows for range: from {rng.training_rows} rows and {len(card.features)} features, up to "
-                f"{rng.expected_share:.1%} of fair inputs may fall outside the training range, so range raises "
+                f"too few rows for range: from {rng.training_rows} rows and {len(card.features)} features, as many "
+                f"as {rng.expected_share:.1%} of fair inputs fall outside the training range on average, so range "
+                "raises "
                 f"only above {warning:.1%} of its window and a fifth of the inputs leaving the range would "
                 "go unseen (far-outside inputs are still raised at once); add training rows"
             )
