@@ -272,3 +272,38 @@ def test_small_cards_raise_the_limits_so_fair_inputs_stay_quiet():
                 check.on_prediction(Prediction("m", str(i), 0.0, float(i), features=feats))
                 check.evaluate(float(i))
             assert check.figures()["level"] == "critical", (n, d)
+
+
+def test_a_large_move_is_seen_on_the_recent_part_of_the_window():
+    # 45 % -> 75 % of ones: over the whole window of 1,000 the index passes 0.1 only once about
+    # half the window has moved; over the latest 250 it passes its own (higher) limit sooner.
+    from watchdog_edge.files.cardbuild import card_from_arrays
+
+    rng = np.random.default_rng(23)
+    n = 3000
+    switch = (rng.uniform(size=n) < 0.45).astype(float)
+    y = rng.normal(size=n)
+    card = card_from_arrays(model_id="m", x={"switch": switch}, y=y, yhat=y, params=2)
+    delays = {}
+    assert ShiftSettings().recent_predictions == 0  # off by default (daily cycles)
+    for recent in (0, 250):
+        check = ShiftCheck(
+            ShiftSettings(recent_predictions=recent, evaluate_every=50),
+            CheckContext("m", card, "squared", 1.0, "holdout"),
+        )
+        stream = np.concatenate([rng.uniform(size=2000) < 0.45, rng.uniform(size=2000) < 0.75]).astype(float)
+        for i, on in enumerate(stream.tolist()):
+            check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"switch": on}))
+            v = check.evaluate(float(i))
+            if v is not None and v.level != "normal":
+                delays[recent] = i - 2000
+                break
+        if recent:
+            # the recent index is the index of the latest 250 values, counted here with numpy
+            last = stream[i - 249 : i + 1]
+            counts = [int((last == 0).sum()), int((last == 1).sum()), 0, 0]
+            e = card.features["switch"].histogram.shares + [0.0, 0.0]
+            a = (np.array(counts) + 0.5) / (250 + 2.0)
+            q = (np.array(e) * 250 + 0.5) / (250 + 2.0)
+            assert v.figures["recent_index"]["switch"] == pytest.approx(float(np.sum((a - q) * np.log(a / q))))
+    assert delays[250] < 300 < delays[0]

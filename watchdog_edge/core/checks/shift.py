@@ -14,7 +14,8 @@ The index is biased upwards on small windows: for a window of n rows drawn from 
 distribution, n x PSI is close to Pearson's chi-square statistic (ln(a/e) ~ (a - e)/e for small
 differences), so it is about chi-square with b - 1 degrees of freedom, b the number of bins with
 a training share, and its mean is about (b - 1) / n. Hence the default window of 1,000 predictions; ``check-config``
-prints :func:`settings_warnings` for smaller ones. Warning at 0.1 and critical at 0.25 are
+prints :func:`settings_warnings` for smaller ones (the limits below allow for the bias, at the
+cost of missing small moves). Warning at 0.1 and critical at 0.25 are
 common practice, no single source. Needs no truth.
 
 A feature with few distinct values has one bin per value on the card (``values``); a live
@@ -29,6 +30,15 @@ an index is reported only where it is both above the configured limit and signif
 both sample sizes; the figures give each feature's warning limit (``warning_limits``), and
 the level is taken from the largest index relative to its factor. n is the card's row count
 less the feature's missing share.
+
+A window of 1,000 sees small moves but is slow to see a large one: a share moving from 45 %
+to 75 % passes the warning index only once half the window has moved. With
+``recent_predictions`` set (say 250, with ``evaluate_every`` 50), the index is also taken
+over the latest that many predictions of the window, with its own limits (the same rule, for
+the shorter window), and the level follows whichever of the two is further above its
+limits; the figures give both (``index``, ``recent_index``). It is off by default: where the
+inputs have a cycle (a day) longer than the recent part, that part holds only a piece of the
+cycle and is raised every cycle, as the built-in demo shows.
 
 A prediction with no features at all is not counted; in one that has features, a feature that
 is null or absent falls into the missing bin.
@@ -92,6 +102,13 @@ class ShiftSettings(CheckSettings):
     evaluate_every: int = Field(
         250, ge=1, description="Predictions between evaluations (the index moves slowly on a window of 1000)."
     )
+    recent_predictions: int = Field(
+        0,
+        ge=0,
+        description="Also compare the latest this many predictions of the window, with limits for their "
+        "number, to see large moves sooner (off with 0, the default: inputs with a daily cycle "
+        "longer than this many predictions would be raised every cycle).",
+    )
     hysteresis: float = Field(
         0.2, ge=0, lt=1, description="Clear only when the index is at or below the limit x (1 - this)."
     )
@@ -122,7 +139,8 @@ def settings_warnings(settings: ShiftSettings) -> list[str]:
         out.append(
             f"window = {settings.window} is below {ADVISED_MIN_WINDOW}: the population stability "
             f"index is biased upwards on small windows (about bins/window on unchanged inputs), so "
-            f"false alarms become likely; use window >= {ADVISED_MIN_WINDOW} or raise 'warning'"
+            f"the limits are raised for it and small moves of the inputs go unseen; use window >= "
+            f"{ADVISED_MIN_WINDOW} to see them"
         )
     return out
 
@@ -189,6 +207,9 @@ class ShiftCheck(Check):
         nbins: list[int] = []
         values: list[tuple[int, np.ndarray]] = []  # (column, values) of the one-bin-per-value features
         factors: list[float] = []
+        recent_factors: list[float] = []
+        r = settings.recent_predictions
+        self.recent = r if 0 < r < settings.window else 0  # 0: no recent index
         card = context.card
         for fname, prof in card.features.items():
             h = prof.histogram
@@ -208,9 +229,13 @@ class ShiftCheck(Check):
                 seen = sum(1 for e in expected[-1] if e > 0)
                 rows = round(card.training.count * present) if h.missing < 1 else card.training.count
                 factors.append(limit_factor(settings.warning, seen, settings.window, rows, settings.significance))
+                recent_factors.append(
+                    limit_factor(settings.warning, seen, max(self.recent, 1), rows, settings.significance)
+                )
         self.names: tuple[str, ...] = tuple(names)
         self.expected: dict[str, list[float]] = dict(zip(names, expected))
         self.factors: dict[str, float] = dict(zip(names, factors))
+        self.recent_factors: dict[str, float] = dict(zip(names, recent_factors))
         self._values = values
         self._nbins = np.array(nbins, dtype=np.int64)
         # Every feature's bins side by side in one flat count vector, at these offsets.
@@ -293,6 +318,20 @@ class ShiftCheck(Check):
         s = self.settings.smoothing
         return {n: population_stability_index(self.expected[n], c, s) for n, c in self.counts().items()}
 
+    def recent_indices(self) -> dict[str, float]:
+        """The index of every feature over the latest ``recent_predictions`` of a full window."""
+        self._flush()
+        r = self.recent
+        if not r or self._filled < self.settings.window:
+            return {}
+        slots = (self._pos - r + np.arange(r)) % self.settings.window
+        c = np.bincount(self._ring[slots].ravel(), minlength=self._total).tolist()
+        sm = self.settings.smoothing
+        return {
+            n: population_stability_index(self.expected[n], c[o : o + k], sm)
+            for n, o, k in zip(self.names, self._offset.tolist(), self._nbins.tolist())
+        }
+
     def evaluate(self, t: float) -> Verdict | None:
         if self._since_eval < self._every:
             return None
@@ -303,25 +342,37 @@ class ShiftCheck(Check):
         s = self.settings
         idx = self.indices()
         f = self.factors
-        # the level follows the index furthest above its own limits
-        top = max(idx, key=lambda n: idx[n] / f[n])
-        level = self._gate.update(idx[top] / f[top])
+        # the level follows the index furthest above its own limits, over the whole window
+        # or over its recent part
+        score = {n: idx[n] / f[n] for n in idx}
+        span = {n: self._filled for n in idx}
+        recent = self.recent_indices()
+        rf = self.recent_factors
+        for n, v in recent.items():
+            if v / rf[n] > score[n]:
+                score[n], span[n] = v / rf[n], self.recent
+        top = max(score, key=score.__getitem__)
+        level = self._gate.update(score[top])
         self._figures = {
             "index": idx,
+            "recent_index": recent,
             "top_feature": top,
             "predictions": self._filled,
+            "recent_predictions": self.recent,
             "warning": s.warning,
             "critical": s.critical,
             "warning_limits": {n: s.warning * f[n] for n in idx},
             "critical_limits": {n: s.critical * f[n] for n in idx},
+            "recent_warning_limits": {n: s.warning * rf[n] for n in recent},
         }
-        return Verdict(level, self._summary(level, idx, top), dict(self._figures))
+        return Verdict(level, self._summary(level, score, span, top), dict(self._figures))
 
-    def _summary(self, level: str, idx: dict[str, float], top: str) -> str:
+    def _summary(self, level: str, score: dict[str, float], span: dict[str, int], top: str) -> str:
         s = self.settings
-        n = self._filled
-        f = self.factors
+        n = span[top]
+        f = self.factors if n == self._filled else self.recent_factors
         warn = s.warning * f[top]
+        idx = {k: v * (self.factors if span[k] == self._filled else self.recent_factors)[k] for k, v in score.items()}
         if level == "normal":
             return (
                 f"The inputs of the last {n} predictions look like the training data: the largest "
@@ -329,7 +380,7 @@ class ShiftCheck(Check):
                 f"{warn:.3g}."
             )
         limit = (s.critical if level == "critical" else s.warning) * f[top]
-        moved = [name for name, v in sorted(idx.items(), key=lambda kv: -kv[1] / f[kv[0]]) if v > s.warning * f[name]]
+        moved = [name for name, v in sorted(score.items(), key=lambda kv: -kv[1]) if v > s.warning]
         names = ", ".join(moved[:3]) + (f" and {len(moved) - 3} more" if len(moved) > 3 else "")
         return (
             f"The inputs have moved away from the training data: population stability index "
