@@ -147,6 +147,15 @@ def test_the_card_chooses_its_estimate_and_old_cards_load(tmp_path):
     loaded = load_card(path)
     assert loaded.card_format == 1 and loaded.target.constant_loss is None
     assert expected_loss(loaded) == (pytest.approx(0.5 * 404 / 396), "fpe")
+    # and the input checks take its histogram as before (edges, open outer bins)
+    from watchdog_edge.core.checks.base import CheckContext
+    from watchdog_edge.core.checks.shift import ShiftCheck, ShiftSettings
+    from watchdog_edge.core.records import Prediction
+
+    shift = ShiftCheck(ShiftSettings(window=50, evaluate_every=50), CheckContext("pump", loaded, "squared", 1.0, "fpe"))
+    for i in range(50):
+        shift.on_prediction(Prediction("pump", str(i), 0.0, float(i), features={"flow": float(i % 10)}))
+    assert shift.counts()["flow"] == [15, 15, 20, 0]  # [0, 3), [3, 6), [6, inf), missing
     old["card_format"] = 3
     path.write_text(json.dumps(old))
     with pytest.raises(CardError, match="card_format = 3.*expected 1 or 2"):
