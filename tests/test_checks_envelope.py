@@ -301,3 +301,17 @@ def test_far_outside_distance_for_exponential_tails_by_simulation():
         k = far_ranges(n, 0.0)
         assert n / (n + 1) / comb(n + int(k), int(k) + 1) < FAR_PROBABILITY
         assert n / (n + 1) / comb(n + int(k) - 1, int(k)) >= FAR_PROBABILITY  # the smallest such k
+
+
+@pytest.mark.parametrize("n, d", [(30, 5), (120, 10), (1000, 50)])
+def test_correlated_features_stay_quiet_too(n, d):
+    # The union bound holds whatever the features' dependence: strongly correlated features
+    # (a common factor with loading 0.9) leave fewer fair inputs outside than the bound allows.
+    rng = np.random.default_rng(n + 7 * d)
+
+    def draw(k: int) -> np.ndarray:
+        return 0.9 * rng.standard_normal((k, 1)) + np.sqrt(1 - 0.81) * rng.standard_normal((k, d))
+
+    check = RangeCheck(RangeSettings(), CheckContext("m", card_from_rows(draw(n)), "squared", 1.0, "holdout"))
+    levels = stream_levels(check, draw(3000))
+    assert levels and set(levels) == {"normal"}
