@@ -1,7 +1,7 @@
 """Detection quality of the checks: false alerts on fair models, delays on real changes.
 
 One table, one row per check (gap, drift, range, shift, baseline; and shift with its
-``recent_predictions`` option at 250, evaluated every 50) and two references
+``short_window_predictions`` option at 250, evaluated every 50) and two references
 measured in the same run on the same streams: raw ADWIN (``river.drift.ADWIN``, default
 delta, every detection counted, fed what ``drift`` is fed: the loss over the expected loss,
 clipped at 10) and a plain rolling mean of the last 500 losses against 1.25 x the expected
@@ -58,7 +58,7 @@ from watchdog_edge.core.records import Pair, Prediction, Truth
 from watchdog_edge.files.cardbuild import card_from_arrays
 
 CHECKS = ("gap", "drift", "range", "shift", "baseline")
-SHIFT_RECENT = "shift, recent 250"  # shift with recent_predictions = 250, evaluate_every = 50
+SHIFT_RECENT = "shift, short window 250"  # shift with short_window_predictions = 250, evaluate_every = 50
 REFERENCES = ("raw ADWIN", "rolling mean")
 RANK = {"normal": 0, "warning": 1, "critical": 2}
 ROLLING = 500  # pairs in the rolling mean reference (the gap window's default size)
@@ -134,7 +134,7 @@ class Driver:
         self.checks: dict[str, Check] = {n: check_class(n)(settings_class(n).model_validate({}), ctx) for n in checks}
         if "shift" in checks:  # the option that sees large moves sooner, measured beside the default
             self.checks[SHIFT_RECENT] = check_class("shift")(
-                settings_class("shift").model_validate({"recent_predictions": 250, "evaluate_every": 50}), ctx
+                settings_class("shift").model_validate({"short_window_predictions": 250, "evaluate_every": 50}), ctx
             )
         self.track = {n: Tracker() for n in (*self.checks, *REFERENCES)}
         self.names = names

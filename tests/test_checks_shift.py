@@ -285,10 +285,10 @@ def test_a_large_move_is_seen_on_the_recent_part_of_the_window():
     y = rng.normal(size=n)
     card = card_from_arrays(model_id="m", x={"switch": switch}, y=y, yhat=y, params=2)
     delays = {}
-    assert ShiftSettings().recent_predictions == 0  # off by default (daily cycles)
+    assert ShiftSettings().short_window_predictions == 0  # off by default (daily cycles)
     for recent in (0, 250):
         check = ShiftCheck(
-            ShiftSettings(recent_predictions=recent, evaluate_every=50),
+            ShiftSettings(short_window_predictions=recent, evaluate_every=50),
             CheckContext("m", card, "squared", 1.0, "holdout"),
         )
         stream = np.concatenate([rng.uniform(size=2000) < 0.45, rng.uniform(size=2000) < 0.75]).astype(float)
@@ -305,5 +305,5 @@ def test_a_large_move_is_seen_on_the_recent_part_of_the_window():
             e = card.features["switch"].histogram.shares + [0.0, 0.0]
             a = (np.array(counts) + 0.5) / (250 + 2.0)
             q = (np.array(e) * 250 + 0.5) / (250 + 2.0)
-            assert v.figures["recent_index"]["switch"] == pytest.approx(float(np.sum((a - q) * np.log(a / q))))
+            assert v.figures["short_window_index"]["switch"] == pytest.approx(float(np.sum((a - q) * np.log(a / q))))
     assert delays[250] < 300 < delays[0]

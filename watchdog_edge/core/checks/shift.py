@@ -33,10 +33,10 @@ less the feature's missing share.
 
 A window of 1,000 sees small moves but is slow to see a large one: a share moving from 45 %
 to 75 % passes the warning index only once half the window has moved. With
-``recent_predictions`` set (say 250, with ``evaluate_every`` 50), the index is also taken
+``short_window_predictions`` set (say 250, with ``evaluate_every`` 50), the index is also taken
 over the latest that many predictions of the window, with its own limits (the same rule, for
 the shorter window), and the level follows whichever of the two is further above its
-limits; the figures give both (``index``, ``recent_index``). It is off by default: where the
+limits; the figures give both (``index``, ``short_window_index``). It is off by default: where the
 inputs have a cycle (a day) longer than the recent part, that part holds only a piece of the
 cycle and is raised every cycle, as the built-in demo shows.
 
@@ -102,7 +102,7 @@ class ShiftSettings(CheckSettings):
     evaluate_every: int = Field(
         250, ge=1, description="Predictions between evaluations (the index moves slowly on a window of 1000)."
     )
-    recent_predictions: int = Field(
+    short_window_predictions: int = Field(
         0,
         ge=0,
         description="Also compare the latest this many predictions of the window, with limits for their "
@@ -208,7 +208,7 @@ class ShiftCheck(Check):
         values: list[tuple[int, np.ndarray]] = []  # (column, values) of the one-bin-per-value features
         factors: list[float] = []
         recent_factors: list[float] = []
-        r = settings.recent_predictions
+        r = settings.short_window_predictions
         self.recent = r if 0 < r < settings.window else 0  # 0: no recent index
         card = context.card
         for fname, prof in card.features.items():
@@ -319,7 +319,7 @@ class ShiftCheck(Check):
         return {n: population_stability_index(self.expected[n], c, s) for n, c in self.counts().items()}
 
     def recent_indices(self) -> dict[str, float]:
-        """The index of every feature over the latest ``recent_predictions`` of a full window."""
+        """The index of every feature over the latest ``short_window_predictions`` of a full window."""
         self._flush()
         r = self.recent
         if not r or self._filled < self.settings.window:
@@ -355,15 +355,15 @@ class ShiftCheck(Check):
         level = self._gate.update(score[top])
         self._figures = {
             "index": idx,
-            "recent_index": recent,
+            "short_window_index": recent,
             "top_feature": top,
             "predictions": self._filled,
-            "recent_predictions": self.recent,
+            "short_window_predictions": self.recent,
             "warning": s.warning,
             "critical": s.critical,
             "warning_limits": {n: s.warning * f[n] for n in idx},
             "critical_limits": {n: s.critical * f[n] for n in idx},
-            "recent_warning_limits": {n: s.warning * rf[n] for n in recent},
+            "short_window_warning_limits": {n: s.warning * rf[n] for n in recent},
         }
         return Verdict(level, self._summary(level, score, span, top), dict(self._figures))
 
