@@ -66,13 +66,13 @@ def parse_lines(
                         continue
             yield _check_line(obj, i, source)
     finally:
-        if close:
-            texts.close()  # type: ignore[attr-defined]
+        if close and hasattr(texts, "close"):
+            texts.close()
 
 
 def _parse_slowly(text: str | bytes, lineno: int, source: str) -> Any:
     """What orjson refused: blank lines, bytes that are not UTF-8, NaN literals, or bad JSON."""
-    if type(text) is not str:
+    if not isinstance(text, str):
         text = text.decode("utf-8", "surrogateescape")
     text = text.strip()
     if not text:

@@ -48,7 +48,7 @@ from __future__ import annotations
 
 import math
 import operator
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from itertools import chain
 from typing import Any
 
@@ -56,7 +56,7 @@ import numpy as np
 from pydantic import Field, model_validator
 
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict
-from watchdog_edge.core.checks.levels import LevelGate
+from watchdog_edge.core.levels import LevelGate
 from watchdog_edge.core.records import Prediction
 from watchdog_edge.core.tails import chi2_isf
 
@@ -174,7 +174,7 @@ def population_stability_index(
     return total
 
 
-class ShiftCheck(Check):
+class ShiftCheck(Check[ShiftSettings]):
     """Population stability index per feature against the card's training histograms.
 
     Predictions are queued as they come (one list append) and binned in a batch with numpy
@@ -188,19 +188,19 @@ class ShiftCheck(Check):
     >>> check = ShiftCheck(ShiftSettings(window=100, evaluate_every=100),
     ...                    CheckContext("m", card, "squared", 1.0, "holdout"))
     >>> for i in range(100):                       # every value in the top bin
-    ...     _ = check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"x": 3.5}))
+    ...     due = check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"x": 3.5}))
     >>> v = check.evaluate(100.0)
     >>> v.level, round(v.figures["index"]["x"], 2)
     ('critical', 3.88)
     """
 
     name = "shift"
+    takes = frozenset({"prediction"})
     reacts_to = frozenset({"prediction"})  # its counts move only with predictions
     settings_model = ShiftSettings
 
     def __init__(self, settings: ShiftSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        self.settings: ShiftSettings = settings
         names: list[str] = []
         inner: list[list[float]] = []
         expected: list[list[float]] = []
@@ -248,7 +248,8 @@ class ShiftCheck(Check):
         for j, e in enumerate(inner):
             self._edges[j, : len(e)] = e
         self._missing = self._nbins - 1
-        self._getter = operator.itemgetter(*names) if names else None
+        # the features of one prediction, in ``names`` order (with no features nothing is queued)
+        self._getter: Callable[[dict[str, float | None]], Any] = operator.itemgetter(*names) if names else tuple
         self._every = settings.evaluate_every
         self._gate = LevelGate(settings.warning, settings.critical, settings.hysteresis, settings.clear_after)
         self.reset()
@@ -352,7 +353,7 @@ class ShiftCheck(Check):
             if v / rf[n] > score[n]:
                 score[n], span[n] = v / rf[n], self.recent
         top = max(score, key=score.__getitem__)
-        level = self._gate.update(score[top])
+        level = self._gate.update_figure(score[top])
         self._figures = {
             "index": idx,
             "short_window_index": recent,
