@@ -307,3 +307,21 @@ def test_a_large_move_is_seen_on_the_recent_part_of_the_window():
             q = (np.array(e) * 250 + 0.5) / (250 + 2.0)
             assert v.figures["short_window_index"]["switch"] == pytest.approx(float(np.sum((a - q) * np.log(a / q))))
     assert delays[250] < 300 < delays[0]
+
+
+def test_nulls_and_absent_features_go_to_the_missing_bin_of_their_own_feature_only():
+    hist = {"edges": [0.0, 1.0, 2.0], "shares": [0.5, 0.5], "missing": 0.0}
+    card = ModelCard(
+        model_id="press",
+        training={"loss": 1.0, "count": 10},
+        fitted_parameters=1,
+        holdout={"loss": 1.0, "count": 10},
+        features={n: {"min": 0, "max": 2, "histogram": hist} for n in ("pressure", "speed")},
+    )
+    check = make_check(card, window=50, evaluate_every=50)
+    rows = [{"pressure": None, "speed": 0.5}, {"speed": 1.5}, {"pressure": 1.5, "speed": None}, {"pressure": 0.2}]
+    for i, feats in enumerate(rows):
+        check.on_prediction(Prediction("press", str(i), 0.0, float(i), features=feats))
+    # by hand: pressure None, absent, 1.5, 0.2 -> bins [1, 1, 0] with two missing;
+    # speed 0.5, 1.5, None, absent -> [1, 1] with two missing
+    assert check.counts() == {"pressure": [1, 1, 2], "speed": [1, 1, 2]}

@@ -198,14 +198,20 @@ def replay(
     lines: Iterable[RecordLine],
     tick_every: float | None = None,
     on_event: Callable[[Event], None] | None = None,
+    keep: bool = True,
 ) -> list[Event]:
-    """Drive ``monitor`` with recording lines; return every event in order."""
+    """Drive ``monitor`` with recording lines; return every event in order.
+
+    With ``keep=False`` nothing is gathered (the result is empty): a long replay that hands
+    its events to ``on_event`` then holds none of them.
+    """
     events: list[Event] = []
     feed, tick = monitor.feed, monitor.tick
     for line in with_ticks(lines, tick_every) if tick_every else lines:
         out = tick(line.t) if line.tick else feed(line.topic, line.payload, line.t)
         if out:
-            events.extend(out)
+            if keep:
+                events.extend(out)
             if on_event is not None:
                 for ev in out:
                     on_event(ev)
