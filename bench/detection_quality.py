@@ -58,7 +58,7 @@ from watchdog_edge.core.records import Pair, Prediction, Truth
 from watchdog_edge.files.cardbuild import card_from_arrays
 
 CHECKS = ("gap", "drift", "range", "shift", "baseline")
-SHIFT_RECENT = "shift, short window 250"  # shift with short_window_predictions = 250, evaluate_every = 50
+SHIFT_RECENT = "shift, short window 250"  # shift with short_window_predictions = 250, evaluate_every_predictions = 50
 REFERENCES = ("raw ADWIN", "rolling mean")
 RANK = {"normal": 0, "warning": 1, "critical": 2}
 ROLLING = 500  # pairs in the rolling mean reference (the gap window's default size)
@@ -134,7 +134,10 @@ class Driver:
         self.checks: dict[str, Check] = {n: check_class(n)(settings_class(n).model_validate({}), ctx) for n in checks}
         if "shift" in checks:  # the option that sees large moves sooner, measured beside the default
             self.checks[SHIFT_RECENT] = check_class("shift")(
-                settings_class("shift").model_validate({"short_window_predictions": 250, "evaluate_every": 50}), ctx
+                settings_class("shift").model_validate(
+                    {"short_window_predictions": 250, "evaluate_every_predictions": 50}
+                ),
+                ctx,
             )
         self.track = {n: Tracker() for n in (*self.checks, *REFERENCES)}
         self.names = names

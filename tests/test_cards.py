@@ -24,7 +24,7 @@ def test_load_errors_name_the_file_and_field(tmp_path):
     bad.write_text(json.dumps(data))
     with pytest.raises(CardError) as e:
         load_card(bad)
-    assert "training.count = 0" in str(e.value) and "colour: unknown key" in str(e.value)
+    assert "training.count = 0" in str(e.value) and "colour = 'red': unknown key" in str(e.value)
 
 
 def test_expected_loss_sources():
@@ -152,7 +152,10 @@ def test_the_card_chooses_its_estimate_and_old_cards_load(tmp_path):
     from watchdog_edge.core.checks.shift import ShiftCheck, ShiftSettings
     from watchdog_edge.core.records import Prediction
 
-    shift = ShiftCheck(ShiftSettings(window=50, evaluate_every=50), CheckContext("pump", loaded, "squared", 1.0, "fpe"))
+    shift = ShiftCheck(
+        ShiftSettings(recent_predictions=50, evaluate_every_predictions=50),
+        CheckContext("pump", loaded, "squared", 1.0, "fpe"),
+    )
     for i in range(50):
         shift.on_prediction(Prediction("pump", str(i), 0.0, float(i), features={"flow": float(i % 10)}))
     assert shift.counts()["flow"] == [15, 15, 20, 0]  # [0, 3), [3, 6), [6, inf), missing

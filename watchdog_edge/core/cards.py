@@ -6,6 +6,7 @@ from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from watchdog_edge.core.validation import format_validation as _format_validation
 from watchdog_edge.errors import CardError
 
 # Format 2 added value histograms (discrete features), the loss of predicting the training
@@ -83,7 +84,7 @@ class Histogram(_Strict):
 
 
 class FeatureProfile(_Strict):
-    """Training envelope and histogram of one input feature."""
+    """Training range (min, max) and histogram of one input feature."""
 
     min: float
     max: float
@@ -114,7 +115,9 @@ class ModelCard(_Strict):
     model_version: str | None = None
     loss: LossKind = "squared"
     training: LossFigure
-    fitted_parameters: int = Field(ge=0)
+    fitted_parameters: int | None = Field(
+        None, ge=0, description="Fitted parameters d; needed for the final prediction error only (null: not given)."
+    )
     least_squares: bool = False
     # Without a held-out loss, how a least-squares card's training loss is adjusted: Akaike's
     # final prediction error (new noise at the training inputs) or the random-design estimate
@@ -180,6 +183,12 @@ def expected_loss(card: ModelCard) -> tuple[float, str]:
     if card.holdout is not None:
         return card.holdout.loss, "holdout"
     if card.loss == "squared" and card.least_squares:
+        if card.fitted_parameters is None:
+            raise CardError(
+                f"card for model '{card.model_id}' has no 'holdout' loss and no fitted_parameters: the final "
+                "prediction error needs the count of fitted parameters; add fitted_parameters, or a 'holdout' loss "
+                "(build the card with --params D, or with --holdout HOLDOUT.csv)"
+            )
         how = card.expected_loss_estimate
         return ESTIMATES[how](card.training.loss, card.training.count, card.fitted_parameters), how
     why = "absolute loss" if card.loss == "absolute" else "a model not fitted by least squares"
@@ -191,19 +200,5 @@ def expected_loss(card: ModelCard) -> tuple[float, str]:
 
 
 def format_validation(e: ValidationError) -> str:
-    """One line per problem: the dotted key, the value given and the rule broken."""
-    lines = []
-    for err in e.errors():
-        key = ".".join(str(p) for p in err["loc"]) or "(top level)"
-        value = err.get("input")
-        shown = repr(value) if not isinstance(value, dict) else "{...}"
-        if len(shown) > 60:
-            shown = shown[:57] + "..."
-        msg = err["msg"]
-        if err["type"] == "missing":
-            lines.append(f"  {key}: required but missing")
-        elif err["type"] == "extra_forbidden":
-            lines.append(f"  {key}: unknown key (value {shown}); check the spelling")
-        else:
-            lines.append(f"  {key} = {shown}: {msg}")
-    return "\n".join(lines)
+    """One line per problem: the dotted key, the value given and the rule broken (see ``validation``)."""
+    return _format_validation(e)

@@ -1,4 +1,4 @@
-"""Building a model card from training rows: losses, range, histograms, hold-out, cautions.
+"""Building a model card from training rows: losses, training range, histograms, hold-out, cautions.
 
 ``card_from_arrays`` does the computation; ``build_card`` reads the rows from CSV files first;
 ``render_card`` shows a card as text and ``card_cautions`` says what the card leaves the
@@ -140,7 +140,7 @@ def card_from_arrays(
     x: dict[str, np.ndarray],
     y: np.ndarray,
     yhat: np.ndarray,
-    params: int,
+    params: int | None,
     loss: str = "squared",
     least_squares: bool = True,
     holdout: tuple[np.ndarray, np.ndarray] | None = None,
@@ -157,14 +157,22 @@ def card_from_arrays(
     ``require_expected_loss`` is False.
     """
     _check_loss(loss)
-    if params < 0:
-        raise CardError(f"fitted parameters must be a count >= 0, got {params}")
+    if params is not None and params < 0:
+        raise CardError(
+            f"--params {params}: fitted parameters must be a count >= 0; give the model's coefficient count"
+        )
     if bins < 1:
         raise CardError(f"bins must be at least 1, got {bins}")
     y = np.asarray(y, dtype=float)
     if y.size < 2:
         raise DataError(f"need at least 2 training rows, got {y.size}")
-    if loss == "squared" and least_squares and holdout is None and y.size <= params:
+    if loss == "squared" and least_squares and holdout is None and params is None:
+        raise CardError(
+            "--params is missing: with least squares and no hold-out rows the expected loss is the final "
+            "prediction error, which needs the number of fitted parameters; give --params D, or hold-out rows "
+            "with --holdout HOLDOUT.csv"
+        )
+    if loss == "squared" and least_squares and holdout is None and params is not None and y.size <= params:
         raise DataError(
             f"{y.size} training rows for {params} fitted parameters: the final prediction error needs "
             "more rows than parameters (N > d); give hold-out rows (--holdout) or more training rows"
@@ -249,6 +257,12 @@ def read_table(path: str | Path, numeric: Collection[str] | None = None) -> tupl
     if not rows or not any(c.strip() for c in rows[0]):
         raise DataError(f"{p} has no header row; row 1 must name the columns")
     header = [h.strip() for h in rows[0]]
+    if len(header) == 1 and ";" in header[0]:
+        raise DataError(
+            f"{p}: the header (row 1) reads as one column {header[0]!r}: the columns seem to be separated by "
+            "';', and a CSV here is separated by ','; save the file with ',' between columns (and '.' as the "
+            "decimal mark)"
+        )
     for i, name in enumerate(header):
         if not name:
             raise DataError(f"{p}: column {i + 1} of the header (row 1) has no name")
@@ -330,7 +344,7 @@ def build_card(
     *,
     target: str,
     prediction: str,
-    params: int,
+    params: int | None = None,
     features: Sequence[str] | None = None,
     loss: str = "squared",
     least_squares: bool = True,
@@ -396,13 +410,14 @@ def card_cautions(card: ModelCard) -> list[str]:
     if source and train > 0 and value / train >= HIGH_OPTIMISM:
         how = "the held-out loss" if source == "holdout" else _estimate_name(source)
         extra = ""
-        if source == "fpe" and d + 1 < n:
+        if source == "fpe" and d is not None and d + 1 < n:
             extra = (
                 f" (for inputs drawn anew, the random-design estimate puts it at "
                 f"{random_design_error(train, n, d) / train:.3g} times)"
             )
         out.append(
-            f"high d/N: {d} fitted parameters on {n} rows; {how} puts the field error at "
+            f"high d/N: {d if d is not None else 'an unknown number of'} fitted parameters on {n} rows; "
+            f"{how} puts the field error at "
             f"{value / train:.3g} times the training error{extra}; the model is likely overfit and "
             "its expected loss uncertain: fit fewer parameters, add rows or give a hold-out set"
         )
@@ -416,7 +431,7 @@ def card_cautions(card: ModelCard) -> list[str]:
     if card.features:
         ctx = CheckContext(card.model_id, card, card.loss, 1.0, "holdout")
         rng = RangeCheck(RangeSettings.model_validate({}), ctx)
-        warning, _ = rng.limits(rng.settings.window)
+        warning, _ = rng.limits(rng.settings.recent_predictions)
         if warning >= RANGE_EXCURSION:
             out.append(
                 f"too few rows for range: from {rng.training_rows} rows and {len(card.features)} features, as many "
@@ -427,13 +442,15 @@ def card_cautions(card: ModelCard) -> list[str]:
             )
         shift = ShiftCheck(ShiftSettings.model_validate({}), ctx)
         base = shift.settings
-        blunt = {k: f * base.warning for k, f in shift.factors.items() if f * base.warning > base.critical}
+        blunt = {
+            k: f * base.warning_index for k, f in shift.factors.items() if f * base.warning_index > base.critical_index
+        }
         if blunt:
             worst = max(blunt, key=blunt.__getitem__)
             out.append(
                 f"too few rows for shift: the card's histograms are estimated from few rows, so the index "
                 f"must pass {blunt[worst]:.3g} ({worst}; {len(blunt)} of {len(shift.factors)} features above "
-                f"the usual critical {base.critical:g}) before a move is told from chance; add training rows "
+                f"the usual critical {base.critical_index:g}) before a move is told from chance; add training rows "
                 "or build with fewer --bins"
             )
     return out
@@ -454,7 +471,7 @@ def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> s
         f"  version            {card.model_version or '(none)'}",
         f"  loss kind          {card.loss} error",
         f"  training loss      {card.training.loss:{g}} over {card.training.count} rows",
-        f"  fitted parameters  {card.fitted_parameters}",
+        f"  fitted parameters  {card.fitted_parameters if card.fitted_parameters is not None else '(not given)'}",
         f"  least squares      {'yes' if card.least_squares else 'no'}",
     ]
     if card.holdout:
@@ -471,7 +488,7 @@ def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> s
             how = "the held-out loss"
         elif source == "fpe":
             how = (
-                f"the final prediction error, training loss x (N + d) / (N - d) = "
+                f"the training loss corrected for fitting (final prediction error), training loss x (N + d) / (N - d) = "
                 f"{train:{g}} x ({n} + {d}) / ({n} - {d})"
             )
         else:
@@ -484,7 +501,7 @@ def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> s
             lines.append(f"  optimism ratio     {value / train:.4g} (expected / training loss)")
         else:
             lines.append("  optimism ratio     undefined (the training loss is 0)")
-    if card.loss == "squared" and card.least_squares:
+    if card.loss == "squared" and card.least_squares and d is not None:
         # both estimates, whichever the card uses: they differ where d/N is high
         for name, fn in (("fpe", final_prediction_error), ("random_design", random_design_error)):
             try:

@@ -1,7 +1,7 @@
 """``shift``: have the inputs moved away from the training data?
 
 For each feature with a training histogram on the card, the population stability index (PSI)
-compares the training shares with the last ``window`` predictions:
+compares the training shares with the last ``recent_predictions`` predictions:
 
     PSI = sum_i (a_i - e_i) * ln(a_i / e_i)
 
@@ -33,7 +33,7 @@ less the feature's missing share.
 
 A window of 1,000 sees small moves but is slow to see a large one: a share moving from 45 %
 to 75 % passes the warning index only once half the window has moved. With
-``short_window_predictions`` set (say 250, with ``evaluate_every`` 50), the index is also taken
+``short_window_predictions`` set (say 250, with ``evaluate_every_predictions`` 50), the index is also taken
 over the latest that many predictions of the window, with its own limits (the same rule, for
 the shorter window), and the level follows whichever of the two is further above its
 limits; the figures give both (``index``, ``short_window_index``). It is off by default: where the
@@ -85,24 +85,26 @@ class ShiftSettings(CheckSettings):
     """Settings of ``shift``.
 
     >>> s = ShiftSettings()
-    >>> s.window, s.warning, s.critical
+    >>> s.recent_predictions, s.warning_index, s.critical_index
     (1000, 0.1, 0.25)
     """
 
-    window: int = Field(
+    recent_predictions: int = Field(
         1000,
         ge=50,
         le=1_000_000,
         description="Number of latest predictions (with features) compared with the training histogram.",
     )
-    warning: float = Field(0.1, gt=0, description="Warning when a feature's population stability index exceeds this.")
-    critical: float = Field(
+    warning_index: float = Field(
+        0.1, gt=0, description="Warning when a feature's population stability index exceeds this."
+    )
+    critical_index: float = Field(
         0.25, gt=0, description="Critical when a feature's population stability index exceeds this."
     )
     smoothing: float = Field(
         0.5, gt=0, le=10, description="Pseudo-count added to every bin on both sides, so empty bins stay finite."
     )
-    evaluate_every: int = Field(
+    evaluate_every_predictions: int = Field(
         250, ge=1, description="Predictions between evaluations (the index moves slowly on a window of 1000)."
     )
     short_window_predictions: int = Field(
@@ -115,7 +117,7 @@ class ShiftSettings(CheckSettings):
     hysteresis: float = Field(
         0.2, ge=0, lt=1, description="Clear only when the index is at or below the limit x (1 - this)."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
     significance: float = Field(
         1e-6,
         gt=0,
@@ -126,23 +128,23 @@ class ShiftSettings(CheckSettings):
 
     @model_validator(mode="after")
     def _order(self) -> ShiftSettings:
-        if self.critical < self.warning:
-            raise ValueError(f"critical ({self.critical}) must be >= warning ({self.warning})")
+        if self.critical_index < self.warning_index:
+            raise ValueError(f"critical_index ({self.critical_index}) must be >= warning_index ({self.warning_index})")
         return self
 
 
 def settings_warnings(settings: ShiftSettings) -> list[str]:
     """Advice on settings that are valid but unwise, for ``check-config`` to print.
 
-    >>> settings_warnings(ShiftSettings(window=300))[0][:40]
-    'window = 300 is below 1000: the populati'
+    >>> settings_warnings(ShiftSettings(recent_predictions=300))[0][:50]
+    'recent_predictions = 300 is below 1000: the popula'
     """
     out = []
-    if settings.window < ADVISED_MIN_WINDOW:
+    if settings.recent_predictions < ADVISED_MIN_WINDOW:
         out.append(
-            f"window = {settings.window} is below {ADVISED_MIN_WINDOW}: the population stability "
-            f"index is biased upwards on small windows (about bins/window on unchanged inputs), so "
-            f"the limits are raised for it and small moves of the inputs go unseen; use window >= "
+            f"recent_predictions = {settings.recent_predictions} is below {ADVISED_MIN_WINDOW}: the population "
+            f"stability index is biased upwards on few predictions (about bins/predictions on unchanged inputs), "
+            f"so the limits are raised for it and small moves of the inputs go unseen; use recent_predictions >= "
             f"{ADVISED_MIN_WINDOW} to see them"
         )
     return out
@@ -188,7 +190,7 @@ class ShiftCheck(Check[ShiftSettings]):
     >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 100}, fitted_parameters=2,
     ...     holdout={"loss": 1.0, "count": 50}, features={"x": {"min": 0, "max": 4,
     ...     "histogram": {"edges": [0, 1, 2, 3, 4], "shares": [0.25, 0.25, 0.25, 0.25]}}})
-    >>> check = ShiftCheck(ShiftSettings(window=100, evaluate_every=100),
+    >>> check = ShiftCheck(ShiftSettings(recent_predictions=100, evaluate_every_predictions=100),
     ...                    CheckContext("m", card, "squared", 1.0, "holdout"))
     >>> for i in range(100):                       # every value in the top bin
     ...     due = check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"x": 3.5}))
@@ -212,7 +214,7 @@ class ShiftCheck(Check[ShiftSettings]):
         factors: list[float] = []
         recent_factors: list[float] = []
         r = settings.short_window_predictions
-        self.recent = r if 0 < r < settings.window else 0  # 0: no recent index
+        self.recent = r if 0 < r < settings.recent_predictions else 0  # 0: no recent index
         card = context.card
         for fname, prof in card.features.items():
             h = prof.histogram
@@ -231,9 +233,11 @@ class ShiftCheck(Check[ShiftSettings]):
                 nbins.append(len(shares) + 1)  # the card's bins, then the missing bin
                 seen = sum(1 for e in expected[-1] if e > 0)
                 rows = round(card.training.count * present) if h.missing < 1 else card.training.count
-                factors.append(limit_factor(settings.warning, seen, settings.window, rows, settings.significance))
+                factors.append(
+                    limit_factor(settings.warning_index, seen, settings.recent_predictions, rows, settings.significance)
+                )
                 recent_factors.append(
-                    limit_factor(settings.warning, seen, max(self.recent, 1), rows, settings.significance)
+                    limit_factor(settings.warning_index, seen, max(self.recent, 1), rows, settings.significance)
                 )
         self.names: tuple[str, ...] = tuple(names)
         self.expected: dict[str, list[float]] = dict(zip(names, expected))
@@ -253,8 +257,10 @@ class ShiftCheck(Check[ShiftSettings]):
         self._missing = self._nbins - 1
         # the features of one prediction, in ``names`` order (with no features nothing is queued)
         self._getter: Callable[[dict[str, float | None]], Any] = operator.itemgetter(*names) if names else tuple
-        self._every = settings.evaluate_every
-        self._gate = LevelGate(settings.warning, settings.critical, settings.hysteresis, settings.clear_after)
+        self._every = settings.evaluate_every_predictions
+        self._gate = LevelGate(
+            settings.warning_index, settings.critical_index, settings.hysteresis, settings.clear_after_evaluations
+        )
         self.reset()
 
     def reset(self) -> None:
@@ -262,7 +268,7 @@ class ShiftCheck(Check[ShiftSettings]):
         # flat bin ids (offset included) of each prediction in the window; -1 where still empty
         # int16 where every bin id fits (nearly always): half the memory of a model's window
         dtype = np.int16 if self._total < 2**15 else np.int32
-        self._ring = np.full((self.settings.window, len(self.names)), -1, dtype=dtype)
+        self._ring = np.full((self.settings.recent_predictions, len(self.names)), -1, dtype=dtype)
         self._pos = 0
         self._filled = 0
         # the features of predictions not yet binned, row after row in ``names`` order, as
@@ -299,7 +305,7 @@ class ShiftCheck(Check[ShiftSettings]):
         m = self._npend
         if not m:
             return
-        size = self.settings.window
+        size = self.settings.recent_predictions
         k = len(self.names)
         x = np.frombuffer(self._pending, dtype=float)
         if m > size:  # only the newest ``size`` can stay in the window
@@ -340,9 +346,9 @@ class ShiftCheck(Check[ShiftSettings]):
         """The index of every feature over the latest ``short_window_predictions`` of a full window."""
         self._flush()
         r = self.recent
-        if not r or self._filled < self.settings.window:
+        if not r or self._filled < self.settings.recent_predictions:
             return {}
-        slots = (self._pos - r + np.arange(r)) % self.settings.window
+        slots = (self._pos - r + np.arange(r)) % self.settings.recent_predictions
         c = np.bincount(self._ring[slots].ravel(), minlength=self._total).tolist()
         sm = self.settings.smoothing
         return {
@@ -355,7 +361,7 @@ class ShiftCheck(Check[ShiftSettings]):
             return None
         self._since_eval = 0
         self._flush()
-        if self._filled < self.settings.window:
+        if self._filled < self.settings.recent_predictions:
             return None
         s = self.settings
         idx = self.indices()
@@ -377,11 +383,11 @@ class ShiftCheck(Check[ShiftSettings]):
             "top_feature": top,
             "predictions": self._filled,
             "short_window_predictions": self.recent,
-            "warning": s.warning,
-            "critical": s.critical,
-            "warning_limits": {n: s.warning * f[n] for n in idx},
-            "critical_limits": {n: s.critical * f[n] for n in idx},
-            "short_window_warning_limits": {n: s.warning * rf[n] for n in recent},
+            "warning_index": s.warning_index,
+            "critical_index": s.critical_index,
+            "warning_limits": {n: s.warning_index * f[n] for n in idx},
+            "critical_limits": {n: s.critical_index * f[n] for n in idx},
+            "short_window_warning_limits": {n: s.warning_index * rf[n] for n in recent},
         }
         return Verdict(level, self._summary(level, score, span, top), dict(self._figures))
 
@@ -389,7 +395,7 @@ class ShiftCheck(Check[ShiftSettings]):
         s = self.settings
         n = span[top]
         f = self.factors if n == self._filled else self.recent_factors
-        warn = s.warning * f[top]
+        warn = s.warning_index * f[top]
         idx = {k: v * (self.factors if span[k] == self._filled else self.recent_factors)[k] for k, v in score.items()}
         if level == "normal":
             return (
@@ -397,8 +403,8 @@ class ShiftCheck(Check[ShiftSettings]):
                 f"population stability index for its limit is {idx[top]:.3g} ({top}), within the warning limit "
                 f"{warn:.3g}."
             )
-        limit = (s.critical if level == "critical" else s.warning) * f[top]
-        moved = [name for name, v in sorted(score.items(), key=lambda kv: -kv[1]) if v > s.warning]
+        limit = (s.critical_index if level == "critical" else s.warning_index) * f[top]
+        moved = [name for name, v in sorted(score.items(), key=lambda kv: -kv[1]) if v > s.warning_index]
         names = ", ".join(moved[:3]) + (f" and {len(moved) - 3} more" if len(moved) > 3 else "")
         return (
             f"The inputs have moved away from the training data: population stability index "
@@ -427,7 +433,9 @@ class ShiftCheck(Check[ShiftSettings]):
     def restore(self, data: dict[str, Any]) -> None:
         if list(data["features"]) != list(self.names):
             raise ValueError(f"shift snapshot covers features {data['features']}, the card has {list(self.names)}")
-        self._ring = np.array(data["ring"], dtype=self._ring.dtype).reshape(self.settings.window, len(self.names))
+        self._ring = np.array(data["ring"], dtype=self._ring.dtype).reshape(
+            self.settings.recent_predictions, len(self.names)
+        )
         self._counts = np.array(data["counts"], dtype=np.int64)
         self._pos = int(data["pos"])
         self._filled = int(data["filled"])
