@@ -27,10 +27,11 @@ raised within the stream):
   its range (n = 300, d = 5);
 - discrete share: a 0/1 feature's share of ones moves from 45 % to 75 % (n = 3,000).
 
-    python3 bench/detection_quality.py --short     # about a minute on 2 cores
+    python3 bench/detection_quality.py --short     # under a minute on 2 cores
     python3 bench/detection_quality.py             # the full form: 100,000 records per stream
 
-The full form ran in about 25 minutes on 2 cores (see README "Detection, measured").
+The full form ran in about 3 minutes on the 2-core test machine when idle, up to 13 with the
+test suite beside it (see README "Detection, measured").
 """
 
 from __future__ import annotations
