@@ -636,7 +636,7 @@ class Agent:
                 mid = self.link.publish(self.state_topics[m], payload, qos=1, retain=True)
                 self.pending_other.add(mid)
         if kept:
-            self.store.keep_published(kept)
+            self._keep_published(kept)
 
     def status(self, connection: str = "online") -> dict[str, Any]:
         """The agent status as published (counters of the core, the outbox, the journal, the link)."""
@@ -668,10 +668,17 @@ class Agent:
             }
         )
 
+    def _keep_published(self, rows: list[tuple[str, bytes, float]]) -> None:
+        """The local copy of retained payloads for readers; a full disk only leaves it stale."""
+        try:
+            self.store.keep_published(rows)
+        except StoreWriteError as e:
+            self._store_trouble(e)
+
     def _publish_status(self, connection: str) -> int | None:
         """Publish the retained status (kept in the state file as well); the message id, if sent."""
         payload = json.dumps(self.status(connection), separators=(",", ":")).encode()
-        self.store.keep_published([(self.status_topic, payload, time.time())])
+        self._keep_published([(self.status_topic, payload, time.time())])
         if not self.link.connected.is_set():
             return None
         mid = self.link.publish(self.status_topic, payload, qos=1, retain=True)

@@ -453,8 +453,11 @@ class Store:
                 rows,
             )
             db.execute("COMMIT")
+        except sqlite3.Error as e:
+            self._rollback()
+            raise _write_error(self.path, e) from None
         except BaseException:
-            db.execute("ROLLBACK")
+            self._rollback()
             raise
 
     # --- dead letters ---------------------------------------------------------------------
