@@ -195,7 +195,7 @@ def _register_optional() -> None:
     except ModuleNotFoundError as e:
         if e.name != "watchdog_edge.cli.card":
             raise
-    for mod in ("watchdog_edge.cli.agent", "watchdog_edge.cli.sim"):
+    for mod in ("watchdog_edge.cli.agent", "watchdog_edge.cli.sim", "watchdog_edge.cli.page"):
         try:
             importlib.import_module(mod).register(app)
         except ModuleNotFoundError as e:

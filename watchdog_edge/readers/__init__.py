@@ -1,0 +1,1 @@
+"""Readers: processes that read what agents publish on the broker (the page, the status command, metrics)."""
