@@ -337,7 +337,7 @@ class History:
                 removed["age"] += self.db.execute(f"DELETE FROM {table} WHERE t < ?", (cutoff,)).rowcount
             removed["age"] += self.db.execute("DELETE FROM latest WHERE received < ?", (cutoff,)).rowcount
             removed["age"] += self.db.execute("DELETE FROM agents WHERE received < ?", (cutoff,)).rowcount
-            self.db.execute("PRAGMA incremental_vacuum")
+            self.db.executescript("PRAGMA incremental_vacuum;")  # run to the end: execute() frees one page only
             target = int(self.max_bytes * 0.9)
             for _ in range(20):  # each round removes a share sized to the excess; a few rounds suffice
                 used = _used_bytes(self.db)
@@ -352,7 +352,7 @@ class History:
                             f"DELETE FROM {table} WHERE t <= (SELECT t FROM {table} ORDER BY t LIMIT 1 OFFSET ?)",
                             (k - 1,),
                         ).rowcount
-                self.db.execute("PRAGMA incremental_vacuum")
+                self.db.executescript("PRAGMA incremental_vacuum;")  # run to the end: execute() frees one page only
             self.db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
             if removed["age"] or removed["size"]:
                 self.version += 1
@@ -433,14 +433,23 @@ class HistoryReader:
     def planned(self, model: str, since: float, until: float) -> list[tuple[float, float]]:
         """The planned-work spans the model's states told of that touch ``[since, until]``, merged."""
         spans: list[tuple[float, float]] = []
-        for (raw,) in self.db.execute(
-            "SELECT DISTINCT planned FROM states WHERE model = ? AND planned IS NOT NULL AND t >= ?",
-            (model, since),
+        for raw, last_seen in self.db.execute(
+            "SELECT planned, max(t) FROM states WHERE model = ? AND planned IS NOT NULL AND t >= ? GROUP BY planned",
+            (model, since - DAY_S),
         ):
+            # A window ended early (by a command) stops being told of: clip it at the first
+            # state after the last one that told of it.
+            after = self.db.execute(
+                "SELECT min(t) FROM states WHERE model = ? AND t > ? AND (planned IS NULL OR planned != ?)",
+                (model, last_seen, raw),
+            ).fetchone()[0]
             try:
                 for a, b in json.loads(raw):
+                    a, b = float(a), float(b)
+                    if after is not None and a <= after < b:
+                        b = float(after)
                     if b >= since and a <= until:
-                        spans.append((float(a), float(b)))
+                        spans.append((a, b))
             except (ValueError, TypeError):
                 continue
         spans.sort()

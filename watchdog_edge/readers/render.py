@@ -16,7 +16,15 @@ from dataclasses import dataclass
 from datetime import datetime, timezone
 from typing import Any
 
-from watchdog_edge.readers.history import AlertRow, HistoryReader, Point, check_levels, number, parse_time
+from watchdog_edge.readers.history import (
+    AlertRow,
+    HistoryReader,
+    Point,
+    check_levels,
+    number,
+    parse_time,
+    planned_spans,
+)
 
 CAUTION = (
     "Advisory only. This page shows how far models' predictions are from measured values; it is "
@@ -374,6 +382,23 @@ def _figures_line(state: dict[str, Any]) -> str:
     return '<p class="figures">' + " · ".join(parts) + "</p>"
 
 
+def planned_note(state: dict[str, Any], t: float) -> str:
+    """A line on the planned-work window the latest state tells of, or nothing."""
+    spans = planned_spans(state, t)
+    if not spans:
+        return ""
+    raw = state.get("planned_work")
+    name = raw.get("name") if isinstance(raw, dict) and isinstance(raw.get("name"), str) else None
+    reason = raw.get("reason") if isinstance(raw, dict) and isinstance(raw.get("reason"), str) else None
+    start, end = spans[0]
+    what = f"Planned work '{esc(name)}'" if name else "Planned work"
+    why = f" ({esc(reason)})" if reason else ""
+    return (
+        f'<p class="planned-note">{what}{why}: {esc(utc(start, False))} to {esc(utc(end, False))} UTC. '
+        "Alerts of this model are held back meanwhile; its checks keep computing.</p>"
+    )
+
+
 def model_section(
     reader: HistoryReader, model: str, t: float, state: dict[str, Any], since: float, until: float, now: float
 ) -> str:
@@ -393,14 +418,7 @@ def model_section(
         + (f" · agent {esc(agent)}" if isinstance(agent, str) else "")
         + f" · state published {esc(utc(t))} UTC ({esc(age(now - t))} ago)</p>"
     )
-    current = [p for p in planned if p[0] <= until and p[1] >= max(t, now) - 1.0]
-    note = ""
-    if current:
-        a, b = current[-1]
-        note = (
-            f'<p class="planned-note">Planned work: {esc(utc(a, False))} to {esc(utc(b, False))} UTC; '
-            "alerts of this model are held back meanwhile.</p>"
-        )
+    note = planned_note(state, t)
     return (
         f'<section class="model worst-{_level_class(worst)}" id="model-{esc(model)}" data-model="{esc(model)}">'
         + head
