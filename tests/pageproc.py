@@ -172,8 +172,17 @@ def state_payload(
     }
 
 
-def alert_payload(model: str, t: float, alert_id: str, severity: str = "warning", state: str = "raised") -> dict:
-    """An alert shaped as the agent publishes it."""
+def alert_payload(
+    model: str,
+    t: float,
+    alert_id: str,
+    severity: str = "warning",
+    state: str = "raised",
+    live: float = 1.9,
+    lower: float = 1.6,
+    limit: float = 1.25,
+) -> dict:
+    """An alert shaped as the agent publishes it (expected loss 1)."""
     from watchdog_edge.core.events import rfc3339
 
     return {
@@ -186,11 +195,12 @@ def alert_payload(model: str, t: float, alert_id: str, severity: str = "warning"
         "severity": severity,
         "ts": rfc3339(t),
         "summary": (
-            f"Live mean squared error 1.9 over 500 pairs (lower 95% bound 1.6) is above the {severity} limit 1.25 "
+            f"Live mean squared error {live:g} over 500 pairs (lower 95% bound {lower:g}) is above the {severity} "
+            f"limit {limit:g} "
             "set from the expected 1 (held-out loss); appeared after a healthy period: the model or its inputs "
             "have degraded."
         ),
-        "figures": {"live_loss": 1.9},
+        "figures": {"live_loss": live, "lower": lower},
         "episode": f"ep-{alert_id}",
     }
 

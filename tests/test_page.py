@@ -141,7 +141,7 @@ def test_page_binds_loopback_by_default_and_only_reads(tmp_path: Path, broker: B
             assert code == 405 and h["Allow"] == "GET, HEAD", method
         assert http(page.url + "api/summary", "HEAD")[0] == 200
         # nothing from the internet: every resource is the page's own
-        for path in ("", "static/page.js", "static/page.css"):
+        for path in ("", "static/page.js", "static/page.css", "static/icon.svg"):
             text = http(page.url + path)[2].decode()
             assert not re.search(r"(https?:)?//[a-z0-9]", text.replace("http://www.w3.org/2000/svg", "")), path
         assert http(page.url + "nothing-here")[0] == 404

@@ -371,13 +371,13 @@ SECURITY_HEADERS = {
     "Referrer-Policy": "no-referrer",
     "Cache-Control": "no-store",
 }
-STATIC_TYPES = {".js": "text/javascript; charset=utf-8", ".css": "text/css; charset=utf-8"}
+STATIC_TYPES = {".js": "text/javascript; charset=utf-8", ".css": "text/css; charset=utf-8", ".svg": "image/svg+xml"}
 
 
 def static_files() -> dict[str, bytes]:
-    """The page's script and stylesheet, read from the package."""
+    """The page's script, stylesheet and icon, read from the package."""
     root = resources.files("watchdog_edge.readers") / "static"
-    return {f"/static/{name}": (root / name).read_bytes() for name in ("page.js", "page.css")}
+    return {f"/static/{name}": (root / name).read_bytes() for name in ("page.js", "page.css", "icon.svg")}
 
 
 @dataclass

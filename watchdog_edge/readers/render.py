@@ -241,7 +241,7 @@ def plot_svg(
         for p in points:
             if p.live_loss is not None:
                 out.append(
-                    f'<circle class="pt" cx="{f.x(p.t):.1f}" cy="{f.y(p.live_loss):.1f}" r="2.6" '
+                    f'<circle class="pt" cx="{f.x(p.t):.1f}" cy="{f.y(p.live_loss):.1f}" r="2.2" '
                     f'data-t="{p.t:.3f}" data-live="{p.live_loss!r}" data-n="{p.count}">'
                     f"<title>{esc(utc(p.t))} UTC: live loss {fmt(p.live_loss)} "
                     f"({fmt(p.lower)} to {fmt(p.upper)})</title></circle>"
@@ -378,7 +378,7 @@ def _figures_line(state: dict[str, Any]) -> str:
         parts.append(f"{pairs} pairs")
     pending = state.get("pending")
     if isinstance(pending, int) and not isinstance(pending, bool):
-        parts.append(f"{pending} waiting for a partner")
+        parts.append(f"{pending} records waiting for their pair")
     return '<p class="figures">' + " · ".join(parts) + "</p>"
 
 
@@ -473,6 +473,7 @@ def full_page(reader: HistoryReader, span: str, version: str, now: float | None 
         '<!doctype html><html lang="en"><head><meta charset="utf-8">'
         '<meta name="viewport" content="width=device-width, initial-scale=1">'
         "<title>watchdog-edge: models at a glance</title>"
+        '<link rel="icon" href="/static/icon.svg" type="image/svg+xml">'
         '<link rel="stylesheet" href="/static/page.css"><script src="/static/page.js" defer></script>'
         "</head><body>"
         '<header><h1>watchdog-edge <span class="muted">models at a glance</span></h1>'
