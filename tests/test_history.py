@@ -150,9 +150,9 @@ def test_prune_removes_what_is_older_than_the_age_bound(tmp_path: Path) -> None:
 
 def test_prune_holds_the_size_bound_and_keeps_the_newest(tmp_path: Path) -> None:
     path = tmp_path / "h.sqlite"
-    cap = 1_000_000
+    cap = 600_000
     h = History(path, max_age_days=365, max_bytes=cap)
-    for k in range(12_000):  # about 1.6 MB of states, over the bound
+    for k in range(12_000):  # about 1.1 MB of states, over the bound
         h.add_state(f"m{k % 20}", 1000.0 + k, state(1.0 + k * 1e-4, planned_work={"start": 1.0, "end": 2.0}))
     assert h.used_bytes() > 1.5 * cap
     removed = h.prune(2000.0)

@@ -3,7 +3,7 @@
 The rules of this file:
 
 1. Rows come from three kinds of message: a model's retained state (one row per distinct
-   publication time, the gap check's figures in columns, every check's level in one JSON text),
+   publication time with the gap check's figures; the latest state is also kept whole),
    an alert (one row per ``alert_id``: a re-sent alert is the same row), and an agent's retained
    status (only the latest per agent is kept).
 2. The history is bounded twice: rows older than ``max_age_days`` go, and when the pages in
@@ -37,7 +37,6 @@ CREATE TABLE IF NOT EXISTS states (
     live_loss REAL, lower REAL, upper REAL,
     expected_loss REAL, warning_limit REAL, critical_limit REAL,
     pairs INTEGER,
-    levels TEXT,
     planned TEXT,
     PRIMARY KEY (model, t)
 ) WITHOUT ROWID;
@@ -252,7 +251,6 @@ class History:
     def add_state(self, model: str, t: float, state: dict[str, Any], agent: str | None = None) -> bool:
         """Keep one retained state published at ``t``; False when that publication is already kept."""
         g = gap_figures(state)
-        levels = check_levels(state)
         spans = planned_spans(state, t)
         version = state.get("model_version")
         pairs = state.get("pairs")
@@ -268,12 +266,11 @@ class History:
             g["warning_limit"],
             g["critical_limit"],
             pairs if isinstance(pairs, int) and not isinstance(pairs, bool) else None,
-            json.dumps(levels, separators=(",", ":")),
             json.dumps(spans) if spans else None,
         )
         payload = json.dumps(state, separators=(",", ":"), allow_nan=False, default=str)
         with self.lock:
-            cur = self.db.execute("INSERT OR IGNORE INTO states VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)", row)
+            cur = self.db.execute("INSERT OR IGNORE INTO states VALUES (?,?,?,?,?,?,?,?,?,?,?,?)", row)
             fresh = cur.rowcount > 0
             self.db.execute(
                 "INSERT INTO latest VALUES (?,?,?,?) ON CONFLICT(model) DO UPDATE SET "

@@ -34,7 +34,7 @@ CAUTION = (
 
 SPANS: dict[str, float] = {"1h": 3600.0, "6h": 6 * 3600.0, "1d": 86400.0, "7d": 7 * 86400.0}
 DEFAULT_SPAN = "1d"
-MAX_BUCKETS = 480  # drawn points per model at most: about one per two pixels of the plot
+MAX_BUCKETS = 400  # drawn points per model at most: about one per two pixels of the plot
 MAX_DOTS = 240  # with more drawn points than this, the line is drawn without a dot per point
 LATEST_ALERTS = 12  # rows in the page's list of latest alerts
 LEVEL_ORDER = {"critical": 0, "warning": 1, "normal": 2}
@@ -140,15 +140,17 @@ class Frame:
         return self.top + (1.0 - v / self.ymax) * (self.height - self.top - self.bottom)
 
 
-def _path(frame: Frame, pts: Sequence[tuple[float, float | None]]) -> str:
+def _path(frame: Frame, xs: Sequence[float], values: Sequence[float | None]) -> str:
     """SVG path data through the points, broken where a value is missing."""
     parts: list[str] = []
     pen_down = False
-    for t, v in pts:
+    base = frame.height - frame.bottom
+    scale = (frame.height - frame.top - frame.bottom) / frame.ymax
+    for x, v in zip(xs, values):
         if v is None:
             pen_down = False
             continue
-        parts.append(f"{'L' if pen_down else 'M'}{frame.x(t):.1f},{frame.y(v):.1f}")
+        parts.append(f"{'L' if pen_down else 'M'}{x:.1f},{base - v * scale:.1f}")
         pen_down = True
     return "".join(parts)
 
@@ -228,13 +230,14 @@ def plot_svg(
     out.append(f'<line class="axis" x1="{f.left}" x2="{w - f.right}" y1="{bottom_y}" y2="{bottom_y}"/>')
     out.append(f'<line class="axis" x1="{f.left}" x2="{f.left}" y1="{top_y}" y2="{bottom_y}"/>')
     out.extend(_band(f, points))
+    xs = [f.x(p.t) for p in points]
     for cls, key in (
         ("expected", "expected_loss"),
         ("limit-warning", "warning_limit"),
         ("limit-critical", "critical_limit"),
         ("live", "live_loss"),
     ):
-        d = _path(f, [(p.t, getattr(p, key)) for p in points])
+        d = _path(f, xs, [getattr(p, key) for p in points])
         if d:
             out.append(f'<path class="{cls}" d="{d}"/>')
     if len(points) <= MAX_DOTS:
@@ -406,7 +409,6 @@ def model_section(
     levels = check_levels(state)
     worst = _worst(levels)
     points = reader.series(model, since, until, MAX_BUCKETS)
-    raw = reader.count_states(model, since, until)
     alerts = reader.alerts(model, since, 500)
     planned = reader.planned(model, since, until)
     version = state.get("model_version")
@@ -425,7 +427,7 @@ def model_section(
         + _levels_list(levels)
         + _figures_line(state)
         + note
-        + plot_svg(model, points, alerts, planned, since, until, raw)
+        + plot_svg(model, points, alerts, planned, since, until, sum(p.count for p in points))
         + "</section>"
     )
 
