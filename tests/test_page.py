@@ -94,7 +94,8 @@ def test_intake_keeps_good_messages_and_counts_the_rest(tmp_path: Path) -> None:
     assert intake.message("watchdog/m1/alerts", b'{"model": "m1"}', now) == "bad"  # no alert_id
     assert intake.message("watchdog/agents/e/status", b"", now) == "cleared"
     assert intake.message("elsewhere/x", b"{}", now) == "other"
-    assert intake.bad == {"not_json": 1, "not_object": 1, "no_alert_id": 1}
+    assert intake.message("watchdog/m2/state", b" " * 1_000_001, now) == "bad"
+    assert intake.bad == {"not_json": 1, "not_object": 1, "no_alert_id": 1, "oversize": 1}
     with h.reader() as r:
         assert list(r.latest_states()) == ["m1"] and len(r.alerts()) == 1 and r.agents() == {}
     h.close()

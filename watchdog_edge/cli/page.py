@@ -24,7 +24,8 @@ Examples:
   watchdog-edge page --config config.toml
   watchdog-edge page --broker 127.0.0.1:1883 --port 8470
   watchdog-edge page --config config.toml --bind 0.0.0.0 --allow-remote \\
-      --secret-file /etc/watchdog-edge/page-secret --tls-cert page.crt --tls-key page.key
+      --secret-file /etc/watchdog-edge/page-secret \\
+      --tls-cert page.crt --tls-key page.key
 """
 
 
@@ -38,7 +39,7 @@ def page(
         None,
         "--config",
         "-c",
-        help="An agent's TOML config: the page uses its [broker] section (host, TLS, user, topics).",
+        help="An agent's TOML config: the page uses its broker section (host, port, TLS, user, topic templates).",
     ),
     broker: Optional[str] = typer.Option(
         None, "--broker", help="HOST:PORT of the broker, instead of (or over) the config's; default 127.0.0.1:1883."

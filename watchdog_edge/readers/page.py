@@ -51,6 +51,7 @@ log = logging.getLogger("watchdog_edge.readers.page")
 DEFAULT_PORT = 8470
 PRUNE_EVERY_S = 60.0
 _LOG_EVERY_S = 60.0
+MAX_PAYLOAD_BYTES = 1_000_000  # far above any state, status or alert an agent publishes
 
 
 # --- binding and secrets -------------------------------------------------------------------
@@ -221,6 +222,8 @@ class Intake:
             if kind == "status" and "agent" in fields:
                 self.history.forget_agent(fields["agent"])
             return "cleared"
+        if len(payload) > MAX_PAYLOAD_BYTES:
+            return self._bad("oversize", topic)
         try:
             data = json.loads(payload)
         except (ValueError, UnicodeDecodeError):
