@@ -129,7 +129,7 @@ class Frame:
     height: int = 250
     left: int = 70
     right: int = 14
-    top: int = 16
+    top: int = 22
     bottom: int = 30
 
     def x(self, t: float) -> float:
@@ -188,6 +188,7 @@ def plot_svg(
     since: float,
     until: float,
     raw_count: int,
+    ylabel: str = "live loss",
 ) -> str:
     """The model's plot: live loss with its interval, expected loss, limits, alerts, planned work.
 
@@ -227,6 +228,7 @@ def plot_svg(
         label = datetime.fromtimestamp(t, tz=timezone.utc).strftime("%m-%d %H:%M" if multi_day else "%H:%M")
         out.append(f'<line class="grid" x1="{x:.1f}" x2="{x:.1f}" y1="{top_y}" y2="{bottom_y}"/>')
         out.append(f'<text class="tick" x="{x:.1f}" y="{bottom_y + 18}" text-anchor="middle">{label}</text>')
+    out.append(f'<text class="axis-title" x="{f.left - 40}" y="{top_y - 7}">{esc(ylabel)}</text>')
     out.append(f'<line class="axis" x1="{f.left}" x2="{w - f.right}" y1="{bottom_y}" y2="{bottom_y}"/>')
     out.append(f'<line class="axis" x1="{f.left}" x2="{f.left}" y1="{top_y}" y2="{bottom_y}"/>')
     out.extend(_band(f, points))
@@ -385,6 +387,13 @@ def _figures_line(state: dict[str, Any]) -> str:
     return '<p class="figures">' + " · ".join(parts) + "</p>"
 
 
+def _ylabel(state: dict[str, Any]) -> str:
+    kind = state.get("loss")
+    if kind in ("squared", "absolute"):
+        return f"live mean {kind} error"
+    return "live loss"
+
+
 def planned_note(state: dict[str, Any], t: float) -> str:
     """A line on the planned-work window the latest state tells of, or nothing."""
     spans = planned_spans(state, t)
@@ -427,7 +436,7 @@ def model_section(
         + _levels_list(levels)
         + _figures_line(state)
         + note
-        + plot_svg(model, points, alerts, planned, since, until, sum(p.count for p in points))
+        + plot_svg(model, points, alerts, planned, since, until, sum(p.count for p in points), _ylabel(state))
         + "</section>"
     )
 
