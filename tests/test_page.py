@@ -288,3 +288,36 @@ def test_page_help_carries_the_caution() -> None:
         [sys.executable, "-m", "watchdog_edge.cli.app", "page", "--help"], capture_output=True, text=True, check=True
     ).stdout
     assert "Advisory only" in out and "127.0.0.1" in out and "--allow-remote" in out
+
+
+def test_text_from_the_broker_is_escaped_on_the_page(tmp_path: Path) -> None:
+    from watchdog_edge.readers.render import full_page
+
+    h = History(tmp_path / "h.sqlite")
+    intake = Intake(h, TopicTemplates())
+    now = time.time()
+    hostile = '<img src=x onerror="alert(1)">'
+    st = state_payload("m", now, 1.0, level='"><script>alert(2)</script>')
+    st["model"] = hostile
+    st["model_version"] = "<b>v</b>"
+    intake.message("watchdog/m/state", json.dumps(st).encode(), now)
+    a = alert_payload("m", now, 'x" onmouseover="alert(3)')
+    a["summary"] = "<script>alert(4)</script>"
+    intake.message("watchdog/m/alerts", json.dumps(a).encode(), now)
+    intake.message("watchdog/agents/e/status", json.dumps(status_payload("<i>e</i>")).encode(), now)
+    with h.reader() as r:
+        html = full_page(r, "1d", "v1", now)
+    for raw in ("<img", "<script>alert", 'onmouseover="alert', "<b>v</b>", "<i>e</i>"):
+        assert raw not in html, raw
+    assert "&lt;script&gt;alert(4)&lt;/script&gt;" in html and "&lt;img src=x" in html
+    h.close()
+
+
+def test_the_readers_examples_hold() -> None:
+    import doctest
+
+    from watchdog_edge.readers import history, page, render
+
+    for module in (history, page, render):
+        result = doctest.testmod(module, optionflags=doctest.ELLIPSIS)
+        assert result.failed == 0 and result.attempted > 0, module.__name__

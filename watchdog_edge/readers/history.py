@@ -75,7 +75,7 @@ DAY_S = 86400.0
 def parse_time(value: Any) -> float | None:
     """Unix seconds from a number or RFC 3339 text; None when it is neither.
 
-    >>> parse_time("2026-12-01T10:00:00.500Z"), parse_time(1764583200), parse_time("soon")
+    >>> parse_time("2025-12-01T10:00:00.500Z"), parse_time(1764583200), parse_time("soon")
     (1764583200.5, 1764583200.0, None)
     """
     if isinstance(value, bool):
@@ -153,10 +153,10 @@ def planned_spans(state: dict[str, Any], t: float) -> list[tuple[float, float]]:
         end = next((parse_time(item[k]) for k in _END_KEYS if k in item), None)
         if start is None and end is None:
             if item.get("active") is True:
-                spans.append((t, t))
+                spans.append((float(t), float(t)))
             continue
-        start = t if start is None else start
-        end = t if end is None else end
+        start = float(t) if start is None else start
+        end = float(t) if end is None else end
         if end >= start:
             spans.append((start, end))
     return spans
