@@ -134,6 +134,7 @@ def test_page_binds_loopback_by_default_and_only_reads(tmp_path: Path, broker: B
         html = body.decode()
         assert esc(CAUTION) in html
         assert 'data-points="2"' in html and 'data-alert-id="id-1"' in html
+        assert f"Reading the broker at 127.0.0.1:{broker.port}." in html
         # nothing that writes: no form, every method but GET and HEAD refused, forms forbidden by policy
         assert "<form" not in html.lower() and "method=" not in html.lower()
         assert "form-action 'none'" in headers["Content-Security-Policy"]

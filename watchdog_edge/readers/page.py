@@ -405,8 +405,15 @@ class PageApp:
     def footer(self) -> str:
         with self.history.reader() as r:
             c = r.counts()
+        reading = ""
+        if self.listener is not None:
+            s = self.listener.settings
+            bad = sum(self.listener.intake.bad.values())
+            reading = f"Reading the broker at {esc(s.host)}:{s.port}" + (
+                f"; {bad} messages left out as unusable (see the log). " if bad else ". "
+            )
         return (
-            f"History: {c['states']} states and {c['alerts']} alerts kept, {c['bytes'] / 1e6:.1f} MB of "
+            reading + f"History: {c['states']} states and {c['alerts']} alerts kept, {c['bytes'] / 1e6:.1f} MB of "
             f"{self.history.max_bytes / 1e6:.0f} MB, at most {self.history.max_age_s / 86400:g} days. "
             f"watchdog-edge {esc(__version__)}. "
         )
