@@ -182,8 +182,8 @@ def test_the_history_file_can_be_read_while_it_is_written(history: History) -> N
     history.add_state("m", 2.0, state(1.0))  # the writer does not wait for the open reader
     assert reader.count_states("m", 0, 10) == 2
     reader.close()
-    with pytest.raises(sqlite3.OperationalError):  # and readers cannot write
-        history.reader().db.execute("DELETE FROM states")
+    with history.reader() as ro, pytest.raises(sqlite3.OperationalError):  # and readers cannot write
+        ro.db.execute("DELETE FROM states")
 
 
 def test_stored_payload_is_the_state_as_received(history: History) -> None:
