@@ -191,3 +191,28 @@ def test_stored_payload_is_the_state_as_received(history: History) -> None:
     history.add_state("m", 5.0, st, agent="gw-1")
     with history.reader() as r:
         assert r.latest_states()["m"][1] == json.loads(json.dumps(st))
+
+
+def test_a_clear_keeps_what_it_closes_and_an_alert_its_note(history: History) -> None:
+    clear = {
+        "alert_id": "c1",
+        "model": "m",
+        "state": "cleared",
+        "severity": "warning",
+        "closes": ["warning", "critical"],
+    }
+    held = {
+        "alert_id": "r1",
+        "model": "m",
+        "state": "raised",
+        "severity": "warning",
+        "note": "held back during planned work",
+    }
+    history.add_alert(clear, 20.0, "m")
+    history.add_alert(held, 10.0, "m")
+    history.add_alert({"alert_id": "odd", "model": "m", "closes": "warning"}, 5.0, "m")  # not a list: left out
+    with history.reader() as r:
+        rows = {a.alert_id: a for a in r.alerts()}
+    assert rows["c1"].closes == "warning, critical" and rows["c1"].note is None
+    assert rows["r1"].note == "held back during planned work" and rows["r1"].closes is None
+    assert rows["odd"].closes is None

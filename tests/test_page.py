@@ -304,6 +304,7 @@ def test_text_from_the_broker_is_escaped_on_the_page(tmp_path: Path) -> None:
     intake.message("watchdog/m/state", json.dumps(st).encode(), now)
     a = alert_payload("m", now, 'x" onmouseover="alert(3)')
     a["summary"] = "<script>alert(4)</script>"
+    a["note"] = "<script>alert(5)</script>"
     intake.message("watchdog/m/alerts", json.dumps(a).encode(), now)
     intake.message("watchdog/agents/e/status", json.dumps(status_payload("<i>e</i>")).encode(), now)
     with h.reader() as r:
@@ -311,6 +312,7 @@ def test_text_from_the_broker_is_escaped_on_the_page(tmp_path: Path) -> None:
     for raw in ("<img", "<script>alert", 'onmouseover="alert', "<b>v</b>", "<i>e</i>"):
         assert raw not in html, raw
     assert "&lt;script&gt;alert(4)&lt;/script&gt;" in html and "&lt;img src=x" in html
+    assert "&lt;script&gt;alert(5)&lt;/script&gt;" in html
     h.close()
 
 

@@ -51,6 +51,8 @@ CREATE TABLE IF NOT EXISTS alerts (
     severity TEXT,
     episode TEXT,
     summary TEXT,
+    note TEXT,
+    closes TEXT,
     payload TEXT NOT NULL
 );
 CREATE INDEX IF NOT EXISTS alerts_t ON alerts (t);
@@ -212,6 +214,8 @@ class AlertRow:
     severity: str | None
     episode: str | None
     summary: str | None
+    note: str | None = None
+    closes: str | None = None
 
 
 class History:
@@ -285,6 +289,7 @@ class History:
         alert_id = text(alert.get("alert_id"), 200)
         if alert_id is None:
             return False
+        closes = alert.get("closes")  # on a clear: the severities it closes
         row = (
             alert_id,
             t,
@@ -295,10 +300,12 @@ class History:
             text(alert.get("severity"), 40),
             text(alert.get("episode"), 200),
             text(alert.get("summary")),
+            text(alert.get("note")),
+            ", ".join(c[:40] for c in closes[:10] if isinstance(c, str)) if isinstance(closes, list) else None,
             json.dumps(alert, separators=(",", ":"), allow_nan=False, default=str),
         )
         with self.lock:
-            cur = self.db.execute("INSERT OR IGNORE INTO alerts VALUES (?,?,?,?,?,?,?,?,?,?)", row)
+            cur = self.db.execute("INSERT OR IGNORE INTO alerts VALUES (?,?,?,?,?,?,?,?,?,?,?,?)", row)
             self.version += 1
         return cur.rowcount > 0
 
@@ -460,7 +467,10 @@ class HistoryReader:
 
     def alerts(self, model: str | None = None, since: float = 0.0, limit: int = 50) -> list[AlertRow]:
         """The newest alerts (of one model, or of all), newest first."""
-        sql = "SELECT alert_id, t, model, agent, check_name, state, severity, episode, summary FROM alerts WHERE t >= ?"
+        sql = (
+            "SELECT alert_id, t, model, agent, check_name, state, severity, episode, summary, note, closes "
+            "FROM alerts WHERE t >= ?"
+        )
         args: list[Any] = [since]
         if model is not None:
             sql += " AND model = ?"

@@ -341,6 +341,15 @@ def _int(value: Any) -> str:
     return str(value) if isinstance(value, int) and not isinstance(value, bool) else "–"
 
 
+def _alert_extra(a: AlertRow) -> str:
+    parts = []
+    if a.state == "cleared" and a.closes:
+        parts.append(f"closes {esc(a.closes)}")
+    if a.note:
+        parts.append(esc(a.note))
+    return f'<br><span class="muted note">{"; ".join(parts)}</span>' if parts else ""
+
+
 def alerts_table(alerts: Sequence[AlertRow], now: float) -> str:
     """The latest alerts, newest first, each with its summary."""
     if not alerts:
@@ -355,7 +364,7 @@ def alerts_table(alerts: Sequence[AlertRow], now: float) -> str:
             f"<td>{esc(a.model)}</td><td>{esc(a.check or '–')}</td>"
             f'<td><span class="word">{esc(a.state or "–")}</span></td>'
             f'<td><span class="word sev">{esc(a.severity or "–")}</span></td>'
-            f'<td class="summary">{esc(a.summary or "")}</td></tr>'
+            f'<td class="summary">{esc(a.summary or "")}{_alert_extra(a)}</td></tr>'
         )
     return (
         '<table class="alerts"><thead><tr><th>time (UTC)</th><th>model</th><th>check</th><th>state</th>'
