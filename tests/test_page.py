@@ -6,6 +6,7 @@ The browser side (Chromium drawing the page) is in test_page_browser.py.
 from __future__ import annotations
 
 import base64
+import http.client as httpclient
 import json
 import re
 import ssl
@@ -142,6 +143,13 @@ def test_page_binds_loopback_by_default_and_only_reads(tmp_path: Path, broker: B
             code, h, _ = http(page.url, method)
             assert code == 405 and h["Allow"] == "GET, HEAD", method
         assert http(page.url + "api/summary", "HEAD")[0] == 200
+        # a refused request's body (unread) is never taken for a next request on the same connection
+        conn = httpclient.HTTPConnection("127.0.0.1", page.port, timeout=10)
+        conn.request("POST", "/", body=b"GET /api/summary HTTP/1.1\r\nHost: x\r\n\r\n")
+        reply = conn.getresponse()
+        assert reply.status == 405 and reply.getheader("Connection") == "close"
+        reply.read()
+        conn.close()
         # nothing from the internet: every resource is the page's own
         for path in ("", "static/page.js", "static/page.css", "static/icon.svg"):
             text = http(page.url + path)[2].decode()

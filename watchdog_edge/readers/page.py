@@ -420,14 +420,14 @@ class PageApp:
 
 
 class Handler(BaseHTTPRequestHandler):
-    """GET and HEAD for the page, its fragment, its version, a JSON summary and two static files."""
+    """GET and HEAD for the page, its fragment, its version, a JSON summary and its static files."""
 
     server_version = "watchdog-edge-page"
+    protocol_version = "HTTP/1.1"
+    timeout = 30  # seconds an idle kept-alive connection may hold its thread
 
     def version_string(self) -> str:
         return self.server_version
-
-    protocol_version = "HTTP/1.1"
 
     @property
     def app(self) -> PageApp:
@@ -449,11 +449,13 @@ class Handler(BaseHTTPRequestHandler):
             self.wfile.write(body)
 
     def _refuse_write(self) -> None:
+        # The request's body is not read, so the connection cannot carry another request.
+        self.close_connection = True
         self._send(
             405,
             b"This page only reads: use GET.\n",
             "text/plain; charset=utf-8",
-            {"Allow": "GET, HEAD"},
+            {"Allow": "GET, HEAD", "Connection": "close"},
         )
 
     do_POST = do_PUT = do_DELETE = do_PATCH = do_OPTIONS = _refuse_write
