@@ -115,8 +115,10 @@ def test_series_buckets_agree_with_numpy(history: History) -> None:
     since, until, buckets = 0.0, 3600.0, 12
     with history.reader() as r:
         pts = r.series("m", since, until, buckets)
-    # The reference: numpy's bincount over the same bucket index, outside SQLite.
-    idx = np.floor((t - since) / ((until - since) / buckets)).astype(int)
+    # The reference: numpy's bincount over the same bucket index, outside SQLite. Buckets are
+    # whole multiples of the width in Unix time; with 12 asked for over the span, at most 12
+    # (the first and last may be partial), so the width is the span over 11.
+    idx = np.floor(t / ((until - since) / (buckets - 1))).astype(int)
     counts = np.bincount(idx, minlength=buckets)
     means = np.bincount(idx, weights=live, minlength=buckets) / np.maximum(counts, 1)
     lowest = [float(np.min(live[idx == i] - 0.1)) for i in range(buckets) if counts[i]]
@@ -216,3 +218,14 @@ def test_a_clear_keeps_what_it_closes_and_an_alert_its_note(history: History) ->
     assert rows["c1"].closes == "warning, critical" and rows["c1"].note is None
     assert rows["r1"].note == "held back during planned work" and rows["r1"].closes is None
     assert rows["odd"].closes is None
+
+
+def test_buckets_stay_put_when_the_span_moves_on(history: History) -> None:
+    for k in range(3000):
+        history.add_state("m", 10_000.0 + 7.0 * k, state(1.0 + (k % 13) * 0.01))
+    with history.reader() as r:
+        a = r.series("m", 10_000.0, 30_000.0, 50)
+        b = r.series("m", 10_003.0, 30_003.0, 50)  # a refresh three seconds later
+        assert len(a) <= 50 and len(b) <= 50
+    inner = {(p.t, p.live_loss, p.count) for p in a[1:-1]}
+    assert inner <= {(p.t, p.live_loss, p.count) for p in b}  # whole buckets are the same buckets

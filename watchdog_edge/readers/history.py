@@ -415,14 +415,15 @@ class HistoryReader:
 
         A bucket holding one state is that state exactly; a bucket of many gives the mean of
         the live loss, the lowest lower bound and the highest upper bound, and the mean of the
-        expected loss and the limits.
+        expected loss and the limits. Buckets are whole multiples of their width in Unix time,
+        so a plot refreshed a little later groups the same states the same way.
         """
-        width = max((until - since) / max(buckets, 1), 1e-9)
+        width = max((until - since) / max(buckets - 1, 1), 1e-9)
         rows = self.db.execute(
             "SELECT avg(t), avg(live_loss), min(lower), max(upper), avg(expected_loss), "
             "avg(warning_limit), avg(critical_limit), count(*) FROM states "
-            "WHERE model = ? AND t >= ? AND t <= ? GROUP BY CAST((t - ?) / ? AS INTEGER) ORDER BY 1",
-            (model, since, until, since, width),
+            "WHERE model = ? AND t >= ? AND t <= ? GROUP BY CAST(t / ? AS INTEGER) ORDER BY 1",
+            (model, since, until, width),
         )
         return [Point(*r) for r in rows]
 
