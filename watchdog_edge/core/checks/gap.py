@@ -8,6 +8,7 @@ from typing import Any, Literal
 from pydantic import Field, model_validator
 
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict, fmt
+from watchdog_edge.core.levels import LevelRule, level_above
 from watchdog_edge.core.losses import LossWindow
 from watchdog_edge.core.records import Pair
 from watchdog_edge.core.stats import mean_interval
@@ -50,7 +51,7 @@ class GapSettings(CheckSettings):
         return self
 
 
-class GapCheck(Check):
+class GapCheck(Check[GapSettings]):
     """Raises when the live mean loss is, with confidence, above the expected loss.
 
     >>> from watchdog_edge.core.cards import ModelCard
@@ -61,7 +62,7 @@ class GapCheck(Check):
     >>> gap = GapCheck(GapSettings(evaluate_every=1), ctx)
     >>> for i in range(50):
     ...     err = 3.0 if i % 2 else -3.0            # squared error 9, nine times the expected 1
-    ...     gap.on_pair(Pair(Prediction("m", str(i), 0.0, i), Truth("m", str(i), err, i), i), err * err)
+    ...     due = gap.on_pair(Pair(Prediction("m", str(i), 0.0, i), Truth("m", str(i), err, i), i), err * err)
     >>> v = gap.evaluate(50.0)
     >>> v.level, v.figures["diagnosis"]
     ('critical', 'present from deployment')
@@ -69,6 +70,7 @@ class GapCheck(Check):
 
     name = "gap"
     settings_model = GapSettings
+    takes = frozenset({"pair"})
     reacts_to = frozenset({"pair", "tick"})  # ticks only matter for the age bound
     pair_features = False  # it takes the loss only
 
@@ -84,13 +86,13 @@ class GapCheck(Check):
             self.critical_limit = exp + settings.critical_tolerance
         self.clear_limit = self.warning_limit * (1 - settings.hysteresis)
         self.min_pairs = min(context.min_pairs, context.window_size)
+        self._rule = LevelRule(settings.clear_after)
         self.reset()
 
     def reset(self) -> None:
         self.window.clear()
-        self._level = "normal"
+        self._rule.reset()
         self._since_eval = 0
-        self._clear_run = 0
         self._evaluated = False
         self._clean_pairs = 0  # pairs seen since evaluations began, with no open gap
         self._healthy_seen = False  # one full window without a gap has passed
@@ -101,7 +103,7 @@ class GapCheck(Check):
     def on_pair(self, pair: Pair, loss: float) -> bool:
         self.window.push(pair.t, loss)
         self._since_eval += 1
-        if self._evaluated and self._level == "normal":
+        if self._evaluated and self._rule.level == "normal":
             self._clean_pairs += 1
             if self._clean_pairs >= self.context.window_size:
                 self._healthy_seen = True
@@ -118,42 +120,30 @@ class GapCheck(Check):
             return None
         self._since_eval = 0
         self._evaluated = True
-        if self._level == "normal" and self.window.mean() <= self.warning_limit:
+        if self._rule.level == "normal" and self.window.mean() <= self.warning_limit:
             # The lower bound never exceeds the mean, so nothing can be raised: skip the
             # interval, the costliest step, while the model is healthy.
             self._stale = True
             return None
         iv = self._interval()
-        s = self.settings
-        if iv.lower > self.critical_limit:
-            target = "critical"
-        elif iv.lower > self.warning_limit:
-            target = "warning"
-        else:
-            target = "normal"
-
-        if self._level == "normal":
-            if target != "normal":
-                self._diagnosis = AFTER_HEALTHY if self._healthy_seen else FROM_DEPLOYMENT
-                self._clean_pairs = 0
-                self._level = target
-            self._clear_run = 0
-        elif target == "critical":
-            self._level = "critical"
-            self._clear_run = 0
-        elif iv.upper < self.clear_limit:
-            self._clear_run += 1
-            if self._clear_run >= s.clear_after:
-                self._level = "normal"
-                self._clear_run = 0
-                self._clean_pairs = 0
-        else:
-            self._clear_run = 0
+        # Evidence for the one level rule (core/levels.py): the lower bound raises; the upper
+        # bound, against the limits eased by the hysteresis, says how far it may come down.
+        hy = 1 - self.settings.hysteresis
+        was = self._rule.level
+        level = self._rule.update(
+            level_above(iv.lower, self.warning_limit, self.critical_limit),
+            level_above(iv.upper, self.warning_limit, self.critical_limit, hy),
+        )
+        if was == "normal" and level != "normal":
+            self._diagnosis = AFTER_HEALTHY if self._healthy_seen else FROM_DEPLOYMENT
+            self._clean_pairs = 0
+        elif level == "normal" and was != "normal":
+            self._clean_pairs = 0
 
         self._store_figures(iv)
-        if self._level != "normal":
+        if level != "normal":
             self._figures["diagnosis"] = self._diagnosis
-        return Verdict(self._level, self._summary(iv), dict(self._figures))
+        return Verdict(level, self._summary(iv), dict(self._figures))
 
     def _interval(self) -> Any:
         self._stale = False
@@ -196,6 +186,10 @@ class GapCheck(Check):
             f"{fmt(self.context.expected_loss)} ({src}); {self._diagnosis}: {why}."
         )
 
+    @property
+    def _level(self) -> str:
+        return self._rule.level
+
     def live_mean(self) -> float:
         return self.window.mean() if len(self.window) else math.nan
 
@@ -212,7 +206,8 @@ class GapCheck(Check):
             "window": self.window.snapshot(),
             "level": self._level,
             "since_eval": self._since_eval,
-            "clear_run": self._clear_run,
+            "clear_run": self._rule.calm_run,
+            "calm_top": self._rule.calm_top,
             "evaluated": self._evaluated,
             "clean_pairs": self._clean_pairs,
             "healthy_seen": self._healthy_seen,
@@ -222,9 +217,10 @@ class GapCheck(Check):
 
     def restore(self, data: dict[str, Any]) -> None:
         self.window.restore(data["window"])
-        self._level = data["level"]
+        self._rule.restore(
+            {"level": data["level"], "calm_run": data["clear_run"], "calm_top": data.get("calm_top", "normal")}
+        )
         self._since_eval = data["since_eval"]
-        self._clear_run = data["clear_run"]
         self._evaluated = data["evaluated"]
         self._clean_pairs = data["clean_pairs"]
         self._healthy_seen = data["healthy_seen"]
