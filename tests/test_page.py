@@ -322,13 +322,3 @@ def test_text_from_the_broker_is_escaped_on_the_page(tmp_path: Path) -> None:
     assert "&lt;script&gt;alert(4)&lt;/script&gt;" in html and "&lt;img src=x" in html
     assert "&lt;script&gt;alert(5)&lt;/script&gt;" in html
     h.close()
-
-
-def test_the_readers_examples_hold() -> None:
-    import doctest
-
-    from watchdog_edge.readers import history, page, render
-
-    for module in (history, page, render):
-        result = doctest.testmod(module, optionflags=doctest.ELLIPSIS)
-        assert result.failed == 0 and result.attempted > 0, module.__name__

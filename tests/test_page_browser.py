@@ -86,6 +86,7 @@ def severe_console_messages(driver: Any) -> list[str]:
     return [e["message"] for e in driver.get_log("browser") if e.get("level") == "SEVERE"]
 
 
+@pytest.mark.slow
 def test_the_page_draws_the_published_points_and_shows_a_new_alert_within_two_seconds(
     tmp_path: Path, broker: Broker, browser: Any
 ) -> None:
