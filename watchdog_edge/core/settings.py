@@ -1,7 +1,8 @@
 """The TOML config: agent, broker and per-model settings, validated on load.
 
 An error names the key, the value and the rule, for example
-``models[0].window.size = 0: Input should be greater than or equal to 2``.
+``models[0] (id 'pump').window.size_pairs = 0: Input should be greater than or equal to 2``.
+A key that was renamed is refused with its new name (``renames.CONFIG_RENAMES``).
 """
 
 from __future__ import annotations
@@ -13,7 +14,9 @@ from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError,
 
 import watchdog_edge.core.checks as registry
 from watchdog_edge.core.parsing import FieldMap
+from watchdog_edge.core.renames import CONFIG_RENAMES, renamed_messages
 from watchdog_edge.core.topics import validate_filter, validate_level
+from watchdog_edge.core.validation import error_lines, nested_error
 from watchdog_edge.errors import ConfigError
 
 
@@ -37,7 +40,7 @@ class AgentSettings(_Strict):
     journal_batch_ms: float = Field(
         20.0, gt=0, le=1000, description="Longest wait before a journal batch commits and acks."
     )
-    journal_batch_max: int = Field(
+    journal_batch_max_messages: int = Field(
         10, ge=1, le=1000, description="Messages per journal batch at most (keep below the broker's inflight window)."
     )
     sqlite_synchronous: Literal["NORMAL", "FULL"] = Field(
@@ -80,7 +83,7 @@ class BrokerSettings(_Strict):
     client_id: str | None = Field(
         None, description="Fixed client id of the persistent session; default watchdog-edge-<agent name>."
     )
-    keepalive: int = Field(30, ge=5, le=65535)
+    keepalive_s: int = Field(30, ge=5, le=65535, description="MQTT keepalive: seconds between pings when idle.")
     session_expiry_s: int = Field(7 * 86400, ge=0, description="MQTT 5 session expiry interval.")
     username: str | None = None
     password_file: str | None = None
@@ -128,20 +131,22 @@ class PairingSettings(_Strict):
     horizon_s: float = Field(
         7200.0, gt=0, description="How long an unpaired prediction or truth waits for its other half."
     )
-    max_unpaired: int = Field(
+    max_unpaired_records: int = Field(
         20000, ge=1, description="Unpaired records kept at most; the oldest is evicted and counted."
     )
 
 
 class WindowSettings(_Strict):
-    size: int = Field(500, ge=2, description="Live window: the last N pairs.")
+    size_pairs: int = Field(500, ge=2, description="Live window: the last N pairs.")
     max_age_s: float | None = Field(None, gt=0, description="Also drop pairs older than this (core time).")
     min_pairs: int = Field(100, ge=2, description="Pairs needed before the first evaluation.")
 
     @model_validator(mode="after")
     def _min_le_size(self) -> WindowSettings:
-        if self.min_pairs > self.size:
-            raise ValueError(f"min_pairs ({self.min_pairs}) must not exceed size ({self.size})")
+        if self.min_pairs > self.size_pairs:
+            raise ValueError(
+                f"min_pairs ({self.min_pairs}) must not exceed size_pairs ({self.size_pairs}); lower one or raise the other"
+            )
         return self
 
 
@@ -201,11 +206,11 @@ class ModelSettings(_Strict):
     @classmethod
     def _resolve_checks(cls, raw: Any) -> dict[str, Any]:
         if not isinstance(raw, dict):
-            raise ValueError("checks must be a table of check name -> settings")
+            raise ValueError("must be a table of check name -> settings, e.g. [models.checks.gap]")
         known = registry.registered()
         unknown = [k for k in raw if k not in registry.CHECK_NAMES]
         if unknown:
-            raise ValueError(f"unknown check {unknown[0]!r}; known checks are {', '.join(registry.CHECK_NAMES)}")
+            raise ValueError(f"unknown check {unknown[0]!r}; use one of {', '.join(registry.CHECK_NAMES)}")
         resolved: dict[str, Any] = {}
         for name in known:
             cls_ = registry.settings_class(name)
@@ -216,18 +221,16 @@ class ModelSettings(_Strict):
             if given is None:
                 given = {} if registry.default_on(name) else {"enabled": False}
             if not isinstance(given, dict):
-                raise ValueError(f"checks.{name} must be a table")
+                raise ValueError(f"{name} must be a table, e.g. [models.checks.{name}]")
             try:
                 resolved[name] = cls_.model_validate(given)
             except ValidationError as e:
-                detail = "; ".join(
-                    f"checks.{name}.{'.'.join(str(p) for p in err['loc'])} = {err.get('input')!r}: {err['msg']}"
-                    for err in e.errors()
-                )
-                raise ValueError(detail) from None
+                raise nested_error(e, name) from None
         missing = [k for k in raw if k not in known]
         if missing:
-            raise ValueError(f"check {missing[0]!r} is not available in this installation")
+            raise ValueError(
+                f"check {missing[0]!r} is not available in this installation; install river, or set enabled = false"
+            )
         return resolved
 
     def enabled_checks(self) -> list[str]:
@@ -247,7 +250,7 @@ class Config(_Strict):
         seen: set[str] = set()
         for m in self.models:
             if m.id in seen:
-                raise ValueError(f"model id {m.id!r} appears twice; each [[models]] needs its own id")
+                raise ValueError(f"model id {m.id!r} appears twice; give each [[models]] entry its own id")
             seen.add(m.id)
         return self
 
@@ -267,40 +270,22 @@ class Config(_Strict):
         raise KeyError(model_id)
 
 
-def _pretty_loc(loc: tuple, data: dict) -> str:
-    parts: list[str] = []
-    cur: Any = data
-    for p in loc:
-        if isinstance(p, int):
-            label = f"[{p}]"
-            if isinstance(cur, list) and p < len(cur) and isinstance(cur[p], dict) and "id" in cur[p]:
-                label = f"[{p}] (id {cur[p]['id']!r})"
-            parts.append(label)
-            cur = cur[p] if isinstance(cur, list) and p < len(cur) else None
-        else:
-            parts.append(("." if parts else "") + str(p))
-            cur = cur.get(p) if isinstance(cur, dict) else None
-    return "".join(parts) or "(top level)"
-
-
 def parse_config(data: dict[str, Any], base_dir: Path | None = None, source: str = "config") -> Config:
-    """Validate a config held in memory; paths resolve against ``base_dir``."""
+    """Validate a config held in memory; paths resolve against ``base_dir``.
+
+    >>> parse_config({"broker": {"keepalive": 30}, "models": []})
+    Traceback (most recent call last):
+    ...
+    watchdog_edge.errors.ConfigError: config is invalid:
+      broker.keepalive = 30: this key was renamed; write broker.keepalive_s instead
+    """
+    renamed = renamed_messages(data, CONFIG_RENAMES)
+    if renamed:
+        raise ConfigError(f"{source} is invalid:\n" + "\n".join("  " + line for line in renamed))
     try:
         cfg = Config.model_validate(data)
     except ValidationError as e:
-        lines = []
-        for err in e.errors():
-            key = _pretty_loc(err["loc"], data)
-            msg = err["msg"].removeprefix("Value error, ")
-            if err["type"] == "missing":
-                lines.append(f"  {key}: required but missing")
-            elif err["type"] == "extra_forbidden":
-                lines.append(f"  {key}: unknown key; check the spelling (value {err.get('input')!r})")
-            else:
-                value = err.get("input")
-                shown = "{...}" if isinstance(value, dict) else repr(value)
-                lines.append(f"  {key} = {shown}: {msg}")
-        raise ConfigError(f"{source} is invalid:\n" + "\n".join(lines)) from None
+        raise ConfigError(f"{source} is invalid:\n" + "\n".join("  " + line for line in error_lines(e, data))) from None
     cfg._base_dir = (base_dir or Path.cwd()).resolve()
     return cfg
 

@@ -315,7 +315,7 @@ class Listener:
     def start(self) -> None:
         """Connect in the background; paho keeps reconnecting while the broker is away."""
         s = self.settings
-        self.client.connect_async(s.host, s.port, keepalive=s.keepalive)
+        self.client.connect_async(s.host, s.port, keepalive=s.keepalive_s)
         self.client.loop_start()
 
     def stop(self) -> None:

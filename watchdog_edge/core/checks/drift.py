@@ -3,7 +3,7 @@
 Each pair's loss is divided by the card's expected loss and clipped at ``clip``, so the
 detector's settings do not depend on the target's units and one wild truth cannot dominate;
 the detector is fed that ratio. When it reports a change, the change point is estimated on the
-segment of ratios since the previous change (at most ``history`` pairs) as the split into two
+segment of ratios since the previous change (at most ``history_pairs`` pairs) as the split into two
 means with the least residual sum of squares (the maximum-likelihood change point of a normal
 mean shift, Hinkley 1970; from memory), keeping at least 5 pairs on each side. The check
 reacts to rises only: it raises when the mean loss after the change point is at least
@@ -11,10 +11,10 @@ reacts to rises only: it raises when the mean loss after the change point is at 
 limit as well (a rise that ends within the limit would clear at once). Falls are counted only.
 
 Clearing, per ``clear_on``:
-- ``recovery``: the mean loss of the pairs since the change point (the last ``window_size`` of
+- ``recovery``: the mean loss of the pairs since the change point (the last ``window.size_pairs`` of
   them, and at least ``min_pairs`` of them) is at or below expected x (1 + ``warning_tolerance``)
-  x (1 - ``hysteresis``) for ``clear_after`` evaluations in a row (the one
-  level rule of ``core/levels.py``, on the live mean), evaluations every ``evaluate_every`` pairs;
+  x (1 - ``hysteresis``) for ``clear_after_evaluations`` evaluations in a row (the one
+  level rule of ``core/levels.py``, on the live mean), evaluations every ``evaluate_every_pairs`` pairs;
 - ``hold``: ``hold_s`` seconds of core time after the latest raising change.
 
 river is imported only when a DriftCheck is built, never by importing this module. The
@@ -91,9 +91,9 @@ class DriftSettings(CheckSettings):
     hysteresis: float = Field(
         0.1, ge=0, lt=1, description="Clear only when the mean loss is at or below the warning limit x (1 - this)."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
-    evaluate_every: int = Field(10, ge=1, description="Pairs between evaluations of the clearing rule.")
-    history: int = Field(
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    evaluate_every_pairs: int = Field(10, ge=1, description="Pairs between evaluations of the clearing rule.")
+    history_pairs: int = Field(
         2000,
         ge=100,
         le=1_000_000,
@@ -168,9 +168,9 @@ class DriftCheck(Check[DriftSettings]):
         self._seq = 0
         self._segment_start = 0
         # (seq, t, ts, loss, ratio) of the latest pairs
-        self._history: deque[tuple[int, float, float | None, float, float]] = deque(maxlen=s.history)
+        self._history: deque[tuple[int, float, float | None, float, float]] = deque(maxlen=s.history_pairs)
         self._since_change = LossWindow(self.context.window_size, self.context.window_max_age_s)
-        self._rule = LevelRule(s.clear_after)
+        self._rule = LevelRule(s.clear_after_evaluations)
         self._pending = False
         self._raised_t: float | None = None
         self._since_eval = 0
@@ -242,7 +242,7 @@ class DriftCheck(Check[DriftSettings]):
             self._rule.reset()  # the hold ran out: the evidence ends by itself
             self._update_figures()
             return Verdict("normal", self._hold_summary(), dict(self._figures))
-        if self._since_eval < s.evaluate_every:
+        if self._since_eval < s.evaluate_every_pairs:
             return None
         self._since_eval = 0
         w = self._since_change
@@ -327,7 +327,7 @@ class DriftCheck(Check[DriftSettings]):
         self._detector = pickle.loads(base64.b64decode(data["detector"]))
         self._seq = int(data["seq"])
         self._segment_start = int(data["segment_start"])
-        self._history = deque((tuple(h) for h in data["history"]), maxlen=self.settings.history)
+        self._history = deque((tuple(h) for h in data["history"]), maxlen=self.settings.history_pairs)
         self._since_change.restore(data["since_change"])
         self._rule.restore(
             {"level": data["level"], "calm_run": data["clear_run"], "calm_top": data.get("calm_top", "normal")}
