@@ -7,6 +7,7 @@ A key that was renamed is refused with its new name (``renames.CONFIG_RENAMES``)
 
 from __future__ import annotations
 
+from datetime import datetime
 from pathlib import Path
 from typing import Any, Literal
 
@@ -65,8 +66,12 @@ class TopicTemplates(_Strict):
     alerts: str = "watchdog/{model}/alerts"
     state: str = "watchdog/{model}/state"
     status: str = "watchdog/agents/{agent}/status"
+    planned_work: str = Field(
+        default="watchdog/agents/{agent}/commands/planned-work",
+        description="Inbound: planned-work commands for this agent; let only operators publish here (deploy/acl).",
+    )
 
-    @field_validator("alerts", "state", "status")
+    @field_validator("alerts", "state", "status", "planned_work")
     @classmethod
     def _template(cls, v: str) -> str:
         if "+" in v or "#" in v:
@@ -97,6 +102,66 @@ class BrokerSettings(_Strict):
     def _one_password_source(self) -> BrokerSettings:
         if self.password_file and self.password_env:
             raise ValueError("give password_file or password_env, not both")
+        return self
+
+
+class JetStreamSettings(_Strict):
+    """The JetStream workers (``watchdog-edge jetstream run``): servers, streams, buckets, partitions."""
+
+    servers: list[str] = Field(
+        default_factory=lambda: ["nats://127.0.0.1:4222"], min_length=1, description="NATS server URLs."
+    )
+    subject_prefix: str = Field(
+        "wd", description="First token of the partition subjects (PREFIX.in.<partition>.m.<topic>) and alert subjects."
+    )
+    partitions: int = Field(8, ge=1, le=1024, description="Partitions of the models (the server's mapping uses it).")
+    input_stream: str = Field("WATCHDOG_IN", description="Stream holding the partitioned inbound messages.")
+    alert_stream: str = Field("WATCHDOG_ALERTS", description="Stream the alerts are published to.")
+    dead_letter_stream: str = Field(
+        "WATCHDOG_DEAD",
+        description="Stream of the bad records, bounded by agent.dead_letter_max_count and agent.dead_letter_max_bytes.",
+    )
+    durable_prefix: str = Field("watchdog-p", description="Durable consumer names: this and the partition number.")
+    snapshot_bucket: str = Field("watchdog_snapshots", description="Key-value bucket of the per-partition snapshots.")
+    state_bucket: str = Field("watchdog_state", description="Key-value bucket of the retained state per model.")
+    lease_bucket: str = Field("watchdog_leases", description="Key-value bucket of partition leases and live workers.")
+    start_timeout_s: float = Field(
+        10.0, gt=0, description="A worker that reaches no server within this long at start exits with status 3."
+    )
+    replicas: int = Field(1, ge=1, le=5, description="Replicas of the streams and buckets the workers create.")
+    create_streams: bool = Field(True, description="Create missing streams and buckets at start.")
+    input_max_age_s: float = Field(7 * 86400.0, gt=0, description="How long the input stream keeps messages.")
+    alert_duplicate_window_s: float = Field(
+        600.0, gt=0, description="The alert stream's duplicate window: a re-sent alert id within it is dropped."
+    )
+    lease_s: float = Field(
+        6.0, ge=0.5, le=600, description="A partition lease lapses this long after its worker stops renewing it."
+    )
+    snapshot_every_messages: int = Field(
+        5000, ge=1, description="Snapshot a partition (then acknowledge) after this many messages at most."
+    )
+    snapshot_every_s: float = Field(10.0, gt=0, description="... or after this long, whichever comes first.")
+    fetch_batch_messages: int = Field(2000, ge=1, le=10000, description="Messages asked for in one pull request.")
+    mirror_alerts_to_mqtt: bool = Field(
+        True, description="Also publish each alert on broker.topics.alerts, which the server's MQTT listener serves."
+    )
+
+    @field_validator("subject_prefix")
+    @classmethod
+    def _prefix(cls, v: str) -> str:
+        if not v or any(c in v for c in " .*>/\t"):
+            raise ValueError("subject_prefix must be one subject token: no spaces, '.', '*', '>' or '/'")
+        return v
+
+    @model_validator(mode="after")
+    def _windows(self) -> JetStreamSettings:
+        # A worker that takes a partition over re-sends alerts of at most one snapshot period
+        # and one lease: the duplicate window must cover that, or a re-send could slip through.
+        if self.alert_duplicate_window_s < 2 * (self.snapshot_every_s + self.lease_s):
+            raise ValueError(
+                f"alert_duplicate_window_s ({self.alert_duplicate_window_s}) must be at least twice "
+                f"snapshot_every_s + lease_s ({2 * (self.snapshot_every_s + self.lease_s)}); raise it"
+            )
         return self
 
 
@@ -237,12 +302,87 @@ class ModelSettings(_Strict):
         return [n for n, s in self.checks.items() if s.enabled]
 
 
+def parse_rfc3339(text: str) -> float:
+    """RFC 3339 text with a UTC offset as Unix seconds; ValueError otherwise.
+
+    >>> parse_rfc3339("2025-12-01T02:00:00Z")
+    1764554400.0
+    """
+    try:
+        dt = datetime.fromisoformat(text.replace("Z", "+00:00").replace("z", "+00:00"))
+    except ValueError:
+        raise ValueError(f"{text!r} is not RFC 3339 text, e.g. 2026-12-03T06:00:00Z") from None
+    if dt.tzinfo is None:
+        raise ValueError(f"{text!r} has no UTC offset; end it with Z or +HH:MM")
+    return dt.timestamp()
+
+
+class PlannedWorkSettings(_Strict):
+    """A planned-work window from the config: daily at a local time for a duration, or a dated span."""
+
+    name: str = Field(min_length=1, description="Shown in state, status and the note of held raises.")
+    models: list[str] | None = Field(None, description="Model ids held back; left out: every model.")
+    reason: str = ""
+    daily_at: str | None = Field(None, description="Every day at this local time, HH:MM (24-hour), in timezone.")
+    duration_s: float | None = Field(None, gt=0, le=86400, description="Length of the daily window in seconds.")
+    timezone: str = Field("UTC", description="IANA time zone of daily_at, e.g. Europe/Berlin; default UTC.")
+    start: str | None = Field(None, description="Start of a dated span, RFC 3339 with an offset.")
+    end: str | None = Field(None, description="End of a dated span, RFC 3339 with an offset.")
+
+    @field_validator("daily_at")
+    @classmethod
+    def _hh_mm(cls, v: str | None) -> str | None:
+        if v is None:
+            return v
+        hh, sep, mm = v.partition(":")
+        if not (sep and hh.isdigit() and mm.isdigit() and len(mm) == 2 and int(hh) < 24 and int(mm) < 60):
+            raise ValueError(f"daily_at must be HH:MM on a 24-hour clock, e.g. '02:30', not {v!r}")
+        return v
+
+    @field_validator("timezone")
+    @classmethod
+    def _zone(cls, v: str) -> str:
+        from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+        try:
+            ZoneInfo(v)
+        except (ZoneInfoNotFoundError, ValueError):
+            raise ValueError(f"unknown time zone {v!r}; give an IANA name such as 'UTC' or 'Europe/Berlin'") from None
+        return v
+
+    @field_validator("start", "end")
+    @classmethod
+    def _time(cls, v: str | None) -> str | None:
+        if v is not None:
+            parse_rfc3339(v)
+        return v
+
+    @model_validator(mode="after")
+    def _one_form(self) -> PlannedWorkSettings:
+        daily = self.daily_at is not None or self.duration_s is not None
+        dated = self.start is not None or self.end is not None
+        if daily == dated:
+            raise ValueError("give daily_at with duration_s (every day) or start with end (one dated span)")
+        if daily and (self.daily_at is None or self.duration_s is None):
+            raise ValueError("a daily window needs both daily_at (HH:MM) and duration_s (seconds)")
+        if dated:
+            if self.start is None or self.end is None:
+                raise ValueError("a dated window needs both start and end")
+            if parse_rfc3339(self.end) <= parse_rfc3339(self.start):
+                raise ValueError(f"end {self.end!r} must come after start {self.start!r}")
+        return self
+
+
 class Config(_Strict):
     """The whole config file."""
 
     agent: AgentSettings = AgentSettings()
     broker: BrokerSettings = BrokerSettings()
+    jetstream: JetStreamSettings = JetStreamSettings()
     models: list[ModelSettings] = Field(min_length=1)
+    planned_work: list[PlannedWorkSettings] = Field(
+        default_factory=list, description="Windows in which raises are held back (see core/planned.py)."
+    )
     _base_dir: Path = PrivateAttr(default_factory=Path.cwd)
 
     @model_validator(mode="after")
@@ -252,6 +392,10 @@ class Config(_Strict):
             if m.id in seen:
                 raise ValueError(f"model id {m.id!r} appears twice; give each [[models]] entry its own id")
             seen.add(m.id)
+        names = [w.name for w in self.planned_work]
+        dup = next((n for n in names if names.count(n) > 1), None)
+        if dup is not None:
+            raise ValueError(f"planned_work name {dup!r} appears twice; each window needs its own name")
         return self
 
     @property
