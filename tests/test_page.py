@@ -322,3 +322,33 @@ def test_text_from_the_broker_is_escaped_on_the_page(tmp_path: Path) -> None:
     assert "&lt;script&gt;alert(4)&lt;/script&gt;" in html and "&lt;img src=x" in html
     assert "&lt;script&gt;alert(5)&lt;/script&gt;" in html
     h.close()
+
+
+def test_the_page_shades_a_real_agents_planned_work(tmp_path: Path, broker: Broker) -> None:
+    from watchdog_edge.core.events import rfc3339
+
+    cfg = write_setup(tmp_path, broker)
+    now = time.time()
+    head, sep, rest = cfg.read_text().partition("[[models]]")
+    window = f'[[planned_work]]\nname = "probe cleaning"\nreason = "weekly"\nstart = "{rfc3339(now - 60)}"\nend = "{rfc3339(now + 600)}"\n\n'
+    cfg.write_text(head + window + sep + rest)
+    page = PageProc(tmp_path / "page", None, "--config", str(cfg)).wait_ready()
+    agent = AgentProc(cfg)
+    try:
+        agent.wait_ready()
+        pub = Client(broker, "publisher")
+        send_pairs(pub, 0, 80, 3.0, np.random.default_rng(1))  # gap goes critical, but its raise is held
+        pub.close()
+        deadline = time.monotonic() + 20
+        html = ""
+        while time.monotonic() < deadline:
+            html = http(page.url)[2].decode()
+            if 'class="planned"' in html and "Raises held back so far: 1" in html:
+                break
+            time.sleep(0.2)
+        assert 'class="planned"' in html and "Planned work 'probe cleaning' (weekly)" in html, page.text()
+        assert "Raises held back so far: 1" in html
+        assert json.loads(http(page.url + "api/summary")[2])["alerts"] == []  # held, so none published
+    finally:
+        assert agent.stop() == 0
+        assert page.stop() == 0

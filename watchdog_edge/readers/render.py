@@ -414,9 +414,11 @@ def planned_note(state: dict[str, Any], t: float) -> str:
     start, end = spans[0]
     what = f"Planned work '{esc(name)}'" if name else "Planned work"
     why = f" ({esc(reason)})" if reason else ""
+    held = state.get("held_raises")
+    held_text = f" Raises held back so far: {held}." if isinstance(held, int) and not isinstance(held, bool) else ""
     return (
         f'<p class="planned-note">{what}{why}: {esc(utc(start, False))} to {esc(utc(end, False))} UTC. '
-        "Alerts of this model are held back meanwhile; its checks keep computing.</p>"
+        f"Alerts of this model are held back meanwhile; its checks keep computing.{held_text}</p>"
     )
 
 
