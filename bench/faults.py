@@ -1053,10 +1053,10 @@ def row_disk_full(root: Path) -> Row:
             rc = agent.end()
             measure(row, cfg, state, preds, truths, watcher)
             watcher.close()
-            row.ok &= said and alive and recovered and rc == 0 and during.get("state") == "failing"
+            row.ok &= said and alive and recovered and rc == 0 and during.get("writes") == "failing"
             row.outcome = (
-                f"{'pass' if row.ok else 'FAIL'}: log said so: {said}; status store.state "
-                f"{during.get('state')!r} holding {during.get('held_messages')} messages; "
+                f"{'pass' if row.ok else 'FAIL'}: log said so: {said}; status store.writes "
+                f"{during.get('writes')!r} holding {during.get('held_messages')} messages; "
                 f"no restart (process alive: {alive}); recovered by itself: {recovered}; "
                 "acks held back, so the broker kept the rest"
             )

@@ -669,7 +669,7 @@ class Agent:
         )
 
     def _keep_published(self, rows: list[tuple[str, bytes, float]]) -> None:
-        """The local copy of retained payloads for readers; a full disk only leaves it stale."""
+        """The readers' copy of retained messages; a full or read-only state file only skips it."""
         try:
             self.store.keep_published(rows)
         except StoreWriteError as e:
@@ -752,7 +752,7 @@ class Agent:
 
     def _store_status(self) -> dict[str, Any]:
         return {
-            "state": "ok" if self.held is None and self.store_error is None else "failing",
+            "writes": "accepted" if self.held is None and self.store_error is None else "failing",
             "error": self.store_error,
             "since": None if self.store_error_since is None else rfc3339(self.store_error_since),
             "held_messages": 0 if self.held is None else len(self.held.acks),

@@ -445,8 +445,8 @@ class Store:
     def keep_published(self, rows: Iterable[tuple[str, bytes, float]]) -> None:
         """Keep the latest retained payload per topic, ``(topic, payload, t)`` rows, in one transaction."""
         db = self._db
-        db.execute("BEGIN")
         try:
+            db.execute("BEGIN")
             db.executemany(
                 "INSERT INTO published (topic, payload, t) VALUES (?, ?, ?) "
                 "ON CONFLICT(topic) DO UPDATE SET payload = excluded.payload, t = excluded.t",

@@ -237,6 +237,7 @@ def _register_optional() -> None:
         "watchdog_edge.cli.sim",
         "watchdog_edge.cli.jetstream",
         "watchdog_edge.cli.status",
+        "watchdog_edge.cli.page",
     ):
         try:
             importlib.import_module(mod).register(app)
