@@ -245,3 +245,15 @@ def test_block_means_still_detect_a_doubling_on_autocorrelated_losses():
     err[3000:] *= math.sqrt(2.0)
     out = run(make_check(), err)
     assert out and out[0][1].level == "warning" and 3000 <= out[0][0] <= 3000 + 400
+
+
+def test_the_block_and_its_calibration_survive_a_snapshot():
+    rng = np.random.default_rng(9)
+    err = losses_ar1(rng, 0.9, 6000)
+    err[3500:] *= math.sqrt(3.0)
+    for cut in (30, 300, 2000):  # before the first choice of the block, between the two, after both
+        live, copy = make_check(), make_check()
+        run(live, err[:cut])
+        copy.restore(json.loads(json.dumps(live.snapshot())))
+        a, b = run(live, err[cut:], start=cut), run(copy, err[cut:], start=cut)
+        assert a == b and a, cut

@@ -212,3 +212,19 @@ def test_diagnosis_distinguishes_degradation_from_a_bad_start():
     raised = next(v for v in worse if v.level != "normal")
     assert raised.figures["diagnosis"] == "appeared after a healthy period"
     assert "degraded" in raised.summary
+
+
+def test_snapshot_mid_burst_restores_the_gross_error_run():
+    import json
+
+    rng = np.random.default_rng(8)
+    losses = list(burst_stream(rng, 0.5, 20, 300.0, before=600, after=300))
+    live = GapCheck(GapSettings(), ctx(size=500, min_pairs=100))
+    feed(live, losses[:603])  # three pairs into the burst: not yet raised
+    assert live.figures()["level"] == "normal"
+    copy = GapCheck(GapSettings(), ctx(size=500, min_pairs=100))
+    copy.restore(json.loads(json.dumps(live.snapshot())))
+    a = feed(live, losses[603:], start=603)
+    b = feed(copy, losses[603:], start=603)
+    assert a == b and a[0].level != "normal" and a[0].figures["raised_by"] == "gross errors"
+    assert "of the latest 10 squared errors are over" in a[0].summary
