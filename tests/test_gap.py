@@ -228,3 +228,25 @@ def test_snapshot_mid_burst_restores_the_gross_error_run():
     b = feed(copy, losses[603:], start=603)
     assert a == b and a[0].level != "normal" and a[0].figures["raised_by"] == "gross errors"
     assert "of the latest 10 squared errors are over" in a[0].summary
+
+
+@pytest.mark.parametrize("phi", [0.0, 0.9])
+def test_the_field_dropout_then_a_lasting_rise_is_raised_and_held(phi):
+    # The field case of issue 10: a dropout (15 pairs with errors 80 times the usual size), then
+    # a lasting rise of the loss to 4 times the expected. gap stayed silent there (bounds
+    # -64 .. 348); now it raises within 10 pairs of the dropout and never clears.
+    from scipy.signal import lfilter
+
+    rng = np.random.default_rng(1)
+    e = lfilter([1.0], [1.0, -phi], rng.normal(size=3000)) * np.sqrt(1 - phi * phi)
+    e[1000:1015] *= 80.0
+    e[1500:] *= 2.0
+    gap = GapCheck(GapSettings(), ctx(size=500, min_pairs=100))
+    levels = []
+    for i, loss in enumerate(e * e):
+        feed(gap, [float(loss)], start=i)
+        levels.append(gap.figures()["level"])
+    assert all(lv == "normal" for lv in levels[:1000])
+    assert all(lv != "normal" for lv in levels[1010:])
+    f = gap.figures()
+    assert f["level"] == "critical" and 0.0 < f["lower"] and f["lower"] > gap.critical_limit
