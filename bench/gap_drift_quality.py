@@ -7,7 +7,7 @@ did before blocks) measured in the same run as the reference:
    (target at most 1), with raw ADWIN's detections beside them;
 2. drift: delay to raise a lasting doubling of the loss (median and 90th percentile, pairs),
    ours against raw ADWIN's on the same streams (target: ours on independent losses at most
-   twice raw ADWIN's there);
+   twice raw ADWIN's there); 2b. the same two for detector = page_hinkley;
 3. drift: a burst (8 pairs at 10 x) 1,000 pairs before a lasting doubling: doublings raised
    (target 50 of 50);
 4. gap: one-sided 95 % bounds on the mean of n = 500 squared AR(1) errors, share of draws where
@@ -119,6 +119,25 @@ def drift_delays(seeds: int) -> None:
         print(f"   {phi:7.1f} | {fo:>25} | {fr:>25}")
 
 
+def page_hinkley(runs: int, seeds: int) -> None:
+    print(f"\n2b. drift with detector = page_hinkley: false alerts per 100,000 ({runs} runs), delay to a doubling")
+    print("   AR coef | false alerts /100k | delay median (missed of {seeds})".replace("{seeds}", str(seeds)))
+    settings = DriftSettings(detector="page_hinkley")
+    for phi in PHIS:
+        alerts = 0
+        for r in range(runs):
+            e = errors(np.random.default_rng(1000 + r + int(100 * phi)), phi, N_STATIONARY)
+            alerts += len(raises(DriftCheck(settings, context()), e * e))
+        delays = []
+        for s in range(seeds):
+            e = errors(np.random.default_rng(5000 + s + int(100 * phi)), phi, 6000)
+            e[3000:] *= math.sqrt(2.0)
+            hit = [i - 3000 for i in raises(DriftCheck(settings, context()), e * e) if i >= 3000]
+            delays += hit[:1]
+        med = f"{np.median(delays):.0f}" if delays else "-"
+        print(f"   {phi:7.1f} | {alerts / runs:18.2f} | {med} ({seeds - len(delays)})")
+
+
 def drift_burst(seeds: int) -> None:
     found = 0
     for s in range(seeds):
@@ -175,6 +194,7 @@ def main() -> None:
     t0 = time.perf_counter()
     drift_false_alerts(a.runs)
     drift_delays(a.seeds)
+    page_hinkley(a.runs, a.seeds)
     drift_burst(a.seeds)
     gap_coverage(a.draws)
     gap_quality(a.runs)

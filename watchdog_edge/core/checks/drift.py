@@ -14,7 +14,9 @@ otherwise: 1 when their lag-1 autocorrelation is not significant (above 2 / sqrt
 practice), so independent losses are watched exactly as raw ADWIN watches them; otherwise twice
 the integrated autocorrelation time (the prewhitened long-run variance over the variance; the
 factor 2 is our choice, measured in bench/gap_drift_quality.py: 1.5 and 3 gave as few false
-alerts, 3 a slower detection), at most 64 pairs.
+alerts, 3 a slower detection), at most 64 pairs. Page-Hinkley sums deviations, and block means
+do not change a sum's variance: it is fed pair by pair with its threshold multiplied by the
+integrated autocorrelation time (half the block) instead.
 
 When the detector reports a change, the change point is estimated on the segment the detector
 itself was looking at (river's detectors start afresh after each detection, so the pairs since
@@ -157,8 +159,14 @@ def _detector(settings: DriftSettings, block: int = 1) -> Any:
         # ADWIN looks for a cut every `clock` inputs (32 by default); with blocks it keeps
         # looking about as often in pairs.
         return drift.ADWIN(delta=settings.delta, clock=max(1, 32 // block))
+    # Page-Hinkley sums the deviations, and a block mean does not change a sum's variance: it
+    # is fed pair by pair, and its threshold is scaled by the integrated autocorrelation time
+    # (block / 2) instead, as the sum's variance is.
     return drift.PageHinkley(
-        min_instances=settings.ph_min_instances, delta=settings.ph_delta, threshold=settings.ph_threshold, mode="up"
+        min_instances=settings.ph_min_instances,
+        delta=settings.ph_delta,
+        threshold=settings.ph_threshold * max(1.0, block / 2.0),
+        mode="up",
     )
 
 
@@ -222,12 +230,13 @@ class DriftCheck(Check):
 
     def reset(self) -> None:
         s = self.settings
-        self._block = s.block_pairs  # 0 until chosen from the first calibration_pairs pairs
+        self._chosen = s.block_pairs  # 0 until chosen from the first calibration_pairs pairs
+        self._block = s.block_pairs if s.detector == "adwin" else min(1, s.block_pairs)  # pairs per input
         self._auto = s.block_pairs == 0
         first = min(self.min_pairs, s.calibration_pairs, s.history)
         self._calibrate_at = {first, min(s.calibration_pairs, s.history)} if self._auto else set()
         self._quiet = False
-        self._detector = _detector(s, max(1, self._block))
+        self._detector = _detector(s, max(1, self._chosen))
         self._acc = 0.0  # sum of the ratios of the block being filled
         self._acc_n = 0
         self._win_sum = 0.0  # sum and count of the detector's inputs since its window began
@@ -256,7 +265,7 @@ class DriftCheck(Check):
         if self._level != "normal":  # only a raised drift needs the loss since its change
             self._since_change.push(pair.t, loss)
             self._since_eval += 1
-        if self._auto and seq + 1 in self._calibrate_at and self._calibrate(pair.t, first=self._block == 0):
+        if self._auto and seq + 1 in self._calibrate_at and self._calibrate(pair.t, first=self._chosen == 0):
             return self._pending or self._level != "normal"  # the new detector has had this pair
         if self._block == 0:
             return self._pending or self._level != "normal"
@@ -279,10 +288,13 @@ class DriftCheck(Check):
         the block changed) the new detector is only brought up to date, silently."""
         ratios = np.fromiter((h[4] for h in self._history), dtype=float, count=len(self._history))
         block = choose_block(ratios)
-        if not first and block == self._block:
+        if not first and block == self._chosen:
             return False
-        self._block = block
+        self._chosen = block
         self._detector = _detector(self.settings, block)
+        if self.settings.detector != "adwin":
+            block = 1
+        self._block = block
         self._win_sum, self._win_n = 0.0, 0
         self._quiet = not first
         b = block
@@ -457,6 +469,7 @@ class DriftCheck(Check):
         return {
             "detector": base64.b64encode(pickle.dumps(self._detector)).decode("ascii"),
             "block": self._block,
+            "chosen_block": self._chosen,
             "acc": self._acc,
             "acc_n": self._acc_n,
             "win_sum": self._win_sum,
@@ -479,6 +492,7 @@ class DriftCheck(Check):
     def restore(self, data: dict[str, Any]) -> None:
         self._detector = pickle.loads(base64.b64decode(data["detector"]))
         self._block = int(data.get("block", 1))  # snapshots from before blocks fed pair by pair
+        self._chosen = int(data.get("chosen_block", self._block))
         self._acc = float(data.get("acc", 0.0))
         self._acc_n = int(data.get("acc_n", 0))
         self._win_sum = float(data.get("win_sum", 0.0))
