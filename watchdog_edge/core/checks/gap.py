@@ -145,16 +145,17 @@ class GapCheck(Check):
         self.window.push(pair.t, loss)
         self._since_eval += 1
         self._seq += 1
+        burst = False
         if loss > self.gross_threshold:
             self._gross.append(self._seq)
-            if self._level == "normal" and self._gross_run() >= self.settings.gross_min_pairs:
-                return True  # a burst: evaluate now, not at the next multiple of evaluate_every
+            # A burst: evaluate now, not at the next multiple of evaluate_every.
+            burst = self._level == "normal" and self._gross_run() >= self.settings.gross_min_pairs
         if self._evaluated and self._level == "normal":
             self._clean_pairs += 1
             if self._clean_pairs >= self.context.window_size:
                 self._healthy_seen = True
         # Between evaluations nothing is due, unless an age bound may drop pairs.
-        return self._since_eval >= self.settings.evaluate_every or self.context.window_max_age_s is not None
+        return burst or self._since_eval >= self.settings.evaluate_every or self.context.window_max_age_s is not None
 
     def evaluate(self, t: float) -> Verdict | None:
         if self.context.window_max_age_s is not None:
