@@ -91,13 +91,13 @@ def timed(setup: Callable[[], Any], run: Callable[[Any], None]) -> float:
 
 def drive(checks: dict[str, Any], preds, truths, pairs, losses) -> None:
     """One prediction, one truth and one pair per row, routed as the core routes them: a
-    check's verb only where it has one, then its ``evaluate`` where the input is among its
-    ``reacts_to`` and the verb did not say False (nothing new)."""
+    check's verb only where it ``takes`` the input, then its ``evaluate`` where the input is
+    among its ``reacts_to`` and the verb did not say False (nothing new)."""
 
     def route(kind: str, verb: str) -> list[tuple[Any, Any]]:
         return [
             (
-                getattr(c, verb) if getattr(type(c), verb) is not getattr(Check, verb) else None,
+                getattr(c, verb) if kind in c.takes else None,
                 c.evaluate if kind in c.reacts_to else None,
             )
             for c in checks.values()
@@ -106,13 +106,13 @@ def drive(checks: dict[str, Any], preds, truths, pairs, losses) -> None:
     on_p, on_t, on_pr = route("prediction", "on_prediction"), route("truth", "on_truth"), route("pair", "on_pair")
     for p, tr, pr, loss in zip(preds, truths, pairs, losses):
         for take, ask in on_p:
-            if (take is None or take(p) is not False) and ask is not None:
+            if (take is None or take(p)) and ask is not None:
                 ask(p.t)
         for take, ask in on_t:
-            if (take is None or take(tr) is not False) and ask is not None:
+            if (take is None or take(tr)) and ask is not None:
                 ask(tr.t)
         for take, ask in on_pr:
-            if (take is None or take(pr, loss) is not False) and ask is not None:
+            if (take is None or take(pr, loss)) and ask is not None:
                 ask(pr.t)
 
 

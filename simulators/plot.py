@@ -11,7 +11,7 @@ from typing import Any
 
 from watchdog_edge.core.cards import ModelCard
 from watchdog_edge.core.events import Alert
-from watchdog_edge.core.monitor import Monitor, Step
+from watchdog_edge.core.monitor import Monitor, PairStep, Step
 from watchdog_edge.core.settings import Config
 
 WIDTH_PX, HEIGHT_PX, DPI = 1400, 700, 100
@@ -40,7 +40,7 @@ def trace(config: Config, cards: dict[str, ModelCard], steps: list[Step], model:
     for s in steps:
         events = mon.apply([s])
         tr.alerts.extend(e for e in events if isinstance(e, Alert) and e.model == model)
-        if s.kind != "pair" or s.model != model:
+        if type(s) is not PairStep or s.model != model:
             continue
         gap = mon.state(model)["checks"].get("gap")
         figs = gap["figures"] if gap else {}
@@ -113,7 +113,7 @@ def draw(
                 x, tr.lower, tr.upper, step="post", color="#5dade2", alpha=0.35, label="interval on the live mean loss"
             )
             ax.step(x, tr.live, where="post", color="#1b4f72", lw=1.2, label="live mean loss")
-        if tr.expected is not None:
+        if tr.expected is not None and tr.warning is not None and tr.critical is not None:
             ax.axhspan(tr.expected, tr.warning, color="#27ae60", alpha=0.15, label="expected loss to warning limit")
             ax.axhline(tr.expected, color="#27ae60", lw=1.0)
             ax.axhline(tr.warning, color="#e67e22", lw=1.0, ls="--", label="warning limit")

@@ -41,10 +41,10 @@ from pathlib import Path
 from typing import Any
 
 from watchdog_edge.core.cards import ModelCard
-from watchdog_edge.core.events import Alert
-from watchdog_edge.core.monitor import Monitor, Step
+from watchdog_edge.core.events import Alert, DeadLetter
+from watchdog_edge.core.monitor import Monitor, PairStep, Step
 from watchdog_edge.core.settings import Config, parse_config
-from watchdog_edge.errors import ConfigError, WatchdogError
+from watchdog_edge.errors import ConfigError, RecordingError
 from watchdog_edge.files.configfile import load_cards
 from watchdog_edge.files.documents import read_document
 from watchdog_edge.replay.recording import read_recording, with_ticks
@@ -220,20 +220,25 @@ def intake_recording(
     lines = read_recording(recording)
     for line in with_ticks(lines, tick_every) if tick_every else lines:
         t = line.t
-        out = intake_tick(t) if line.tick else intake(line.topic, line.payload, t)
+        if line.tick:
+            out = intake_tick(t)
+        else:
+            assert line.topic is not None and line.payload is not None  # a message line has both
+            out = intake(line.topic, line.payload, t)
         if not t <= end:  # the first line (end is NaN) or a later receive time
             end = t
             if math.isnan(start):
                 start = t
         for s in out:
-            if type(s) is Step:
-                add(s)
-                if s.kind == "pair":
-                    pairs[s.model] = pairs.get(s.model, 0) + 1
-                    a, _ = span.get(s.model, (s.t, s.t))
-                    span[s.model] = (a, s.t)
+            if isinstance(s, DeadLetter):
+                continue
+            add(s)
+            if type(s) is PairStep:
+                pairs[s.model] = pairs.get(s.model, 0) + 1
+                a, _ = span.get(s.model, (s.t, s.t))
+                span[s.model] = (a, s.t)
     if not steps:
-        raise WatchdogError(
+        raise RecordingError(
             f"recording {recording} gave no predictions or truths on the config's topics; "
             "check the topics in the config against the recording"
         )
@@ -409,7 +414,8 @@ class Score:
 
 
 def _union_length(spans: Iterable[tuple[float, float]], lo: float, hi: float) -> float:
-    total, cur_a, cur_b = 0.0, None, None
+    total, cur_a = 0.0, 0.0
+    cur_b: float | None = None
     for a, b in sorted((max(lo, a), min(hi, b)) for a, b in spans):
         if b <= a:
             continue

@@ -332,6 +332,7 @@ SILENCE = (
 )
 
 
+@pytest.mark.slow
 def test_broker_down_while_the_model_degrades_every_alert_arrives(tmp_path, broker):
     cfg = write_setup(tmp_path, broker, checks=SILENCE)
     rec = tmp_path / "live.jsonl"
@@ -387,6 +388,7 @@ def _status_now(reader_broker: Broker, timeout: float = 10.0) -> dict:
     return s
 
 
+@pytest.mark.slow
 def test_sigkill_mid_stream_then_restart_counts_each_acknowledged_record_once(tmp_path, broker):
     cfg = write_setup(tmp_path, broker, checks=SILENCE, snapshot_every_s=0.7)
     watcher = Client(broker, "watcher", [ALERTS, STATUS], clean=False)
@@ -478,6 +480,7 @@ def _outbox(db_path: Path) -> list:
     return [OutboxItem(r[0], r[1], bytes(r[2]), r[3]) for r in rows]
 
 
+@pytest.mark.slow
 def test_tls_and_password_accepted_wrong_password_and_untrusted_ca_refused(tmp_path):
     tls = make_tls(tmp_path / "tls")
     rogue = make_tls(tmp_path / "rogue", name="rogue")
@@ -519,6 +522,7 @@ def test_tls_and_password_accepted_wrong_password_and_untrusted_ca_refused(tmp_p
         b.stop()
 
 
+@pytest.mark.slow
 def test_live_alerts_equal_replay_of_the_recording(tmp_path, broker):
     cfg = write_setup(tmp_path, broker, checks=SILENCE + "[models.checks.drift]\nenabled = false\n")
     rec = tmp_path / "live.jsonl"
@@ -546,6 +550,7 @@ def test_live_alerts_equal_replay_of_the_recording(tmp_path, broker):
     watcher.close()
 
 
+@pytest.mark.slow
 def test_bad_payloads_go_to_dead_letters_with_their_reason_and_good_ones_pair(tmp_path, broker):
     cfg = write_setup(tmp_path, broker, agent_extra="max_payload_bytes = 1024")
     agent = AgentProc(cfg)

@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 
 from watchdog_edge.core.cards import ModelCard
-from watchdog_edge.core.checks import check_class, settings_class
-from watchdog_edge.core.checks.base import CheckContext
+from watchdog_edge.core.checks import CHECK_NAMES, check_class, settings_class
+from watchdog_edge.core.checks.base import Check, CheckContext
 from watchdog_edge.core.records import Pair, Prediction, Truth
 
 EDGES = [-3.0, -1.0, 0.0, 1.0, 3.0]
@@ -87,8 +87,8 @@ def drive(name: str, items, skip: bool) -> list[tuple[float, str, str]]:
         elif kind == "pair":
             due = check.on_pair(item, (item.truth.value - item.prediction.value) ** 2)
         else:
-            due = None
-        if skip and due is False:
+            due = True
+        if skip and not due:
             continue
         v = check.evaluate(t)
         if v is not None:
@@ -104,3 +104,16 @@ def test_skipping_evaluate_after_false_changes_no_verdict(name, seed):
     assert drive(name, items, skip=True) == every
     assert {level for _, level, _ in every} >= {"normal", "warning"} or name == "drift"
     assert every
+
+
+VERBS = {"prediction": "on_prediction", "truth": "on_truth", "pair": "on_pair"}
+
+
+@pytest.mark.parametrize("name", CHECK_NAMES)
+def test_each_check_declares_exactly_the_verbs_it_writes(name):
+    # The core calls the verbs a check names in ``takes`` and no others: a verb written but
+    # not declared would never run, one declared but not written would run the base's no-op.
+    cls = check_class(name)
+    written = {kind for kind, verb in VERBS.items() if getattr(cls, verb) is not getattr(Check, verb)}
+    assert set(cls.takes) == written
+    assert set(cls.reacts_to) <= {"prediction", "truth", "pair", "tick"}

@@ -212,3 +212,21 @@ def test_check_config_prints_the_small_window_warning():
     )
     [w] = config_warnings(cfg)
     assert w.startswith("models[press].checks.shift: window = 400 is below 1000")
+
+
+def test_nulls_and_absent_features_go_to_the_missing_bin_of_their_own_feature_only():
+    hist = {"edges": [0.0, 1.0, 2.0], "shares": [0.5, 0.5], "missing": 0.0}
+    card = ModelCard(
+        model_id="press",
+        training={"loss": 1.0, "count": 10},
+        fitted_parameters=1,
+        holdout={"loss": 1.0, "count": 10},
+        features={n: {"min": 0, "max": 2, "histogram": hist} for n in ("pressure", "speed")},
+    )
+    check = make_check(card, window=50, evaluate_every=50)
+    rows = [{"pressure": None, "speed": 0.5}, {"speed": 1.5}, {"pressure": 1.5, "speed": None}, {"pressure": 0.2}]
+    for i, feats in enumerate(rows):
+        check.on_prediction(Prediction("press", str(i), 0.0, float(i), features=feats))
+    # by hand: pressure None, absent, 1.5, 0.2 -> bins [1, 1, 0] with two missing;
+    # speed 0.5, 1.5, None, absent -> [1, 1] with two missing
+    assert check.counts() == {"pressure": [1, 1, 2], "speed": [1, 1, 2]}

@@ -158,6 +158,7 @@ def test_a_model_frozen_before_the_drift_is_flagged_after_it_and_not_before():
     assert any(a.check == "gap" and a.state == "raised" for a in got)
 
 
+@pytest.mark.slow
 def test_snapshot_and_restore_mid_episode_through_the_monitor_gives_the_same_alerts():
     messages, card = friedman_drift()
     cfg = config("fr", {"drift": {}, "baseline": {"learners": ["mean", "linear", "tree"]}})
@@ -176,6 +177,7 @@ def test_snapshot_and_restore_mid_episode_through_the_monitor_gives_the_same_ale
     assert {a.check for a in tail_live} >= {"gap", "baseline"}
 
 
+@pytest.mark.slow
 def test_a_stationary_friedman_stream_of_100000_raises_nothing_with_every_check_on():
     from river.datasets import synth
 

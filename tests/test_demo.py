@@ -7,6 +7,7 @@ import sys
 from datetime import datetime, timezone
 from pathlib import Path
 
+import pytest
 from rich.console import Console
 from typer.testing import CliRunner
 
@@ -14,6 +15,7 @@ from watchdog_edge.cli.app import app
 from watchdog_edge.cli.demo import run_demo
 
 
+@pytest.mark.slow
 def test_demo_catches_the_overfit_model_and_the_degrading_one(tmp_path):
     folder = tmp_path / "demo"
     out = subprocess.run(

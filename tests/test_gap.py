@@ -45,6 +45,7 @@ def polynomial_deployment(seed: int, degree: int, n_train: int, n_field: int = 1
     return raised
 
 
+@pytest.mark.slow
 def test_overfit_polynomial_raises_gap_from_deployment_and_sensible_fits_do_not():
     # Common practice, no single source: a degree-12 polynomial through 20 noisy points of a
     # smooth function fits the noise and swings between the points; a cubic does not, and a

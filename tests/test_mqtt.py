@@ -9,10 +9,12 @@ import time
 import paho.mqtt.client as paho
 import pytest
 from broker import Broker, make_tls
+from paho.mqtt import __version__ as paho_version
 from paho.mqtt.enums import CallbackAPIVersion
 
 from watchdog_edge.agent.link import Backoff, Link, check_topic_name, outbound_topic, read_password
 from watchdog_edge.agent.link_socket import BufferedSocket
+from watchdog_edge.agent.paho_private import FastClient, client_class, missing_steps
 from watchdog_edge.core.settings import BrokerSettings
 from watchdog_edge.errors import BrokerError, ConfigError
 
@@ -67,7 +69,7 @@ def _broker_saw_disconnects(b: Broker, n: int, client_id: str = "wd-test", timeo
     assert b.log_text().count(f"Client {client_id} disconnected") >= n, b.log_text()[-2000:]
 
 
-def _link(b: Broker, tmp_path, taker: _Taker, protocol: str = "3.1.1", **kw) -> Link:
+def _link(b: Broker, tmp_path, taker: _Taker, protocol: str = "3.1.1", fast_paho: bool = True, **kw) -> Link:
     s = BrokerSettings(
         host="localhost" if "tls" in kw else b.host,
         port=b.port,
@@ -86,6 +88,7 @@ def _link(b: Broker, tmp_path, taker: _Taker, protocol: str = "3.1.1", **kw) -> 
         tmp_path,
         taker.messages.append,
         taker.events.append,
+        fast_paho=fast_paho,
     )
     return taker.link
 
@@ -98,7 +101,7 @@ def test_persistent_session_keeps_messages_while_away_and_redelivers_unacked(bro
     taker = _Taker()
     link = _link(broker, tmp_path, taker, protocol)
     link.start()
-    assert isinstance(link.client.socket(), BufferedSocket)  # paho opened it through our hook
+    assert isinstance(link.client.socket(), BufferedSocket)  # paho opened it through our step
     _publish(broker, "site/a", [b"one"])
     first = taker.get(1)
     assert [m.payload for m in first] == [b"one"]
@@ -129,9 +132,12 @@ def test_persistent_session_keeps_messages_while_away_and_redelivers_unacked(bro
     link3.stop()
 
 
-def test_reconnects_after_a_broker_restart_and_resubscribes(broker, tmp_path):
+# fast: paho's client with the private steps of agent/paho_private.py; paho: paho's own
+# client, as the link runs on a paho that lacks them
+@pytest.mark.parametrize("fast", [True, False], ids=["fast", "paho"])
+def test_reconnects_after_a_broker_restart_and_resubscribes(broker, tmp_path, fast):
     taker = _Taker()
-    link = _link(broker, tmp_path, taker)
+    link = _link(broker, tmp_path, taker, fast_paho=fast)
     link.start()
     broker.stop()
     assert taker.pump(lambda: not link.connected.is_set()), "did not notice the broker going away"
@@ -213,15 +219,39 @@ def test_many_messages_over_tls_arrive_whole_in_order_and_are_all_acknowledged(t
         b.stop()
 
 
-def test_the_paho_steps_the_link_replaces_still_exist():
-    # The link overrides two inner steps of paho 2.x for speed (see mqtt._Client). A paho
-    # without them still works, only slower: this test says so at upgrade time.
-    import inspect
+@pytest.mark.parametrize("protocol", ["3.1.1", "5"])
+def test_on_paho_own_client_the_link_receives_acknowledges_and_publishes(broker, tmp_path, protocol):
+    # The fallback path of agent/paho_private.py (no private paho step), against the broker.
+    taker = _Taker()
+    link = _link(broker, tmp_path, taker, protocol, fast_paho=False)
+    link.start()
+    assert type(link.client) is paho.Client and not isinstance(link.client.socket(), BufferedSocket)
+    _publish(broker, "site/a", [b"one", b"two"])
+    got = taker.get(2)
+    assert [m.payload for m in got] == [b"one", b"two"]
+    for m in got:
+        link.ack(m.mid)
+    link.flush()
+    taker.pump(lambda: False, timeout=0.3)  # let the broker read the acks
+    link.stop()
+    _broker_saw_disconnects(broker, 1)
+    # acknowledged: the next session (the fast client) gets nothing back
+    taker2 = _Taker()
+    link2 = _link(broker, tmp_path, taker2, protocol)
+    link2.start()
+    assert taker2.get(1, timeout=1.0) == []
+    link2.stop()
 
-    for name, params in (("_create_socket", ["self"]), ("_handle_on_message", ["self", "message"])):
-        step = getattr(paho.Client, name, None)
-        assert step is not None, f"paho {paho.__name__} has no {name}: the link runs without its fast path"
-        assert list(inspect.signature(step).parameters) == params
+
+def test_the_paho_steps_the_link_replaces_still_exist():
+    # The link replaces two private steps of paho 2.x for speed (agent/paho_private.py). A paho
+    # without them still works (the "paho" runs above), only slower: this fails at upgrade time.
+    missing = missing_steps()
+    assert not missing, (
+        f"paho-mqtt {paho_version} has no {', '.join(missing)} with the expected parameters: the MQTT link "
+        "falls back to paho's own client (slower). Update agent/paho_private.py to this paho, or pin paho-mqtt<2.3"
+    )
+    assert client_class() is FastClient and client_class(fast=False) is paho.Client
 
 
 def test_unreachable_broker_gives_one_line_reason(tmp_path):

@@ -1,6 +1,11 @@
 """Pairing edge cases: either side first, duplicates, expiry, the memory cap."""
 
-from watchdog_edge.core.pairing import Pairer
+import json
+
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from watchdog_edge.core.pairing import COUNTERS, Pairer
 from watchdog_edge.core.records import Prediction, Truth
 
 
@@ -72,3 +77,74 @@ def test_snapshot_round_trip():
     assert q.counts == p.counts and q.pending == 2
     assert q.add_truth(T(1, 4)).prediction.value == 1.0
     assert q.add_truth(T(3, 5)) is None and q.counts["duplicate_truths"] == 1
+
+
+class _Plain:
+    """The pairing rules written plainly (lists scanned in full), to hold the Pairer to them."""
+
+    def __init__(self, horizon_s: float, cap: int) -> None:
+        self.h, self.cap = horizon_s, cap
+        self.preds: dict[str, float] = {}
+        self.truths: dict[str, float] = {}
+        self.done: dict[str, float] = {}
+        self.counts = dict.fromkeys(COUNTERS, 0)
+
+    def expire(self, now: float) -> None:
+        limit = now - self.h
+        for store, key in ((self.preds, "expired_predictions"), (self.truths, "expired_truths")):
+            old = [k for k, t in store.items() if t < limit]
+            for k in old:
+                del store[k]
+            self.counts[key] += len(old)
+        for k in [k for k, t in self.done.items() if t < limit]:
+            del self.done[k]
+
+    def add(self, side: str, rid: str, t: float) -> bool:
+        mine, other = (self.preds, self.truths) if side == "p" else (self.truths, self.preds)
+        name = "predictions" if side == "p" else "truths"
+        self.counts[name] += 1
+        if rid in mine or rid in self.done:
+            self.counts["duplicate_" + name] += 1
+            return False
+        if rid in other:
+            del other[rid]
+            self.counts["paired"] += 1
+            self.done[rid] = t
+            if len(self.done) > self.cap:
+                del self.done[next(iter(self.done))]
+            return True
+        mine[rid] = t
+        while len(self.preds) + len(self.truths) > self.cap:
+            op = min(self.preds.values(), default=None)
+            ot = min(self.truths.values(), default=None)
+            if ot is None or (op is not None and op <= ot):
+                del self.preds[min(self.preds, key=self.preds.__getitem__)]
+                self.counts["evicted_predictions"] += 1
+            else:
+                del self.truths[min(self.truths, key=self.truths.__getitem__)]
+                self.counts["evicted_truths"] += 1
+        return False
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    steps=st.lists(st.tuples(st.sampled_from("pt"), st.integers(0, 12), st.floats(0, 30)), min_size=1, max_size=120),
+    horizon=st.sampled_from([5.0, 20.0, 1e9]),
+    cap=st.integers(1, 8),
+    restore_at=st.integers(0, 120),
+)
+def test_pairer_follows_the_plain_rules(steps, horizon, cap, restore_at):
+    p, plain, t = Pairer(horizon, cap), _Plain(horizon, cap), 0.0
+    for i, (side, rid, dt) in enumerate(steps):
+        if i == restore_at:  # a snapshot taken mid-stream continues the same way
+            q = Pairer(horizon, cap)
+            q.restore(json.loads(json.dumps(p.snapshot())))
+            p = q
+        t += dt
+        if t > p.due:  # as the core calls it
+            p.expire(t)
+        plain.expire(t)
+        rec = P(rid, t) if side == "p" else T(rid, t)
+        got = p.add_prediction(rec) if side == "p" else p.add_truth(rec)
+        assert (got is not None) == plain.add(side, str(rid), t)
+        assert p.counts == plain.counts and p.pending == len(plain.preds) + len(plain.truths)

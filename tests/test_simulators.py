@@ -308,6 +308,7 @@ def test_live_publishing_fails_clearly_without_a_broker():
 
 
 # -- live, watched by the agent ---------------------------------------------------------------
+@pytest.mark.slow
 def test_scenario_streamed_live_and_watched_by_run_gives_the_alerts_of_its_replay(tmp_path, broker):
     """simulate --broker -> broker -> watchdog-edge run --record; replay of that recording."""
     import os

@@ -13,7 +13,7 @@ import pytest
 
 from watchdog_edge.agent.store import JournalEntry, OutboxItem, Store, read_dead_letters
 from watchdog_edge.core.events import DeadLetter
-from watchdog_edge.errors import WatchdogError
+from watchdog_edge.errors import StoreError
 
 
 def _msg(i: int, t: float = 0.0) -> JournalEntry:
@@ -29,7 +29,7 @@ def test_wal_and_synchronous_modes_are_in_force(tmp_path):
     f = Store(tmp_path / "b.sqlite", synchronous="FULL")
     assert f.synchronous == "FULL"
     f.close()
-    with pytest.raises(WatchdogError, match="NORMAL' or 'FULL"):
+    with pytest.raises(StoreError, match="NORMAL' or 'FULL"):
         Store(tmp_path / "c.sqlite", synchronous="OFF")  # type: ignore[arg-type]
 
 
@@ -179,11 +179,11 @@ def test_non_utf8_dead_letter_reads_back_as_base64(tmp_path):
 
 
 def test_reading_a_missing_or_foreign_file_says_what_to_check(tmp_path):
-    with pytest.raises(WatchdogError, match="agent.state_dir"):
+    with pytest.raises(StoreError, match="agent.state_dir"):
         read_dead_letters(tmp_path / "none.sqlite")
     other = tmp_path / "other.sqlite"
     sqlite3.connect(other).execute("CREATE TABLE x (a)").connection.commit()
-    with pytest.raises(WatchdogError, match="not a watchdog-edge state file"):
+    with pytest.raises(StoreError, match="not a watchdog-edge state file"):
         read_dead_letters(other)
 
 
@@ -192,7 +192,7 @@ def test_a_newer_schema_is_refused(tmp_path):
     s = Store(path)
     s._db.execute("UPDATE meta SET value = '99' WHERE key = 'schema_version'")
     s.close()
-    with pytest.raises(WatchdogError, match="schema 99"):
+    with pytest.raises(StoreError, match="schema 99"):
         Store(path)
 
 

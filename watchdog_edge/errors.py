@@ -1,4 +1,23 @@
-"""The small hierarchy of errors a user can meet; each message says what to fix."""
+"""The small hierarchy of errors a user can meet; each message says what to fix.
+
+Every error watchdog-edge raises on purpose is one of these; the command line prints the
+message (no traceback) and exits non-zero. Bad records in the stream are never errors: they
+are counted and kept aside as dead letters.
+
+::
+
+    WatchdogError       base: something the user can fix stops the command
+    ├── ConfigError     the TOML config (or a snapshot made with another config) breaks a
+    │                   rule: names the key path, the value and the rule, says what to do
+    ├── CardError       a model card is missing, malformed, or lacks what a check needs
+    ├── RecordingError  a recording cannot be read, or holds nothing for the config's topics
+    ├── DataError       training or hold-out rows (CSV) are unusable: names column and row
+    ├── BrokerError     the MQTT broker refused the agent or could not be reached
+    └── StoreError      the agent's state file (SQLite) cannot be opened, written or read
+
+>>> issubclass(StoreError, WatchdogError)
+True
+"""
 
 from __future__ import annotations
 
@@ -16,7 +35,7 @@ class CardError(WatchdogError):
 
 
 class RecordingError(WatchdogError):
-    """A recording file cannot be read; the message names the line."""
+    """A recording file cannot be read, or gives nothing for the config; the message names the line."""
 
 
 class DataError(WatchdogError):
@@ -25,3 +44,7 @@ class DataError(WatchdogError):
 
 class BrokerError(WatchdogError):
     """The broker refused us or could not be reached; the message gives the reason."""
+
+
+class StoreError(WatchdogError):
+    """The state file cannot be opened, used or read; the message names the file and what to do."""

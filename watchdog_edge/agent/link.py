@@ -9,7 +9,8 @@ to do with them.
 - Manual acknowledgement: ``ack(mid)`` is called by the agent only after its journal commit.
 - Reconnect with exponential backoff and jitter; subscriptions are renewed on every connect.
 - Few system calls: paho runs on a ``BufferedSocket`` (link_socket.py), and the PUBACKs of a
-  batch leave in one write.
+  batch leave in one write. The two private paho steps this needs live in paho_private.py;
+  without them (another paho) the link runs on paho's own client, slower, the same otherwise.
 - The last will sets the retained agent status to offline when the agent dies.
 """
 
@@ -35,6 +36,7 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
 from watchdog_edge.agent.link_socket import BufferedSocket
+from watchdog_edge.agent.paho_private import client_class, missing_steps
 from watchdog_edge.core.settings import BrokerSettings
 from watchdog_edge.errors import BrokerError, ConfigError
 
@@ -200,25 +202,6 @@ def describe_refusal(reason: Any, host: str, port: int) -> str:
     return f"broker at {host}:{port} refused the connection: {text}{hint}"
 
 
-class _Client(paho.Client):
-    """paho's client with two of its inner steps made cheaper; both exist in paho 2.0 to 2.2.
-
-    A paho without them simply takes its ordinary way, slower but the same:
-
-    - ``_create_socket`` opens every connection: it runs on a ``BufferedSocket`` here
-      (see link_socket.py);
-    - ``_handle_on_message`` hands each received PUBLISH to the callbacks: here straight
-      to ``on_message``, skipping paho's search for per-topic callbacks, of which the link
-      registers none (it cost about a tenth of the agent's time per message).
-    """
-
-    def _create_socket(self):  # type: ignore[no-untyped-def]
-        return BufferedSocket(super()._create_socket())
-
-    def _handle_on_message(self, message: paho.MQTTMessage) -> None:
-        self.on_message(self, None, message)
-
-
 def _no_op(*args: Any) -> None:
     return None
 
@@ -244,7 +227,10 @@ class Link:
         base_dir: Path,
         on_message: Callable[[Inbound], None],
         on_event: Callable[[LinkEvent], None],
+        *,
+        fast_paho: bool = True,
     ) -> None:
+        """``fast_paho=False`` builds paho's own client, as when paho lacks the steps of paho_private.py."""
         self.settings = settings
         self.client_id = client_id
         self.subscriptions = list(subscriptions)
@@ -269,7 +255,14 @@ class Link:
         )
         if not v5:
             kwargs["clean_session"] = False
-        c = _Client(**kwargs)
+        cls = client_class(fast_paho)
+        if fast_paho and cls is paho.Client:
+            log.warning(
+                "the installed paho-mqtt lacks %s: the MQTT link runs on paho's own client, slower; "
+                "paho-mqtt 2.0 to 2.2 has them",
+                ", ".join(missing_steps()),
+            )
+        c = cls(**kwargs)
         # A fresh process holds no unacknowledged outbound messages of its own; the outbox
         # re-sends what waited on disk. Inside one process paho re-sends in-flight QoS 1
         # messages after a reconnect (MQTT 3.1.1, 4.4).
@@ -391,8 +384,8 @@ class Link:
         if self._attempt is not None or sock is None:
             self._reconnect_step(timeout)
             return
-        buffered = isinstance(sock, BufferedSocket)
-        if not (buffered and (sock.pending() > 0 or sock.error is not None)):
+        buffered = sock if isinstance(sock, BufferedSocket) else None
+        if not (buffered is not None and (buffered.pending() > 0 or buffered.error is not None)):
             try:
                 readable, writable, _ = select.select([sock], [sock] if self.want_write() else [], [], timeout)
             except (OSError, ValueError):
@@ -410,7 +403,7 @@ class Link:
             if rc != MQTTErrorCode.MQTT_ERR_SUCCESS or c.socket() is None:
                 self._lost(rc)
                 return
-            if self._delivered >= max_messages or not buffered or sock.pending() <= 0:
+            if self._delivered >= max_messages or buffered is None or buffered.pending() <= 0:
                 break
         self._misc()
 

@@ -29,7 +29,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 from watchdog_edge.core.events import DeadLetter
-from watchdog_edge.errors import WatchdogError
+from watchdog_edge.errors import StoreError
 
 SCHEMA_VERSION = 1
 _CACHE_KIB = 512
@@ -215,7 +215,7 @@ class Store:
         dead_letter_max_bytes: int = 1_048_576,
     ) -> None:
         if synchronous not in ("NORMAL", "FULL"):
-            raise WatchdogError(f"sqlite_synchronous = {synchronous!r}: must be 'NORMAL' or 'FULL'")
+            raise StoreError(f"sqlite_synchronous = {synchronous!r}: must be 'NORMAL' or 'FULL'")
         self.path = Path(path)
         self.path.parent.mkdir(parents=True, exist_ok=True)
         self.dead_letter_max_count = dead_letter_max_count
@@ -226,9 +226,9 @@ class Store:
             self._db = sqlite3.connect(str(self.path), isolation_level=None, timeout=10.0)
             mode = self._db.execute("PRAGMA journal_mode=WAL").fetchone()[0]
         except sqlite3.Error as e:
-            raise WatchdogError(f"cannot open the state file {self.path}: {e}; check agent.state_dir") from None
+            raise StoreError(f"cannot open the state file {self.path}: {e}; check agent.state_dir") from None
         if str(mode).lower() != "wal":
-            raise WatchdogError(
+            raise StoreError(
                 f"the state file {self.path} cannot use WAL mode (got {mode!r}); "
                 "put agent.state_dir on a local file system"
             )
@@ -241,7 +241,7 @@ class Store:
         if found is None:
             self._meta_set("schema_version", str(SCHEMA_VERSION))
         elif int(found) != SCHEMA_VERSION:
-            raise WatchdogError(
+            raise StoreError(
                 f"the state file {self.path} has schema {found}, this version reads "
                 f"{SCHEMA_VERSION}; move it away to start fresh"
             )
@@ -449,7 +449,7 @@ def open_readonly(path: str | Path) -> sqlite3.Connection:
     """Open a state file for reading while an agent may be writing it (WAL allows that)."""
     p = Path(path)
     if not p.exists():
-        raise WatchdogError(f"no state file at {p}; has the agent run with this config (agent.state_dir)?")
+        raise StoreError(f"no state file at {p}; has the agent run with this config (agent.state_dir)?")
     return sqlite3.connect(f"file:{p}?mode=ro", uri=True, timeout=10.0)
 
 
@@ -462,7 +462,7 @@ def read_dead_letters(path: str | Path, limit: int | None = None) -> list[Stored
                 "SELECT id, topic, t, reason, detail, payload, size FROM dead_letters ORDER BY id"
             ).fetchall()
         except sqlite3.OperationalError as e:
-            raise WatchdogError(f"{path} is not a watchdog-edge state file ({e})") from None
+            raise StoreError(f"{path} is not a watchdog-edge state file ({e})") from None
     finally:
         db.close()
     if limit is not None:

@@ -1,13 +1,18 @@
 """Alert states: every rule that turns check levels into raised and cleared alerts.
 
+How a check's level moves (up at once, down after ``clear_after`` calm evaluations, critical
+stepping down to warning by the same rule) is the one rule of ``watchdog_edge.core.levels``,
+which every check uses and this module owns. The rules below start from those levels.
+
 Rules of this file:
 1. Each (model, check) is either quiet or in an episode. An episode starts when the check's
    level leaves "normal"; its start time is the core time of that first raise.
 2. Alerts are emitted on transitions only, never once per evaluation:
    - quiet -> warning or critical: one "raised" alert at that severity;
    - in an episode, a severity the episode has not yet had above it (warning -> critical):
-     a new "raised" alert at the new severity, same episode start. A check that eases from
-     critical to warning stays critical until it clears (no flapping between severities);
+     a new "raised" alert at the new severity, same episode start. A check whose level steps
+     down from critical to warning raises nothing new: the episode keeps its highest severity
+     until it clears (no alerts flapping between severities; the retained level shows warning);
    - in an episode -> normal: one "cleared" alert carrying the episode's highest severity.
 3. A new model version ends the old version's open episodes with "cleared" alerts, since
    their windows are gone; the new version starts quiet.
@@ -22,8 +27,10 @@ from typing import Any
 
 from watchdog_edge.core.checks.base import Verdict
 from watchdog_edge.core.events import Alert
+from watchdog_edge.core.levels import RANK as _RANK
+from watchdog_edge.core.levels import Level, LevelGate, LevelRule, level_above
 
-_RANK = {"normal": 0, "warning": 1, "critical": 2}
+__all__ = ["AlertBook", "Level", "LevelGate", "LevelRule", "alert_id", "level_above"]
 
 
 def alert_id(

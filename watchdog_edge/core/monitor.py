@@ -1,9 +1,11 @@
 """The sans-I/O monitoring core: topic, payload and receive time in; events out.
 
-``feed`` and ``tick`` are all an adapter needs. Internally ``feed`` is ``apply(intake(...))``:
-``intake`` routes, parses and pairs (it owns the pairing buffers and the bad-record counters);
-``apply`` runs the live windows, the checks and the alert states. A tuner intakes a recording
-once and applies the same steps to many monitors built with other check settings.
+``feed`` and ``tick`` are all an adapter needs. ``feed`` gives what ``apply(intake(...))``
+gives: ``intake`` routes, parses and pairs (it owns the pairing buffers and the bad-record
+counters) and returns typed steps (:class:`PredictionStep`, :class:`TruthStep`,
+:class:`PairStep`, :class:`TickStep`); ``apply`` runs the live windows, the checks and the
+alert states on them. A tuner intakes a recording once and applies the same steps to many
+monitors built with other check settings. ``feed`` does both in one pass, without steps.
 
 The core never reads a clock, opens a socket, starts a thread or touches disk.
 """
@@ -14,14 +16,14 @@ import base64
 from collections import deque
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple, TypeVar
 
 import orjson
 
 import watchdog_edge.core.checks as registry
 from watchdog_edge.core.alerts import AlertBook
 from watchdog_edge.core.cards import ModelCard, expected_loss
-from watchdog_edge.core.checks.base import Check, CheckContext, Verdict
+from watchdog_edge.core.checks.base import Check, CheckContext, Input, Verdict
 from watchdog_edge.core.events import DeadLetter, Event, VersionStarted
 from watchdog_edge.core.losses import loss_function
 from watchdog_edge.core.pairing import COUNTERS as PAIR_COUNTERS
@@ -46,25 +48,63 @@ _OrjsonError = orjson.JSONDecodeError
 SNAPSHOT_FORMAT = 1
 
 
-@dataclass(slots=True)
-class Step:
-    """One unit of work for ``apply``: a prediction, truth, pair or tick of one model."""
+# The steps of ``intake``, one small immutable class per kind. Tuples: a tuner keeps millions
+# of them, and a tuple is the cheapest object to build and to keep.
+class PredictionStep(NamedTuple):
+    """A good prediction of one model, for ``apply``."""
 
-    kind: str  # "prediction" | "truth" | "pair" | "tick"
     t: float
-    model: str | None = None
-    item: Prediction | Truth | Pair | None = None
+    model: str
+    prediction: Prediction
+
+
+class TruthStep(NamedTuple):
+    """A good truth of one model, for ``apply``."""
+
+    t: float
+    model: str
+    truth: Truth
+
+
+class PairStep(NamedTuple):
+    """A prediction paired with its truth, for ``apply``."""
+
+    t: float
+    model: str
+    pair: Pair
+
+
+class TickStep(NamedTuple):
+    """A timer tick, for ``apply``."""
+
+    t: float
+
+
+Step = PredictionStep | TruthStep | PairStep | TickStep
 
 
 @dataclass(slots=True, eq=False)
-class Lane:
-    """Where the records of one topic filter go: one model's parser, pairer and track."""
+class PredictionLane:
+    """Where the predictions of one topic filter go: one model's parser, pairer and track."""
 
     model: str
-    prediction: bool  # predictions, else truths
-    parse: Callable[[Any, float], Prediction | Truth]  # the parser's bound method
+    parse: Callable[[Any, float], Prediction]  # the parser's bound method
     pairer: Pairer
     track: ModelTrack
+
+
+@dataclass(slots=True, eq=False)
+class TruthLane:
+    """Where the truths of one topic filter go: one model's parser, pairer and track."""
+
+    model: str
+    parse: Callable[[Any, float], Truth]
+    pairer: Pairer
+    track: ModelTrack
+
+
+Lane = PredictionLane | TruthLane
+_R = TypeVar("_R", Prediction, Truth)
 
 
 class ModelTrack:
@@ -88,18 +128,16 @@ class ModelTrack:
             min_pairs=settings.window.min_pairs,
         )
         self.loss = loss_function(card.loss)
-        self.checks: dict[str, Check] = {}
+        self.checks: dict[str, Check[Any]] = {}
         for name in settings.enabled_checks():
             cls = registry.check_class(name)
             self.checks[name] = cls(settings.checks[name], self.context)
 
-        # Per input kind: the checks that take it, and those whose verdict it may change.
-        def overrides(check: Check, verb: str) -> bool:
-            return getattr(type(check), verb) is not getattr(Check, verb)
-
+        # Per input kind: the checks that take it (as they declare), and those whose verdict
+        # it may change.
         items = list(self.checks.items())
-        self._takes = {
-            verb: [c for _, c in items if overrides(c, verb)] for verb in ("on_prediction", "on_truth", "on_pair")
+        self._takes: dict[Input, list[Check[Any]]] = {
+            kind: [c for _, c in items if kind in c.takes] for kind in ("prediction", "truth", "pair")
         }
         self._judges = {
             kind: [(n, c) for n, c in items if kind in c.reacts_to] for kind in ("prediction", "truth", "pair", "tick")
@@ -108,19 +146,19 @@ class ModelTrack:
         # Per input kind, in check order: (name, its verb for the input or None, its evaluate
         # or None), as bound methods. A verb that returns False says evaluate would have
         # nothing new to say: the call is skipped (see Check.on_prediction).
-        def route(kind: str, verb: str) -> tuple[tuple[str, Any, Any], ...]:
+        def route(kind: Input, verb: Callable[[Check[Any]], Any]) -> tuple[tuple[str, Any, Any], ...]:
             return tuple(
-                (n, getattr(c, verb) if overrides(c, verb) else None, c.evaluate if kind in c.reacts_to else None)
+                (n, verb(c) if kind in c.takes else None, c.evaluate if kind in c.reacts_to else None)
                 for n, c in items
-                if overrides(c, verb) or kind in c.reacts_to
+                if kind in c.takes or kind in c.reacts_to
             )
 
-        self._on_prediction = route("prediction", "on_prediction")
-        self._on_truth = route("truth", "on_truth")
-        self._on_pair = route("pair", "on_pair")
+        self._on_prediction = route("prediction", lambda c: c.on_prediction)
+        self._on_truth = route("truth", lambda c: c.on_truth)
+        self._on_pair = route("pair", lambda c: c.on_pair)
         self._on_tick = tuple((n, c.evaluate) for n, c in self._judges["tick"])
         self.book = AlertBook(agent, settings.id)
-        self.keeps_features = any(c.pair_features for c in self._takes["on_pair"])
+        self.keeps_features = any(c.pair_features for c in self._takes["pair"])
         self.version: str | None = None
         self.version_seen = False
         self.pairs = 0
@@ -140,7 +178,7 @@ class ModelTrack:
         self.version_seen = True
         t = p.t
         for name, take, ask in self._on_prediction:
-            if (take is not None and take(p) is False) or ask is None:
+            if (take is not None and not take(p)) or ask is None:
                 continue
             verdict = ask(t)
             if verdict is not None:
@@ -165,7 +203,7 @@ class ModelTrack:
         # one more call for every record
         t = tr.t
         for name, take, ask in self._on_truth:
-            if (take is not None and take(tr) is False) or ask is None:
+            if (take is not None and not take(tr)) or ask is None:
                 continue
             verdict = ask(t)
             if verdict is not None:
@@ -181,7 +219,7 @@ class ModelTrack:
         loss = self.loss(pr.truth.value, p.value)
         t = pr.t
         for name, take, ask in self._on_pair:
-            if (take is not None and take(pr, loss) is False) or ask is None:
+            if (take is not None and not take(pr, loss)) or ask is None:
                 continue
             verdict = ask(t)
             if verdict is not None:
@@ -260,19 +298,11 @@ class Monitor:
             self.parsers[(m.id, "truth")] = RecordParser(m.id, "truth", m.fields.truth_map())
             self.pairers[m.id] = Pairer(m.pairing.horizon_s, m.pairing.max_unpaired)
             self.tracks[m.id] = ModelTrack(self.agent, m, cards[m.id])
-            for flt, kind in ((m.prediction_topic, "prediction"), (m.truth_topic, "truth")):
-                routes.append(
-                    (
-                        flt,
-                        Lane(
-                            m.id,
-                            kind == "prediction",
-                            self.parsers[(m.id, kind)].parse,
-                            self.pairers[m.id],
-                            self.tracks[m.id],
-                        ),
-                    )
-                )
+            pairer, track = self.pairers[m.id], self.tracks[m.id]
+            routes.append(
+                (m.prediction_topic, PredictionLane(m.id, self.parsers[(m.id, "prediction")].prediction, pairer, track))
+            )
+            routes.append((m.truth_topic, TruthLane(m.id, self.parsers[(m.id, "truth")].truth, pairer, track)))
         self.router: Router[Lane] = Router(routes)
         self._routes = self.router.cache  # looked up first: most topics are already there
         self.max_payload = config.agent.max_payload_bytes
@@ -308,16 +338,59 @@ class Monitor:
             self._dead_bytes -= len(self._dead.popleft().payload)
         out.append(dl)
 
-    def intake(self, topic: str, payload: bytes | str, t: float) -> list[Any]:
-        """Route, parse and pair one message; returns steps and dead letters."""
-        return self.feed(topic, payload, t, steps=True)
+    def _message(
+        self, topic: str, payload: bytes | str, t: float, out: list[Any]
+    ) -> tuple[float, bytes, tuple[Lane, ...], Any] | None:
+        """What ``intake`` (and ``feed``, written out) does first: the clock, routing, expiry, decoding.
 
-    def feed(self, topic: str, payload: bytes | str, t: float, *, steps: bool = False) -> list[Any]:
-        """One received message at receive time ``t``; the events it causes.
-
-        With ``steps=True`` the tracks do not run: the result holds the steps (and dead
-        letters) for :meth:`apply`, which then gives the same events in the same order.
+        Returns the receive time, raw bytes, lanes and decoded elements; None when the message
+        went to the dead letters (in ``out``).
         """
+        if type(t) is not float:
+            t = float(t)
+        if t < self.now:
+            self.clock_backwards += 1
+            t = self.now
+        else:
+            self.now = t
+        self.received += 1
+        if type(payload) is bytes:
+            raw = payload
+        else:
+            raw = payload.encode() if isinstance(payload, str) else bytes(payload)
+        lanes = self._routes.get(topic) or self.router.route(topic)
+        if not lanes:
+            self._dead_letter(topic, t, "unknown_topic", f"no model listens on topic {topic!r}", raw, out)
+            return None
+        for lane in lanes:
+            if t > lane.pairer.due:
+                lane.pairer.expire(t)
+        # decode()'s common case written out (a payload orjson reads as an object or an array);
+        # anything else goes through decode() for its rules and its reasons
+        doc = None
+        if len(raw) <= self.max_payload:
+            try:
+                doc = _orjson_loads(raw)
+            except _OrjsonError:
+                pass
+        if type(doc) is dict:
+            elements: Any = (doc,)
+        elif type(doc) is list:
+            elements = doc
+        else:
+            try:
+                elements = decode(raw, self.max_payload)
+            except BadRecord as e:
+                self._dead_letter(topic, t, e.reason, e.detail, raw, out)
+                return None
+        return t, raw, lanes, elements
+
+    def feed(self, topic: str, payload: bytes | str, t: float) -> list[Any]:
+        """One received message at receive time ``t``; the events it causes."""
+        # The hot path: what _message() does is written out here, and each lane kind's loop
+        # with the track's verbs called directly, to save a call per message and per record
+        # (about 2 % of replay's instructions, measured with callgrind). intake() calls
+        # _message(); tests/test_monitor.py holds feed and apply(intake(...)) equal.
         if type(t) is not float:
             t = float(t)
         if t < self.now:
@@ -357,45 +430,104 @@ class Monitor:
                 self._dead_letter(topic, t, e.reason, e.detail, raw, out)
                 return out
         for lane in lanes:
-            parse, pairer, track = lane.parse, lane.pairer, lane.track
-            for el in elements:
-                try:
-                    rec = parse(el, t)
-                except BadRecord as e:
-                    rec = self._reject(e, lane, el, elements, raw, topic, t, out)
-                    if rec is None:
-                        continue
-                if lane.prediction:
-                    if steps:
-                        out.append(Step("prediction", t, lane.model, rec))
-                    else:
-                        track.prediction(rec, out)  # type: ignore[arg-type]
-                        if not track.keeps_features:
-                            rec.features = {}  # rebound, not cleared: a check may still hold the dict
-                    pr = pairer.add_prediction(rec)  # type: ignore[arg-type]
-                else:
-                    if steps:
-                        out.append(Step("truth", t, lane.model, rec))
-                    else:
-                        track.truth(rec, out)  # type: ignore[arg-type]
-                    pr = pairer.add_truth(rec)  # type: ignore[arg-type]
-                if pr is not None:
-                    if steps:
-                        out.append(Step("pair", t, lane.model, pr))
-                    else:
+            pairer, track = lane.pairer, lane.track
+            if isinstance(lane, PredictionLane):
+                parse_p = lane.parse
+                for el in elements:
+                    try:
+                        p = parse_p(el, t)
+                    except BadRecord as e:
+                        rejected = self._reject(e, parse_p, el, elements, raw, topic, t, out)
+                        if rejected is None:
+                            continue
+                        p = rejected
+                    track.prediction(p, out)
+                    if not track.keeps_features:
+                        p.features = {}  # rebound, not cleared: a check may still hold the dict
+                    pr = pairer.add_prediction(p)
+                    if pr is not None:
+                        track.pair(pr, out)
+            else:
+                parse_t = lane.parse
+                for el in elements:
+                    try:
+                        tr = parse_t(el, t)
+                    except BadRecord as e:
+                        rejected_t = self._reject(e, parse_t, el, elements, raw, topic, t, out)
+                        if rejected_t is None:
+                            continue
+                        tr = rejected_t
+                    track.truth(tr, out)
+                    pr = pairer.add_truth(tr)
+                    if pr is not None:
                         track.pair(pr, out)
         return out
 
+    def intake(self, topic: str, payload: bytes | str, t: float) -> list[Step | DeadLetter]:
+        """Route, parse and pair one message like ``feed``, without running the checks.
+
+        Returns the steps and dead letters; :meth:`apply` of them gives the events ``feed``
+        would have given, in the same order.
+        """
+        out: list[Any] = []
+        opened = self._message(topic, payload, t, out)
+        if opened is None:
+            return out
+        t, raw, lanes, elements = opened
+        add = out.append
+        # Steps are built with tuple.__new__, skipping NamedTuple's Python-level __new__: half
+        # the cost of a step, and a tuner builds one or two per record.
+        new = tuple.__new__
+        for lane in lanes:
+            pairer, model = lane.pairer, lane.model
+            if isinstance(lane, PredictionLane):
+                parse_p = lane.parse
+                for el in elements:
+                    try:
+                        p = parse_p(el, t)
+                    except BadRecord as e:
+                        rejected = self._reject(e, parse_p, el, elements, raw, topic, t, out)
+                        if rejected is None:
+                            continue
+                        p = rejected
+                    add(new(PredictionStep, (t, model, p)))
+                    pr = pairer.add_prediction(p)
+                    if pr is not None:
+                        add(new(PairStep, (t, model, pr)))
+            else:
+                parse_t = lane.parse
+                for el in elements:
+                    try:
+                        tr = parse_t(el, t)
+                    except BadRecord as e:
+                        rejected_t = self._reject(e, parse_t, el, elements, raw, topic, t, out)
+                        if rejected_t is None:
+                            continue
+                        tr = rejected_t
+                    add(new(TruthStep, (t, model, tr)))
+                    pr = pairer.add_truth(tr)
+                    if pr is not None:
+                        add(new(PairStep, (t, model, pr)))
+        return out
+
     def _reject(
-        self, e: BadRecord, lane: Lane, el: Any, elements: list[Any], raw: bytes, topic: str, t: float, out: list[Any]
-    ) -> Prediction | Truth | None:
+        self,
+        e: BadRecord,
+        parse: Callable[[Any, float], _R],
+        el: Any,
+        elements: list[Any],
+        raw: bytes,
+        topic: str,
+        t: float,
+        out: list[Any],
+    ) -> _R | None:
         """Dead-letter a bad element; an inexact number gets a second, exact reading first."""
         if type(e) is InexactNumber:
             k = next(i for i, x in enumerate(elements) if x is el)
             if self._exact[0] is not raw:  # read once per payload, however many elements need it
                 self._exact = (raw, decode_exact(raw))
             try:
-                return lane.parse(self._exact[1][k], t)
+                return parse(self._exact[1][k], t)
             except BadRecord as again:
                 e = again
         self._dead_letter(topic, t, e.reason, e.detail, raw if len(elements) == 1 else element_bytes(el), out)
@@ -405,37 +537,36 @@ class Monitor:
         for p in self.pairers.values():
             p.expire(t)
 
-    def intake_tick(self, t: float) -> list[Any]:
+    def intake_tick(self, t: float) -> list[Step | DeadLetter]:
         """A timer tick as a step."""
         t = self._clock(t)
         self.ticks += 1
         self._expire(t)
-        return [Step("tick", t)]
+        return [TickStep(t)]
 
     # -- apply: windows, checks, alerts -----------------------------------------------------
-    def apply(self, steps: Iterable[Any]) -> list[Event]:
+    def apply(self, steps: Iterable[Step | DeadLetter]) -> list[Event]:
         """Run steps from ``intake`` through the checks; dead letters pass through."""
         out: list[Event] = []
         tracks = self.tracks
         for s in steps:
-            if type(s) is not Step:
-                out.append(s)
-                continue
-            kind = s.kind
-            if kind == "pair":
-                tracks[s.model].pair(s.item, out)  # type: ignore[index,arg-type]
-            elif kind == "prediction":
-                tracks[s.model].prediction(s.item, out)  # type: ignore[index,arg-type]
-            elif kind == "truth":
-                tracks[s.model].truth(s.item, out)  # type: ignore[index,arg-type]
-            else:
+            # the common kinds first; ``type(s) is`` is the cheapest test of a step's kind
+            if type(s) is PairStep:
+                tracks[s.model].pair(s.pair, out)
+            elif type(s) is PredictionStep:
+                tracks[s.model].prediction(s.prediction, out)
+            elif type(s) is TruthStep:
+                tracks[s.model].truth(s.truth, out)
+            elif type(s) is TickStep:
                 if s.t > self.now:
                     self.now = s.t
                 for tr in tracks.values():
                     tr.tick(s.t, out)
+            elif isinstance(s, DeadLetter):
+                out.append(s)
         return out
 
-    def relevant(self, steps: Iterable[Any]) -> list[Step]:
+    def relevant(self, steps: Iterable[Step | DeadLetter]) -> list[Step]:
         """The steps that can change this monitor's alerts, for applying one recording many times.
 
         Pairs and ticks are kept; a prediction or truth only where some enabled check of its
@@ -444,25 +575,26 @@ class Monitor:
         """
         wants = {
             m: (
-                bool(tr._takes["on_prediction"] or tr._judges["prediction"]),
-                bool(tr._takes["on_truth"] or tr._judges["truth"]),
+                bool(tr._takes["prediction"] or tr._judges["prediction"]),
+                bool(tr._takes["truth"] or tr._judges["truth"]),
             )
             for m, tr in self.tracks.items()
         }
         version: dict[str, str | None] = {}
         out: list[Step] = []
         for s in steps:
-            if type(s) is not Step:
-                continue
-            if s.kind == "prediction":
-                v = s.item.model_version  # type: ignore[union-attr]
-                new_version = v is not None and v != version.get(s.model)  # type: ignore[arg-type]
+            if type(s) is PredictionStep:
+                v = s.prediction.model_version
+                new_version = v is not None and v != version.get(s.model)
                 if new_version:
-                    version[s.model] = v  # type: ignore[index]
-                if not (wants[s.model][0] or new_version):  # type: ignore[index]
+                    version[s.model] = v
+                if not (wants[s.model][0] or new_version):
                     continue
-            elif s.kind == "truth" and not wants[s.model][1]:  # type: ignore[index]
-                continue
+            elif type(s) is TruthStep:
+                if not wants[s.model][1]:
+                    continue
+            elif type(s) is not PairStep and type(s) is not TickStep:
+                continue  # a dead letter
             out.append(s)
         return out
 

@@ -181,7 +181,7 @@ class RecordParser:
         self._plain = all("." not in p for p in paths)
         self._keys = paths
         self._getters = tuple(compile_path(p) for p in paths)
-        self.parse = self._prediction if kind == "prediction" else self._truth
+        self.parse: Callable[[Any, float], Prediction | Truth] = self.prediction if kind == "prediction" else self.truth
 
     def _fields(self, obj: Any, prediction: bool) -> tuple[Any, ...]:
         """The raw fields by their paths (absent: ``_MISSING`` for id and value, else None)."""
@@ -191,7 +191,8 @@ class RecordParser:
         vals = tuple(f(obj) for f in (g if prediction else g[:3]))
         return (vals[0], vals[1]) + tuple(None if v is _MISSING else v for v in vals[2:])
 
-    def _truth(self, obj: Any, t: float) -> Truth:
+    def truth(self, obj: Any, t: float) -> Truth:
+        """One decoded element as a truth received at ``t``; raises :class:`BadRecord`."""
         if self._plain and type(obj) is dict:  # the common case, without a path walk
             k_id, k_value, k_ts = self._keys[:3]
             raw_id, raw_value, raw_ts = obj.get(k_id, _MISSING), obj.get(k_value, _MISSING), obj.get(k_ts)
@@ -207,7 +208,8 @@ class RecordParser:
         ts = None if raw_ts is None else parse_ts(raw_ts)
         return Truth(self.model, rid, value, t, ts)
 
-    def _prediction(self, obj: Any, t: float) -> Prediction:
+    def prediction(self, obj: Any, t: float) -> Prediction:
+        """One decoded element as a prediction received at ``t``; raises :class:`BadRecord`."""
         if self._plain and type(obj) is dict:
             k_id, k_value, k_ts, k_features, k_version = self._keys
             get = obj.get
@@ -235,7 +237,8 @@ class RecordParser:
 
 
 _decoder = json.JSONDecoder()
-_scan_once = _decoder.scan_once
+# the decoder's scanner: an instance attribute set by JSONDecoder.__init__ that typeshed leaves out
+_scan_once: Callable[[str, int], tuple[Any, int]] = vars(_decoder)["scan_once"]
 _decode_json = _decoder.decode
 _orjson_loads = orjson.loads
 _OrjsonError = orjson.JSONDecodeError
@@ -267,7 +270,7 @@ def loads_json_exact(text: str | bytes) -> Any:
     >>> loads_json_exact(b'{"id": 123456789012345678901234567890}')
     {'id': 123456789012345678901234567890}
     """
-    if type(text) is not str:
+    if not isinstance(text, str):
         text = text.decode("utf-8")
     try:
         try:

@@ -66,13 +66,13 @@ def parse_lines(
                         continue
             yield _check_line(obj, i, source)
     finally:
-        if close:
-            texts.close()  # type: ignore[attr-defined]
+        if close and hasattr(texts, "close"):
+            texts.close()
 
 
 def _parse_slowly(text: str | bytes, lineno: int, source: str) -> Any:
     """What orjson refused: blank lines, bytes that are not UTF-8, NaN literals, or bad JSON."""
-    if type(text) is not str:
+    if not isinstance(text, str):
         text = text.decode("utf-8", "surrogateescape")
     text = text.strip()
     if not text:
@@ -198,14 +198,20 @@ def replay(
     lines: Iterable[RecordLine],
     tick_every: float | None = None,
     on_event: Callable[[Event], None] | None = None,
+    keep: bool = True,
 ) -> list[Event]:
-    """Drive ``monitor`` with recording lines; return every event in order."""
+    """Drive ``monitor`` with recording lines; return every event in order.
+
+    With ``keep=False`` nothing is gathered (the result is empty): a long replay that hands
+    its events to ``on_event`` then holds none of them.
+    """
     events: list[Event] = []
     feed, tick = monitor.feed, monitor.tick
     for line in with_ticks(lines, tick_every) if tick_every else lines:
         out = tick(line.t) if line.tick else feed(line.topic, line.payload, line.t)
         if out:
-            events.extend(out)
+            if keep:
+                events.extend(out)
             if on_event is not None:
                 for ev in out:
                     on_event(ev)

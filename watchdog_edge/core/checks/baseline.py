@@ -34,12 +34,13 @@ import base64
 import hashlib
 import math
 import pickle
-from typing import Any, Literal
+from typing import Any, Literal, cast
 
 import numpy as np
 from pydantic import Field, field_validator, model_validator
 
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Level, Verdict, fmt
+from watchdog_edge.core.levels import LevelRule
 from watchdog_edge.core.records import Pair
 from watchdog_edge.core.stats import diebold_mariano
 
@@ -61,7 +62,7 @@ class BaselineSettings(CheckSettings):
     """
 
     learners: list[LearnerName] = Field(
-        default_factory=lambda: ["mean", "linear"],
+        default_factory=lambda: list[LearnerName](["mean", "linear"]),
         min_length=1,
         description="Online learners to compare the model with: mean, linear, tree.",
     )
@@ -140,7 +141,7 @@ def _unpack(text: str) -> Any:
     return pickle.loads(base64.b64decode(text))
 
 
-class BaselineCheck(Check):
+class BaselineCheck(Check[BaselineSettings]):
     """Test-then-train online learners against the deployed model, by Diebold-Mariano.
 
     >>> import random
@@ -154,7 +155,7 @@ class BaselineCheck(Check):
     >>> for i in range(300):       # the truth hovers near 10; the model always says 7
     ...     y = 10 + rng.gauss(0, 1)
     ...     pair = Pair(Prediction("m", str(i), 7.0, i, features={"x": 1.0}), Truth("m", str(i), y, i), i)
-    ...     check.on_pair(pair, (y - 7.0) ** 2)
+    ...     due = check.on_pair(pair, (y - 7.0) ** 2)   # False: evaluate is not due (may be skipped)
     ...     verdicts.append(check.evaluate(float(i)))
     >>> v = [v for v in verdicts if v is not None][-1]
     >>> v.level, v.figures["learner"], v.figures["margin"] > 0.5
@@ -162,12 +163,12 @@ class BaselineCheck(Check):
     """
 
     name = "baseline"
+    takes = frozenset({"pair"})
     reacts_to = frozenset({"pair"})  # its windows move only with pairs
     settings_model = BaselineSettings
 
     def __init__(self, settings: BaselineSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        self.settings: BaselineSettings = settings
         self.names: tuple[str, ...] = tuple(settings.learners)
         self.size = settings.window if settings.window is not None else context.window_size
         self.min_pairs = min(settings.min_pairs, self.size)
@@ -189,6 +190,7 @@ class BaselineCheck(Check):
         self._tokens: float | None = None
         self._tokens_t = 0.0
         self._n_scored = self._n_no_features = self._n_skip_share = self._n_skip_rate = self._n_imputed = 0
+        self._rule = LevelRule(settings.clear_after)
         self.reset()
 
     def reset(self) -> None:
@@ -201,8 +203,7 @@ class BaselineCheck(Check):
         self._filled = 0
         self._since_eval = 0
         self._model_mean = math.nan
-        self._level: Level = "normal"
-        self._calm_run = 0
+        self._rule.reset()
         self._figures: dict[str, Any] = {}
 
     # -- intake ---------------------------------------------------------------------------
@@ -282,11 +283,12 @@ class BaselineCheck(Check):
         if None not in feats.values() and tuple(feats) == self._fast_keys:
             # the usual case, inline: the known features in the known order, none missing;
             # its values join the imputation sums in batches (see _fold)
+            full = cast("dict[str, float]", feats)  # no value is None: tested just above
             pend = self._pending
-            pend.append(feats)
+            pend.append(full)
             if len(pend) >= 256:
                 self._fold()
-            x = feats
+            x = full
         else:
             x = self._inputs(feats)
         y = pair.truth.value
@@ -358,23 +360,22 @@ class BaselineCheck(Check):
         else:
             best = min(res, key=lambda n: (res[n]["p_value"], -res[n]["margin"]))
         r = res[best]
+        # Evidence for the one level rule (core/levels.py): the best passing learner raises;
+        # any significant learner whose margin passes the eased margins keeps the level up.
+        crit = s.critical_margin
+        raised: Level = "normal"
         if passing:
-            target: Level = (
-                "critical" if s.critical_margin is not None and r["margin"] >= s.critical_margin else "warning"
-            )
-            if target == "critical" or self._level == "normal":
-                self._level = target
-            self._calm_run = 0
-        elif self._level != "normal":
-            calm_margin = s.margin * (1 - s.hysteresis)
-            still = any(v["p_value"] < alpha and v["margin"] >= calm_margin for v in res.values())
-            if still:
-                self._calm_run = 0
-            else:
-                self._calm_run += 1
-                if self._calm_run >= s.clear_after:
-                    self._level = "normal"
-                    self._calm_run = 0
+            raised = "critical" if crit is not None and r["margin"] >= crit else "warning"
+        ease = 1 - s.hysteresis
+        calm: Level = "normal"
+        for v in res.values():
+            if v["p_value"] < alpha:
+                if crit is not None and v["margin"] >= crit * ease:
+                    calm = "critical"
+                    break
+                if v["margin"] >= s.margin * ease:
+                    calm = "warning"
+        self._rule.update(raised, calm)
         self._figures = {
             "learner": best,
             "model_loss": model_mean,
@@ -389,13 +390,13 @@ class BaselineCheck(Check):
             "loss": self.context.loss_kind,
             **self.counts(),
         }
-        return Verdict(self._level, self._summary(best, r), dict(self._figures))
+        return Verdict(self._rule.level, self._summary(best, r), dict(self._figures))
 
     def _summary(self, best: str, r: dict[str, float]) -> str:
         kind = "squared" if self.context.loss_kind == "squared" else "absolute"
         model = self._figures["model_loss"]
         n = self._filled
-        if self._level == "normal":
+        if self._rule.level == "normal":
             return (
                 f"No online learner beats the deployed model with confidence over the last {n} pairs "
                 f"(best: {DESCRIPTIONS[best]}, mean {kind} error {fmt(r['learner_loss'])} against "
@@ -421,7 +422,7 @@ class BaselineCheck(Check):
     def figures(self) -> dict[str, Any]:
         out = dict(self._figures)
         out.update(self.counts())
-        out["level"] = self._level
+        out["level"] = self._rule.level
         return out
 
     # -- persistence ----------------------------------------------------------------------
@@ -443,8 +444,9 @@ class BaselineCheck(Check):
             "pos": self._pos,
             "filled": self._filled,
             "since_eval": self._since_eval,
-            "level": self._level,
-            "calm_run": self._calm_run,
+            "level": self._rule.level,
+            "calm_run": self._rule.calm_run,
+            "calm_top": self._rule.calm_top,
             "figures": self._figures,
         }
 
@@ -473,6 +475,7 @@ class BaselineCheck(Check):
         self._pos = int(data["pos"])
         self._filled = int(data["filled"])
         self._since_eval = int(data["since_eval"])
-        self._level = data["level"]
-        self._calm_run = int(data["calm_run"])
+        self._rule.restore(
+            {"level": data["level"], "calm_run": data["calm_run"], "calm_top": data.get("calm_top", "normal")}
+        )
         self._figures = data["figures"]

@@ -32,8 +32,8 @@ limit as well (a rise that ends within the limit would clear at once). Falls are
 Clearing, per ``clear_on``:
 - ``recovery``: the mean loss of the pairs since the change point (the last ``window_size`` of
   them, and at least ``min_pairs`` of them) is at or below expected x (1 + ``warning_tolerance``)
-  x (1 - ``hysteresis``) for ``clear_after`` evaluations in a row (the clearing rule of ``gap``,
-  on the live mean), evaluations every ``evaluate_every`` pairs;
+  x (1 - ``hysteresis``) for ``clear_after`` evaluations in a row (the one
+  level rule of ``core/levels.py``, on the live mean), evaluations every ``evaluate_every`` pairs;
 - ``hold``: ``hold_s`` seconds of core time after the latest raising change.
 
 river is imported only when a DriftCheck is built, never by importing this module. The
@@ -54,6 +54,7 @@ from pydantic import Field
 
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Level, Verdict, fmt
 from watchdog_edge.core.events import rfc3339
+from watchdog_edge.core.levels import LevelRule
 from watchdog_edge.core.losses import LossWindow
 from watchdog_edge.core.records import Pair
 from watchdog_edge.core.stats import prewhitened_long_run_variance
@@ -197,7 +198,7 @@ def change_point(x: np.ndarray, min_side: int = 5, direction: int = 0) -> int:
     return int(k[int(np.argmax(gain))])
 
 
-class DriftCheck(Check):
+class DriftCheck(Check[DriftSettings]):
     """Change detection on the loss stream; raises on rises only.
 
     >>> from watchdog_edge.core.cards import ModelCard
@@ -208,7 +209,7 @@ class DriftCheck(Check):
     >>> raised = []
     >>> for i in range(600):
     ...     err = (1.0 if i < 400 else 2.0) * (1 if i % 2 else -1)   # squared error 1, then 4
-    ...     check.on_pair(Pair(Prediction("m", str(i), 0.0, i), Truth("m", str(i), err, i), float(i)), err * err)
+    ...     due = check.on_pair(Pair(Prediction("m", str(i), 0.0, i), Truth("m", str(i), err, i), float(i)), err * err)
     ...     v = check.evaluate(float(i))
     ...     if v is not None: raised.append((i, v))
     >>> [(i, v.level, v.figures["change_t"]) for i, v in raised]
@@ -216,13 +217,13 @@ class DriftCheck(Check):
     """
 
     name = "drift"
+    takes = frozenset({"pair"})
     reacts_to = frozenset({"pair", "tick"})  # ticks end a hold
     pair_features = False  # it takes the loss only
     settings_model = DriftSettings
 
     def __init__(self, settings: DriftSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        self.settings: DriftSettings = settings
         self.warning_limit = context.expected_loss * (1 + settings.warning_tolerance)
         self.clear_limit = self.warning_limit * (1 - settings.hysteresis)
         self.min_pairs = max(1, min(context.min_pairs, context.window_size))
@@ -246,10 +247,9 @@ class DriftCheck(Check):
         # (seq, t, ts, loss, ratio) of the latest pairs
         self._history: deque[tuple[int, float, float | None, float, float]] = deque(maxlen=s.history)
         self._since_change = LossWindow(self.context.window_size, self.context.window_max_age_s)
-        self._level: Level = "normal"
+        self._rule = LevelRule(s.clear_after)
         self._pending = False
         self._raised_t: float | None = None
-        self._clear_run = 0
         self._since_eval = 0
         self._detections = 0
         self._ignored = 0
@@ -262,13 +262,13 @@ class DriftCheck(Check):
         seq = self._seq
         self._seq = seq + 1
         self._history.append((seq, pair.t, pair.ts, loss, ratio))
-        if self._level != "normal":  # only a raised drift needs the loss since its change
+        if self._rule.level != "normal":  # only a raised drift needs the loss since its change
             self._since_change.push(pair.t, loss)
             self._since_eval += 1
         if self._auto and seq + 1 in self._calibrate_at and self._calibrate(pair.t, first=self._chosen == 0):
-            return self._pending or self._level != "normal"  # the new detector has had this pair
+            return self._pending or self._rule.level != "normal"  # the new detector has had this pair
         if self._block == 0:
-            return self._pending or self._level != "normal"
+            return self._pending or self._rule.level != "normal"
         if self._block == 1:
             self._feed(ratio, seq, pair.t)
         else:
@@ -278,7 +278,7 @@ class DriftCheck(Check):
                 self._feed(self._acc / self._block, seq, pair.t)
                 self._acc = 0.0
                 self._acc_n = 0
-        return self._pending or self._level != "normal"  # else evaluate has nothing to say
+        return self._pending or self._rule.level != "normal"  # else evaluate has nothing to say
 
     def _calibrate(self, t: float, first: bool) -> bool:
         """Choose the block from the pairs so far and feed them to a new detector.
@@ -359,7 +359,7 @@ class DriftCheck(Check):
         rise = not math.isnan(before) and after >= before * (1 + self.settings.min_rise)
         if rise and self.settings.clear_on == "recovery" and after <= self.clear_limit:
             rise = False
-        if rise and self._level != "normal" and after < self._change["mean_after"] * (1 + self.settings.min_rise):
+        if rise and self._rule.level != "normal" and after < self._change["mean_after"] * (1 + self.settings.min_rise):
             # Started afresh inside the rise already raised, the detector found the tail of
             # the same rise (its cut is by whole buckets): the same episode.
             return
@@ -381,8 +381,8 @@ class DriftCheck(Check):
             "detected_t": t,
         }
         self._raised_t = t
-        self._clear_run = 0
-        self._level = self.settings.severity
+        # a rise is evidence at the check's one severity (core/levels.py raises at once)
+        self._rule.update(self.settings.severity, self.settings.severity)
         self._pending = True
 
     def evaluate(self, t: float) -> Verdict | None:
@@ -390,13 +390,14 @@ class DriftCheck(Check):
         if self._pending:
             self._pending = False
             self._update_figures()
-            return Verdict(self._level, self._raise_summary(), dict(self._figures))
-        if self._level == "normal":
+            return Verdict(self._rule.level, self._raise_summary(), dict(self._figures))
+        if self._rule.level == "normal":
             return None
         if s.clear_on == "hold":
-            if t - self._raised_t < s.hold_s:  # type: ignore[operator]
+            raised_t = self._raised_t if self._raised_t is not None else t  # set with every raise
+            if t - raised_t < s.hold_s:
                 return None
-            self._level = "normal"
+            self._rule.reset()  # the hold ran out: the evidence ends by itself
             self._update_figures()
             return Verdict("normal", self._hold_summary(), dict(self._figures))
         if self._since_eval < s.evaluate_every:
@@ -406,14 +407,10 @@ class DriftCheck(Check):
         w.expire(t)
         if len(w) < self.min_pairs:
             return None
-        if w.mean() <= self.clear_limit:
-            self._clear_run += 1
-        else:
-            self._clear_run = 0
-        if self._clear_run < s.clear_after:
+        # no new rise here: only the way down, when the mean since the change is calm
+        calm: Level = "normal" if w.mean() <= self.clear_limit else self._rule.level
+        if self._rule.update("normal", calm) != "normal":
             return None
-        self._level = "normal"
-        self._clear_run = 0
         self._update_figures()
         return Verdict("normal", self._recovery_summary(), dict(self._figures))
 
@@ -455,13 +452,13 @@ class DriftCheck(Check):
 
     def _hold_summary(self) -> str:
         return (
-            f"The drift raised at {rfc3339(self._raised_t)} has been held for "  # type: ignore[arg-type]
+            f"The drift raised at {rfc3339(self._raised_t or 0.0)} has been held for "
             f"{self.settings.hold_s:g} s and is cleared; the gap check keeps watching the error level."
         )
 
     def figures(self) -> dict[str, Any]:
         out = dict(self._figures)
-        out["level"] = self._level
+        out["level"] = self._rule.level
         out["detections"] = self._detections
         return out
 
@@ -478,10 +475,11 @@ class DriftCheck(Check):
             "segment_start": self._segment_start,
             "history": [list(h) for h in self._history],
             "since_change": self._since_change.snapshot(),
-            "level": self._level,
+            "level": self._rule.level,
             "pending": self._pending,
             "raised_t": self._raised_t,
-            "clear_run": self._clear_run,
+            "clear_run": self._rule.calm_run,
+            "calm_top": self._rule.calm_top,
             "since_eval": self._since_eval,
             "detections": self._detections,
             "ignored": self._ignored,
@@ -499,12 +497,13 @@ class DriftCheck(Check):
         self._win_n = int(data.get("win_n", 0))
         self._seq = int(data["seq"])
         self._segment_start = int(data["segment_start"])
-        self._history = deque((tuple(h) for h in data["history"]), maxlen=self.settings.history)  # type: ignore[misc]
+        self._history = deque((tuple(h) for h in data["history"]), maxlen=self.settings.history)
         self._since_change.restore(data["since_change"])
-        self._level = data["level"]
+        self._rule.restore(
+            {"level": data["level"], "calm_run": data["clear_run"], "calm_top": data.get("calm_top", "normal")}
+        )
         self._pending = data["pending"]
         self._raised_t = data["raised_t"]
-        self._clear_run = int(data["clear_run"])
         self._since_eval = int(data["since_eval"])
         self._detections = int(data["detections"])
         self._ignored = int(data["ignored"])

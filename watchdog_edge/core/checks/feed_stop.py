@@ -8,7 +8,8 @@ starts is reported once its timeout has passed since the watchdog began watching
 
 A level is warning when a feed has been silent for longer than its timeout, critical when
 longer than ``critical_factor`` x the timeout. It falls back as soon as the feed delivers again
-(a record is proof the feed is alive; no hysteresis is needed). A verdict is returned only when
+(a record is proof the feed is alive; no hysteresis is needed: the one level rule of
+``core/levels.py`` with ``clear_after`` 1 and the same level as evidence both ways). A verdict is returned only when
 the level changes. The check keeps the next time at which a limit can be passed, so most calls
 of ``evaluate`` cost one comparison.
 """
@@ -21,6 +22,7 @@ from typing import Any
 from pydantic import Field, model_validator
 
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Level, Verdict
+from watchdog_edge.core.levels import LevelRule
 from watchdog_edge.core.records import Prediction, Truth
 
 
@@ -64,7 +66,7 @@ def _duration(s: float) -> str:
     return f"{s / 86400:.1f} days"
 
 
-class FeedStopCheck(Check):
+class FeedStopCheck(Check[FeedStopSettings]):
     """Seconds since the latest prediction and truth against their timeouts.
 
     >>> from watchdog_edge.core.cards import ModelCard
@@ -72,8 +74,10 @@ class FeedStopCheck(Check):
     ...                  holdout={"loss": 1.0, "count": 50})
     >>> check = FeedStopCheck(FeedStopSettings(prediction_timeout_s=60, truth_timeout_s=600),
     ...                      CheckContext("m", card, "squared", 1.0, "holdout"))
-    >>> check.on_truth(Truth("m", "1", 2.0, t=0.0))
+    >>> check.on_truth(Truth("m", "1", 2.0, t=0.0))  # True: evaluate may have something new
+    True
     >>> check.on_prediction(Prediction("m", "1", 2.0, t=0.0))
+    True
     >>> check.evaluate(30.0) is None
     True
     >>> v = check.evaluate(90.0)
@@ -84,15 +88,15 @@ class FeedStopCheck(Check):
     name = "feed_stop"
     settings_model = FeedStopSettings
     # A pair comes with the truth or prediction just evaluated at the same time: nothing new.
+    takes = frozenset({"prediction", "truth"})
     reacts_to = frozenset({"prediction", "truth", "tick"})
 
     def __init__(self, settings: FeedStopSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        self.settings: FeedStopSettings = settings
         self._start: float | None = None
         self._last_prediction: float | None = None
         self._last_truth: float | None = None
-        self._reported: Level = "normal"
+        self._rule = LevelRule(clear_after=1)
         self._now: float | None = None
         self._next = -math.inf  # no level change is possible up to this core time ...
         self._fresh = True  # ... unless a record arrived on a feed that was past its limit
@@ -101,7 +105,7 @@ class FeedStopCheck(Check):
     def reset(self) -> None:
         # A new model version keeps the feeds' times (they are not a window), but the alert
         # states were closed, so the current level must be reported afresh.
-        self._reported = "normal"
+        self._rule.reset()
         self._fresh = True
 
     def on_prediction(self, prediction: Prediction) -> bool:
@@ -131,8 +135,9 @@ class FeedStopCheck(Check):
         return self._fresh or self._now > self._next
 
     def _since(self, last: float | None, t: float) -> float:
-        ref = last if last is not None else self._start
-        return max(0.0, t - ref)  # type: ignore[operator]
+        """Seconds from a feed's latest record (before the first, from the start) to ``t``."""
+        ref = last if last is not None else self._start if self._start is not None else t
+        return max(0.0, t - ref)
 
     def _level(self, t: float) -> Level:
         """The level at ``t``; also sets the next time a limit can be passed and the quiet feeds."""
@@ -144,8 +149,8 @@ class FeedStopCheck(Check):
             if limit is None:
                 quiet_feeds.append(False)
                 continue
-            ref = last if last is not None else self._start
-            quiet = max(0.0, t - ref)  # type: ignore[operator]
+            ref = last if last is not None else self._start if self._start is not None else t  # start: set by evaluate
+            quiet = max(0.0, t - ref)
             quiet_feeds.append(quiet > limit)
             crit = None if s.critical_factor is None else limit * s.critical_factor
             if crit is not None and quiet > crit:
@@ -154,9 +159,9 @@ class FeedStopCheck(Check):
                 if level == "normal":
                     level = "warning"
                 if crit is not None:
-                    nxt = min(nxt, ref + crit)  # type: ignore[operator]
+                    nxt = min(nxt, ref + crit)
             else:
-                nxt = min(nxt, ref + limit)  # type: ignore[operator]
+                nxt = min(nxt, ref + limit)
         self._next = nxt
         # Only a record on a feed past its limit can bring the level down before ``nxt``.
         self._quiet_predictions, self._quiet_truths = quiet_feeds
@@ -171,10 +176,11 @@ class FeedStopCheck(Check):
         if self._start is None:
             self._start = now
         self._fresh = False
-        level = self._level(now)
-        if level == self._reported:
+        before = self._rule.level
+        seen = self._level(now)
+        level = self._rule.update(seen, seen)
+        if level == before:
             return None
-        self._reported = level
         return Verdict(level, self._summary(level), self.figures())
 
     def _summary(self, level: Level) -> str:
@@ -200,7 +206,7 @@ class FeedStopCheck(Check):
         s = self.settings
         t = self._now
         out: dict[str, Any] = {
-            "level": self._reported,
+            "level": self._rule.level,
             "prediction_timeout_s": s.prediction_timeout_s,
             "truth_timeout_s": s.truth_timeout_s,
             "seconds_since_prediction": None,
@@ -218,7 +224,7 @@ class FeedStopCheck(Check):
             "start": self._start,
             "last_prediction": self._last_prediction,
             "last_truth": self._last_truth,
-            "reported": self._reported,
+            "reported": self._rule.level,
             "now": self._now,
         }
 
@@ -228,5 +234,5 @@ class FeedStopCheck(Check):
         self._start = data["start"]
         self._last_prediction = data["last_prediction"]
         self._last_truth = data["last_truth"]
-        self._reported = data["reported"]
+        self._rule.restore({"level": data["reported"], "calm_run": 0})
         self._now = data["now"]

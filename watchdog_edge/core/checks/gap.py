@@ -27,6 +27,7 @@ from pydantic import Field, model_validator
 
 from watchdog_edge.core.cards import expected_loss_df
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict, fmt
+from watchdog_edge.core.levels import RANK, LevelRule, level_above
 from watchdog_edge.core.losses import LossWindow
 from watchdog_edge.core.records import Pair
 from watchdog_edge.core.stats import LossInterval, f_ppf, loss_interval
@@ -80,7 +81,7 @@ class GapSettings(CheckSettings):
         return self
 
 
-class GapCheck(Check):
+class GapCheck(Check[GapSettings]):
     """Raises when the live mean loss is, with confidence, above the expected loss.
 
     >>> from watchdog_edge.core.cards import ModelCard
@@ -91,7 +92,7 @@ class GapCheck(Check):
     >>> gap = GapCheck(GapSettings(evaluate_every=1), ctx)
     >>> for i in range(50):
     ...     err = 3.0 if i % 2 else -3.0            # squared error 9, nine times the expected 1
-    ...     gap.on_pair(Pair(Prediction("m", str(i), 0.0, i), Truth("m", str(i), err, i), i), err * err)
+    ...     due = gap.on_pair(Pair(Prediction("m", str(i), 0.0, i), Truth("m", str(i), err, i), i), err * err)
     >>> v = gap.evaluate(50.0)
     >>> v.level, v.figures["diagnosis"]
     ('critical', 'present from deployment')
@@ -99,12 +100,12 @@ class GapCheck(Check):
 
     name = "gap"
     settings_model = GapSettings
+    takes = frozenset({"pair"})
     reacts_to = frozenset({"pair", "tick"})  # ticks only matter for the age bound
     pair_features = False  # it takes the loss only
 
     def __init__(self, settings: GapSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        self.settings: GapSettings = settings
         self.window = LossWindow(context.window_size, context.window_max_age_s)
         exp = context.expected_loss
         if settings.tolerance_kind == "relative":
@@ -119,13 +120,13 @@ class GapCheck(Check):
             expected_loss_df(context.card, context.expected_source) if settings.card_uncertainty else math.inf
         )
         self.gross_threshold = self.warning_limit * settings.gross_multiple
+        self._rule = LevelRule(settings.clear_after)
         self.reset()
 
     def reset(self) -> None:
         self.window.clear()
-        self._level = "normal"
+        self._rule.reset()
         self._since_eval = 0
-        self._clear_run = 0
         self._evaluated = False
         self._clean_pairs = 0  # pairs seen since evaluations began, with no open gap
         self._healthy_seen = False  # one full window without a gap has passed
@@ -149,8 +150,8 @@ class GapCheck(Check):
         if loss > self.gross_threshold:
             self._gross.append(self._seq)
             # A burst: evaluate now, not at the next multiple of evaluate_every.
-            burst = self._level == "normal" and self._gross_run() >= self.settings.gross_min_pairs
-        if self._evaluated and self._level == "normal":
+            burst = self._rule.level == "normal" and self._gross_run() >= self.settings.gross_min_pairs
+        if self._evaluated and self._rule.level == "normal":
             self._clean_pairs += 1
             if self._clean_pairs >= self.context.window_size:
                 self._healthy_seen = True
@@ -168,48 +169,40 @@ class GapCheck(Check):
         s = self.settings
         mean = self.window.mean()
         gross = self._gross_run() >= s.gross_min_pairs and mean > self.warning_limit
-        if self._since_eval < s.evaluate_every and not (gross and self._level == "normal"):
+        if self._since_eval < s.evaluate_every and not (gross and self._rule.level == "normal"):
             return None
         self._since_eval = 0
         self._evaluated = True
-        if self._level == "normal" and mean <= self.warning_limit:
+        if self._rule.level == "normal" and mean <= self.warning_limit:
             # The lower bound never exceeds the mean, so nothing can be raised: skip the
             # interval, the costliest step, while the model is healthy.
             self._stale = True
             return None
         iv = self._interval()
-        if iv.lower > self.critical_limit or (gross and mean > self.critical_limit):
-            target = "critical"
-        elif iv.lower > self.warning_limit or gross:
-            target = "warning"
-        else:
-            target = "normal"
-        if target != "normal":
+        # Evidence for the one level rule (core/levels.py): the lower bound (or a run of gross
+        # errors with the live mean over the limit) raises; the live upper bound, against the
+        # limits eased by the hysteresis, says how far it may come down.
+        raised = level_above(iv.lower, self.warning_limit, self.critical_limit)
+        if gross:
+            by_gross = level_above(mean, self.warning_limit, self.critical_limit)
+            if RANK[by_gross] > RANK[raised]:
+                raised = by_gross
+        if raised != "normal":
             self._raised_by = "interval" if iv.lower > self.warning_limit else "gross errors"
-
-        if self._level == "normal":
-            if target != "normal":
-                self._diagnosis = AFTER_HEALTHY if self._healthy_seen else FROM_DEPLOYMENT
-                self._clean_pairs = 0
-                self._level = target
-            self._clear_run = 0
-        elif target == "critical":
-            self._level = "critical"
-            self._clear_run = 0
-        elif iv.upper < self.clear_limit:
-            self._clear_run += 1
-            if self._clear_run >= s.clear_after:
-                self._level = "normal"
-                self._clear_run = 0
-                self._clean_pairs = 0
-        else:
-            self._clear_run = 0
+        hy = 1 - self.settings.hysteresis
+        was = self._rule.level
+        level = self._rule.update(raised, level_above(iv.upper, self.warning_limit, self.critical_limit, hy))
+        if was == "normal" and level != "normal":
+            self._diagnosis = AFTER_HEALTHY if self._healthy_seen else FROM_DEPLOYMENT
+            self._clean_pairs = 0
+        elif level == "normal" and was != "normal":
+            self._clean_pairs = 0
 
         self._store_figures(iv)
-        if self._level != "normal":
+        if level != "normal":
             self._figures["diagnosis"] = self._diagnosis
             self._figures["raised_by"] = self._raised_by
-        return Verdict(self._level, self._summary(iv), dict(self._figures))
+        return Verdict(level, self._summary(iv), dict(self._figures))
 
     def _interval(self) -> LossInterval:
         self._stale = False
@@ -271,6 +264,10 @@ class GapCheck(Check):
             f"{fmt(self.context.expected_loss)} ({src}); {self._diagnosis}: {why}."
         )
 
+    @property
+    def _level(self) -> str:
+        return self._rule.level
+
     def live_mean(self) -> float:
         return self.window.mean() if len(self.window) else math.nan
 
@@ -287,7 +284,8 @@ class GapCheck(Check):
             "window": self.window.snapshot(),
             "level": self._level,
             "since_eval": self._since_eval,
-            "clear_run": self._clear_run,
+            "clear_run": self._rule.calm_run,
+            "calm_top": self._rule.calm_top,
             "evaluated": self._evaluated,
             "clean_pairs": self._clean_pairs,
             "healthy_seen": self._healthy_seen,
@@ -300,9 +298,10 @@ class GapCheck(Check):
 
     def restore(self, data: dict[str, Any]) -> None:
         self.window.restore(data["window"])
-        self._level = data["level"]
+        self._rule.restore(
+            {"level": data["level"], "calm_run": data["clear_run"], "calm_top": data.get("calm_top", "normal")}
+        )
         self._since_eval = data["since_eval"]
-        self._clear_run = data["clear_run"]
         self._evaluated = data["evaluated"]
         self._clean_pairs = data["clean_pairs"]
         self._healthy_seen = data["healthy_seen"]

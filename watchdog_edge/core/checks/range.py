@@ -22,7 +22,7 @@ from typing import Any
 from pydantic import Field, model_validator
 
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict, fmt
-from watchdog_edge.core.checks.levels import LevelGate
+from watchdog_edge.core.levels import LevelGate
 from watchdog_edge.core.records import Prediction
 
 
@@ -62,7 +62,7 @@ class RangeSettings(CheckSettings):
         return self
 
 
-class RangeCheck(Check):
+class RangeCheck(Check[RangeSettings]):
     """Share of recent predictions whose inputs lie outside the card's envelope.
 
     >>> from watchdog_edge.core.cards import ModelCard
@@ -72,19 +72,19 @@ class RangeCheck(Check):
     >>> ctx = CheckContext("m", card, "squared", 1.0, "holdout")
     >>> check = RangeCheck(RangeSettings(window=20, min_predictions=20, evaluate_every=20), ctx)
     >>> for i in range(20):
-    ...     check.on_prediction(Prediction("m", str(i), 1.0, float(i), features={"temp": 58.0 if i < 5 else 20.0}))
+    ...     due = check.on_prediction(Prediction("m", str(i), 1.0, float(i), features={"temp": 58.0 if i < 5 else 20.0}))
     >>> v = check.evaluate(20.0)
     >>> v.level, v.figures["share"], v.figures["features"]["temp"]["max_above"]
     ('critical', 0.25, 8.0)
     """
 
     name = "range"
+    takes = frozenset({"prediction"})
     reacts_to = frozenset({"prediction"})  # its counts move only with predictions
     settings_model = RangeSettings
 
     def __init__(self, settings: RangeSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        self.settings: RangeSettings = settings
         bounds = []
         for fname, prof in context.card.features.items():
             pad = settings.margin * (prof.max - prof.min)
@@ -136,7 +136,7 @@ class RangeCheck(Check):
             details.popleft()
         outside = len(details)
         share = outside / self._filled
-        level = self._gate.update(share)
+        level = self._gate.update_figure(share)
         per: dict[str, dict[str, Any]] = {}
         for _, far in details:
             for fname, d in far.items():

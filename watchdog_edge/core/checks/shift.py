@@ -25,18 +25,21 @@ from __future__ import annotations
 
 import math
 import operator
-from collections.abc import Sequence
-from itertools import chain
+from array import array
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
 from pydantic import Field, model_validator
 
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict
-from watchdog_edge.core.checks.levels import LevelGate
+from watchdog_edge.core.levels import LevelGate
 from watchdog_edge.core.records import Prediction
 
 ADVISED_MIN_WINDOW = 1000
+
+
+_NAN = float("nan")
 
 
 class ShiftSettings(CheckSettings):
@@ -120,7 +123,7 @@ def population_stability_index(
     return total
 
 
-class ShiftCheck(Check):
+class ShiftCheck(Check[ShiftSettings]):
     """Population stability index per feature against the card's training histograms.
 
     Predictions are queued as they come (one list append) and binned in a batch with numpy
@@ -134,19 +137,19 @@ class ShiftCheck(Check):
     >>> check = ShiftCheck(ShiftSettings(window=100, evaluate_every=100),
     ...                    CheckContext("m", card, "squared", 1.0, "holdout"))
     >>> for i in range(100):                       # every value in the top bin
-    ...     check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"x": 3.5}))
+    ...     due = check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"x": 3.5}))
     >>> v = check.evaluate(100.0)
     >>> v.level, round(v.figures["index"]["x"], 2)
     ('critical', 3.88)
     """
 
     name = "shift"
+    takes = frozenset({"prediction"})
     reacts_to = frozenset({"prediction"})  # its counts move only with predictions
     settings_model = ShiftSettings
 
     def __init__(self, settings: ShiftSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        self.settings: ShiftSettings = settings
         names, inner, expected, nbins = [], [], [], []
         for fname, prof in context.card.features.items():
             h = prof.histogram
@@ -169,7 +172,8 @@ class ShiftCheck(Check):
         for j, e in enumerate(inner):
             self._edges[j, : len(e)] = e
         self._missing = self._nbins - 1
-        self._getter = operator.itemgetter(*names) if names else None
+        # the features of one prediction, in ``names`` order (with no features nothing is queued)
+        self._getter: Callable[[dict[str, float | None]], Any] = operator.itemgetter(*names) if names else tuple
         self._every = settings.evaluate_every
         self._gate = LevelGate(settings.warning, settings.critical, settings.hysteresis, settings.clear_after)
         self.reset()
@@ -177,10 +181,15 @@ class ShiftCheck(Check):
     def reset(self) -> None:
         self._counts = np.zeros(self._total, dtype=np.int64)
         # flat bin ids (offset included) of each prediction in the window; -1 where still empty
-        self._ring = np.full((self.settings.window, len(self.names)), -1, dtype=np.int32)
+        # int16 where every bin id fits (nearly always): half the memory of a model's window
+        dtype = np.int16 if self._total < 2**15 else np.int32
+        self._ring = np.full((self.settings.window, len(self.names)), -1, dtype=dtype)
         self._pos = 0
         self._filled = 0
-        self._pending: list[dict[str, float | None]] = []
+        # the features of predictions not yet binned, row after row in ``names`` order, as
+        # plain doubles (a null as NaN): 8 bytes a value, and the prediction's dict is let go
+        self._pending = array("d")
+        self._npend = 0
         self._since_eval = 0
         self._gate.reset()
         self._figures: dict[str, Any] = {}
@@ -188,27 +197,35 @@ class ShiftCheck(Check):
     def on_prediction(self, prediction: Prediction) -> bool:
         feats = prediction.features
         if feats and self.names:
-            self._pending.append(feats)
+            try:
+                row = self._getter(feats)
+            except KeyError:  # some feature is absent: missing, like a null
+                row = tuple(feats.get(n) for n in self.names)
+                row = row if len(row) > 1 else row[0]
+            pend = self._pending
+            try:
+                if type(row) is tuple:
+                    pend.extend(row)
+                else:
+                    pend.append(row)
+            except TypeError:  # a null: NaN, binned as missing (a row may be half in: cut it)
+                del pend[self._npend * len(self.names) :]
+                pend.extend(_NAN if v is None else v for v in (row if type(row) is tuple else (row,)))
+            self._npend += 1
             self._since_eval += 1
         return self._since_eval >= self._every  # evaluate resets it, so below: nothing new
 
     def _flush(self) -> None:
         """Bin the queued predictions into the window."""
-        pend = self._pending
-        if not pend:
+        m = self._npend
+        if not m:
             return
         size = self.settings.window
-        if len(pend) > size:  # only the newest ``size`` can stay in the window
-            pend = pend[-size:]
-        m = len(pend)
-        names = self.names
-        k = len(names)
-        try:
-            rows = map(self._getter, pend)
-            # fromiter reads a flat stream of numbers twice as fast as array() reads rows
-            x = np.fromiter(chain.from_iterable(rows) if k > 1 else rows, float, m * k)  # None -> NaN
-        except KeyError:  # some prediction lacks a feature: missing, like a null
-            x = np.array([[d.get(n) for n in names] for d in pend], dtype=float)
+        k = len(self.names)
+        x = np.frombuffer(self._pending, dtype=float)
+        if m > size:  # only the newest ``size`` can stay in the window
+            x = x[(m - size) * k :]
+            m = size
         x = x.reshape(m, k)
         bins = (x[:, :, None] >= self._edges[None, :, :]).sum(axis=2)
         bins = np.where(np.isnan(x), self._missing, bins) + self._offset
@@ -220,7 +237,8 @@ class ShiftCheck(Check):
         self._ring[slots] = bins
         self._pos = int((self._pos + m) % size)
         self._filled = min(size, self._filled + m)
-        self._pending = []
+        self._pending = array("d")  # a new one: x still holds a view of the old
+        self._npend = 0
 
     def counts(self) -> dict[str, list[int]]:
         """Live counts per feature: the card's bins, then the missing bin."""
@@ -230,7 +248,7 @@ class ShiftCheck(Check):
 
     def indices(self) -> dict[str, float]:
         """The index of every feature over the current window."""
-        if not self._filled and not self._pending:
+        if not self._filled and not self._npend:
             return {}
         s = self.settings.smoothing
         return {n: population_stability_index(self.expected[n], c, s) for n, c in self.counts().items()}
@@ -245,7 +263,7 @@ class ShiftCheck(Check):
         s = self.settings
         idx = self.indices()
         top = max(idx, key=idx.__getitem__)
-        level = self._gate.update(idx[top])
+        level = self._gate.update_figure(idx[top])
         self._figures = {
             "index": idx,
             "top_feature": top,
@@ -293,11 +311,12 @@ class ShiftCheck(Check):
     def restore(self, data: dict[str, Any]) -> None:
         if list(data["features"]) != list(self.names):
             raise ValueError(f"shift snapshot covers features {data['features']}, the card has {list(self.names)}")
-        self._ring = np.array(data["ring"], dtype=np.int32).reshape(self.settings.window, len(self.names))
+        self._ring = np.array(data["ring"], dtype=self._ring.dtype).reshape(self.settings.window, len(self.names))
         self._counts = np.array(data["counts"], dtype=np.int64)
         self._pos = int(data["pos"])
         self._filled = int(data["filled"])
         self._since_eval = int(data["since_eval"])
-        self._pending = []
+        self._pending = array("d")
+        self._npend = 0
         self._gate.restore(data["gate"])
         self._figures = data["figures"]
