@@ -165,7 +165,7 @@ def main() -> None:
     for learner in ("mean", "linear", "tree"):
         jobs[f"river-{learner}"] = (lambda learner=learner: make_learner(learner, 0), run_learner)
         jobs[f"baseline-{learner}"] = (
-            lambda learner=learner: {"baseline": make("baseline", card, learners=[learner], window=500)},
+            lambda learner=learner: {"baseline": make("baseline", card, learners=[learner], recent_pairs=500)},
             run_checks,
         )
 

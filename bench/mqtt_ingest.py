@@ -315,8 +315,8 @@ def latency(folder: Path, port: int, alerts_wanted: int) -> dict:
         folder,
         port,
         "state-latency",
-        window="[models.window]\nsize = 10\nmin_pairs = 10",
-        checks="[models.checks.gap]\nevaluate_every = 1\nclear_after = 1",
+        window="[models.window]\nsize_pairs = 10\nmin_pairs = 10",
+        checks="[models.checks.gap]\nevaluate_every_pairs = 1\nclear_after_evaluations = 1",
     )
     arrivals: list[tuple[float, dict]] = []
     w = client("bench-alerts", port)

@@ -37,7 +37,7 @@ from watchdog_edge.files.configfile import (
 from watchdog_edge.replay.recording import read_recording, replay
 
 GAP_GRID = {
-    "window.size": [60, 120, 240, 480],
+    "window.size_pairs": [60, 120, 240, 480],
     "checks.gap.confidence": [0.9, 0.95, 0.99],
     "checks.gap.warning_tolerance": [0.25, 0.5, 1.0],
 }

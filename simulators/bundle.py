@@ -46,17 +46,12 @@ def config_data(
         "prediction_topic": sc.topics.prediction,
         "truth_topic": sc.topics.truth,
     }
-    fields: dict[str, Any] = {}
-    if sc.payload.prediction_value != "value":
-        fields.setdefault("prediction", {})["value"] = sc.payload.prediction_value
-    if sc.payload.features != "features":
-        fields.setdefault("prediction", {})["features"] = sc.payload.features
-    if sc.payload.truth_value != "value":
-        fields.setdefault("truth", {})["value"] = sc.payload.truth_value
+    # the scenario names its payload fields, window and pairing with the config's keys
+    fields = sc.fields.model_dump(exclude_defaults=True)
     if fields:
         model["fields"] = fields
-    model["pairing"] = {"horizon_s": sc.monitor.horizon_s}
-    model["window"] = {"size": sc.monitor.window_size, "min_pairs": sc.monitor.min_pairs}
+    model["pairing"] = sc.monitor.pairing.model_dump()
+    model["window"] = sc.monitor.window.model_dump()
     # written even when empty: the table makes every default check explicit to the reader
     model["checks"] = {k: dict(v) for k, v in sc.monitor.checks.items()}
     data: dict[str, Any] = {"agent": {"name": agent or f"sim-{sc.model.id}"}}
@@ -91,11 +86,11 @@ def write_bundle(run: Run, recording: str | Path, scenario_name: str = "") -> Bu
     inc_path = sibling(rec, ".incidents.json")
     inc_path.write_text(json.dumps(incidents_data(run, scenario_name), indent=2) + "\n", encoding="utf-8")
     cfg_path = sibling(rec, ".config.toml")
-    header = (
-        f"# Config for replaying a simulated run of {run.scenario.site.name!r} (seed {run.seed}).\n"
-        f"# Written by watchdog-edge simulate; edit freely.\n\n"
-    )
-    cfg_path.write_text(header + tomlout.dumps(config_data(run.scenario, card_path.name)), encoding="utf-8")
+    header = [
+        f"Config for replaying a simulated run of {run.scenario.site.name!r} (seed {run.seed}).",
+        "Written by watchdog-edge simulate; edit freely.",
+    ]
+    cfg_path.write_text(tomlout.dumps(config_data(run.scenario, card_path.name), header=header), encoding="utf-8")
     return BundlePaths(rec, inc_path, cfg_path, card_path)
 
 

@@ -21,7 +21,7 @@ from watchdog_edge.core.events import rfc3339
 from .card import build_card
 from .fit import PolynomialModel, fit_polynomial
 from .process import process_truth, sensor_series
-from .scenario import Drift, Overfit, Regime, Scenario, Stall, Step
+from .scenario import Drift, FeedStop, Overfit, Regime, Scenario, Step
 
 # child stream numbers of the seed; fixed so that adding a stream never shifts the others
 _TRAINING, _SENSORS, _PROCESS, _TIMING, _LATENCY = range(5)
@@ -121,16 +121,16 @@ def _span(sc: Scenario, inc, end_t: float) -> tuple[float, float]:
 
 
 def _describe(inc) -> str:
-    if inc.note:
-        return inc.note
+    if inc.detail:
+        return inc.detail
     if isinstance(inc, Drift):
         return f"{inc.sensor} reading drifts by {inc.rate_per_h:+g} per hour"
     if isinstance(inc, Step):
         return f"{inc.sensor} reading offset by {inc.offset:+g}"
     if isinstance(inc, Regime):
         return f"{inc.sensor} really moves by {inc.offset:+g}, outside the training range"
-    if isinstance(inc, Stall):
-        return "truth feed stalled"
+    if isinstance(inc, FeedStop):
+        return "truth feed stopped"
     return "deployed model too complex for its training rows"
 
 
@@ -150,7 +150,7 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
     real = _real_sensors(sc, ts, _rng(seed, _SENSORS))
     measured_offset = {name: np.zeros(n) for name in real}
     incidents: list[dict[str, Any]] = []
-    stalls: list[tuple[float, float]] = []
+    feed_stops: list[tuple[float, float]] = []
     for inc in sc.incidents:
         a, b = _span(sc, inc, end_t)
         if a >= end_t:
@@ -162,8 +162,8 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
             measured_offset[inc.sensor] += np.where(inside, inc.offset, 0.0)
         elif isinstance(inc, Regime):
             real[inc.sensor] = real[inc.sensor] + np.where(inside, inc.offset, 0.0)
-        elif isinstance(inc, Stall):
-            stalls.append((a, b))
+        elif isinstance(inc, FeedStop):
+            feed_stops.append((a, b))
         elif not isinstance(inc, Overfit):  # pragma: no cover - the union is closed
             raise TypeError(inc)
         incidents.append(
@@ -192,18 +192,18 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
     lat_pred = lrng.uniform(0.0, tim.latency_max_s, n)
     lat_truth = lrng.uniform(0.0, tim.latency_max_s, n)
 
-    pl = sc.payload
+    pl = sc.fields
     pred_topic, truth_topic = sc.topics.prediction, sc.topics.truth
     out: list[tuple[float, int, str, bytes]] = []
-    counts = {"predictions": 0, "truths": 0, "truths_stalled": 0, "truths_after_end": 0}
+    counts = {"predictions": 0, "truths": 0, "truths_withheld": 0, "truths_after_end": 0}
     version = sc.model.version
     for i in range(n):
         pid = f"{sc.model.id_prefix}-{i:07d}"
         src = round(float(ts[i]), 3)
         feats = {f: float(measured[f][i]) for f in sc.model.features}
         body = {"id": pid, "ts": src}
-        _merge(body, _nest(pl.prediction_value, round(float(pred[i]), 4)))
-        _merge(body, _nest(pl.features, feats))
+        _merge(body, _nest(pl.prediction.value, round(float(pred[i]), 4)))
+        _merge(body, _nest(pl.prediction.features, feats))
         body["model_version"] = version
         t_recv = round(float(ts[i] + lat_pred[i]), 3)
         out.append((t_recv, 2 * i, pred_topic, json.dumps(body, separators=(",", ":")).encode()))
@@ -211,15 +211,15 @@ def simulate(sc: Scenario, seed: int | None = None, duration_h: float | None = N
         if not has_truth[i]:
             continue
         published = float(ts[i] + delay[i])
-        if any(a <= published < b for a, b in stalls):
-            counts["truths_stalled"] += 1
+        if any(a <= published < b for a, b in feed_stops):
+            counts["truths_withheld"] += 1
             continue
         t_recv = round(published + float(lat_truth[i]), 3)
         if t_recv >= end_t:
             counts["truths_after_end"] += 1
             continue
         tbody: dict[str, Any] = {"id": pid, "ts": src}
-        _merge(tbody, _nest(pl.truth_value, round(float(truth[i]), 4)))
+        _merge(tbody, _nest(pl.truth.value, round(float(truth[i]), 4)))
         out.append((t_recv, 2 * i + 1, truth_topic, json.dumps(tbody, separators=(",", ":")).encode()))
         counts["truths"] += 1
     out.sort(key=lambda m: (m[0], m[1]))

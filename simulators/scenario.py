@@ -14,7 +14,13 @@ from typing import Annotated, Literal, Union
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-from watchdog_edge.core.cards import format_validation
+from watchdog_edge.core.renames import (
+    SCENARIO_RENAMES,
+    SCENARIO_VALUE_RENAMES,
+    renamed_messages,
+    renamed_value_messages,
+)
+from watchdog_edge.core.validation import format_validation
 from watchdog_edge.errors import ConfigError
 
 if sys.version_info >= (3, 11):
@@ -163,27 +169,43 @@ class Topics(_Strict):
     truth: str
 
 
-class Payload(_Strict):
-    """Dotted paths of the fields in the site's payloads (the config maps them back)."""
-
-    prediction_value: str = "value"
-    truth_value: str = "value"
+class PredictionFields(_Strict):
+    value: str = "value"
     features: str = "features"
 
 
-class MonitorHints(_Strict):
-    """Settings written into the config next to a recording."""
+class TruthFields(_Strict):
+    value: str = "value"
 
-    window_size: int = Field(200, ge=2)
+
+class Fields(_Strict):
+    """Dotted paths of the fields in the site's payloads, as the config's ``[models.fields]`` names them."""
+
+    prediction: PredictionFields = PredictionFields()
+    truth: TruthFields = TruthFields()
+
+
+class WindowHints(_Strict):
+    size_pairs: int = Field(200, ge=2)
     min_pairs: int = Field(100, ge=2)
+
+
+class PairingHints(_Strict):
     horizon_s: float = Field(3600.0, gt=0)
+
+
+class MonitorHints(_Strict):
+    """Settings written into the config next to a recording, under the config's own keys."""
+
+    window: WindowHints = WindowHints()
+    pairing: PairingHints = PairingHints()
     checks: dict[str, dict] = Field(default_factory=dict)
 
 
 class _Incident(_Strict):
     start_h: float = Field(ge=0)
     end_h: float | None = Field(None, description="Default: the end of the run.")
-    note: str = ""
+    detail: str = Field("", description="What happened, in the site's words; shown in the incidents file.")
 
     @model_validator(mode="after")
     def _order(self) -> _Incident:
@@ -216,10 +238,10 @@ class Regime(_Incident):
     offset: float
 
 
-class Stall(_Incident):
+class FeedStop(_Incident):
     """The truth feed stops: truths due in the span are never published."""
 
-    kind: Literal["stall"]
+    kind: Literal["feed_stop"]
 
 
 class Overfit(_Incident):
@@ -228,7 +250,7 @@ class Overfit(_Incident):
     kind: Literal["overfit"]
 
 
-Incident = Annotated[Union[Drift, Step, Regime, Stall, Overfit], Field(discriminator="kind")]
+Incident = Annotated[Union[Drift, Step, Regime, FeedStop, Overfit], Field(discriminator="kind")]
 
 
 class Scenario(_Strict):
@@ -240,7 +262,7 @@ class Scenario(_Strict):
     model: DeployedModel
     timing: Timing
     topics: Topics
-    payload: Payload = Payload()
+    fields: Fields = Fields()
     monitor: MonitorHints = MonitorHints()
     incidents: list[Incident] = Field(default_factory=list)
 
@@ -272,8 +294,10 @@ class Scenario(_Strict):
                 "model.loss = 'absolute' needs model.holdout_rows > 0: only a squared-loss "
                 "least-squares card can take its expected loss from the training loss"
             )
-        if self.monitor.min_pairs > self.monitor.window_size:
-            raise ValueError("monitor.min_pairs must not exceed monitor.window_size")
+        if self.monitor.window.min_pairs > self.monitor.window.size_pairs:
+            raise ValueError(
+                "monitor.window.min_pairs must not exceed monitor.window.size_pairs; lower one or raise the other"
+            )
         return self
 
     def sensor(self, name: str) -> Sensor:
@@ -300,11 +324,14 @@ def resolve_scenario(name_or_path: str | Path) -> Path:
 
 
 def parse_scenario(data: dict, source: str = "scenario") -> Scenario:
-    """Validate scenario data held in memory."""
+    """Validate scenario data held in memory; keys renamed since are refused with their new name."""
+    renamed = renamed_messages(data, SCENARIO_RENAMES) + renamed_value_messages(data, SCENARIO_VALUE_RENAMES)
+    if renamed:
+        raise ConfigError(f"{source} is invalid:\n" + "\n".join("  " + line for line in renamed))
     try:
         return Scenario.model_validate(data)
     except ValidationError as e:
-        raise ConfigError(f"{source} is invalid:\n{format_validation(e)}") from None
+        raise ConfigError(f"{source} is invalid:\n{format_validation(e, data)}") from None
 
 
 def load_scenario(name_or_path: str | Path) -> Scenario:

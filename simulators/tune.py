@@ -6,21 +6,21 @@ alerts. Checks do not see each other, so a check runs once per distinct value of
 that reach it (its own keys, and ``window.*`` for the checks that read the model's window), and
 a setting's alerts are put together from those runs; checks the grid does not reach run once. A raised alert counts as a detection of an incident when it comes between the
 incident's start and its end plus a grace period (default: one window, i.e. the window size
-divided by the recording's pair rate); any other raised alert is a false alarm.
+divided by the recording's pair rate); any other raised alert is a false alert.
 
-Ranking with incidents: fewest missed incidents, then the fewest false alarms per day of the
-setting *and its grid neighbours* (one step along one numeric key), then its own false alarms, then
+Ranking with incidents: fewest missed incidents, then the fewest false alerts per day of the
+setting *and its grid neighbours* (one step along one numeric key), then its own false alerts, then
 the mean delay. Taking the neighbours in guards against the commonest way of overfitting a
 threshold: picking a setting that sits just at the edge of a noisy region and was quiet on
 this one recording by luck (common practice, no single source). Without incidents: the
-tightest setting whose neighbourhood stays within the alarm budget.
+tightest setting whose neighbourhood stays within the false-alert budget.
 
 Grid file (TOML): each key is a dotted path inside a ``[[models]]`` entry, each value the list
-of values to try, listed from the most alarm-prone to the least (the order decides which
+of values to try, listed from the most alert-prone to the least (the order decides which
 setting is "tightest" when there is no incidents file)::
 
     [grid]
-    "window.size" = [100, 200, 400]
+    "window.size_pairs" = [100, 200, 400]
     "checks.gap.confidence" = [0.9, 0.95, 0.99]
     "checks.gap.warning_tolerance" = [0.25, 0.5, 1.0]
 """
@@ -43,6 +43,7 @@ from typing import Any
 from watchdog_edge.core.cards import ModelCard
 from watchdog_edge.core.events import Alert, DeadLetter
 from watchdog_edge.core.monitor import Monitor, PairStep, Step
+from watchdog_edge.core.renames import CONFIG_RENAMES
 from watchdog_edge.core.settings import Config, parse_config
 from watchdog_edge.errors import ConfigError, RecordingError
 from watchdog_edge.files.configfile import load_cards
@@ -61,7 +62,7 @@ _FIXED_PREFIXES = ("id", "card", "prediction_topic", "truth_topic", "fields", "p
 # -- grid ---------------------------------------------------------------------------------------
 @dataclass(frozen=True)
 class Setting:
-    """One point of the grid: dotted key -> value, and its tightness (0 = most alarm-prone)."""
+    """One point of the grid: dotted key -> value, and its tightness (0 = most alert-prone)."""
 
     index: int
     values: dict[str, Any]
@@ -117,9 +118,9 @@ def default_grid(cfg: Config) -> dict[str, list]:
     shift on or off when it is on (its index fires on any input with a daily cycle that the
     window does not cover whole); ADWIN's delta when drift is on."""
     m = cfg.models[0]
-    size, min_pairs = m.window.size, m.window.min_pairs
+    size, min_pairs = m.window.size_pairs, m.window.min_pairs
     grid: dict[str, list] = {
-        "window.size": sorted({max(min_pairs, size // 2), size, size * 2}),
+        "window.size_pairs": sorted({max(min_pairs, size // 2), size, size * 2}),
         "checks.gap.confidence": [0.9, 0.95, 0.99],
         "checks.gap.warning_tolerance": [0.25, 0.5, 1.0],
     }
@@ -150,6 +151,9 @@ def load_grid(path: str | Path) -> dict[str, list]:
 def expand(grid: dict[str, list]) -> list[Setting]:
     """Every combination of the grid's values, in a stable order."""
     for key in grid:
+        new = CONFIG_RENAMES.get("models[]." + key)
+        if new is not None:
+            raise ConfigError(f"grid key {key!r} was renamed; write {new.removeprefix('models[].')!r} instead")
         if key.split(".")[0] in _FIXED_PREFIXES:
             raise ConfigError(
                 f"grid key {key!r} cannot vary: parsing and pairing run once for all "
@@ -254,7 +258,7 @@ _WINDOW_FREE = frozenset({"range", "shift", "feed_stop"})
 def reaches(key: str, check: str) -> bool:
     """Whether a grid key can change the alerts of ``check``.
 
-    >>> reaches("checks.gap.confidence", "gap"), reaches("window.size", "shift")
+    >>> reaches("checks.gap.confidence", "gap"), reaches("window.size_pairs", "shift")
     (True, False)
     """
     parts = key.split(".")
@@ -385,8 +389,8 @@ class Score:
     """How one setting did on one recording."""
 
     alerts: int
-    false_alarms: int
-    false_alarms_per_day: float
+    false_alerts: int
+    false_alerts_per_day: float
     healthy_days: float
     grace_s: float
     detections: list[dict[str, Any]] = field(default_factory=list)
@@ -403,8 +407,8 @@ class Score:
     def to_dict(self) -> dict[str, Any]:
         return {
             "alerts": self.alerts,
-            "false_alarms": self.false_alarms,
-            "false_alarms_per_day": self.false_alarms_per_day,
+            "false_alerts": self.false_alerts,
+            "false_alerts_per_day": self.false_alerts_per_day,
             "healthy_days": self.healthy_days,
             "grace_s": self.grace_s,
             "missed": self.missed,
@@ -431,7 +435,7 @@ def _union_length(spans: Iterable[tuple[float, float]], lo: float, hi: float) ->
 
 
 def score(marks: list[Mark], incidents: list[dict[str, Any]], start: float, end: float, grace_s: float) -> Score:
-    """Detections, delays and false alarms of one setting's raised alerts."""
+    """Detections, delays and false alerts of one setting's raised alerts."""
     spans = [(float(inc["start"]), float(inc["end"]) + grace_s) for inc in incidents]
     detections = []
     for inc, (a, b) in zip(incidents, spans):
@@ -463,10 +467,10 @@ def score(marks: list[Mark], incidents: list[dict[str, Any]], start: float, end:
 class Row:
     setting: Setting
     score: Score
-    holdout: Score | None = None
-    # the most false alarms per day of this setting and its grid neighbours: a setting on the
+    check_score: Score | None = None
+    # the most false alerts per day of this setting and its grid neighbours: a setting on the
     # edge of a noisy region is quiet on this recording by luck, and another day shows it
-    robust_alarms_per_day: float = 0.0
+    robust_false_alerts_per_day: float = 0.0
     marks: list[Mark] = field(default_factory=list)
 
 
@@ -475,13 +479,13 @@ class TuneResult:
     rows: list[Row]  # ranked, best first
     best: Row
     with_incidents: bool
-    alarm_budget: float
+    false_alert_budget: float
     invalid: list[tuple[Setting, str]]
     intake: Intake
     config: Config
     raw_config: dict
     models: list[str] | None
-    holdout_intake: Intake | None = None
+    check_intake: Intake | None = None
     checks: list[str] | None = None
 
 
@@ -493,19 +497,49 @@ def _grace(cfg: Config, intake: Intake, models: list[str] | None, grace_s: float
         if models is None or m.id in models:
             r = intake.pair_rate(m.id)
             if r > 0:
-                rates.append(m.window.size / r)
+                rates.append(m.window.size_pairs / r)
     return max(rates) if rates else 0.0
 
 
 def rank_key(row: Row, with_incidents: bool, budget: float) -> tuple:
     s = row.score
     delay = s.mean_delay_s if not math.isnan(s.mean_delay_s) else math.inf
-    robust = row.robust_alarms_per_day
+    robust = row.robust_false_alerts_per_day
     if with_incidents:
-        return (s.missed, robust, s.false_alarms_per_day, delay, row.setting.tightness, row.setting.index)
-    # healthy recording: within the alarm budget (neighbours included) first, then the
-    # tightest, then the fewest alarms
-    return (robust > budget, row.setting.tightness, s.false_alarms_per_day, row.setting.index)
+        return (s.missed, robust, s.false_alerts_per_day, delay, row.setting.tightness, row.setting.index)
+    # healthy recording: within the false-alert budget (neighbours included) first, then the
+    # tightest, then the fewest false alerts; over the budget, the fewest false alerts first, so
+    # that when nothing meets the budget the first row is the quietest, not the most alert-prone
+    over = robust > budget
+    return (over, robust if over else 0.0, row.setting.tightness, s.false_alerts_per_day, row.setting.index)
+
+
+def score_key(row: Row, with_incidents: bool, budget: float) -> tuple:
+    """The part of the ranking that scores a row; rows equal here tie and grid order decides."""
+    if with_incidents:
+        return rank_key(row, with_incidents, budget)[:4]
+    key = rank_key(row, with_incidents, budget)
+    return (key[0], key[1], key[3])
+
+
+def ties(result: TuneResult, top: int) -> list[tuple[int, int]]:
+    """Runs of rows (1-based, first and last) among the first ``top`` whose scores are equal."""
+    keys = [score_key(r, result.with_incidents, result.false_alert_budget) for r in result.rows[:top]]
+    runs = []
+    i = 0
+    while i < len(keys):
+        j = i
+        while j + 1 < len(keys) and keys[j + 1] == keys[i]:
+            j += 1
+        if j > i:
+            runs.append((i + 1, j + 1))
+        i = j + 1
+    return runs
+
+
+def meets_budget(result: TuneResult) -> bool:
+    """Without incidents: whether the first row stays within the false-alert budget, neighbours included."""
+    return result.best.robust_false_alerts_per_day <= result.false_alert_budget
 
 
 @contextmanager
@@ -534,11 +568,11 @@ def tune(
     incidents: list[dict[str, Any]] | None = None,
     grid: dict[str, list] | None = None,
     workers: int | None = None,
-    holdout: str | Path | None = None,
-    holdout_incidents: list[dict[str, Any]] | None = None,
+    check_recording: str | Path | None = None,
+    check_incidents: list[dict[str, Any]] | None = None,
     models: list[str] | None = None,
     grace_s: float | None = None,
-    alarm_budget: float = 0.5,
+    false_alert_budget: float = 0.5,
     tick_every: float | None = None,
     progress: Callable[[int, int], None] | None = None,
     checks: list[str] | None = None,
@@ -622,19 +656,19 @@ def tune(
     by_index = {r.setting.index: r for r in rows}
     for r in rows:
         near = [
-            by_index[n.index].score.false_alarms_per_day
+            by_index[n.index].score.false_alerts_per_day
             for n in r.setting.neighbours(by_index[i].setting for i in by_index)
         ]
-        r.robust_alarms_per_day = max([r.score.false_alarms_per_day, *near])
-    rows.sort(key=lambda r: rank_key(r, with_inc, alarm_budget))
+        r.robust_false_alerts_per_day = max([r.score.false_alerts_per_day, *near])
+    rows.sort(key=lambda r: rank_key(r, with_inc, false_alert_budget))
     best = rows[0]
     hold = None
-    if holdout is not None:
-        hold = intake_recording(cfg, cards, holdout, tick_every)
+    if check_recording is not None:
+        hold = intake_recording(cfg, cards, check_recording, tick_every)
         hm = apply_setting(configs[best.setting.index], cards, hold.steps, models, checks)
         g = _grace(configs[best.setting.index], hold, models, grace_s)
-        best.holdout = score(hm, holdout_incidents or [], hold.start, hold.end, g)
-    return TuneResult(rows, best, with_inc, alarm_budget, invalid, intake, cfg, raw, models, hold, checks)
+        best.check_score = score(hm, check_incidents or [], hold.start, hold.end, g)
+    return TuneResult(rows, best, with_inc, false_alert_budget, invalid, intake, cfg, raw, models, hold, checks)
 
 
 def best_config(result: TuneResult) -> Config:
@@ -665,24 +699,30 @@ def snippet(result: TuneResult, where: Path, recording: str | Path) -> str:
         out_models.append(m)
     s = result.best.score
     lines = [
-        f"# Best of {len(result.rows)} settings from 'watchdog-edge tune' on {Path(recording).name}:",
-        f"#   {result.best.setting.label()}",
+        f"Best of {len(result.rows)} settings from 'watchdog-edge tune' on {Path(recording).name}:",
+        f"  {result.best.setting.label()}",
     ]
     if result.with_incidents:
         lines.append(
-            f"#   missed {s.missed} of {len(s.detections)} incidents, "
-            f"{s.false_alarms_per_day:.2f} false alarms per day, mean delay "
+            f"  missed {s.missed} of {len(s.detections)} incidents, "
+            f"{s.false_alerts_per_day:.2f} false alerts per day, mean delay "
             f"{_fmt_delay(s.mean_delay_s)}"
         )
+    elif meets_budget(result):
+        lines.append(f"  {s.false_alerts_per_day:.2f} false alerts per day (budget {result.false_alert_budget:g})")
     else:
-        lines.append(f"#   {s.false_alarms_per_day:.2f} alarms per day (budget {result.alarm_budget:g})")
-    if result.best.holdout is not None:
-        h = result.best.holdout
         lines.append(
-            f"#   holdout: missed {h.missed} of {len(h.detections)}, {h.false_alarms_per_day:.2f} false alarms per day"
+            f"  NO setting meets the budget of {result.false_alert_budget:g} false alerts per day; this is the "
+            f"quietest: {s.false_alerts_per_day:.2f} per day ({result.best.robust_false_alerts_per_day:.2f} with "
+            "its grid neighbours)"
         )
-    lines.append("# Paste over the matching [[models]] entry of your config.")
-    return "\n".join(lines) + "\n\n" + tomlout.dumps({"models": out_models})
+    if result.best.check_score is not None:
+        h = result.best.check_score
+        lines.append(
+            f"  on the check recording: missed {h.missed} of {len(h.detections)}, {h.false_alerts_per_day:.2f} false alerts per day"
+        )
+    lines.append("Paste over the matching [[models]] entry of your config.")
+    return tomlout.dumps({"models": out_models}, header=lines)
 
 
 def _fmt_delay(s: float | None) -> str:

@@ -47,7 +47,7 @@ def config(
             "prediction_topic": f"{mid}/pred",
             "truth_topic": f"{mid}/truth",
             "checks": checks or {},
-            "window": window or {"size": 200, "min_pairs": 100},
+            "window": window or {"size_pairs": 200, "min_pairs": 100},
         }
         e.update(model_extra)
         entries.append(e)

@@ -44,7 +44,7 @@ def write_setup(
     broker_extra: str = "",
     agent_extra: str = "",
     checks: str = "",
-    window: str = "size = 60\nmin_pairs = 40",
+    window: str = "size_pairs = 60\nmin_pairs = 40",
     snapshot_every_s: float = 1.0,
 ) -> Path:
     """A card with held-out squared loss 1.0 and a config for model 'pump' talking to ``broker``."""
@@ -58,7 +58,7 @@ def write_setup(
         holdout={"loss": 1.0, "count": 1000},
     )
     save_card(card, tmp / "pump.card.json")
-    checks = checks or ("[models.checks.gap]\nevaluate_every = 5\n[models.checks.feed_stop]\nenabled = false\n")
+    checks = checks or ("[models.checks.gap]\nevaluate_every_pairs = 5\n[models.checks.feed_stop]\nenabled = false\n")
     # the card has no feature profiles, so the input checks have nothing to watch here
     checks += "[models.checks.range]\nenabled = false\n[models.checks.shift]\nenabled = false\n"
     text = f"""
@@ -73,7 +73,7 @@ state_every_s = 0.5
 [broker]
 host = "{broker.host_name if hasattr(broker, "host_name") else broker.host}"
 port = {broker.port}
-keepalive = 5
+keepalive_s = 5
 reconnect_min_s = 0.1
 reconnect_max_s = 0.5
 {broker_extra}
@@ -327,7 +327,7 @@ def _replay_alerts(cfg: Path, recording: Path) -> list[dict]:
 
 
 SILENCE = (
-    "[models.checks.gap]\nevaluate_every = 5\n"
+    "[models.checks.gap]\nevaluate_every_pairs = 5\n"
     "[models.checks.feed_stop]\nprediction_timeout_s = 1.0\ntruth_timeout_s = 1.0\n"
 )
 

@@ -92,7 +92,7 @@ def test_losses_and_counts_match_numpy_and_scikit_learn(files, rows):
     assert (card.target.min, card.target.max) == (pytest.approx(y[:200].min()), pytest.approx(y[:200].max()))
 
 
-def test_defaults_features_id_and_envelope(files, rows):
+def test_defaults_features_id_and_training_range(files, rows):
     x1, x2, y, pred = rows
     train, _ = files
     card = build_card(train, target="y", prediction="p", params=3)
@@ -274,7 +274,7 @@ def test_cli_errors_are_one_line_on_stderr_with_exit_code_2(tmp_path, files):
     bad.write_text(json.dumps({"model_id": "m", "training": {"loss": -1, "count": 5}, "colour": 1}))
     r = CliRunner().invoke(cli, ["card", "show", str(bad)])
     assert r.exit_code == 2 and r.stderr.count("\n") == 1
-    assert "training.loss" in r.stderr and "colour: unknown key" in r.stderr
+    assert "training.loss" in r.stderr and "colour = 1: unknown key" in r.stderr
 
 
 def test_render_says_when_no_expected_loss_can_be_given(tmp_path, rows):
@@ -284,3 +284,27 @@ def test_render_says_when_no_expected_loss_can_be_given(tmp_path, rows):
     text = render_card(card)
     assert "expected in field  unavailable" in text and "holdout" in text
     assert "expected in field  7, from the held-out loss" in render_card(card, expected=(7.0, "holdout"))
+
+
+def test_params_is_needed_only_for_the_final_prediction_error(tmp_path, files):
+    train, hold = files
+    base = ["card", "build", str(train), "--target", "y", "--prediction", "p", "--features", "flow"]
+    # not least squares, with hold-out rows: --params means nothing and is not asked for
+    out = tmp_path / "a.json"
+    r = CliRunner().invoke(cli, [*base, "--not-least-squares", "--holdout", str(hold), "-o", str(out)])
+    assert r.exit_code == 0, r.output
+    assert load_card(out).fitted_parameters is None and "fitted parameters  (not given)" in r.stdout
+    # least squares with hold-out rows: the held-out loss is used, --params is not needed either
+    r = CliRunner().invoke(cli, [*base, "--holdout", str(hold), "-o", str(tmp_path / "b.json")])
+    assert r.exit_code == 0, r.output
+    # least squares without hold-out: the final prediction error needs it, and the error says so
+    r = CliRunner().invoke(cli, [*base, "-o", str(tmp_path / "c.json")])
+    assert r.exit_code == 2
+    assert "--params is missing" in r.stderr and "give --params D" in r.stderr
+
+
+def test_a_semicolon_separated_file_gets_the_separator_named(tmp_path):
+    p = tmp_path / "semi.csv"
+    p.write_text("flow;y;p\n1,5;2;2,1\n")
+    with pytest.raises(DataError, match=r"separated by ';', and a CSV here is separated by ','"):
+        read_table(p)

@@ -24,7 +24,7 @@ def test_load_errors_name_the_file_and_field(tmp_path):
     bad.write_text(json.dumps(data))
     with pytest.raises(CardError) as e:
         load_card(bad)
-    assert "training.count = 0" in str(e.value) and "colour: unknown key" in str(e.value)
+    assert "training.count = 0" in str(e.value) and "colour = 'red': unknown key" in str(e.value)
 
 
 def test_expected_loss_sources():

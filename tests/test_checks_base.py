@@ -1,7 +1,7 @@
 """The check protocol: a verb that returns False may only do so where evaluate has nothing new.
 
 The core skips ``evaluate`` after a verb that returns False. Every check is driven twice over
-the same troubled stream (inputs leaving the envelope and moving, errors growing, feeds going
+the same troubled stream (inputs leaving the training range and moving, errors growing, feeds going
 quiet, ticks, a version change), once asking ``evaluate`` after every input and once the way
 the core does; the verdicts must be the same, at the same times.
 """
@@ -29,12 +29,12 @@ CARD = ModelCard(
     },
 )
 SETTINGS = {
-    "gap": {"evaluate_every": 7},
-    "range": {"window": 60, "min_predictions": 30, "evaluate_every": 9},
-    "shift": {"window": 100, "evaluate_every": 25},
+    "gap": {"evaluate_every_pairs": 7},
+    "range": {"recent_predictions": 60, "min_predictions": 30, "evaluate_every_predictions": 9},
+    "shift": {"recent_predictions": 100, "evaluate_every_predictions": 25},
     "feed_stop": {"prediction_timeout_s": 40.0, "truth_timeout_s": 90.0},
     "drift": {"detector": "page_hinkley"},
-    "baseline": {"learners": ["mean", "linear"], "window": 80, "min_pairs": 40, "evaluate_every": 5},
+    "baseline": {"learners": ["mean", "linear"], "recent_pairs": 80, "min_pairs": 40, "evaluate_every_pairs": 5},
 }
 
 

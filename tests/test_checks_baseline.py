@@ -77,7 +77,7 @@ def test_a_model_worse_than_the_mean_raises_against_mean_with_the_published_stat
     rng = np.random.default_rng(3)
     X, y, _ = data(rng, 1200)
     model = np.full(1200, 3.0) + 1.8  # constant and biased: worse than the running mean
-    check = make_check(learners=["mean"], window=400)
+    check = make_check(learners=["mean"], recent_pairs=400)
     out = stream(check, X, y, model)
     last = out[-1]
     assert last.level == "warning" and last.figures["learner"] == "mean"
@@ -106,7 +106,7 @@ def test_a_model_worse_than_the_mean_raises_against_mean_with_the_published_stat
 def test_a_good_model_is_not_beaten_by_any_learner():
     rng = np.random.default_rng(5)
     X, y, f = data(rng, 3000)
-    check = make_check(learners=["mean", "linear", "tree"], window=500)
+    check = make_check(learners=["mean", "linear", "tree"], recent_pairs=500)
     out = stream(check, X, y, f)
     assert out and {v.level for v in out} == {"normal"}
     res = out[-1].figures["learners"]
@@ -119,7 +119,7 @@ def test_a_model_that_ignores_an_input_is_beaten_by_linear_and_critical_past_the
     rng = np.random.default_rng(7)
     X, y, f = data(rng, 2500)
     poor = 3 + 2 * np.array([x["a"] for x in X])  # ignores b: extra squared error of 1
-    check = make_check(learners=["mean", "linear"], window=500, critical_margin=0.3)
+    check = make_check(learners=["mean", "linear"], recent_pairs=500, critical_margin=0.3)
     out = stream(check, X, y, poor)
     assert out[-1].level == "critical" and out[-1].figures["learner"] == "linear"
     assert out[-1].figures["margin"] > 0.3
@@ -138,7 +138,7 @@ def test_learner_losses_match_river_driven_directly_with_imputation_written_out(
         X[i] = {"a": X[i]["a"]}  # absent key
     for i in range(300, 600):
         X[i] = dict(X[i], c=float(rng.normal()))  # a feature that appears mid-stream
-    check = make_check(learners=["linear"], window=600, min_pairs=600, evaluate_every=600)
+    check = make_check(learners=["linear"], recent_pairs=600, min_pairs=600, evaluate_every_pairs=600)
     [v] = stream(check, X, y, f)
     ref = preprocessing.StandardScaler() | linear_model.LinearRegression()
     sums: dict[str, list[float]] = {}
@@ -193,7 +193,7 @@ def test_clears_when_the_model_is_fixed():
     X, y, f = data(rng, 3000)
     model = f.copy()
     model[:1000] = 3.0  # no better than a constant at first
-    check = make_check(learners=["linear"], window=300, evaluate_every=50, clear_after=3)
+    check = make_check(learners=["linear"], recent_pairs=300, evaluate_every_pairs=50, clear_after_evaluations=3)
     levels = [v.level for v in stream(check, X, y, model)]
     assert "warning" in levels[:10] and levels[-1] == "normal"
     first_ok = levels.index("normal", levels.index("warning"))
@@ -204,7 +204,7 @@ def test_snapshot_restore_mid_stream_gives_identical_verdicts():
     rng = np.random.default_rng(15)
     X, y, f = data(rng, 1600)
     model = f + np.where(np.arange(1600) > 800, 1.5, 0.0)
-    settings = dict(learners=["mean", "linear", "tree"], window=300, evaluate_every=40)
+    settings = dict(learners=["mean", "linear", "tree"], recent_pairs=300, evaluate_every_pairs=40)
     live = make_check(**settings)
     stream(live, X[:700], y[:700], model[:700])
     copy = make_check(**settings)
@@ -218,7 +218,7 @@ def test_settings_are_explained():
     assert settings_class("baseline") is BaselineSettings
     with pytest.raises(ValidationError) as e:
         BaselineSettings(learners=["mean", "forest"])
-    assert "learners.1 = 'forest'" in format_validation(e.value)
+    assert "learners[1] = 'forest'" in format_validation(e.value)
     with pytest.raises(ValidationError) as e:
         BaselineSettings(learners=["mean", "mean"])
     assert "name a learner twice" in format_validation(e.value)

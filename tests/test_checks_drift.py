@@ -65,7 +65,7 @@ def test_a_rise_in_the_loss_is_raised_with_its_change_point_and_the_loss_before_
     assert abs(cp - 3000) <= 30
     assert f["change_ts"] == pytest.approx(f["change_t"] - 2)  # the truth's source time
     # The means are plain means of the squared errors on each side of the change point; the
-    # before side is the segment kept (the last ``history`` pairs, 2000 by default).
+    # before side is the segment kept (the last ``history_pairs`` pairs, 2000 by default).
     sq = err**2
     assert f["pairs_before"] + f["pairs_after"] == 2000
     assert f["mean_before"] == pytest.approx(sq[cp - f["pairs_before"] : cp].mean())
@@ -113,7 +113,7 @@ def test_falls_are_ignored():
 
 def test_clears_when_the_loss_since_the_change_recovers():
     rng = np.random.default_rng(6)
-    check = make_check(window=200, min_pairs=50, clear_after=3, evaluate_every=10)
+    check = make_check(window=200, min_pairs=50, clear_after_evaluations=3, evaluate_every_pairs=10)
     out = run(check, errors(rng, (2000, 2.0), (600, 4.0), (1500, 2.0)))
     levels = [(i, v.level) for i, v in out]
     assert [lv for _, lv in levels] == ["warning", "normal"]
@@ -146,7 +146,7 @@ def test_page_hinkley_detects_the_same_rise():
     assert abs(round((v.figures["change_t"] - 1_700_000_000.0) / 10) - 3000) <= 50
 
 
-def test_no_alarm_on_a_long_stationary_stream():
+def test_no_alert_on_a_long_stationary_stream():
     rng = np.random.default_rng(10)
     check = make_check()
     assert run(check, errors(rng, (50_000, 2.0))) == []

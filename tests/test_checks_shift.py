@@ -104,7 +104,7 @@ def test_bins_follow_the_card_edges_with_open_outer_bins():
             }
         },
     )
-    check = make_check(card, window=50, evaluate_every=50)
+    check = make_check(card, recent_predictions=50, evaluate_every_predictions=50)
     values = [-100.0, 0.0, 0.99, 1.0, 1.5, 2.0, 2.999, 3.0, 1e6, None] * 5
     feed(check, values, [1.0] * 50)
     counts = check.counts()["pressure"]
@@ -117,33 +117,33 @@ def test_bins_follow_the_card_edges_with_open_outer_bins():
     assert idx == pytest.approx(population_stability_index([0.27, 0.36, 0.27, 0.1], counts, 0.5))
 
 
-def test_false_alarm_rate_on_unshifted_data_at_the_default_window_is_below_one_percent():
+def test_false_alert_rate_on_unshifted_data_at_the_default_window_is_below_one_percent():
     rng = np.random.default_rng(11)
     card = training_card(rng)
     settings = ShiftSettings()
-    assert settings.window == 1000
+    assert settings.recent_predictions == 1000
     windows = 300
-    check = make_check(card, evaluate_every=settings.window)  # disjoint windows
-    n = windows * settings.window
+    check = make_check(card, evaluate_every_predictions=settings.recent_predictions)  # disjoint windows
+    n = windows * settings.recent_predictions
     verdicts = feed(check, rng.normal(5.0, 1.0, n).tolist(), rng.gamma(2.0, 3.0, n).tolist())
     assert len(verdicts) == windows
-    alarms = sum(v.level != "normal" for v in verdicts)
-    assert alarms / windows < 0.01
+    alerts = sum(v.level != "normal" for v in verdicts)
+    assert alerts / windows < 0.01
     # The bias the module docstring states: n x PSI is about chi-square with (bins - 1) degrees
     # of freedom (Pearson's statistic), inflated by the training sample's own noise, so the mean
     # index is about (bins - 1) (1/n + 1/N). Chi-square approximation from memory; scipy gives
     # the 99.9% quantile to bound the worst window.
     idx = np.array([v.figures["index"]["pressure"] for v in verdicts])
-    scale = 1 / settings.window + 1 / TRAIN_ROWS
+    scale = 1 / settings.recent_predictions + 1 / TRAIN_ROWS
     assert idx.mean() == pytest.approx(9 * scale, rel=0.15)
     assert idx.max() < sps.chi2.ppf(0.999, 9) * scale * 1.3
-    assert idx.max() < settings.warning / 3
+    assert idx.max() < settings.warning_index / 3
 
 
 def test_a_shifted_feature_raises_and_is_named():
     rng = np.random.default_rng(5)
     card = training_card(rng)
-    check = make_check(card, evaluate_every=250)
+    check = make_check(card, evaluate_every_predictions=250)
     calm = feed(check, rng.normal(5.0, 1.0, 2000).tolist(), rng.gamma(2.0, 3.0, 2000).tolist())
     assert {v.level for v in calm} == {"normal"}
     # Pressure moves up by half a standard deviation; speed is unchanged.
@@ -162,7 +162,7 @@ def test_a_shifted_feature_raises_and_is_named():
 def test_a_feature_that_goes_missing_raises():
     rng = np.random.default_rng(9)
     card = training_card(rng)
-    check = make_check(card, evaluate_every=1000)
+    check = make_check(card, evaluate_every_predictions=1000)
     [v] = feed(check, [None] * 1000, rng.gamma(2.0, 3.0, 1000).tolist())
     assert v.level == "critical" and v.figures["top_feature"] == "pressure"
 
@@ -172,9 +172,9 @@ def test_snapshot_restore_mid_stream_gives_identical_verdicts():
     card = training_card(rng)
     p = np.r_[rng.normal(5.0, 1.0, 1500), rng.normal(5.4, 1.2, 1500)].tolist()
     s = rng.gamma(2.0, 3.0, 3000).tolist()
-    live = make_check(card, evaluate_every=90)
+    live = make_check(card, evaluate_every_predictions=90)
     feed(live, p[:1300], s[:1300])
-    copy = make_check(card, evaluate_every=90)
+    copy = make_check(card, evaluate_every_predictions=90)
     copy.restore(json.loads(json.dumps(live.snapshot())))
     a = feed(live, p[1300:], s[1300:], start=1300)
     b = feed(copy, p[1300:], s[1300:], start=1300)
@@ -184,11 +184,11 @@ def test_snapshot_restore_mid_stream_gives_identical_verdicts():
 def test_small_windows_are_warned_about_and_bad_settings_explained():
     assert settings_class("shift") is ShiftSettings
     assert settings_warnings(ShiftSettings()) == []
-    [w] = settings_warnings(ShiftSettings(window=200))
-    assert "window = 200" in w and "1000" in w
+    [w] = settings_warnings(ShiftSettings(recent_predictions=200))
+    assert "recent_predictions = 200" in w and "1000" in w
     with pytest.raises(ValidationError) as e:
-        ShiftSettings(warning=0.3, critical=0.2)
-    assert "critical (0.2) must be >= warning (0.3)" in format_validation(e.value)
+        ShiftSettings(warning_index=0.3, critical_index=0.2)
+    assert "critical_index (0.2) must be >= warning_index (0.3)" in format_validation(e.value)
     with pytest.raises(ValidationError) as e:
         ShiftSettings(smoothing=0)
     assert "smoothing = 0" in format_validation(e.value)
@@ -205,13 +205,13 @@ def test_check_config_prints_the_small_window_warning():
                     "card": "press.json",
                     "prediction_topic": "p/pred",
                     "truth_topic": "p/truth",
-                    "checks": {"shift": {"window": 400}},
+                    "checks": {"shift": {"recent_predictions": 400}},
                 }
             ]
         }
     )
     [w] = config_warnings(cfg)
-    assert w.startswith("models[press].checks.shift: window = 400 is below 1000")
+    assert w.startswith("models[press].checks.shift: recent_predictions = 400 is below 1000")
 
 
 def test_nulls_and_absent_features_go_to_the_missing_bin_of_their_own_feature_only():
@@ -223,7 +223,7 @@ def test_nulls_and_absent_features_go_to_the_missing_bin_of_their_own_feature_on
         holdout={"loss": 1.0, "count": 10},
         features={n: {"min": 0, "max": 2, "histogram": hist} for n in ("pressure", "speed")},
     )
-    check = make_check(card, window=50, evaluate_every=50)
+    check = make_check(card, recent_predictions=50, evaluate_every_predictions=50)
     rows = [{"pressure": None, "speed": 0.5}, {"speed": 1.5}, {"pressure": 1.5, "speed": None}, {"pressure": 0.2}]
     for i, feats in enumerate(rows):
         check.on_prediction(Prediction("press", str(i), 0.0, float(i), features=feats))

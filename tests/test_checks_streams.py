@@ -31,7 +31,7 @@ def histogram_card(
     holdout_resid: np.ndarray | None = None,
     bins: int = 10,
 ) -> ModelCard:
-    """A card as made at training time: envelope and quantile histogram of every input."""
+    """A card as made at training time: training range and quantile histogram of every input."""
     feats = {}
     for j, name in enumerate(names):
         col = X[:, j]

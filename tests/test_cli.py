@@ -30,7 +30,7 @@ id = "pump-flow"
 card = "pump.json"
 prediction_topic = "station/pump/pred"
 truth_topic = "station/pump/truth"
-window = { size = 200, min_pairs = 100 }
+window = { size_pairs = 200, min_pairs = 100 }
 
 [models.checks.range]
 enabled = false
@@ -78,6 +78,28 @@ def test_replay_is_deterministic_byte_for_byte(site):
     assert "gap" in r.output and "not_json 1" in r.output
 
 
+@pytest.mark.parametrize("every", ["60", "60s", "1m"])
+def test_replay_takes_the_tick_period_in_any_unit(site, every):
+    r = runner.invoke(
+        app,
+        ["replay", str(site / "rec.jsonl"), "--config", str(site / "config.toml"), "--quiet", "--tick-every", every],
+    )
+    assert r.exit_code == 0, r.output
+    r0 = runner.invoke(
+        app,
+        ["replay", str(site / "rec.jsonl"), "--config", str(site / "config.toml"), "--quiet", "--tick-every", "60"],
+    )
+    assert r.output == r0.output
+
+
+def test_a_duration_without_sense_is_refused_with_examples(site):
+    r = runner.invoke(
+        app, ["replay", str(site / "rec.jsonl"), "--config", str(site / "config.toml"), "--tick-every", "often"]
+    )
+    assert r.exit_code == 2
+    assert "--tick-every 'often': not a duration; give a positive time such as 60s, 15m, 6h or 2d" in r.output
+
+
 def test_replay_json_summary(site):
     r = runner.invoke(app, ["replay", str(site / "rec.jsonl"), "--config", str(site / "config.toml"), "--json"])
     assert r.exit_code == 0
@@ -96,15 +118,39 @@ def test_check_config_prints_resolved_settings_without_secrets(site):
     assert r.exit_code == 0, r.output
     assert "valid" in r.output and "warning_tolerance = 0.25" in r.output
     assert "s3cret-value" not in r.output
-    assert "WATCHDOG_TEST_PASSWORD (value not shown)" in r.output
+    assert 'password_env = "WATCHDOG_TEST_PASSWORD" # value not shown' in r.output
+
+
+def test_check_config_output_loads_again_as_the_same_config_and_ends_with_one_summary(site):
+    r = runner.invoke(app, ["check-config", str(site / "config.toml")])
+    assert r.exit_code == 0, r.output
+    lines = r.stdout.rstrip("\n").splitlines()
+    assert lines[-1] == f"# {site / 'config.toml'}: valid; 1 model, 2 checks on, cards loaded, no warnings."
+    # the derived expected loss stands as a comment, in words, not as a key
+    assert "# expected squared loss 1, from the held-out loss (card pump.json)" in r.stdout
+    (site / "again.toml").write_text(r.stdout)
+    first = runner.invoke(app, ["check-config", str(site / "config.toml"), "--json"])
+    again = runner.invoke(app, ["check-config", str(site / "again.toml"), "--json"])
+    assert again.exit_code == 0, again.output
+    assert json.loads(again.stdout) == json.loads(first.stdout)
+    assert json.loads(first.stdout)["models"][0]["expected_loss"]["source"] == "holdout"  # JSON keeps the code
+
+
+def test_help_shows_no_value_for_flags_and_plain_argument_names():
+    r = runner.invoke(app, ["check-config", "--help"], env={"COLUMNS": "120"})
+    assert r.exit_code == 0
+    assert "<bool>" not in r.output and "{config}" not in r.output
+    assert "[OPTIONS] CONFIG" in r.output
+    r = runner.invoke(app, ["card", "build", "--help"], env={"COLUMNS": "120"})
+    assert "{train}" not in r.output and "[OPTIONS] TRAIN" in r.output and "<bool>" not in r.output
 
 
 def test_check_config_error_names_key_value_and_rule(site):
     bad = site / "bad.toml"
-    bad.write_text(CONFIG.replace("size = 200", "size = -3"))
+    bad.write_text(CONFIG.replace("size_pairs = 200", "size_pairs = -3"))
     r = runner.invoke(app, ["check-config", str(bad)])
     assert r.exit_code == 2
-    assert "models[0] (id 'pump-flow').window.size = -3" in r.output
+    assert "models[0] (id 'pump-flow').window.size_pairs = -3" in r.output
     assert "greater than or equal to 2" in r.output
 
 

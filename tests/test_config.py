@@ -18,15 +18,15 @@ def err(data) -> str:
 def test_defaults_are_filled_in():
     cfg = parse_config({"models": [MODEL]})
     m = cfg.models[0]
-    assert m.window.size == 500 and m.pairing.horizon_s == 7200
+    assert m.window.size_pairs == 500 and m.pairing.horizon_s == 7200
     assert cfg.broker.topics.alerts == "watchdog/{model}/alerts"
     assert m.checks["gap"].warning_tolerance == 0.25 and m.checks["gap"].critical_tolerance == 1.0
     assert "gap" in m.enabled_checks()
 
 
 def test_error_names_key_value_and_rule():
-    msg = err({"models": [dict(MODEL, window={"size": 0})]})
-    assert "models[0] (id 'm').window.size = 0" in msg and "greater than or equal to 2" in msg
+    msg = err({"models": [dict(MODEL, window={"size_pairs": 0})]})
+    assert "models[0] (id 'm').window.size_pairs = 0" in msg and "greater than or equal to 2" in msg
 
 
 def test_unknown_key_is_named():
@@ -113,3 +113,27 @@ def test_model_level_rules_are_explained():
     msg = err({"models": [dict(MODEL, prediction_topic="s/+/p", truth_topic="s/+/t", model_level=2)]})
     assert "{model} in the file name" in msg
     assert "model_level is not set" in err({"models": [dict(MODEL, card="{model}.json")]})
+
+
+def test_every_error_has_one_form_inside_a_check_as_anywhere_else():
+    msgs = []
+    msgs.append(msg := err({"agent": {"colour": "red"}, "models": [dict(MODEL, checks={"gap": {"colour": "red"}})]}))
+    lines = msg.splitlines()[1:]
+    assert "  agent.colour = 'red': unknown key; check the spelling against the documented keys" in lines
+    assert (
+        "  models[0] (id 'm').checks.gap.colour = 'red': unknown key; check the spelling against the documented keys"
+        in lines
+    )
+    # a rule across a check's keys names the check's table, with no stray dot and no library wording
+    msgs.append(
+        msg := err({"models": [dict(MODEL, checks={"gap": {"warning_tolerance": 2.0, "critical_tolerance": 1.0}})]})
+    )
+    assert "  models[0] (id 'm').checks.gap: critical_tolerance (1.0) must be >= warning_tolerance (2.0)" in msg
+    msgs.append(msg := err({"models": [dict(MODEL, checks={"shift": {"recent_predictions": 10}})]}))
+    assert (
+        "  models[0] (id 'm').checks.shift.recent_predictions = 10: Input should be greater than or equal to 50" in msg
+    )
+    msgs.append(msg := err({"models": [MODEL, MODEL]}))
+    assert "model id 'm' appears twice; give each [[models]] entry its own id" in msg
+    for m in msgs:
+        assert "Value error" not in m and ". =" not in m and "each []" not in m

@@ -33,7 +33,7 @@ def polynomial_deployment(seed: int, degree: int, n_train: int, n_field: int = 1
     card = ModelCard(
         model_id="m", training={"loss": train_mse, "count": n_train}, fitted_parameters=degree + 1, least_squares=True
     )
-    mon = Monitor(config(checks=GAP_ONLY, window={"size": 500, "min_pairs": 500}), {"m": card})
+    mon = Monitor(config(checks=GAP_ONLY, window={"size_pairs": 500, "min_pairs": 500}), {"m": card})
     xf = rng.uniform(0, 1, n_field)
     yf = smooth(xf) + rng.normal(0, sigma, n_field)
     pf = fit(xf)
@@ -85,7 +85,7 @@ def test_the_card_share_of_the_limit_is_in_the_figures():
     rng = np.random.default_rng(3)
     card = ModelCard(model_id="m", training={"loss": 1.0, "count": 30}, fitted_parameters=4, least_squares=True)
     context = CheckContext("m", card, "squared", 1.0, "fpe", window_size=200, min_pairs=200)
-    gap = GapCheck(GapSettings(evaluate_every=200), context)
+    gap = GapCheck(GapSettings(evaluate_every_pairs=200), context)
     assert gap.card_df == 26.0
     [v] = feed(gap, list(3.0 * rng.chisquare(1, 200)))
     f = v.figures
@@ -98,7 +98,7 @@ def test_the_card_share_of_the_limit_is_in_the_figures():
     assert f["lower"] < f["lower_live_only"] < f["live_loss"] < f["upper"]
     assert 0.5 < f["card_share_of_margin"] < 1.0  # from 26 degrees of freedom the card dominates
     # Switched off, the bound is the live one alone.
-    plain = GapCheck(GapSettings(evaluate_every=200, card_uncertainty=False), context)
+    plain = GapCheck(GapSettings(evaluate_every_pairs=200, card_uncertainty=False), context)
     [w] = feed(plain, list(3.0 * np.random.default_rng(3).chisquare(1, 200)))
     assert w.figures["card_df"] is None and w.figures["lower"] == w.figures["lower_live_only"]
 
@@ -163,7 +163,7 @@ def feed(gap, losses, start=0):
 
 def test_evaluates_every_k_pairs_once_the_minimum_is_reached():
     # Mean 1.3 is above the warning limit 1.25, but the spread keeps the lower bound below it.
-    gap = GapCheck(GapSettings(evaluate_every=10), ctx(size=100, min_pairs=50))
+    gap = GapCheck(GapSettings(evaluate_every_pairs=10), ctx(size=100, min_pairs=50))
     verdicts = feed(gap, ([0.3] * 5 + [2.3] * 5) * 12)
     assert len(verdicts) == 8  # at pairs 50, 60, ..., 120
     assert all(v.level == "normal" and v.figures["lower"] < 1.25 < v.figures["live_loss"] for v in verdicts)
@@ -172,7 +172,7 @@ def test_evaluates_every_k_pairs_once_the_minimum_is_reached():
 def test_a_healthy_window_skips_the_interval_but_keeps_its_figures():
     # While the running mean is under the warning limit the lower bound cannot pass it.
     rng = np.random.default_rng(13)
-    gap = GapCheck(GapSettings(evaluate_every=10), ctx(size=100, min_pairs=50))
+    gap = GapCheck(GapSettings(evaluate_every_pairs=10), ctx(size=100, min_pairs=50))
     losses = list(rng.exponential(1.0, 120))
     assert feed(gap, losses) == []
     figs = gap.figures()
@@ -193,7 +193,7 @@ def test_limits_relative_and_absolute():
 
 def test_clearing_needs_k_evaluations_under_the_hysteresis_limit():
     rng = np.random.default_rng(5)
-    gap = GapCheck(GapSettings(evaluate_every=10, clear_after=3), ctx(size=100, min_pairs=100))
+    gap = GapCheck(GapSettings(evaluate_every_pairs=10, clear_after_evaluations=3), ctx(size=100, min_pairs=100))
     up = feed(gap, list(rng.exponential(3.0, 200)))
     assert up[-1].level == "critical"
     down = feed(gap, list(rng.exponential(0.5, 300)), start=200)
@@ -206,7 +206,7 @@ def test_clearing_needs_k_evaluations_under_the_hysteresis_limit():
 
 def test_diagnosis_distinguishes_degradation_from_a_bad_start():
     rng = np.random.default_rng(6)
-    gap = GapCheck(GapSettings(evaluate_every=10), ctx(size=100, min_pairs=100))
+    gap = GapCheck(GapSettings(evaluate_every_pairs=10), ctx(size=100, min_pairs=100))
     healthy = feed(gap, list(rng.exponential(1.0, 400)))
     assert all(v.level == "normal" for v in healthy)
     worse = feed(gap, list(rng.exponential(3.0, 200)), start=400)

@@ -76,7 +76,7 @@ def test_gap_steps_down_from_critical_to_warning_when_the_loss_eases_between_the
     # 1, limits 1.25 and 2; losses near 6, then near 1.5: with confidence above warning, and
     # below critical x (1 - hysteresis) = 1.8.
     rng = np.random.default_rng(3)
-    gap = GapCheck(GapSettings(evaluate_every=10, clear_after=3), _ctx())
+    gap = GapCheck(GapSettings(evaluate_every_pairs=10, clear_after_evaluations=3), _ctx())
     levels = []
     for i, loss in enumerate(list(rng.uniform(5.0, 7.0, 200)) + list(rng.uniform(1.4, 1.6, 300))):
         t = float(i)
@@ -99,7 +99,12 @@ def test_range_steps_down_from_critical_to_warning_by_the_same_rule():
         holdout={"loss": 1.0, "count": 500},
         features={"x": {"min": 0.0, "max": 1.0}},
     )
-    check = RangeCheck(RangeSettings(window=20, min_predictions=20, evaluate_every=20, clear_after=2), _ctx(card))
+    check = RangeCheck(
+        RangeSettings(
+            recent_predictions=20, min_predictions=20, evaluate_every_predictions=20, clear_after_evaluations=2
+        ),
+        _ctx(card),
+    )
     levels = []
     # 30 % outside (critical), then 10 % outside (warning: above 5 %, and above 5 % x 0.8)
     for i in range(200):

@@ -74,7 +74,7 @@ def _link(b: Broker, tmp_path, taker: _Taker, protocol: str = "3.1.1", fast_paho
         host="localhost" if "tls" in kw else b.host,
         port=b.port,
         protocol=protocol,
-        keepalive=5,
+        keepalive_s=5,
         reconnect_min_s=0.1,
         reconnect_max_s=0.3,
         **kw,

@@ -38,7 +38,7 @@ def test_shipped_scenarios_load_and_name_three_or_more_sites():
     sites = {load_scenario(n).site.name for n in names}
     assert len(sites) == len(names)
     kinds = {inc.kind for n in names for inc in load_scenario(n).incidents}
-    assert {"drift", "step", "regime", "stall", "overfit"} <= kinds
+    assert {"drift", "step", "regime", "feed_stop", "overfit"} <= kinds
 
 
 def test_scenario_errors_name_the_key_and_the_rule():
@@ -169,7 +169,7 @@ def test_drift_and_step_change_only_the_reading_inside_their_spans():
         assert milk_a[ts] - milk_b[ts] == pytest.approx(drift, abs=2e-3)
 
 
-def test_truths_are_late_sparse_and_stop_during_a_stall():
+def test_truths_are_late_sparse_and_stop_during_a_feed_stop():
     sc = load_scenario("dairy-chiller")
     run = simulate(sc)
     pred_t, truths = {}, []
@@ -183,12 +183,12 @@ def test_truths_are_late_sparse_and_stop_during_a_stall():
     for t, body in truths:
         late = t - pred_t[body["id"]]
         assert tim.truth_delay_min_s <= late <= tim.truth_delay_max_s + tim.latency_max_s + 1e-3
-    stall = next(i for i in run.incidents if i["kind"] == "stall")
+    stall = next(i for i in run.incidents if i["kind"] == "feed_stop")
     assert not [t for t, _ in truths if stall["start"] + tim.latency_max_s < t < stall["end"]]
     # share of predictions that get a truth: binomial, 4 standard deviations
     n = len(pred_t)
     expected = tim.truth_share * n
-    got = len(truths) + run.counts["truths_stalled"] + run.counts["truths_after_end"]
+    got = len(truths) + run.counts["truths_withheld"] + run.counts["truths_after_end"]
     assert abs(got - expected) < 4 * np.sqrt(n * tim.truth_share * (1 - tim.truth_share))
 
 
@@ -225,7 +225,7 @@ def test_bundle_replays_with_its_config_and_card(tmp_path):
     run = simulate(sc, seed=2, duration_h=10)
     paths = write_bundle(run, tmp_path / "out" / "cs.jsonl", "cold-store")
     cfg = load_config(paths.config)
-    assert cfg.models[0].id == sc.model.id and cfg.models[0].window.size == sc.monitor.window_size
+    assert cfg.models[0].id == sc.model.id and cfg.models[0].window.size_pairs == sc.monitor.window.size_pairs
     card = load_card(paths.card)
     assert expected_loss(card)[1] == "fpe"
     incidents = load_incidents(paths.incidents)

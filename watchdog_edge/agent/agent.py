@@ -7,7 +7,7 @@ The rules of this file, in the order a message meets them:
    queue between threads and no second thread contending for the interpreter lock (only a
    reconnect's blocking connect runs in a short-lived thread, see mqtt.py). A signal
    handler only sets a flag.
-2. The messages are taken in small batches (``agent.journal_batch_max``, and no longer than
+2. The messages are taken in small batches (``agent.journal_batch_max_messages``, and no longer than
    ``agent.journal_batch_ms`` of work): each gets its receive time ``t`` and goes through
    ``Monitor.feed``; a due timer tick goes through ``Monitor.tick``. Journal rows, the alerts
    they caused (outbox) and the dead letters are committed in ONE transaction; only then are
@@ -256,7 +256,7 @@ class Agent:
         next_tick = now + a.tick_every_s
         next_snapshot = now + a.snapshot_every_s
         next_state = now  # publish state and status right away
-        batch_max = a.journal_batch_max
+        batch_max = a.journal_batch_max_messages
         while not self.stopping:
             room = batch_max - len(self.inbox)
             if room > 0:
@@ -304,7 +304,7 @@ class Agent:
         deadline = perf() + a.journal_batch_ms / 1000.0
         # paho may read a few packets past the batch (it reads one per outbound message still
         # in flight): they wait for the next batch.
-        batch_max = a.journal_batch_max
+        batch_max = a.journal_batch_max_messages
         done = 0
         for topic, payload, mid, qos, dup in items:
             if done >= batch_max or (rows and perf() >= deadline):
@@ -428,7 +428,7 @@ class Agent:
             )
             self.pending_other.add(mid)
 
-    def status(self, state: str = "online") -> dict[str, Any]:
+    def status(self, connection: str = "online") -> dict[str, Any]:
         """The agent status as published (counters of the core, the outbox, the journal, the link)."""
         core = self.monitor.status()
         core.pop("models", None)
@@ -436,7 +436,7 @@ class Agent:
         return json_safe(
             {
                 "agent": self.name,
-                "connection": state,
+                "connection": connection,
                 "version": __version__,
                 "heartbeat": rfc3339(now),
                 "uptime_s": round(now - self.started, 3),
@@ -449,11 +449,11 @@ class Agent:
             }
         )
 
-    def _publish_status(self, state: str) -> int | None:
+    def _publish_status(self, connection: str) -> int | None:
         if not self.link.connected.is_set():
             return None
         mid = self.link.publish(
-            self.status_topic, json.dumps(self.status(state), separators=(",", ":")).encode(), qos=1, retain=True
+            self.status_topic, json.dumps(self.status(connection), separators=(",", ":")).encode(), qos=1, retain=True
         )
         self.pending_other.add(mid)
         return mid

@@ -342,7 +342,7 @@ class Link:
     # --- connection --------------------------------------------------------------------------
     def _connect_args(self) -> dict[str, Any]:
         s = self.settings
-        args: dict[str, Any] = dict(host=s.host, port=s.port, keepalive=s.keepalive)
+        args: dict[str, Any] = dict(host=s.host, port=s.port, keepalive=s.keepalive_s)
         if self.v5:
             props = Properties(PacketTypes.CONNECT)
             props.SessionExpiryInterval = s.session_expiry_s

@@ -8,9 +8,12 @@ from typing import Optional
 
 import typer
 
+from watchdog_edge.caution import CAUTION
+from watchdog_edge.cli.helpformat import PlainCommand
 from watchdog_edge.errors import WatchdogError
 
-RUN_HELP = """Run the live agent: subscribe to every model's prediction and truth topics, pair them, run the checks, and publish alerts, retained per-model state and a retained agent status.
+RUN_HELP = (
+    """Run the live agent: subscribe to every model's prediction and truth topics, pair them, run the checks, and publish alerts, retained per-model state and a retained agent status.
 
 What it keeps on disk, in agent.state_dir (one SQLite file):
 
@@ -29,11 +32,16 @@ Stop it with SIGTERM or Ctrl-C: it finishes the batch in hand, sends what the br
 
 The password comes from the file named by broker.password_file or the environment variable named by broker.password_env, never from the command line.
 
+Caution: """
+    + CAUTION
+    + """
+
 \b
 Example:
   watchdog-edge run --config config.toml --record today.jsonl
   watchdog-edge replay today.jsonl --config config.toml
 """
+)
 
 DEADLETTERS_HELP = """List the bad payloads the agent set aside: time, topic, reason, size and the raw payload (cut to the dead-letter byte budget). It reads the agent's state file, also while the agent runs.
 
@@ -98,5 +106,5 @@ def deadletters(
 
 def register(app: typer.Typer) -> None:
     """Add ``run`` and ``deadletters`` to the main command line."""
-    app.command("run", help=RUN_HELP)(run)
-    app.command("deadletters", help=DEADLETTERS_HELP)(deadletters)
+    app.command("run", help=RUN_HELP, cls=PlainCommand)(run)
+    app.command("deadletters", help=DEADLETTERS_HELP, cls=PlainCommand)(deadletters)

@@ -19,13 +19,17 @@ from typing import Optional
 import typer
 from rich.console import Console
 
+from watchdog_edge.caution import CAUTION
+from watchdog_edge.cli.helpformat import PlainCommand, PlainGroup
 from watchdog_edge.errors import WatchdogError
 
 app = typer.Typer(
+    cls=PlainGroup,
     help=(
         "Watch a deployed regression model: pair its predictions with late measured truths, "
         "compare the live error with the error its model card leads you to expect, and raise "
-        "alerts when they part. Start with 'watchdog-edge demo'."
+        "alerts when they part. Start with 'watchdog-edge demo'.\n\n"
+        f"Caution: {CAUTION}"
     ),
     no_args_is_help=True,
     add_completion=False,
@@ -40,7 +44,7 @@ def fail(e: Exception, code: int = 2) -> None:
     raise typer.Exit(code)
 
 
-@app.command("check-config")
+@app.command("check-config", cls=PlainCommand)
 def check_config(
     config: Path = typer.Argument(..., help="The TOML config file to validate."),
     as_json: bool = typer.Option(False, "--json", help="Print the resolved settings as JSON."),
@@ -60,38 +64,52 @@ def check_config(
         Monitor(cfg, cards)  # builds every check: catches a card unfit for a check
     except WatchdogError as e:
         fail(e)
+    from watchdog_edge.core.cards import expected_loss
+    from watchdog_edge.replay.report import source_words
+
     data = cfg.model_dump(mode="json")
+    comments: dict[tuple[str | int, ...], list[str] | str] = {}
     b = data["broker"]
     if b.get("password_file"):
-        b["password_file"] = f"{b['password_file']} (contents not shown)"
+        comments[("broker", "password_file")] = "contents not shown"
     if b.get("password_env"):
-        b["password_env"] = f"{b['password_env']} (value not shown)"
-    for m in data["models"]:
+        comments[("broker", "password_env")] = "value not shown"
+    for i, m in enumerate(data["models"]):
         card = cards[m["id"]]
-        from watchdog_edge.core.cards import expected_loss
-
         exp, src = expected_loss(card)
-        m["expected_loss"] = {"value": exp, "source": src, "loss": card.loss}
+        if as_json:
+            m["expected_loss"] = {"value": exp, "source": src, "loss": card.loss}
+        comments[("models", i)] = [
+            f"expected {card.loss} loss {exp:.6g}, from the {source_words(src)} (card {m['card']})"
+        ]
+    warnings = config_warnings(cfg)
     if as_json:
         typer.echo(json.dumps(data, indent=2))
     else:
         from watchdog_edge.files.tomlout import dumps
 
-        typer.echo(f"# {config}: valid. Resolved settings, defaults included:\n")
-        typer.echo(dumps(data))
-    for w in config_warnings(cfg):
-        err_console.print(f"[yellow]warning:[/yellow] {w}", highlight=False)
+        typer.echo(f"# {config}: resolved settings, defaults included; this text loads again as a config.\n")
+        typer.echo(dumps(data, comments))
+    for w in warnings:
+        err_console.print(f"[yellow]warning:[/yellow] {w}", highlight=False, soft_wrap=True)
+    if not as_json:
+        on = sum(len(m.enabled_checks()) for m in cfg.models)
+        n = len(cfg.models)
+        said = f"{len(warnings)} warning{'s' if len(warnings) != 1 else ''} above" if warnings else "no warnings"
+        typer.echo(f"# {config}: valid; {n} model{'s' if n != 1 else ''}, {on} checks on, cards loaded, {said}.")
 
 
-@app.command()
+@app.command(cls=PlainCommand)
 def replay(
     recording: Path = typer.Argument(..., help="Recording (JSON Lines, one received message or tick a line)."),
     config: Path = typer.Option(..., "--config", "-c", help="The TOML config that names models, topics and cards."),
     alerts: Optional[Path] = typer.Option(None, "--alerts", help="Write every alert to this file as JSON Lines."),
-    tick_every: Optional[float] = typer.Option(
+    tick_every: Optional[str] = typer.Option(
         None,
         "--tick-every",
-        help="Add a timer tick every S seconds of receive time (recordings made elsewhere have none).",
+        metavar="DURATION",
+        help="Add a timer tick this often in receive time, e.g. 1s or 60s; a bare number is seconds "
+        "(recordings made elsewhere have none).",
     ),
     as_json: bool = typer.Option(False, "--json", help="Print the summary as JSON instead of tables."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="Do not print alerts as they happen."),
@@ -103,6 +121,7 @@ def replay(
     """
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 
+    from watchdog_edge.cli.durations import parse_duration_s
     from watchdog_edge.core.events import Alert
     from watchdog_edge.files.configfile import load_monitor
     from watchdog_edge.replay.recording import alert_line, read_recording
@@ -111,6 +130,7 @@ def replay(
 
     console = Console(stderr=as_json)
     try:
+        tick_s = parse_duration_s(tick_every, "--tick-every") if tick_every is not None else None
         mon = load_monitor(config)
         size = recording.stat().st_size if recording.exists() else 0
         out = alerts.open("w", encoding="utf-8") if alerts else None
@@ -146,9 +166,9 @@ def replay(
                             done = 0
                         yield ln
 
-                run_replay(mon, counted(), tick_every, on_event)
+                run_replay(mon, counted(), tick_s, on_event)
         else:
-            run_replay(mon, lines, tick_every, on_event)
+            run_replay(mon, lines, tick_s, on_event)
         if out:
             out.close()
     except WatchdogError as e:
@@ -162,11 +182,13 @@ def replay(
         console.print(f"{len(found)} alerts" + (f", written to {alerts}" if alerts else ""))
 
 
-@app.command()
+@app.command(cls=PlainCommand)
 def demo(
     folder: Path = typer.Option(Path("watchdog-demo"), "--folder", "-o", help="Where the demo leaves its files."),
     seed: int = typer.Option(7, "--seed", help="Seed of the invented data; the same seed gives the same files."),
-    days: float = typer.Option(6.0, "--days", help="Days of field traffic to simulate."),
+    duration: str = typer.Option(
+        "6d", "--duration", metavar="DURATION", help="Field traffic to simulate: 6d, 36h (a bare number is days)."
+    ),
 ) -> None:
     """Watch two invented cold-store models: one overfit from the start, one that degrades.
 
@@ -177,8 +199,10 @@ def demo(
     'watchdog-edge replay' on them yourself.
     """
     from watchdog_edge.cli.demo import run_demo
+    from watchdog_edge.cli.durations import parse_duration_s
 
     try:
+        days = parse_duration_s(duration, "--duration", bare_unit="d") / 86400
         run_demo(folder, seed=seed, days=days, console=Console(highlight=False))
     except WatchdogError as e:
         fail(e)
@@ -195,7 +219,7 @@ def _register_optional() -> None:
     except ModuleNotFoundError as e:
         if e.name != "watchdog_edge.cli.card":
             raise
-    for mod in ("watchdog_edge.cli.agent", "watchdog_edge.cli.sim"):
+    for mod in ("watchdog_edge.cli.agent", "watchdog_edge.cli.sim", "watchdog_edge.cli.jetstream"):
         try:
             importlib.import_module(mod).register(app)
         except ModuleNotFoundError as e:

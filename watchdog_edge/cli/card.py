@@ -7,12 +7,14 @@ from typing import Optional
 
 import typer
 
+from watchdog_edge.cli.helpformat import PlainCommand, PlainGroup
 from watchdog_edge.errors import WatchdogError
 
 app = typer.Typer(
+    cls=PlainGroup,
     help=(
         "Model cards. A card records what the model did on its training data (loss, row count, "
-        "fitted parameters, input envelope and histograms, target range, optional held-out loss), "
+        "fitted parameters, training range and histograms of the inputs, target range, optional held-out loss), "
         "so the agent knows which error to expect in the field and which inputs are new to the "
         "model. Build one at training time from a CSV of the training rows with the model's "
         "fitted prediction on each row; show one to see the loss the agent will expect."
@@ -28,7 +30,7 @@ def _fail(e: Exception | str) -> typer.Exit:
     return typer.Exit(2)
 
 
-@app.command()
+@app.command(cls=PlainCommand)
 def build(
     train: Path = typer.Argument(
         ...,
@@ -39,12 +41,13 @@ def build(
     prediction: str = typer.Option(
         ..., "--prediction", help="Column holding the model's fitted prediction on that row."
     ),
-    params: int = typer.Option(
-        ...,
+    params: Optional[int] = typer.Option(
+        None,
         "--params",
-        help="Number of fitted parameters d (coefficients, intercept included); "
-        "with least squares and no hold-out the expected loss is the final "
-        "prediction error, which needs more rows than parameters.",
+        metavar="D",
+        help="Number of fitted parameters d (coefficients, intercept included). Needed only for a "
+        "least-squares fit without --holdout: the expected loss is then the final prediction error, "
+        "which needs more rows than parameters.",
     ),
     features: Optional[str] = typer.Option(
         None,
@@ -80,7 +83,7 @@ def build(
     ),
     out: Path = typer.Option(..., "-o", "--output", help="Where to write the card (JSON)."),
 ) -> None:
-    """Compute a card: training loss and count, envelope, histograms, target range, held-out loss."""
+    """Compute a card: training loss and count, training range of the inputs, histograms, target range, held-out loss."""
     from watchdog_edge.files.cardbuild import build_card, render_card
     from watchdog_edge.files.cardfile import save_card
 
@@ -108,7 +111,7 @@ def build(
     typer.echo(f"written to {out}")
 
 
-@app.command()
+@app.command(cls=PlainCommand)
 def show(card: Path = typer.Argument(..., help="A model card JSON file.")) -> None:
     """Print a card readably, with the loss the agent will expect in the field and where it comes from."""
     from watchdog_edge.files.cardbuild import render_card

@@ -11,19 +11,21 @@ arrives about 15 minutes later for every second prediction:
   logged by hand during commissioning, with no hold-out: the final prediction error already
   inflates its training error several times, and the field is worse still.
 
-The field traffic also has a stalled meter feed for three hours, a heat wave beyond the
-training envelope, a few garbled messages, and repeats.
+The field traffic also has a meter feed that stops for three hours, a heat wave beyond the
+training range, a few garbled messages, and repeats.
 """
 
 from __future__ import annotations
 
 import csv
 import json
+import shlex
 from pathlib import Path
 
 import numpy as np
 from rich.console import Console
 
+from watchdog_edge.caution import CAUTION
 from watchdog_edge.files.cardbuild import build_card
 from watchdog_edge.files.cardfile import save_card
 from watchdog_edge.replay.recording import RecordingWriter
@@ -204,14 +206,14 @@ prediction_topic = "{site}/compressor/{topic}"
 truth_topic = "{site}/meter"
 fields.truth = {{ id = "meter.id", value = "meter.kw", ts = "read_at" }}
 pairing = {{ horizon_s = 3600 }}
-window = {{ size = 300, min_pairs = 100 }}
+window = {{ size_pairs = 300, min_pairs = 100 }}
 
 [models.checks.gap]
 warning_tolerance = 0.25
 critical_tolerance = 1.0
 [models.checks.range]
 [models.checks.shift]
-window = 2160
+recent_predictions = 2160
 [models.checks.feed_stop]
 truth_timeout_s = 3600
 [models.checks.drift]
@@ -236,6 +238,7 @@ def run_demo(folder: Path, seed: int = 7, days: float = 6.0, console: Console | 
 
     console = console or Console(highlight=False)
     console.print(f"[bold]watchdog-edge demo[/bold]: an invented cold store, {days:g} days of traffic, seed {seed}")
+    console.print(f"Caution: {CAUTION}\n")
     paths = build_site(folder, seed=seed, days=days)
     console.print(f"wrote model cards, config and recording to {folder}/\n")
     mon = load_monitor(paths["config"])
@@ -254,8 +257,8 @@ def run_demo(folder: Path, seed: int = 7, days: float = 6.0, console: Console | 
     console.print()
     print_summary(mon, console)
     console.print(f"\n{len(alerts)} alerts written to {folder / 'alerts.jsonl'}")
-    console.print(
-        "Replay it yourself (same alerts, byte for byte):\n"
-        f"  watchdog-edge replay {paths['recording']} --config {paths['config']} --alerts again.jsonl"
-    )
+    console.print("Replay it yourself (same alerts, byte for byte):")
+    rec, cfg = shlex.quote(str(paths["recording"])), shlex.quote(str(paths["config"]))
+    # one line however narrow the terminal, so that it pastes whole
+    console.print(f"  watchdog-edge replay {rec} --config {cfg} --alerts again.jsonl", soft_wrap=True, markup=False)
     return alerts

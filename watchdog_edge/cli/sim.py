@@ -5,7 +5,8 @@ Registered on the main app by ``register(app)``; the work is done in the ``simul
 
 from __future__ import annotations
 
-import re
+import os
+import shlex
 import sys
 from pathlib import Path
 from typing import Optional
@@ -13,22 +14,9 @@ from typing import Optional
 import typer
 from rich.console import Console
 
+from watchdog_edge.cli.durations import parse_duration_s
+from watchdog_edge.cli.helpformat import PlainCommand
 from watchdog_edge.errors import ConfigError, WatchdogError
-
-_DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([smhd]?)\s*$")
-_UNIT_H = {"s": 1 / 3600, "m": 1 / 60, "h": 1.0, "d": 24.0, "": 1.0}
-
-
-def parse_duration_h(text: str) -> float:
-    """Simulated time as hours: ``90m``, ``6h``, ``2d``, ``3600s``; a bare number is hours.
-
-    >>> parse_duration_h("90m")
-    1.5
-    """
-    m = _DURATION.match(text)
-    if not m or float(m.group(1)) <= 0:
-        raise ConfigError(f"--duration {text!r}: give a positive time such as 90m, 6h or 2d")
-    return float(m.group(1)) * _UNIT_H[m.group(2)]
 
 
 def _fail(e: Exception) -> None:
@@ -49,7 +37,10 @@ def simulate(
     broker: Optional[str] = typer.Option(None, "--broker", help="Publish live to this broker, HOST:PORT, at QoS 1."),
     speed: float = typer.Option(1.0, "--speed", help="Live only: simulated seconds per wall-clock second."),
     duration: Optional[str] = typer.Option(
-        None, "--duration", help="Simulated time, e.g. 90m, 6h, 2d (default: the scenario's)."
+        None,
+        "--duration",
+        metavar="DURATION",
+        help="Simulated time: 90m, 6h, 2d (a bare number is hours; default: the scenario's).",
     ),
     seed: Optional[int] = typer.Option(
         None, "--seed", help="Seed; the same seed gives the same traffic, byte for byte."
@@ -72,7 +63,7 @@ def simulate(
     if (to_recording is None) == (broker is None):
         _fail(ConfigError("give exactly one of --to-recording FILE and --broker HOST:PORT"))
     try:
-        hours = parse_duration_h(duration) if duration else None
+        hours = parse_duration_s(duration, "--duration", bare_unit="h") / 3600 if duration else None
         path = resolve_scenario(scenario)
         sc = load_scenario(path)
         run = run_sim(sc, seed=seed, duration_h=hours)
@@ -87,7 +78,12 @@ def simulate(
                 f"recording  {paths.recording}\nincidents  {paths.incidents} ({len(run.incidents)})\n"
                 f"config     {paths.config}\ncard       {paths.card}"
             )
-            console.print(f"replay it: watchdog-edge replay {paths.recording} --config {paths.config}")
+            console.print(
+                f"replay it: watchdog-edge replay {shlex.quote(str(paths.recording))} "
+                f"--config {shlex.quote(str(paths.config))}",
+                soft_wrap=True,
+                markup=False,
+            )
             return
         from simulators.live import parse_broker, publish_live
 
@@ -128,24 +124,32 @@ def tune(
     grid: Optional[Path] = typer.Option(
         None,
         "--grid",
-        help="Grid file (TOML \\[grid] table of dotted keys -> lists). Default: window size x gap confidence x gap tolerance x shift on/off (x ADWIN delta when drift is on).",
+        help="Grid file (TOML \\[grid] table of dotted keys -> lists). Default: window.size_pairs x gap confidence x gap tolerance x shift on/off (x ADWIN delta when drift is on).",
     ),
-    holdout: Optional[Path] = typer.Option(
-        None, "--holdout", help="A second recording (another seed or day) to check the chosen setting on."
+    check_recording: Optional[Path] = typer.Option(
+        None, "--check-recording", help="A second recording (another seed or day) to check the chosen setting on."
     ),
-    holdout_incidents: Optional[Path] = typer.Option(
-        None, "--holdout-incidents", help="Incidents file of the holdout recording."
+    check_incidents: Optional[Path] = typer.Option(
+        None, "--check-incidents", help="Incidents file of the --check-recording recording."
     ),
     model: Optional[list[str]] = typer.Option(
-        None, "--model", help="Tune only this model (repeatable); default every model."
+        None, "--model", metavar="ID", help="Tune only this model (repeatable); default every model."
     ),
-    grace: Optional[float] = typer.Option(
-        None, "--grace", help="Seconds after an incident's end an alert still counts (default: one window)."
+    grace: Optional[str] = typer.Option(
+        None,
+        "--grace",
+        metavar="DURATION",
+        help="How long after an incident's end an alert still counts: 90s, 15m, 2h (a bare number is seconds; default: one window).",
     ),
-    alarm_budget: float = typer.Option(0.5, "--alarm-budget", help="Without incidents: alarms per day you accept."),
+    false_alert_budget: float = typer.Option(
+        0.5, "--false-alert-budget", help="Without incidents: false alerts per day you accept."
+    ),
     workers: Optional[int] = typer.Option(None, "--workers", help="Worker processes (default: one per CPU)."),
-    tick_every: Optional[float] = typer.Option(
-        None, "--tick-every", help="Add a timer tick every S seconds (as replay does)."
+    tick_every: Optional[str] = typer.Option(
+        None,
+        "--tick-every",
+        metavar="DURATION",
+        help="Add a timer tick this often, e.g. 1s or 60s (a bare number is seconds), as replay does.",
     ),
     snippet_out: Optional[Path] = typer.Option(
         None, "--snippet", help="Where to write the best setting as TOML (default: RECORDING.best.toml)."
@@ -163,12 +167,13 @@ def tune(
 ) -> None:
     """Replay a recording across a grid of check settings and rank them.
 
-    The recording is parsed and paired once; each setting is applied to that one pass, spread over one worker process per CPU. With --incidents each setting is scored by missed incidents, false alarms per day outside the incidents (plus a grace of one window, the window size over the pair rate) and detection delay; settings whose grid neighbours raise false alarms rank lower. Without incidents, the tightest setting within --alarm-budget wins. The best setting is written as a \\[\\[models]] TOML snippet and a PNG plot.
+    The recording is parsed and paired once; each setting is applied to that one pass, spread over one worker process per CPU. With --incidents each setting is scored by missed incidents, false alerts per day outside the incidents (plus a grace of one window, window.size_pairs over the pair rate) and detection delay; settings whose grid neighbours raise false alerts rank lower. Without incidents, the tightest setting within --false-alert-budget wins. The best setting is written as a \\[\\[models]] TOML snippet and a PNG plot (the plot needs matplotlib: pip install 'watchdog-edge\\[plot]').
 
-    Choosing on one recording is itself a fit: check the choice on --holdout (another day, or another seed).
+    Choosing on one recording is itself a fit: check the choice on --check-recording (another day, or another seed).
     """
     import json
 
+    from rich import box
     from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
     from rich.table import Table
 
@@ -176,13 +181,16 @@ def tune(
     from simulators.bundle import load_incidents, sibling
     from simulators.plot import draw, trace
 
-    console = Console(highlight=False, width=None if sys.stdout.isatty() else 160)
+    # a pipe or file gets 160 columns unless COLUMNS says otherwise
+    console = Console(highlight=False, width=None if sys.stdout.isatty() or "COLUMNS" in os.environ else 160)
     try:
         inc = load_incidents(incidents) if incidents else None
-        hinc = load_incidents(holdout_incidents) if holdout_incidents else None
-        if holdout_incidents and not holdout:
-            raise ConfigError("--holdout-incidents needs --holdout RECORDING")
+        hinc = load_incidents(check_incidents) if check_incidents else None
+        if check_incidents and not check_recording:
+            raise ConfigError("--check-incidents needs --check-recording RECORDING")
         g = tuning.load_grid(grid) if grid else None
+        grace_s = parse_duration_s(grace, "--grace") if grace is not None else None
+        tick_s = parse_duration_s(tick_every, "--tick-every") if tick_every is not None else None
         with Progress(
             TextColumn("tuning"),
             BarColumn(),
@@ -203,12 +211,12 @@ def tune(
                 inc,
                 g,
                 workers,
-                holdout,
+                check_recording,
                 hinc,
                 model,
-                grace,
-                alarm_budget,
-                tick_every,
+                grace_s,
+                false_alert_budget,
+                tick_s,
                 progress,
                 only,
             )
@@ -219,69 +227,93 @@ def tune(
         console.print(f"[yellow]skipped[/yellow] {s.label()}: {why.splitlines()[-1].strip()}")
     table = Table(
         title=f"{len(result.rows)} settings on {recording.name}"
-        + ("" if result.with_incidents else f" (no incidents: alarm budget {alarm_budget:g}/day)")
+        + ("" if result.with_incidents else f" (no incidents: false-alert budget {false_alert_budget:g}/day)"),
+        box=box.SIMPLE_HEAD,  # light rules leave the columns their room: 12 columns fit 130 characters
+        pad_edge=False,
+        collapse_padding=True,
     )
-    table.add_column("#", justify="right")
+
+    def column(header: str) -> None:
+        # headers break after dots and at spaces, and fold rather than being cut short on a narrow screen
+        table.add_column(header.replace(".", ".\n").replace(" ", "\n"), justify="right", overflow="fold")
+
+    column("#")
     keys = list(result.best.setting.values)
     for k in keys:
-        table.add_column(tuning._short(k), justify="right")
+        column(tuning._short(k))
     if result.with_incidents:
-        table.add_column("detected", justify="right")
-        table.add_column("false/day", justify="right")
-        table.add_column("near/day", justify="right")
+        column("detected")
+        column("false/day")
+        column("neighbours false/day")
         for d in result.best.score.detections:
-            table.add_column(f"delay {d['kind']}", justify="right")
+            column(f"delay {d['kind']}")
     else:
-        table.add_column("alarms/day", justify="right")
-        table.add_column("near/day", justify="right")
-        table.add_column("within budget", justify="center")
+        column("false/day")
+        column("neighbours false/day")
+        column("within budget")
 
     def cells(sc, near: float | None) -> list[str]:
         near_text = "-" if near is None else f"{near:.2f}"
         if result.with_incidents:
             n = len(sc.detections)
-            return [f"{n - sc.missed}/{n}", f"{sc.false_alarms_per_day:.2f}", near_text] + [
+            return [f"{n - sc.missed}/{n}", f"{sc.false_alerts_per_day:.2f}", near_text] + [
                 tuning._fmt_delay(d["delay_s"]) if d["delay_s"] is not None else "missed" for d in sc.detections
             ]
-        quiet = (near if near is not None else sc.false_alarms_per_day) <= alarm_budget
-        return [f"{sc.false_alarms_per_day:.2f}", near_text, "yes" if quiet else "no"]
+        quiet = (near if near is not None else sc.false_alerts_per_day) <= false_alert_budget
+        return [f"{sc.false_alerts_per_day:.2f}", near_text, "yes" if quiet else "no"]
 
     for rank, row in enumerate(result.rows[:top], 1):
         table.add_row(
-            str(rank), *(str(row.setting.values[k]) for k in keys), *cells(row.score, row.robust_alarms_per_day)
+            str(rank), *(str(row.setting.values[k]) for k in keys), *cells(row.score, row.robust_false_alerts_per_day)
         )
-    if result.best.holdout is not None:
-        h = result.best.holdout
+    if result.best.check_score is not None:
+        h = result.best.check_score
         if result.with_incidents and hinc is None:
-            h_cells = ["-", f"{h.false_alarms_per_day:.2f}", "-"] + ["-"] * len(result.best.score.detections)
+            h_cells = ["-", f"{h.false_alerts_per_day:.2f}", "-"] + ["-"] * len(result.best.score.detections)
         elif result.with_incidents and len(h.detections) != len(result.best.score.detections):
             n = len(h.detections)
-            h_cells = [f"{n - h.missed}/{n}", f"{h.false_alarms_per_day:.2f}", "-"] + ["-"] * len(
+            h_cells = [f"{n - h.missed}/{n}", f"{h.false_alerts_per_day:.2f}", "-"] + ["-"] * len(
                 result.best.score.detections
             )
         else:
             h_cells = cells(h, None)
-        table.add_row("[bold]holdout[/bold]", *(str(result.best.setting.values[k]) for k in keys), *h_cells)
+        table.add_row("[bold]check[/bold]", *(str(result.best.setting.values[k]) for k in keys), *h_cells)
     console.print(table)
+    console.print(
+        "neighbours false/day: the most false alerts per day of the setting and its grid neighbours "
+        "(one step along one numeric key); a setting quiet by luck beside noisy ones ranks lower.",
+        soft_wrap=True,
+    )
+    if result.best.check_score is not None:
+        console.print(
+            f"check: the first row's setting on the check recording {check_recording.name if check_recording else ''}; "
+            "trust the choice only if it holds there.",
+            soft_wrap=True,
+        )
+    for first, last in tuning.ties(result, top):
+        console.print(
+            f"rows {first} to {last} score alike; among them the order is the grid's: values listed "
+            "earlier in the grid (the more alert-prone) come first.",
+            soft_wrap=True,
+        )
+    if result.with_incidents and result.best.score.missed:
+        console.print(
+            f"[bold]No setting detects every incident[/bold]: the first row misses {result.best.score.missed} "
+            f"of {len(result.best.score.detections)}. Try a grid with more alert-prone values.",
+            soft_wrap=True,
+        )
+    if not result.with_incidents and not tuning.meets_budget(result):
+        console.print(
+            f"[bold]No setting meets the budget[/bold] of {false_alert_budget:g} false alerts per day "
+            "(neighbours included); the rows are ordered quietest first, and the snippet holds the quietest, "
+            "which does not meet it. Widen the grid towards less alert-prone values, or raise --false-alert-budget.",
+            soft_wrap=True,
+        )
 
     snippet_path = snippet_out or sibling(recording, ".best.toml")
     snippet_path.write_text(tuning.snippet(result, snippet_path.parent, recording), encoding="utf-8")
-    console.print(f"best setting: {result.best.setting.label()}\nTOML snippet: {snippet_path}")
-    plot_path = plot_out or sibling(recording, ".tune.png")
-    best_cfg = tuning.best_config(result)
-    from watchdog_edge.files.configfile import load_cards
-
-    target = (model or [m.id for m in best_cfg.models])[0]
-    tr = trace(best_cfg, load_cards(best_cfg), result.intake.steps, target)
-    draw(
-        tr,
-        [i for i in (inc or []) if i.get("model") in (None, target)],
-        plot_path,
-        f"{target}: {result.best.setting.label()}",
-        result.intake.start,
-        result.intake.end,
-    )
-    console.print(f"plot: {plot_path}")
+    which = "first row" if not result.with_incidents and not tuning.meets_budget(result) else "best setting"
+    console.print(f"{which}: {result.best.setting.label()}\nTOML snippet: {snippet_path}", soft_wrap=True)
     if results_out:
         data = {
             "recording": str(recording),
@@ -289,13 +321,13 @@ def tune(
             "best": {
                 "setting": result.best.setting.values,
                 **result.best.score.to_dict(),
-                "holdout": result.best.holdout.to_dict() if result.best.holdout else None,
+                "check_recording": result.best.check_score.to_dict() if result.best.check_score else None,
             },
             "rows": [
                 {
                     "setting": r.setting.values,
                     "tightness": r.setting.tightness,
-                    "neighbourhood_alarms_per_day": r.robust_alarms_per_day,
+                    "neighbourhood_false_alerts_per_day": r.robust_false_alerts_per_day,
                     **r.score.to_dict(),
                 }
                 for r in result.rows
@@ -304,8 +336,35 @@ def tune(
         results_out.write_text(json.dumps(data, indent=2, default=str) + "\n", encoding="utf-8")
         console.print(f"results: {results_out}")
 
+    plot_path = plot_out or sibling(recording, ".tune.png")
+    best_cfg = tuning.best_config(result)
+    from watchdog_edge.files.configfile import load_cards
+
+    target = (model or [m.id for m in best_cfg.models])[0]
+    tr = trace(best_cfg, load_cards(best_cfg), result.intake.steps, target)
+    try:
+        draw(
+            tr,
+            [i for i in (inc or []) if i.get("model") in (None, target)],
+            plot_path,
+            f"{target}: {result.best.setting.label()}",
+            result.intake.start,
+            result.intake.end,
+        )
+    except ModuleNotFoundError as e:
+        if not (e.name or "").startswith("matplotlib"):
+            raise
+        console.print(
+            "plot skipped: matplotlib is not installed. The table and the snippet above are complete; "
+            "for the plot, install the extra: pip install 'watchdog-edge[plot]'",
+            soft_wrap=True,
+            markup=False,
+        )
+    else:
+        console.print(f"plot: {plot_path}")
+
 
 def register(app: typer.Typer) -> None:
     """Add ``simulate`` and ``tune`` to the main ``watchdog-edge`` app."""
-    app.command("simulate")(simulate)
-    app.command("tune")(tune)
+    app.command("simulate", cls=PlainCommand)(simulate)
+    app.command("tune", cls=PlainCommand)(tune)

@@ -25,7 +25,10 @@ def run_agent(config: Path, record: Path | None = None, log_level: str = "info")
         return _fail(f"--log-level {log_level!r} is not one of debug, info, warning, error", 2)
     logging.basicConfig(level=level, stream=sys.stderr, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     from watchdog_edge.agent.agent import Agent
+    from watchdog_edge.caution import CAUTION
     from watchdog_edge.files.configfile import load_cards, load_config
+
+    logging.getLogger("watchdog_edge").info("starting with %s. Caution: %s", config, CAUTION)
 
     try:
         cfg = load_config(config)

@@ -1,6 +1,6 @@
 """Alert states: every rule that turns check levels into raised and cleared alerts.
 
-How a check's level moves (up at once, down after ``clear_after`` calm evaluations, critical
+How a check's level moves (up at once, down after ``clear_after_evaluations`` calm evaluations, critical
 stepping down to warning by the same rule) is the one rule of ``watchdog_edge.core.levels``,
 which every check uses and this module owns. The rules below start from those levels.
 

@@ -6,6 +6,7 @@ from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from watchdog_edge.core.validation import format_validation as _format_validation
 from watchdog_edge.errors import CardError
 
 CARD_FORMAT = 1
@@ -54,7 +55,7 @@ class Histogram(_Strict):
 
 
 class FeatureProfile(_Strict):
-    """Training envelope and histogram of one input feature."""
+    """Training range (min, max) and histogram of one input feature."""
 
     min: float
     max: float
@@ -80,7 +81,9 @@ class ModelCard(_Strict):
     model_version: str | None = None
     loss: LossKind = "squared"
     training: LossFigure
-    fitted_parameters: int = Field(ge=0)
+    fitted_parameters: int | None = Field(
+        None, ge=0, description="Fitted parameters d; needed for the final prediction error only (null: not given)."
+    )
     least_squares: bool = False
     holdout: LossFigure | None = None
     features: dict[str, FeatureProfile] = Field(default_factory=dict)
@@ -115,6 +118,12 @@ def expected_loss(card: ModelCard) -> tuple[float, str]:
     if card.holdout is not None:
         return card.holdout.loss, "holdout"
     if card.loss == "squared" and card.least_squares:
+        if card.fitted_parameters is None:
+            raise CardError(
+                f"card for model '{card.model_id}' has no 'holdout' loss and no fitted_parameters: the final "
+                "prediction error needs the count of fitted parameters; add fitted_parameters, or a 'holdout' loss "
+                "(build the card with --params D, or with --holdout HOLDOUT.csv)"
+            )
         return (
             final_prediction_error(card.training.loss, card.training.count, card.fitted_parameters),
             "fpe",
@@ -128,22 +137,8 @@ def expected_loss(card: ModelCard) -> tuple[float, str]:
 
 
 def format_validation(e: ValidationError) -> str:
-    """One line per problem: the dotted key, the value given and the rule broken."""
-    lines = []
-    for err in e.errors():
-        key = ".".join(str(p) for p in err["loc"]) or "(top level)"
-        value = err.get("input")
-        shown = repr(value) if not isinstance(value, dict) else "{...}"
-        if len(shown) > 60:
-            shown = shown[:57] + "..."
-        msg = err["msg"]
-        if err["type"] == "missing":
-            lines.append(f"  {key}: required but missing")
-        elif err["type"] == "extra_forbidden":
-            lines.append(f"  {key}: unknown key (value {shown}); check the spelling")
-        else:
-            lines.append(f"  {key} = {shown}: {msg}")
-    return "\n".join(lines)
+    """One line per problem: the dotted key, the value given and the rule broken (see ``validation``)."""
+    return _format_validation(e)
 
 
 def expected_loss_df(card: ModelCard, source: str) -> float:
@@ -161,4 +156,5 @@ def expected_loss_df(card: ModelCard, source: str) -> float:
     """
     if source == "holdout" and card.holdout is not None:
         return float(card.holdout.count)
-    return float(max(1, card.training.count - card.fitted_parameters))
+    d = card.fitted_parameters if card.fitted_parameters is not None else 0
+    return float(max(1, card.training.count - d))

@@ -123,7 +123,7 @@ class ModelTrack:
             loss_kind=card.loss,
             expected_loss=exp,
             expected_source=source,
-            window_size=settings.window.size,
+            window_size=settings.window.size_pairs,
             window_max_age_s=settings.window.max_age_s,
             min_pairs=settings.window.min_pairs,
         )
@@ -296,7 +296,7 @@ class Monitor:
                 raise ConfigError(f"models[{m.id}].card: no model card was given for model {m.id!r}")
             self.parsers[(m.id, "prediction")] = RecordParser(m.id, "prediction", m.fields.prediction_map())
             self.parsers[(m.id, "truth")] = RecordParser(m.id, "truth", m.fields.truth_map())
-            self.pairers[m.id] = Pairer(m.pairing.horizon_s, m.pairing.max_unpaired)
+            self.pairers[m.id] = Pairer(m.pairing.horizon_s, m.pairing.max_unpaired_records)
             self.tracks[m.id] = ModelTrack(self.agent, m, cards[m.id])
             pairer, track = self.pairers[m.id], self.tracks[m.id]
             routes.append(
@@ -612,7 +612,7 @@ class Monitor:
         return list(self.tracks)
 
     def state(self, model: str) -> dict[str, Any]:
-        """Every check's state and latest figures for one model."""
+        """Every check's level and latest figures for one model."""
         st = self.tracks[model].state()
         st["pairing"] = dict(self.pairers[model].counts)
         st["pending"] = self.pairers[model].pending

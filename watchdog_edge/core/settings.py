@@ -1,7 +1,8 @@
 """The TOML config: agent, broker and per-model settings, validated on load.
 
 An error names the key, the value and the rule, for example
-``models[0].window.size = 0: Input should be greater than or equal to 2``.
+``models[0] (id 'pump').window.size_pairs = 0: Input should be greater than or equal to 2``.
+A key that was renamed is refused with its new name (``renames.CONFIG_RENAMES``).
 """
 
 from __future__ import annotations
@@ -13,7 +14,9 @@ from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError,
 
 import watchdog_edge.core.checks as registry
 from watchdog_edge.core.parsing import FieldMap
+from watchdog_edge.core.renames import CONFIG_RENAMES, renamed_messages
 from watchdog_edge.core.topics import validate_filter, validate_level
+from watchdog_edge.core.validation import error_lines, nested_error
 from watchdog_edge.errors import ConfigError
 
 
@@ -37,7 +40,7 @@ class AgentSettings(_Strict):
     journal_batch_ms: float = Field(
         20.0, gt=0, le=1000, description="Longest wait before a journal batch commits and acks."
     )
-    journal_batch_max: int = Field(
+    journal_batch_max_messages: int = Field(
         10, ge=1, le=1000, description="Messages per journal batch at most (keep below the broker's inflight window)."
     )
     sqlite_synchronous: Literal["NORMAL", "FULL"] = Field(
@@ -80,7 +83,7 @@ class BrokerSettings(_Strict):
     client_id: str | None = Field(
         None, description="Fixed client id of the persistent session; default watchdog-edge-<agent name>."
     )
-    keepalive: int = Field(30, ge=5, le=65535)
+    keepalive_s: int = Field(30, ge=5, le=65535, description="MQTT keepalive: seconds between pings when idle.")
     session_expiry_s: int = Field(7 * 86400, ge=0, description="MQTT 5 session expiry interval.")
     username: str | None = None
     password_file: str | None = None
@@ -94,6 +97,66 @@ class BrokerSettings(_Strict):
     def _one_password_source(self) -> BrokerSettings:
         if self.password_file and self.password_env:
             raise ValueError("give password_file or password_env, not both")
+        return self
+
+
+class JetStreamSettings(_Strict):
+    """The JetStream workers (``watchdog-edge jetstream run``): servers, streams, buckets, partitions."""
+
+    servers: list[str] = Field(
+        default_factory=lambda: ["nats://127.0.0.1:4222"], min_length=1, description="NATS server URLs."
+    )
+    subject_prefix: str = Field(
+        "wd", description="First token of the partition subjects (PREFIX.in.<partition>.m.<topic>) and alert subjects."
+    )
+    partitions: int = Field(8, ge=1, le=1024, description="Partitions of the models (the server's mapping uses it).")
+    input_stream: str = Field("WATCHDOG_IN", description="Stream holding the partitioned inbound messages.")
+    alert_stream: str = Field("WATCHDOG_ALERTS", description="Stream the alerts are published to.")
+    dead_letter_stream: str = Field(
+        "WATCHDOG_DEAD",
+        description="Stream of the bad records, bounded by agent.dead_letter_max_count and agent.dead_letter_max_bytes.",
+    )
+    durable_prefix: str = Field("watchdog-p", description="Durable consumer names: this and the partition number.")
+    snapshot_bucket: str = Field("watchdog_snapshots", description="Key-value bucket of the per-partition snapshots.")
+    state_bucket: str = Field("watchdog_state", description="Key-value bucket of the retained state per model.")
+    lease_bucket: str = Field("watchdog_leases", description="Key-value bucket of partition leases and live workers.")
+    start_timeout_s: float = Field(
+        10.0, gt=0, description="A worker that reaches no server within this long at start exits with status 3."
+    )
+    replicas: int = Field(1, ge=1, le=5, description="Replicas of the streams and buckets the workers create.")
+    create_streams: bool = Field(True, description="Create missing streams and buckets at start.")
+    input_max_age_s: float = Field(7 * 86400.0, gt=0, description="How long the input stream keeps messages.")
+    alert_duplicate_window_s: float = Field(
+        600.0, gt=0, description="The alert stream's duplicate window: a re-sent alert id within it is dropped."
+    )
+    lease_s: float = Field(
+        6.0, ge=0.5, le=600, description="A partition lease lapses this long after its worker stops renewing it."
+    )
+    snapshot_every_messages: int = Field(
+        5000, ge=1, description="Snapshot a partition (then acknowledge) after this many messages at most."
+    )
+    snapshot_every_s: float = Field(10.0, gt=0, description="... or after this long, whichever comes first.")
+    fetch_batch_messages: int = Field(2000, ge=1, le=10000, description="Messages asked for in one pull request.")
+    mirror_alerts_to_mqtt: bool = Field(
+        True, description="Also publish each alert on broker.topics.alerts, which the server's MQTT listener serves."
+    )
+
+    @field_validator("subject_prefix")
+    @classmethod
+    def _prefix(cls, v: str) -> str:
+        if not v or any(c in v for c in " .*>/\t"):
+            raise ValueError("subject_prefix must be one subject token: no spaces, '.', '*', '>' or '/'")
+        return v
+
+    @model_validator(mode="after")
+    def _windows(self) -> JetStreamSettings:
+        # A worker that takes a partition over re-sends alerts of at most one snapshot period
+        # and one lease: the duplicate window must cover that, or a re-send could slip through.
+        if self.alert_duplicate_window_s < 2 * (self.snapshot_every_s + self.lease_s):
+            raise ValueError(
+                f"alert_duplicate_window_s ({self.alert_duplicate_window_s}) must be at least twice "
+                f"snapshot_every_s + lease_s ({2 * (self.snapshot_every_s + self.lease_s)}); raise it"
+            )
         return self
 
 
@@ -128,20 +191,22 @@ class PairingSettings(_Strict):
     horizon_s: float = Field(
         7200.0, gt=0, description="How long an unpaired prediction or truth waits for its other half."
     )
-    max_unpaired: int = Field(
+    max_unpaired_records: int = Field(
         20000, ge=1, description="Unpaired records kept at most; the oldest is evicted and counted."
     )
 
 
 class WindowSettings(_Strict):
-    size: int = Field(500, ge=2, description="Live window: the last N pairs.")
+    size_pairs: int = Field(500, ge=2, description="Live window: the last N pairs.")
     max_age_s: float | None = Field(None, gt=0, description="Also drop pairs older than this (core time).")
     min_pairs: int = Field(100, ge=2, description="Pairs needed before the first evaluation.")
 
     @model_validator(mode="after")
     def _min_le_size(self) -> WindowSettings:
-        if self.min_pairs > self.size:
-            raise ValueError(f"min_pairs ({self.min_pairs}) must not exceed size ({self.size})")
+        if self.min_pairs > self.size_pairs:
+            raise ValueError(
+                f"min_pairs ({self.min_pairs}) must not exceed size_pairs ({self.size_pairs}); lower one or raise the other"
+            )
         return self
 
 
@@ -201,11 +266,11 @@ class ModelSettings(_Strict):
     @classmethod
     def _resolve_checks(cls, raw: Any) -> dict[str, Any]:
         if not isinstance(raw, dict):
-            raise ValueError("checks must be a table of check name -> settings")
+            raise ValueError("must be a table of check name -> settings, e.g. [models.checks.gap]")
         known = registry.registered()
         unknown = [k for k in raw if k not in registry.CHECK_NAMES]
         if unknown:
-            raise ValueError(f"unknown check {unknown[0]!r}; known checks are {', '.join(registry.CHECK_NAMES)}")
+            raise ValueError(f"unknown check {unknown[0]!r}; use one of {', '.join(registry.CHECK_NAMES)}")
         resolved: dict[str, Any] = {}
         for name in known:
             cls_ = registry.settings_class(name)
@@ -216,18 +281,16 @@ class ModelSettings(_Strict):
             if given is None:
                 given = {} if registry.default_on(name) else {"enabled": False}
             if not isinstance(given, dict):
-                raise ValueError(f"checks.{name} must be a table")
+                raise ValueError(f"{name} must be a table, e.g. [models.checks.{name}]")
             try:
                 resolved[name] = cls_.model_validate(given)
             except ValidationError as e:
-                detail = "; ".join(
-                    f"checks.{name}.{'.'.join(str(p) for p in err['loc'])} = {err.get('input')!r}: {err['msg']}"
-                    for err in e.errors()
-                )
-                raise ValueError(detail) from None
+                raise nested_error(e, name) from None
         missing = [k for k in raw if k not in known]
         if missing:
-            raise ValueError(f"check {missing[0]!r} is not available in this installation")
+            raise ValueError(
+                f"check {missing[0]!r} is not available in this installation; install river, or set enabled = false"
+            )
         return resolved
 
     def enabled_checks(self) -> list[str]:
@@ -239,6 +302,7 @@ class Config(_Strict):
 
     agent: AgentSettings = AgentSettings()
     broker: BrokerSettings = BrokerSettings()
+    jetstream: JetStreamSettings = JetStreamSettings()
     models: list[ModelSettings] = Field(min_length=1)
     _base_dir: Path = PrivateAttr(default_factory=Path.cwd)
 
@@ -247,7 +311,7 @@ class Config(_Strict):
         seen: set[str] = set()
         for m in self.models:
             if m.id in seen:
-                raise ValueError(f"model id {m.id!r} appears twice; each [[models]] needs its own id")
+                raise ValueError(f"model id {m.id!r} appears twice; give each [[models]] entry its own id")
             seen.add(m.id)
         return self
 
@@ -267,40 +331,22 @@ class Config(_Strict):
         raise KeyError(model_id)
 
 
-def _pretty_loc(loc: tuple, data: dict) -> str:
-    parts: list[str] = []
-    cur: Any = data
-    for p in loc:
-        if isinstance(p, int):
-            label = f"[{p}]"
-            if isinstance(cur, list) and p < len(cur) and isinstance(cur[p], dict) and "id" in cur[p]:
-                label = f"[{p}] (id {cur[p]['id']!r})"
-            parts.append(label)
-            cur = cur[p] if isinstance(cur, list) and p < len(cur) else None
-        else:
-            parts.append(("." if parts else "") + str(p))
-            cur = cur.get(p) if isinstance(cur, dict) else None
-    return "".join(parts) or "(top level)"
-
-
 def parse_config(data: dict[str, Any], base_dir: Path | None = None, source: str = "config") -> Config:
-    """Validate a config held in memory; paths resolve against ``base_dir``."""
+    """Validate a config held in memory; paths resolve against ``base_dir``.
+
+    >>> parse_config({"broker": {"keepalive": 30}, "models": []})
+    Traceback (most recent call last):
+    ...
+    watchdog_edge.errors.ConfigError: config is invalid:
+      broker.keepalive = 30: this key was renamed; write broker.keepalive_s instead
+    """
+    renamed = renamed_messages(data, CONFIG_RENAMES)
+    if renamed:
+        raise ConfigError(f"{source} is invalid:\n" + "\n".join("  " + line for line in renamed))
     try:
         cfg = Config.model_validate(data)
     except ValidationError as e:
-        lines = []
-        for err in e.errors():
-            key = _pretty_loc(err["loc"], data)
-            msg = err["msg"].removeprefix("Value error, ")
-            if err["type"] == "missing":
-                lines.append(f"  {key}: required but missing")
-            elif err["type"] == "extra_forbidden":
-                lines.append(f"  {key}: unknown key; check the spelling (value {err.get('input')!r})")
-            else:
-                value = err.get("input")
-                shown = "{...}" if isinstance(value, dict) else repr(value)
-                lines.append(f"  {key} = {shown}: {msg}")
-        raise ConfigError(f"{source} is invalid:\n" + "\n".join(lines)) from None
+        raise ConfigError(f"{source} is invalid:\n" + "\n".join("  " + line for line in error_lines(e, data))) from None
     cfg._base_dir = (base_dir or Path.cwd()).resolve()
     return cfg
 

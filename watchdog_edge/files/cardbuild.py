@@ -1,4 +1,4 @@
-"""Building a model card from training rows: losses, envelope, quantile histograms, hold-out.
+"""Building a model card from training rows: losses, training range, quantile histograms, hold-out.
 
 ``card_from_arrays`` does the computation; ``build_card`` reads the rows from CSV files first;
 ``render_card`` shows a card as text. Row numbers in messages count as a spreadsheet does: the
@@ -71,7 +71,7 @@ def card_from_arrays(
     x: dict[str, np.ndarray],
     y: np.ndarray,
     yhat: np.ndarray,
-    params: int,
+    params: int | None,
     loss: str = "squared",
     least_squares: bool = True,
     holdout: tuple[np.ndarray, np.ndarray] | None = None,
@@ -81,14 +81,22 @@ def card_from_arrays(
 ) -> ModelCard:
     """A card from training arrays (NaN = missing feature); ``holdout`` is ``(truth, prediction)``."""
     _check_loss(loss)
-    if params < 0:
-        raise CardError(f"fitted parameters must be a count >= 0, got {params}")
+    if params is not None and params < 0:
+        raise CardError(
+            f"--params {params}: fitted parameters must be a count >= 0; give the model's coefficient count"
+        )
     if bins < 1:
         raise CardError(f"bins must be at least 1, got {bins}")
     y = np.asarray(y, dtype=float)
     if y.size < 2:
         raise DataError(f"need at least 2 training rows, got {y.size}")
-    if loss == "squared" and least_squares and holdout is None and y.size <= params:
+    if loss == "squared" and least_squares and holdout is None and params is None:
+        raise CardError(
+            "--params is missing: with least squares and no hold-out rows the expected loss is the final "
+            "prediction error, which needs the number of fitted parameters; give --params D, or hold-out rows "
+            "with --holdout HOLDOUT.csv"
+        )
+    if loss == "squared" and least_squares and holdout is None and params is not None and y.size <= params:
         raise DataError(
             f"{y.size} training rows for {params} fitted parameters: the final prediction error needs "
             "more rows than parameters (N > d); give hold-out rows (--holdout) or more training rows"
@@ -164,6 +172,12 @@ def read_table(path: str | Path, numeric: Collection[str] | None = None) -> tupl
     if not rows or not any(c.strip() for c in rows[0]):
         raise DataError(f"{p} has no header row; row 1 must name the columns")
     header = [h.strip() for h in rows[0]]
+    if len(header) == 1 and ";" in header[0]:
+        raise DataError(
+            f"{p}: the header (row 1) reads as one column {header[0]!r}: the columns seem to be separated by "
+            "';', and a CSV here is separated by ','; save the file with ',' between columns (and '.' as the "
+            "decimal mark)"
+        )
     for i, name in enumerate(header):
         if not name:
             raise DataError(f"{p}: column {i + 1} of the header (row 1) has no name")
@@ -245,7 +259,7 @@ def build_card(
     *,
     target: str,
     prediction: str,
-    params: int,
+    params: int | None = None,
     features: Sequence[str] | None = None,
     loss: str = "squared",
     least_squares: bool = True,
@@ -304,7 +318,7 @@ def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> s
         f"  version            {card.model_version or '(none)'}",
         f"  loss kind          {card.loss} error",
         f"  training loss      {card.training.loss:{g}} over {card.training.count} rows",
-        f"  fitted parameters  {card.fitted_parameters}",
+        f"  fitted parameters  {card.fitted_parameters if card.fitted_parameters is not None else '(not given)'}",
         f"  least squares      {'yes' if card.least_squares else 'no'}",
     ]
     if card.holdout:
@@ -319,9 +333,9 @@ def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> s
         if source == "holdout":
             how = "the held-out loss"
         else:
-            n, d = card.training.count, card.fitted_parameters
+            n, d = card.training.count, card.fitted_parameters or 0
             how = (
-                f"the final prediction error, training loss x (N + d) / (N - d) = "
+                f"the training loss corrected for fitting (final prediction error), training loss x (N + d) / (N - d) = "
                 f"{card.training.loss:{g}} x ({n} + {d}) / ({n} - {d})"
             )
         lines.append(f"  expected in field  {value:{g}}, from {how}")

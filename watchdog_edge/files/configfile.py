@@ -32,7 +32,12 @@ def load_cards(cfg: Config) -> dict[str, ModelCard]:
         try:
             cards[m.id] = load_card(cfg.resolve(m.card))
         except CardError as e:
-            raise ConfigError(f"models[{m.id}].card = {m.card!r}: {e}") from None
+            hint = (
+                "; give the card's path relative to the config file, or build it with 'watchdog-edge card build'"
+                if "not found" in str(e)
+                else ""
+            )
+            raise ConfigError(f"models[{m.id}].card = {m.card!r}: {e}{hint}") from None
     return cards
 
 

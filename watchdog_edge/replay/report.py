@@ -8,6 +8,21 @@ from typing import Any
 from rich.console import Console
 from rich.table import Table
 
+# Where the expected loss comes from, in words for screens; JSON and alerts keep the short code.
+SOURCE_WORDS = {
+    "holdout": "held-out loss",
+    "fpe": "training loss corrected for fitting (final prediction error)",
+}
+
+
+def source_words(source: str) -> str:
+    """The expected loss's source as a screen says it.
+
+    >>> source_words("fpe")
+    'training loss corrected for fitting (final prediction error)'
+    """
+    return SOURCE_WORDS.get(source, source)
+
 
 def _num(x: Any) -> str:
     if x is None or (isinstance(x, float) and math.isnan(x)):
@@ -43,7 +58,7 @@ def print_summary(monitor, console: Console) -> None:
                 f"{_num(gap['live_loss'])}  ({pct}% bounds {_num(gap['lower'])} .. {_num(gap['upper'])}, "
                 f"last {gap['pairs']} pairs)",
             )
-        t.add_row("expected loss", f"{_num(st['expected_loss'])}  (from {st['expected_source']})")
+        t.add_row("expected loss", f"{_num(st['expected_loss'])}  (from the {source_words(st['expected_source'])})")
         if gap.get("warning_limit") is not None:
             t.add_row("limits", f"warning {_num(gap['warning_limit'])}, critical {_num(gap['critical_limit'])}")
         for name, c in st["checks"].items():
@@ -58,6 +73,17 @@ def print_summary(monitor, console: Console) -> None:
             f"evicted {pc['evicted_predictions']} / {pc['evicted_truths']}",
         )
         console.print(t)
+        if pc["expired_predictions"]:
+            horizon = monitor.config.model(m).pairing.horizon_s
+            console.print(
+                f"{pc['expired_predictions']} predictions expired: no truth came for them within "
+                f"pairing.horizon_s = {horizon:g} s. Truths are sparser than predictions here "
+                f"({pc['truths']} truths for {pc['predictions']} predictions): a prediction whose truth "
+                "never comes waits that long and expires. That is expected; only pairs are scored."
+                if pc["truths"] < pc["predictions"]
+                else f"{pc['expired_predictions']} predictions expired: no truth came for them within "
+                f"pairing.horizon_s = {horizon:g} s; if truths come later than that, raise it.",
+            )
     bad = status["bad"]
     if bad:
         console.print("bad records by reason: " + ", ".join(f"{k} {v}" for k, v in sorted(bad.items())))

@@ -7,14 +7,14 @@ from the pair's features, its loss (the card's loss kind) is taken, and then it 
 truth. A learner that cannot predict yet (or gives a non-finite value) is scored on the running
 mean of the truths.
 
-Every ``evaluate_every`` scored pairs, over the last ``window`` scored pairs, each learner's
+Every ``evaluate_every_pairs`` scored pairs, over the last ``recent_pairs`` scored pairs, each learner's
 losses are compared with the model's by a one-sided Diebold-Mariano test on the differences
 (model loss - learner loss; Newey-West long-run variance, Harvey-Leybourne-Newbold correction,
 Student t with n - 1 degrees of freedom; see ``watchdog_edge.core.stats.diebold_mariano``). The check
 raises when some learner is better with p < 1 - ``confidence`` and by a margin
 1 - learner loss / model loss of at least ``margin`` (critical from ``critical_margin``), and
 clears when no learner has been better, by ``margin`` x (1 - ``hysteresis``), for
-``clear_after`` evaluations in a row.
+``clear_after_evaluations`` evaluations in a row.
 
 Inputs: a missing feature (null or absent) is imputed by the mean of its earlier observed
 values (0 before any) and counted; a feature name never seen before simply joins the inputs.
@@ -57,7 +57,7 @@ class BaselineSettings(CheckSettings):
     """Settings of ``baseline`` (opt-in; uses river).
 
     >>> s = BaselineSettings(learners=["mean", "tree"], learn_share=0.5)
-    >>> s.confidence, s.margin, s.window
+    >>> s.confidence, s.margin, s.recent_pairs
     (0.99, 0.1, None)
     """
 
@@ -75,17 +75,17 @@ class BaselineSettings(CheckSettings):
     critical_margin: float | None = Field(
         None, gt=0, lt=1, description="Critical when the margin is at least this (null: warning only)."
     )
-    window: int | None = Field(
-        None, ge=30, le=100_000, description="Latest scored pairs compared (null: the model's window size)."
+    recent_pairs: int | None = Field(
+        None, ge=30, le=100_000, description="Latest scored pairs compared (null: the model's window.size_pairs)."
     )
     min_pairs: int = Field(200, ge=20, description="Scored pairs needed in the window before the first test.")
-    evaluate_every: int = Field(
+    evaluate_every_pairs: int = Field(
         200, ge=1, description="Scored pairs between tests (a slow signal: each test costs about 0.1 ms per learner)."
     )
     hysteresis: float = Field(
         0.5, ge=0, lt=1, description="Clear only when no learner is better by margin x (1 - this) with confidence."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
     learn_share: float = Field(
         1.0, gt=0, le=1, description="Share of pairs the learners use, chosen by a hash of the pair id."
     )
@@ -105,8 +105,8 @@ class BaselineSettings(CheckSettings):
     def _order(self) -> BaselineSettings:
         if self.critical_margin is not None and self.critical_margin < self.margin:
             raise ValueError(f"critical_margin ({self.critical_margin}) must be >= margin ({self.margin})")
-        if self.window is not None and self.min_pairs > self.window:
-            raise ValueError(f"min_pairs ({self.min_pairs}) must be <= window ({self.window})")
+        if self.recent_pairs is not None and self.min_pairs > self.recent_pairs:
+            raise ValueError(f"min_pairs ({self.min_pairs}) must be <= recent_pairs ({self.recent_pairs})")
         return self
 
 
@@ -170,9 +170,9 @@ class BaselineCheck(Check[BaselineSettings]):
     def __init__(self, settings: BaselineSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
         self.names: tuple[str, ...] = tuple(settings.learners)
-        self.size = settings.window if settings.window is not None else context.window_size
+        self.size = settings.recent_pairs if settings.recent_pairs is not None else context.window_size
         self.min_pairs = min(settings.min_pairs, self.size)
-        self._every = settings.evaluate_every
+        self._every = settings.evaluate_every_pairs
         self._absolute = context.loss_kind == "absolute"
         self.learners = {n: make_learner(n, settings.seed) for n in self.names}
         self._order = [self.learners[n] for n in self.names]
@@ -190,7 +190,7 @@ class BaselineCheck(Check[BaselineSettings]):
         self._tokens: float | None = None
         self._tokens_t = 0.0
         self._n_scored = self._n_no_features = self._n_skip_share = self._n_skip_rate = self._n_imputed = 0
-        self._rule = LevelRule(settings.clear_after)
+        self._rule = LevelRule(settings.clear_after_evaluations)
         self.reset()
 
     def reset(self) -> None:

@@ -20,7 +20,7 @@ integrated autocorrelation time (half the block) instead.
 
 When the detector reports a change, the change point is estimated on the segment the detector
 itself was looking at (river's detectors start afresh after each detection, so the pairs since
-the previous one; at most ``history`` pairs) as the split into two means with the least
+the previous one; at most ``history_pairs`` pairs) as the split into two means with the least
 residual sum of squares (the maximum-likelihood change point of a normal mean shift, Hinkley
 1970; from memory), keeping at least 5 pairs on each side. Starting the segment at our own
 previous change point instead kept an old burst in it, so that a later lasting rise was split
@@ -30,10 +30,10 @@ The check reacts to rises only: it raises when the mean loss after the change po
 limit as well (a rise that ends within the limit would clear at once). Falls are counted only.
 
 Clearing, per ``clear_on``:
-- ``recovery``: the mean loss of the pairs since the change point (the last ``window_size`` of
+- ``recovery``: the mean loss of the pairs since the change point (the last ``window.size_pairs`` of
   them, and at least ``min_pairs`` of them) is at or below expected x (1 + ``warning_tolerance``)
-  x (1 - ``hysteresis``) for ``clear_after`` evaluations in a row (the one
-  level rule of ``core/levels.py``, on the live mean), evaluations every ``evaluate_every`` pairs;
+  x (1 - ``hysteresis``) for ``clear_after_evaluations`` evaluations in a row (the one
+  level rule of ``core/levels.py``, on the live mean), evaluations every ``evaluate_every_pairs`` pairs;
 - ``hold``: ``hold_s`` seconds of core time after the latest raising change.
 
 river is imported only when a DriftCheck is built, never by importing this module. The
@@ -111,8 +111,8 @@ class DriftSettings(CheckSettings):
     hysteresis: float = Field(
         0.1, ge=0, lt=1, description="Clear only when the mean loss is at or below the warning limit x (1 - this)."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
-    evaluate_every: int = Field(10, ge=1, description="Pairs between evaluations of the clearing rule.")
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    evaluate_every_pairs: int = Field(10, ge=1, description="Pairs between evaluations of the clearing rule.")
     block_pairs: int = Field(
         0,
         ge=0,
@@ -122,7 +122,7 @@ class DriftSettings(CheckSettings):
     calibration_pairs: int = Field(
         500, ge=50, le=100_000, description="Pairs looked at to choose block_pairs when it is 0."
     )
-    history: int = Field(
+    history_pairs: int = Field(
         2000,
         ge=100,
         le=1_000_000,
@@ -234,8 +234,8 @@ class DriftCheck(Check[DriftSettings]):
         self._chosen = s.block_pairs  # 0 until chosen from the first calibration_pairs pairs
         self._block = s.block_pairs if s.detector == "adwin" else min(1, s.block_pairs)  # pairs per input
         self._auto = s.block_pairs == 0
-        first = min(self.min_pairs, s.calibration_pairs, s.history)
-        self._calibrate_at = {first, min(s.calibration_pairs, s.history)} if self._auto else set()
+        first = min(self.min_pairs, s.calibration_pairs, s.history_pairs)
+        self._calibrate_at = {first, min(s.calibration_pairs, s.history_pairs)} if self._auto else set()
         self._quiet = False
         self._detector = _detector(s, max(1, self._chosen))
         self._acc = 0.0  # sum of the ratios of the block being filled
@@ -245,9 +245,9 @@ class DriftCheck(Check[DriftSettings]):
         self._seq = 0
         self._segment_start = 0
         # (seq, t, ts, loss, ratio) of the latest pairs
-        self._history: deque[tuple[int, float, float | None, float, float]] = deque(maxlen=s.history)
+        self._history: deque[tuple[int, float, float | None, float, float]] = deque(maxlen=s.history_pairs)
         self._since_change = LossWindow(self.context.window_size, self.context.window_max_age_s)
-        self._rule = LevelRule(s.clear_after)
+        self._rule = LevelRule(s.clear_after_evaluations)
         self._pending = False
         self._raised_t: float | None = None
         self._since_eval = 0
@@ -347,7 +347,7 @@ class DriftCheck(Check[DriftSettings]):
             and not before * (1 + self.settings.min_rise) <= float(losses[k:].mean())
         ):
             # The detector's kept window is longer than our history, and within the history
-            # no split shows the rise it saw: the change is older than the latest ``history``
+            # no split shows the rise it saw: the change is older than the latest ``history_pairs``
             # pairs. The mean before it is then the part the detector dropped (clipped ratios
             # x the expected loss), and the change point the oldest pair we hold.
             k = 0
@@ -400,7 +400,7 @@ class DriftCheck(Check[DriftSettings]):
             self._rule.reset()  # the hold ran out: the evidence ends by itself
             self._update_figures()
             return Verdict("normal", self._hold_summary(), dict(self._figures))
-        if self._since_eval < s.evaluate_every:
+        if self._since_eval < s.evaluate_every_pairs:
             return None
         self._since_eval = 0
         w = self._since_change
@@ -497,7 +497,7 @@ class DriftCheck(Check[DriftSettings]):
         self._win_n = int(data.get("win_n", 0))
         self._seq = int(data["seq"])
         self._segment_start = int(data["segment_start"])
-        self._history = deque((tuple(h) for h in data["history"]), maxlen=self.settings.history)
+        self._history = deque((tuple(h) for h in data["history"]), maxlen=self.settings.history_pairs)
         self._since_change.restore(data["since_change"])
         self._rule.restore(
             {"level": data["level"], "calm_run": data["clear_run"], "calm_top": data.get("calm_top", "normal")}

@@ -58,8 +58,8 @@ class GapSettings(CheckSettings):
     hysteresis: float = Field(
         0.1, ge=0, lt=1, description="Clear only when the upper bound is below the warning limit x (1 - this)."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
-    evaluate_every: int = Field(10, ge=1, description="Pairs between evaluations of the interval.")
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    evaluate_every_pairs: int = Field(10, ge=1, description="Pairs between evaluations of the interval.")
     card_uncertainty: bool = Field(
         True,
         description="Widen the lower bound for the card's own degrees of freedom (held-out count, or N - d).",
@@ -89,7 +89,7 @@ class GapCheck(Check[GapSettings]):
     >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 100}, fitted_parameters=2,
     ...                  holdout={"loss": 1.0, "count": 50})
     >>> ctx = CheckContext("m", card, "squared", 1.0, "holdout", window_size=50, min_pairs=50)
-    >>> gap = GapCheck(GapSettings(evaluate_every=1), ctx)
+    >>> gap = GapCheck(GapSettings(evaluate_every_pairs=1), ctx)
     >>> for i in range(50):
     ...     err = 3.0 if i % 2 else -3.0            # squared error 9, nine times the expected 1
     ...     due = gap.on_pair(Pair(Prediction("m", str(i), 0.0, i), Truth("m", str(i), err, i), i), err * err)
@@ -120,7 +120,7 @@ class GapCheck(Check[GapSettings]):
             expected_loss_df(context.card, context.expected_source) if settings.card_uncertainty else math.inf
         )
         self.gross_threshold = self.warning_limit * settings.gross_multiple
-        self._rule = LevelRule(settings.clear_after)
+        self._rule = LevelRule(settings.clear_after_evaluations)
         self.reset()
 
     def reset(self) -> None:
@@ -149,27 +149,29 @@ class GapCheck(Check[GapSettings]):
         burst = False
         if loss > self.gross_threshold:
             self._gross.append(self._seq)
-            # A burst: evaluate now, not at the next multiple of evaluate_every.
+            # A burst: evaluate now, not at the next multiple of evaluate_every_pairs.
             burst = self._rule.level == "normal" and self._gross_run() >= self.settings.gross_min_pairs
         if self._evaluated and self._rule.level == "normal":
             self._clean_pairs += 1
             if self._clean_pairs >= self.context.window_size:
                 self._healthy_seen = True
         # Between evaluations nothing is due, unless an age bound may drop pairs.
-        return burst or self._since_eval >= self.settings.evaluate_every or self.context.window_max_age_s is not None
+        return (
+            burst or self._since_eval >= self.settings.evaluate_every_pairs or self.context.window_max_age_s is not None
+        )
 
     def evaluate(self, t: float) -> Verdict | None:
         if self.context.window_max_age_s is not None:
             before = len(self.window)
             self.window.expire(t)
             if len(self.window) != before:
-                self._since_eval = max(self._since_eval, self.settings.evaluate_every)
+                self._since_eval = max(self._since_eval, self.settings.evaluate_every_pairs)
         if len(self.window) < self.min_pairs:
             return None
         s = self.settings
         mean = self.window.mean()
         gross = self._gross_run() >= s.gross_min_pairs and mean > self.warning_limit
-        if self._since_eval < s.evaluate_every and not (gross and self._rule.level == "normal"):
+        if self._since_eval < s.evaluate_every_pairs and not (gross and self._rule.level == "normal"):
             return None
         self._since_eval = 0
         self._evaluated = True

@@ -1,12 +1,12 @@
-"""``range``: predictions made on inputs outside the training envelope (extrapolation).
+"""``range``: predictions made on inputs outside the training range (extrapolation).
 
 Each prediction's features are compared with the card's per-feature ``min`` and ``max``, widened
-on each side by ``margin`` x (max - min). Over the last ``window`` predictions that carry
+on each side by ``margin`` x (max - min). Over the last ``recent_predictions`` predictions that carry
 features, the share of those with at least one input outside is the figure that raises and
 clears; the check keeps only the outside ones (with their place in the stream), so a
-prediction inside the envelope costs a comparison per feature and nothing more. Needs no
+prediction inside the training range costs a comparison per feature and nothing more. Needs no
 truth. The figures give, per feature outside in the window, how many predictions were
-outside and the largest distance below ``low`` and above ``high`` (the envelope's edges), in
+outside and the largest distance below ``low`` and above ``high`` (the training range's edges), in
 the feature's own units.
 
 A feature that is null or absent in a prediction is not outside (``shift`` counts missing
@@ -16,6 +16,7 @@ all is not counted.
 
 from __future__ import annotations
 
+import math
 from collections import deque
 from typing import Any
 
@@ -26,55 +27,70 @@ from watchdog_edge.core.levels import LevelGate
 from watchdog_edge.core.records import Prediction
 
 
+def distance(x: float) -> str:
+    """A distance in a summary: three significant digits, never in exponent form.
+
+    >>> distance(12.3456), distance(0.012345), distance(1234.5)
+    ('12.3', '0.0123', '1230')
+    """
+    if x == 0 or not math.isfinite(x):
+        return f"{x:g}"
+    digits = 2 - math.floor(math.log10(abs(x)))
+    r = round(x, digits)
+    return f"{r:.{max(digits, 0)}f}"
+
+
 class RangeSettings(CheckSettings):
     """Settings of ``range``.
 
-    >>> s = RangeSettings(window=500, warning_share=0.02)
+    >>> s = RangeSettings(recent_predictions=500, warning_share=0.02)
     >>> s.critical_share, s.margin
     (0.2, 0.0)
     """
 
-    window: int = Field(
+    recent_predictions: int = Field(
         200, ge=10, le=1_000_000, description="Number of latest predictions (with features) the share is taken over."
     )
     margin: float = Field(
         0.0, ge=0, le=10, description="Widen each feature's [min, max] by this share of (max - min) on each side."
     )
     warning_share: float = Field(
-        0.05, gt=0, lt=1, description="Warning when more than this share of the window is outside the envelope."
+        0.05, gt=0, lt=1, description="Warning when more than this share of the window is outside the training range."
     )
     critical_share: float = Field(
-        0.2, gt=0, le=1, description="Critical when more than this share of the window is outside the envelope."
+        0.2, gt=0, le=1, description="Critical when more than this share of the window is outside the training range."
     )
     min_predictions: int = Field(100, ge=1, description="Predictions needed in the window before the first evaluation.")
-    evaluate_every: int = Field(20, ge=1, description="Predictions between evaluations.")
+    evaluate_every_predictions: int = Field(20, ge=1, description="Predictions between evaluations.")
     hysteresis: float = Field(
         0.2, ge=0, lt=1, description="Clear only when the share is at or below the limit x (1 - this)."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
 
     @model_validator(mode="after")
     def _order(self) -> RangeSettings:
         if self.critical_share < self.warning_share:
             raise ValueError(f"critical_share ({self.critical_share}) must be >= warning_share ({self.warning_share})")
-        if self.min_predictions > self.window:
-            raise ValueError(f"min_predictions ({self.min_predictions}) must be <= window ({self.window})")
+        if self.min_predictions > self.recent_predictions:
+            raise ValueError(
+                f"min_predictions ({self.min_predictions}) must be <= recent_predictions ({self.recent_predictions})"
+            )
         return self
 
 
 class RangeCheck(Check[RangeSettings]):
-    """Share of recent predictions whose inputs lie outside the card's envelope.
+    """Share of recent predictions whose inputs lie outside the card's training range.
 
     >>> from watchdog_edge.core.cards import ModelCard
     >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 100}, fitted_parameters=2,
     ...                  holdout={"loss": 1.0, "count": 50},
     ...                  features={"temp": {"min": 0.0, "max": 50.0}})
     >>> ctx = CheckContext("m", card, "squared", 1.0, "holdout")
-    >>> check = RangeCheck(RangeSettings(window=20, min_predictions=20, evaluate_every=20), ctx)
+    >>> check = RangeCheck(RangeSettings(recent_predictions=20, min_predictions=20, evaluate_every_predictions=20), ctx)
     >>> for i in range(20):
     ...     due = check.on_prediction(Prediction("m", str(i), 1.0, float(i), features={"temp": 58.0 if i < 5 else 20.0}))
     >>> v = check.evaluate(20.0)
-    >>> v.level, v.figures["share"], v.figures["features"]["temp"]["max_above"]
+    >>> v.level, v.figures["share"], v.figures["features"]["temp"]["max_distance_above"]
     ('critical', 0.25, 8.0)
     """
 
@@ -91,7 +107,7 @@ class RangeCheck(Check[RangeSettings]):
             bounds.append((fname, prof.min - pad, prof.max + pad))
         self._bounds: tuple[tuple[str, float, float], ...] = tuple(bounds)
         self._gate = LevelGate(
-            settings.warning_share, settings.critical_share, settings.hysteresis, settings.clear_after
+            settings.warning_share, settings.critical_share, settings.hysteresis, settings.clear_after_evaluations
         )
         self.reset()
 
@@ -119,15 +135,15 @@ class RangeCheck(Check[RangeSettings]):
         if far is not None:
             self._details.append((self._seq, far))
         self._seq += 1
-        return self._seq - self._last_eval >= self.settings.evaluate_every
+        return self._seq - self._last_eval >= self.settings.evaluate_every_predictions
 
     @property
     def _filled(self) -> int:
-        return min(self._seq, self.settings.window)
+        return min(self._seq, self.settings.recent_predictions)
 
     def evaluate(self, t: float) -> Verdict | None:
         s = self.settings
-        if self._seq - self._last_eval < s.evaluate_every or self._seq < s.min_predictions:
+        if self._seq - self._last_eval < s.evaluate_every_predictions or self._seq < s.min_predictions:
             return None
         self._last_eval = self._seq
         oldest = self._seq - self._filled
@@ -142,13 +158,13 @@ class RangeCheck(Check[RangeSettings]):
             for fname, d in far.items():
                 f = per.get(fname)
                 if f is None:
-                    f = per[fname] = {"outside": 0, "max_below": None, "max_above": None}
+                    f = per[fname] = {"outside": 0, "max_distance_below": None, "max_distance_above": None}
                 f["outside"] += 1
                 if d < 0:
-                    if f["max_below"] is None or -d > f["max_below"]:
-                        f["max_below"] = -d
-                elif f["max_above"] is None or d > f["max_above"]:
-                    f["max_above"] = d
+                    if f["max_distance_below"] is None or -d > f["max_distance_below"]:
+                        f["max_distance_below"] = -d
+                elif f["max_distance_above"] is None or d > f["max_distance_above"]:
+                    f["max_distance_above"] = d
         limits = {fname: (lo, hi) for fname, lo, hi in self._bounds}
         for fname, f in per.items():
             f["low"], f["high"] = limits[fname]
@@ -177,10 +193,10 @@ class RangeCheck(Check[RangeSettings]):
         parts = []
         for fname, f in worst:
             bits = []
-            if f["max_above"] is not None:
-                bits.append(f"up to {fmt(f['max_above'])} above {up} {fmt(f['high'])}")
-            if f["max_below"] is not None:
-                bits.append(f"up to {fmt(f['max_below'])} below {down} {fmt(f['low'])}")
+            if f["max_distance_above"] is not None:
+                bits.append(f"up to {distance(f['max_distance_above'])} above {up} {fmt(f['high'])}")
+            if f["max_distance_below"] is not None:
+                bits.append(f"up to {distance(f['max_distance_below'])} below {down} {fmt(f['low'])}")
             parts.append(f"{fname} {' and '.join(bits)}")
         more = "" if len(per) <= 3 else f" (and {len(per) - 3} more features)"
         return f"{head} (the {level} limit is {limit:.1%}), so the model is extrapolating: {'; '.join(parts)}{more}."

@@ -1,7 +1,7 @@
 """``shift``: have the inputs moved away from the training data?
 
 For each feature with a training histogram on the card, the population stability index (PSI)
-compares the training shares with the last ``window`` predictions:
+compares the training shares with the last ``recent_predictions`` predictions:
 
     PSI = sum_i (a_i - e_i) * ln(a_i / e_i)
 
@@ -46,50 +46,52 @@ class ShiftSettings(CheckSettings):
     """Settings of ``shift``.
 
     >>> s = ShiftSettings()
-    >>> s.window, s.warning, s.critical
+    >>> s.recent_predictions, s.warning_index, s.critical_index
     (1000, 0.1, 0.25)
     """
 
-    window: int = Field(
+    recent_predictions: int = Field(
         1000,
         ge=50,
         le=1_000_000,
         description="Number of latest predictions (with features) compared with the training histogram.",
     )
-    warning: float = Field(0.1, gt=0, description="Warning when a feature's population stability index exceeds this.")
-    critical: float = Field(
+    warning_index: float = Field(
+        0.1, gt=0, description="Warning when a feature's population stability index exceeds this."
+    )
+    critical_index: float = Field(
         0.25, gt=0, description="Critical when a feature's population stability index exceeds this."
     )
     smoothing: float = Field(
         0.5, gt=0, le=10, description="Pseudo-count added to every bin on both sides, so empty bins stay finite."
     )
-    evaluate_every: int = Field(
+    evaluate_every_predictions: int = Field(
         250, ge=1, description="Predictions between evaluations (the index moves slowly on a window of 1000)."
     )
     hysteresis: float = Field(
         0.2, ge=0, lt=1, description="Clear only when the index is at or below the limit x (1 - this)."
     )
-    clear_after: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
 
     @model_validator(mode="after")
     def _order(self) -> ShiftSettings:
-        if self.critical < self.warning:
-            raise ValueError(f"critical ({self.critical}) must be >= warning ({self.warning})")
+        if self.critical_index < self.warning_index:
+            raise ValueError(f"critical_index ({self.critical_index}) must be >= warning_index ({self.warning_index})")
         return self
 
 
 def settings_warnings(settings: ShiftSettings) -> list[str]:
     """Advice on settings that are valid but unwise, for ``check-config`` to print.
 
-    >>> settings_warnings(ShiftSettings(window=300))[0][:40]
-    'window = 300 is below 1000: the populati'
+    >>> settings_warnings(ShiftSettings(recent_predictions=300))[0][:50]
+    'recent_predictions = 300 is below 1000: the popula'
     """
     out = []
-    if settings.window < ADVISED_MIN_WINDOW:
+    if settings.recent_predictions < ADVISED_MIN_WINDOW:
         out.append(
-            f"window = {settings.window} is below {ADVISED_MIN_WINDOW}: the population stability "
-            f"index is biased upwards on small windows (about bins/window on unchanged inputs), so "
-            f"false alarms become likely; use window >= {ADVISED_MIN_WINDOW} or raise 'warning'"
+            f"recent_predictions = {settings.recent_predictions} is below {ADVISED_MIN_WINDOW}: the population "
+            f"stability index is biased upwards on few predictions (about bins/predictions on unchanged inputs), "
+            f"so false alerts become likely; use recent_predictions >= {ADVISED_MIN_WINDOW} or raise warning_index"
         )
     return out
 
@@ -134,7 +136,7 @@ class ShiftCheck(Check[ShiftSettings]):
     >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 100}, fitted_parameters=2,
     ...     holdout={"loss": 1.0, "count": 50}, features={"x": {"min": 0, "max": 4,
     ...     "histogram": {"edges": [0, 1, 2, 3, 4], "shares": [0.25, 0.25, 0.25, 0.25]}}})
-    >>> check = ShiftCheck(ShiftSettings(window=100, evaluate_every=100),
+    >>> check = ShiftCheck(ShiftSettings(recent_predictions=100, evaluate_every_predictions=100),
     ...                    CheckContext("m", card, "squared", 1.0, "holdout"))
     >>> for i in range(100):                       # every value in the top bin
     ...     due = check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"x": 3.5}))
@@ -174,8 +176,10 @@ class ShiftCheck(Check[ShiftSettings]):
         self._missing = self._nbins - 1
         # the features of one prediction, in ``names`` order (with no features nothing is queued)
         self._getter: Callable[[dict[str, float | None]], Any] = operator.itemgetter(*names) if names else tuple
-        self._every = settings.evaluate_every
-        self._gate = LevelGate(settings.warning, settings.critical, settings.hysteresis, settings.clear_after)
+        self._every = settings.evaluate_every_predictions
+        self._gate = LevelGate(
+            settings.warning_index, settings.critical_index, settings.hysteresis, settings.clear_after_evaluations
+        )
         self.reset()
 
     def reset(self) -> None:
@@ -183,7 +187,7 @@ class ShiftCheck(Check[ShiftSettings]):
         # flat bin ids (offset included) of each prediction in the window; -1 where still empty
         # int16 where every bin id fits (nearly always): half the memory of a model's window
         dtype = np.int16 if self._total < 2**15 else np.int32
-        self._ring = np.full((self.settings.window, len(self.names)), -1, dtype=dtype)
+        self._ring = np.full((self.settings.recent_predictions, len(self.names)), -1, dtype=dtype)
         self._pos = 0
         self._filled = 0
         # the features of predictions not yet binned, row after row in ``names`` order, as
@@ -220,7 +224,7 @@ class ShiftCheck(Check[ShiftSettings]):
         m = self._npend
         if not m:
             return
-        size = self.settings.window
+        size = self.settings.recent_predictions
         k = len(self.names)
         x = np.frombuffer(self._pending, dtype=float)
         if m > size:  # only the newest ``size`` can stay in the window
@@ -258,7 +262,7 @@ class ShiftCheck(Check[ShiftSettings]):
             return None
         self._since_eval = 0
         self._flush()
-        if self._filled < self.settings.window:
+        if self._filled < self.settings.recent_predictions:
             return None
         s = self.settings
         idx = self.indices()
@@ -268,8 +272,8 @@ class ShiftCheck(Check[ShiftSettings]):
             "index": idx,
             "top_feature": top,
             "predictions": self._filled,
-            "warning": s.warning,
-            "critical": s.critical,
+            "warning_index": s.warning_index,
+            "critical_index": s.critical_index,
         }
         return Verdict(level, self._summary(level, idx, top), dict(self._figures))
 
@@ -279,10 +283,10 @@ class ShiftCheck(Check[ShiftSettings]):
         if level == "normal":
             return (
                 f"The inputs of the last {n} predictions look like the training data: the largest "
-                f"population stability index is {idx[top]:.3g} ({top}), within the warning limit {s.warning:g}."
+                f"population stability index is {idx[top]:.3g} ({top}), within the warning limit {s.warning_index:g}."
             )
-        limit = s.critical if level == "critical" else s.warning
-        moved = [name for name, v in sorted(idx.items(), key=lambda kv: -kv[1]) if v > s.warning]
+        limit = s.critical_index if level == "critical" else s.warning_index
+        moved = [name for name, v in sorted(idx.items(), key=lambda kv: -kv[1]) if v > s.warning_index]
         names = ", ".join(moved[:3]) + (f" and {len(moved) - 3} more" if len(moved) > 3 else "")
         return (
             f"The inputs have moved away from the training data: population stability index "
@@ -311,7 +315,9 @@ class ShiftCheck(Check[ShiftSettings]):
     def restore(self, data: dict[str, Any]) -> None:
         if list(data["features"]) != list(self.names):
             raise ValueError(f"shift snapshot covers features {data['features']}, the card has {list(self.names)}")
-        self._ring = np.array(data["ring"], dtype=self._ring.dtype).reshape(self.settings.window, len(self.names))
+        self._ring = np.array(data["ring"], dtype=self._ring.dtype).reshape(
+            self.settings.recent_predictions, len(self.names)
+        )
         self._counts = np.array(data["counts"], dtype=np.int64)
         self._pos = int(data["pos"])
         self._filled = int(data["filled"])

@@ -1,0 +1,1 @@
+"""The JetStream workers: the same core run on partitions of a NATS JetStream stream."""

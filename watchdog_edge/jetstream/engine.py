@@ -1,0 +1,237 @@
+"""What the workers need on the JetStream server: streams, buckets, consumers; reading the input back.
+
+Every call here is idempotent, so any number of workers may start at once.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import json
+from collections.abc import AsyncIterator
+from dataclasses import dataclass
+from typing import Any
+
+import nats.errors
+import nats.js.errors
+from nats.js import JetStreamContext
+from nats.js.api import (
+    AckPolicy,
+    ConsumerConfig,
+    DeliverPolicy,
+    RetentionPolicy,
+    StorageType,
+    StreamConfig,
+)
+from nats.js.kv import KeyValue
+
+from watchdog_edge.core.settings import JetStreamSettings
+from watchdog_edge.jetstream.subjects import Subjects, delivery
+
+
+async def ensure_stream(js: JetStreamContext, config: StreamConfig) -> None:
+    """Create the stream unless it exists (a worker never changes a stream someone else made)."""
+    try:
+        await js.stream_info(config.name or "")
+    except nats.js.errors.NotFoundError:
+        try:
+            await js.add_stream(config)
+        except nats.js.errors.BadRequestError:
+            await js.stream_info(config.name or "")  # made meanwhile by another worker: fine
+
+
+async def ensure_all(
+    js: JetStreamContext, s: JetStreamSettings, lease_ttl_s: float, dead_max_count: int, dead_max_bytes: int
+) -> dict[str, KeyValue]:
+    """The input, alert and dead-letter streams and the three buckets; returns the buckets by role."""
+    subjects = Subjects(s.subject_prefix, s.partitions)
+    if s.create_streams:
+        await ensure_stream(
+            js,
+            StreamConfig(
+                name=s.input_stream,
+                subjects=[subjects.all_inbound()],
+                retention=RetentionPolicy.LIMITS,
+                max_age=s.input_max_age_s,
+                storage=StorageType.FILE,
+                num_replicas=s.replicas,
+                duplicate_window=120.0,
+            ),
+        )
+        await ensure_stream(
+            js,
+            StreamConfig(
+                name=s.alert_stream,
+                subjects=[subjects.all_alerts()],
+                retention=RetentionPolicy.LIMITS,
+                storage=StorageType.FILE,
+                num_replicas=s.replicas,
+                duplicate_window=s.alert_duplicate_window_s,
+            ),
+        )
+        await ensure_stream(
+            js,
+            StreamConfig(
+                name=s.dead_letter_stream,
+                subjects=[subjects.all_dead()],
+                retention=RetentionPolicy.LIMITS,
+                max_msgs=dead_max_count,
+                max_bytes=dead_max_bytes,
+                storage=StorageType.FILE,
+                num_replicas=s.replicas,
+                duplicate_window=s.alert_duplicate_window_s,
+            ),
+        )
+    buckets = {}
+    for role, name, ttl in (
+        ("snapshots", s.snapshot_bucket, None),
+        ("state", s.state_bucket, None),
+        ("leases", s.lease_bucket, lease_ttl_s),
+    ):
+        try:
+            buckets[role] = await js.key_value(name)
+        except nats.js.errors.BucketNotFoundError:
+            if not s.create_streams:
+                raise
+            try:
+                buckets[role] = await js.create_key_value(bucket=name, history=1, ttl=ttl, replicas=s.replicas)
+            except nats.js.errors.BadRequestError:
+                buckets[role] = await js.key_value(name)
+    return buckets
+
+
+async def start_consumer(js: JetStreamContext, s: JetStreamSettings, p: int, after_seq: int) -> str:
+    """(Re)make partition ``p``'s durable consumer so that it delivers from stream sequence ``after_seq + 1``.
+
+    Only the holder of the partition's lease calls this. Starting at the snapshot's sequence
+    (rather than waiting for the previous holder's unacknowledged messages to come back after
+    their ack wait) keeps the messages of a model in stream order, which the core needs.
+    """
+    name = f"{s.durable_prefix}{p}"
+    try:
+        await js.delete_consumer(s.input_stream, name)
+    except nats.js.errors.NotFoundError:
+        pass
+    await js.add_consumer(
+        s.input_stream,
+        ConsumerConfig(
+            durable_name=name,
+            filter_subject=Subjects(s.subject_prefix, s.partitions).partition_filter(p),
+            deliver_policy=DeliverPolicy.BY_START_SEQUENCE if after_seq else DeliverPolicy.ALL,
+            opt_start_seq=after_seq + 1 if after_seq else None,
+            # acknowledged after each snapshot: one ack covers every message before it
+            ack_policy=AckPolicy.ALL,
+            ack_wait=max(60.0, 6 * s.snapshot_every_s),
+            max_ack_pending=2 * s.snapshot_every_messages + 2 * s.fetch_batch_messages,
+        ),
+    )
+    return name
+
+
+@dataclass(frozen=True, slots=True)
+class InboundMessage:
+    """One stored inbound message: partition, stream sequence, stored time, topic (None: a tick), payload."""
+
+    partition: int
+    seq: int
+    t: float
+    topic: str | None
+    payload: bytes
+
+
+async def read_input(
+    js: JetStreamContext, s: JetStreamSettings, partition: int | None = None, idle_s: float = 1.0
+) -> AsyncIterator[InboundMessage]:
+    """Every message of the input stream (or one partition) in stream order, up to the stream's last message now.
+
+    It also stops when none comes for ``idle_s``.
+
+        The time is the one the workers use: the stream's stored time, so a replay of this gives
+        the workers' alerts.
+    """
+    subjects = Subjects(s.subject_prefix, s.partitions)
+    flt = subjects.all_inbound() if partition is None else subjects.partition_filter(partition)
+    last = (await js.stream_info(s.input_stream)).state.last_seq
+    sub = await js.subscribe(flt, stream=s.input_stream, ordered_consumer=True, deliver_policy=DeliverPolicy.ALL)
+    try:
+        while True:
+            try:
+                msg = await sub.next_msg(timeout=idle_s)
+            except (asyncio.TimeoutError, nats.errors.TimeoutError):
+                return
+            d = delivery(msg.reply)
+            p, topic = subjects.split(msg.subject)
+            yield InboundMessage(p, d.stream_seq, d.timestamp_ns / 1e9, topic, msg.data)
+            if d.stream_seq >= last:
+                return
+    finally:
+        await sub.unsubscribe()
+
+
+class PullFeed:
+    """A pull consumer read in batches with one pull request outstanding at a time.
+
+    nats-py's ``fetch`` waits for each message with its own timer task; here the messages are
+    gathered by a subscription callback and taken as a list, which halves the client's cost
+    per message (see bench/jetstream_throughput.py).
+    """
+
+    def __init__(self, nc: Any, stream: str, durable: str, batch: int, expires_s: float = 1.0) -> None:
+        self.nc = nc
+        self.subject = f"$JS.API.CONSUMER.MSG.NEXT.{stream}.{durable}"
+        self.batch = batch
+        self.expires_s = expires_s
+        self.msgs: list[Any] = []
+        self.remaining = 0  # messages the outstanding request may still bring
+        self.asked_at = 0.0
+        self.ready = asyncio.Event()
+        self.gone: str | None = None  # why the consumer stopped serving us
+        self.sub: Any = None
+        self.inbox = ""
+
+    async def start(self) -> None:
+        self.inbox = self.nc.new_inbox()
+        self.sub = await self.nc.subscribe(self.inbox, cb=self._on_msg)
+
+    async def _on_msg(self, msg: Any) -> None:
+        if msg.reply:  # a message of the stream
+            self.msgs.append(msg)
+            self.remaining -= 1
+            if self.remaining <= 0 or len(self.msgs) >= self.batch:
+                self.ready.set()
+            return
+        status = (msg.headers or {}).get("Status", "")
+        if status == "100":  # an idle heartbeat
+            return
+        self.remaining = 0  # the request is over: no messages, timed out, or refused
+        if status == "409" and "Deleted" in (msg.headers or {}).get("Description", ""):
+            self.gone = "the consumer was deleted"
+        self.ready.set()
+
+    async def take(self, timeout: float) -> list[Any]:
+        """What has arrived; waits up to ``timeout`` when nothing has. Raises when the consumer is gone."""
+        loop = asyncio.get_running_loop()
+        if self.remaining > 0 and loop.time() - self.asked_at > self.expires_s + 2.0:
+            self.remaining = 0  # a request lost with a reconnect: ask again
+        if self.remaining <= 0:
+            self.remaining = self.batch
+            self.asked_at = loop.time()
+            req = {"batch": self.batch, "expires": int(self.expires_s * 1e9)}
+            await self.nc.publish(self.subject, json.dumps(req).encode(), reply=self.inbox)
+        if not self.msgs:
+            self.ready.clear()
+            with contextlib.suppress(asyncio.TimeoutError):
+                await asyncio.wait_for(self.ready.wait(), timeout)
+        if self.gone:
+            raise ConsumerGone(self.gone)
+        out, self.msgs = self.msgs, []
+        return out
+
+    async def stop(self) -> None:
+        if self.sub is not None:
+            with contextlib.suppress(Exception):
+                await self.sub.unsubscribe()
+
+
+class ConsumerGone(nats.errors.Error):
+    """The partition's consumer was deleted (another holder re-made it): resume from the snapshot."""
