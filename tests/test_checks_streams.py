@@ -163,11 +163,11 @@ def test_snapshot_and_restore_mid_episode_through_the_monitor_gives_the_same_ale
     messages, card = friedman_drift()
     cfg = config("fr", {"drift": {}, "baseline": {"learners": ["mean", "linear", "tree"]}})
     live = Monitor(cfg, {"fr": card})
-    cut = 2 * (DRIFT_AT + 25 - 2000)  # after the drift alert, before gap's
+    cut = 2 * (DRIFT_AT + 20 - 2000)  # after the drift alert and gap's warning (gross errors), before gap's critical
     head = []
     for t, topic, payload in messages[:cut]:
         head += alerts(live.feed(topic, payload, t))
-    assert [a.check for a in head] == ["drift"]
+    assert [(a.check, a.severity) for a in head] == [("gap", "warning"), ("drift", "warning")]
     restored = Monitor.restore(cfg, {"fr": card}, json.loads(json.dumps(live.snapshot())))
     tail_live, tail_restored = [], []
     for t, topic, payload in messages[cut:]:

@@ -54,15 +54,90 @@ def test_overfit_polynomial_raises_gap_from_deployment_and_sensible_fits_do_not(
     # training loss by (20 + 13) / (20 - 13) = 4.7 times: the field is worse still.
     seeds = range(30)
     overfit = [polynomial_deployment(s, 12, 20) for s in seeds]
-    cubic = [polynomial_deployment(s, 3, 20) for s in seeds]
     plenty = [polynomial_deployment(s, 12, 2000) for s in seeds]
     crit = lambda runs: sum(1 for r in runs if any(a.severity == "critical" for a in r))  # noqa: E731
-    assert crit(overfit) >= 24  # measured: 27 of 30
+    # The 20-row card has only 20 - 13 = 7 degrees of freedom, so the limit allows for a card
+    # that is itself far off (item 8); the overfit fit is still raised in most deployments.
+    assert sum(1 for r in overfit if r) >= 20  # measured: 23 of 30
+    assert crit(overfit) >= 18  # measured: 21 of 30
     assert all(r[0].figures["diagnosis"] == "present from deployment" for r in overfit if r)
-    # A card made from 20 rows is itself uncertain (the training loss has only N - d degrees of
-    # freedom), so an honest cubic sometimes shows a modest gap; it is seldom critical.
-    assert crit(cubic) <= 6  # measured: 3 of 30
     assert sum(1 for r in plenty if r) == 0
+
+
+def test_a_fair_cubic_on_a_small_card_stays_quiet():
+    # A training loss from N rows and d = 4 parameters has N - d degrees of freedom: from 20
+    # rows it is easily 30 % off, and before the limit allowed for that a fair cubic showed a
+    # "gap" in a good share of deployments (measured before: 25, 16 and 17 of 60 at N = 20,
+    # 25 and 30). Now the lower bound is widened by the F law of the two mean squares.
+    # Measured: 2, 0 and 0 of 30 (N = 20 is close to 5 %: its 95 % one-sided bound is looked
+    # at 70 times a deployment, and a cubic on 20 points of this curve is only nearly fair).
+    for n_train, allowed in [(20, 3), (25, 1), (30, 1)]:
+        runs = [polynomial_deployment(s, 3, n_train) for s in range(30)]
+        assert sum(1 for r in runs if r) <= allowed, n_train
+        assert not any(a.severity == "critical" for r in runs for a in r)
+
+
+def test_the_card_share_of_the_limit_is_in_the_figures():
+    # External check: scipy.stats.f.ppf gives the live mean at which the interval raises,
+    # warning limit x F_0.95(live df, card df); with an infinite card it is chi2 / df.
+    from scipy import stats as sps
+
+    rng = np.random.default_rng(3)
+    card = ModelCard(model_id="m", training={"loss": 1.0, "count": 30}, fitted_parameters=4, least_squares=True)
+    context = CheckContext("m", card, "squared", 1.0, "fpe", window_size=200, min_pairs=200)
+    gap = GapCheck(GapSettings(evaluate_every_pairs=200), context)
+    assert gap.card_df == 26.0
+    [v] = feed(gap, list(3.0 * rng.chisquare(1, 200)))
+    f = v.figures
+    assert f["card_df"] == 26.0
+    factor = float(sps.f.ppf(0.95, f["live_df"], 26.0))
+    assert f["raise_above_live_loss"] == pytest.approx(1.25 * factor, rel=1e-7)
+    live = float(sps.chi2.ppf(0.95, f["live_df"])) / f["live_df"]
+    assert f["card_share_of_margin"] == pytest.approx((factor - live) / (factor - 1.0), rel=1e-6)
+    assert f["lower"] == pytest.approx(f["live_loss"] / factor, rel=1e-7)
+    assert f["lower"] < f["lower_live_only"] < f["live_loss"] < f["upper"]
+    assert 0.5 < f["card_share_of_margin"] < 1.0  # from 26 degrees of freedom the card dominates
+    # Switched off, the bound is the live one alone.
+    plain = GapCheck(GapSettings(evaluate_every_pairs=200, card_uncertainty=False), context)
+    [w] = feed(plain, list(3.0 * np.random.default_rng(3).chisquare(1, 200)))
+    assert w.figures["card_df"] is None and w.figures["lower"] == w.figures["lower_live_only"]
+
+
+def burst_stream(rng, phi, block, times, before=1000, after=700):
+    """Errors with expected squared error 1 (independent, or AR(1) with coefficient phi), and a
+    block of gross errors of about sqrt(times) on top: losses about ``times`` x expected."""
+    n = before + block + after
+    u = rng.normal(size=n) * np.sqrt(1 - phi**2)
+    e = np.empty(n)
+    e[0] = rng.normal()
+    for t in range(1, n):
+        e[t] = phi * e[t - 1] + u[t]
+    gross = rng.choice([-1.0, 1.0], block) * np.sqrt(times) * (1 + 0.2 * rng.normal(size=block))
+    e[before : before + block] += gross
+    return e * e
+
+
+@pytest.mark.parametrize("phi", [0.0, 0.5, 0.9])
+def test_a_burst_of_gross_errors_is_raised_at_once_and_held_while_the_live_loss_is_over(phi):
+    # Issue 10 item 0: a burst inflated the long-run variance until the lower bound went below
+    # zero, and gap never raised. Blocks of 10 to 30 pairs at 50 to 10,000 times the expected
+    # loss, on independent and AR(1) errors.
+    rng = np.random.default_rng(int(phi * 10) + 40)
+    for block in (10, 30):
+        for times in (50.0, 1000.0, 10_000.0):
+            gap = GapCheck(GapSettings(), ctx(size=500, min_pairs=100))
+            losses = burst_stream(rng, phi, block, times)
+            raised_at = None
+            for i, loss in enumerate(losses):
+                feed(gap, [loss], start=i)
+                level = gap.figures()["level"]
+                if raised_at is None and level != "normal":
+                    raised_at = i
+                if raised_at is not None and gap.live_mean() > gap.warning_limit:
+                    assert level != "normal", (block, times, i)
+                if gap.figures().get("lower") is not None:
+                    assert gap.figures()["lower"] >= 0.0
+            assert raised_at is not None and 1000 <= raised_at <= 1000 + 10, (block, times, raised_at)
 
 
 def ctx(expected=1.0, size=100, min_pairs=100):
@@ -138,3 +213,41 @@ def test_diagnosis_distinguishes_degradation_from_a_bad_start():
     raised = next(v for v in worse if v.level != "normal")
     assert raised.figures["diagnosis"] == "appeared after a healthy period"
     assert "degraded" in raised.summary
+
+
+def test_snapshot_mid_burst_restores_the_gross_error_run():
+    import json
+
+    rng = np.random.default_rng(8)
+    losses = list(burst_stream(rng, 0.5, 20, 300.0, before=600, after=300))
+    live = GapCheck(GapSettings(), ctx(size=500, min_pairs=100))
+    feed(live, losses[:603])  # three pairs into the burst: not yet raised
+    assert live.figures()["level"] == "normal"
+    copy = GapCheck(GapSettings(), ctx(size=500, min_pairs=100))
+    copy.restore(json.loads(json.dumps(live.snapshot())))
+    a = feed(live, losses[603:], start=603)
+    b = feed(copy, losses[603:], start=603)
+    assert a == b and a[0].level != "normal" and a[0].figures["raised_by"] == "gross errors"
+    assert "of the latest 10 squared errors are over" in a[0].summary
+
+
+@pytest.mark.parametrize("phi", [0.0, 0.9])
+def test_the_field_dropout_then_a_lasting_rise_is_raised_and_held(phi):
+    # The field case of issue 10: a dropout (15 pairs with errors 80 times the usual size), then
+    # a lasting rise of the loss to 4 times the expected. gap stayed silent there (bounds
+    # -64 .. 348); now it raises within 10 pairs of the dropout and never clears.
+    from scipy.signal import lfilter
+
+    rng = np.random.default_rng(1)
+    e = lfilter([1.0], [1.0, -phi], rng.normal(size=3000)) * np.sqrt(1 - phi * phi)
+    e[1000:1015] *= 80.0
+    e[1500:] *= 2.0
+    gap = GapCheck(GapSettings(), ctx(size=500, min_pairs=100))
+    levels = []
+    for i, loss in enumerate(e * e):
+        feed(gap, [float(loss)], start=i)
+        levels.append(gap.figures()["level"])
+    assert all(lv == "normal" for lv in levels[:1000])
+    assert all(lv != "normal" for lv in levels[1010:])
+    f = gap.figures()
+    assert f["level"] == "critical" and 0.0 < f["lower"] and f["lower"] > gap.critical_limit

@@ -202,3 +202,22 @@ def expected_loss(card: ModelCard) -> tuple[float, str]:
 def format_validation(e: ValidationError) -> str:
     """One line per problem: the dotted key, the value given and the rule broken (see ``validation``)."""
     return _format_validation(e)
+
+
+def expected_loss_df(card: ModelCard, source: str) -> float:
+    """Degrees of freedom of the expected loss as a mean square: the held-out count for a
+    held-out loss, N - d for one made from the training loss (its residuals have N - d).
+
+    Under Gaussian errors the expected loss is then sigma^2 chi2(df) / df, which is what
+    ``gap`` needs to allow for the card's own noise. For absolute loss the held-out count is
+    on the safe side (a mean of absolute Gaussian errors has about 3.5 degrees of freedom per
+    row, so the card is taken as noisier than it is).
+
+    >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 30}, fitted_parameters=4)
+    >>> expected_loss_df(card, "fpe")
+    26.0
+    """
+    if source == "holdout" and card.holdout is not None:
+        return float(card.holdout.count)
+    d = card.fitted_parameters if card.fitted_parameters is not None else 0
+    return float(max(1, card.training.count - d))

@@ -1,17 +1,36 @@
-"""``gap``: live loss against the loss the model card leads us to expect."""
+"""``gap``: live loss against the loss the model card leads us to expect.
+
+Two tests, either of which raises:
+- the interval: one-sided bounds on the live mean loss (`stats.loss_interval`: a gamma law
+  matched to the mean and its prewhitened Newey-West standard error), the lower one widened
+  for the card's own degrees of freedom (an F law); raised when it exceeds the limits;
+- gross errors: at least ``gross_min_pairs`` of the latest ``gross_run_pairs`` losses above
+  ``gross_multiple`` x the warning limit, while the live mean is above the warning limit.
+  A burst of gross errors inflates the long-run variance so much that no interval on the mean
+  can exclude the limit, exactly when the model fails most; a run of losses that far above
+  the limit needs no variance estimate. It is looked at on every pair (one comparison), so a
+  burst is raised within ``gross_run_pairs`` pairs of its start. Under Gaussian errors with a
+  mean loss at the warning limit a loss above 20 times it has probability 8e-6 (chi-square
+  with 1 degree of freedom), so five in ten do not happen by chance, even on strongly
+  autocorrelated errors (bench/gap_drift_quality.py measures it).
+Clearing uses the live upper bound alone: the card's uncertainty is fixed for a deployment,
+so counting it there could keep an episode open for good.
+"""
 
 from __future__ import annotations
 
 import math
+from collections import deque
 from typing import Any, Literal
 
 from pydantic import Field, model_validator
 
+from watchdog_edge.core.cards import expected_loss_df
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict, fmt
-from watchdog_edge.core.levels import LevelRule, level_above
+from watchdog_edge.core.levels import RANK, LevelRule, level_above
 from watchdog_edge.core.losses import LossWindow
 from watchdog_edge.core.records import Pair
-from watchdog_edge.core.stats import mean_interval
+from watchdog_edge.core.stats import LossInterval, f_ppf, loss_interval
 
 FROM_DEPLOYMENT = "present from deployment"
 AFTER_HEALTHY = "appeared after a healthy period"
@@ -41,6 +60,17 @@ class GapSettings(CheckSettings):
     )
     clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
     evaluate_every_pairs: int = Field(10, ge=1, description="Pairs between evaluations of the interval.")
+    card_uncertainty: bool = Field(
+        True,
+        description="Widen the lower bound for the card's own degrees of freedom (held-out count, or N - d).",
+    )
+    gross_multiple: float = Field(20.0, gt=1, description="A loss above the warning limit x this is a gross error.")
+    gross_run_pairs: int = Field(10, ge=1, description="Latest pairs looked at for gross errors.")
+    gross_min_pairs: int = Field(
+        5,
+        ge=1,
+        description="Gross errors among the latest gross_run_pairs that raise; above gross_run_pairs turns the test off.",
+    )
 
     @model_validator(mode="after")
     def _order(self) -> GapSettings:
@@ -86,6 +116,10 @@ class GapCheck(Check[GapSettings]):
             self.critical_limit = exp + settings.critical_tolerance
         self.clear_limit = self.warning_limit * (1 - settings.hysteresis)
         self.min_pairs = min(context.min_pairs, context.window_size)
+        self.card_df = (
+            expected_loss_df(context.card, context.expected_source) if settings.card_uncertainty else math.inf
+        )
+        self.gross_threshold = self.warning_limit * settings.gross_multiple
         self._rule = LevelRule(settings.clear_after_evaluations)
         self.reset()
 
@@ -99,16 +133,32 @@ class GapCheck(Check[GapSettings]):
         self._diagnosis: str | None = None
         self._figures: dict[str, Any] = {}
         self._stale = False  # the window moved since the figures were computed
+        self._seq = 0  # pairs taken
+        self._gross: deque[int] = deque(maxlen=self.settings.gross_min_pairs)  # seq of the latest gross errors
+        self._raised_by = ""
+
+    def _gross_run(self) -> int:
+        """Gross errors among the latest ``gross_run_pairs`` pairs (counted up to gross_min_pairs)."""
+        first = self._seq - self.settings.gross_run_pairs
+        return sum(1 for q in self._gross if q >= first)
 
     def on_pair(self, pair: Pair, loss: float) -> bool:
         self.window.push(pair.t, loss)
         self._since_eval += 1
+        self._seq += 1
+        burst = False
+        if loss > self.gross_threshold:
+            self._gross.append(self._seq)
+            # A burst: evaluate now, not at the next multiple of evaluate_every_pairs.
+            burst = self._rule.level == "normal" and self._gross_run() >= self.settings.gross_min_pairs
         if self._evaluated and self._rule.level == "normal":
             self._clean_pairs += 1
             if self._clean_pairs >= self.context.window_size:
                 self._healthy_seen = True
         # Between evaluations nothing is due, unless an age bound may drop pairs.
-        return self._since_eval >= self.settings.evaluate_every_pairs or self.context.window_max_age_s is not None
+        return (
+            burst or self._since_eval >= self.settings.evaluate_every_pairs or self.context.window_max_age_s is not None
+        )
 
     def evaluate(self, t: float) -> Verdict | None:
         if self.context.window_max_age_s is not None:
@@ -116,24 +166,34 @@ class GapCheck(Check[GapSettings]):
             self.window.expire(t)
             if len(self.window) != before:
                 self._since_eval = max(self._since_eval, self.settings.evaluate_every_pairs)
-        if self._since_eval < self.settings.evaluate_every_pairs or len(self.window) < self.min_pairs:
+        if len(self.window) < self.min_pairs:
+            return None
+        s = self.settings
+        mean = self.window.mean()
+        gross = self._gross_run() >= s.gross_min_pairs and mean > self.warning_limit
+        if self._since_eval < s.evaluate_every_pairs and not (gross and self._rule.level == "normal"):
             return None
         self._since_eval = 0
         self._evaluated = True
-        if self._rule.level == "normal" and self.window.mean() <= self.warning_limit:
+        if self._rule.level == "normal" and mean <= self.warning_limit:
             # The lower bound never exceeds the mean, so nothing can be raised: skip the
             # interval, the costliest step, while the model is healthy.
             self._stale = True
             return None
         iv = self._interval()
-        # Evidence for the one level rule (core/levels.py): the lower bound raises; the upper
-        # bound, against the limits eased by the hysteresis, says how far it may come down.
+        # Evidence for the one level rule (core/levels.py): the lower bound (or a run of gross
+        # errors with the live mean over the limit) raises; the live upper bound, against the
+        # limits eased by the hysteresis, says how far it may come down.
+        raised = level_above(iv.lower, self.warning_limit, self.critical_limit)
+        if gross:
+            by_gross = level_above(mean, self.warning_limit, self.critical_limit)
+            if RANK[by_gross] > RANK[raised]:
+                raised = by_gross
+        if raised != "normal":
+            self._raised_by = "interval" if iv.lower > self.warning_limit else "gross errors"
         hy = 1 - self.settings.hysteresis
         was = self._rule.level
-        level = self._rule.update(
-            level_above(iv.lower, self.warning_limit, self.critical_limit),
-            level_above(iv.upper, self.warning_limit, self.critical_limit, hy),
-        )
+        level = self._rule.update(raised, level_above(iv.upper, self.warning_limit, self.critical_limit, hy))
         if was == "normal" and level != "normal":
             self._diagnosis = AFTER_HEALTHY if self._healthy_seen else FROM_DEPLOYMENT
             self._clean_pairs = 0
@@ -143,29 +203,42 @@ class GapCheck(Check[GapSettings]):
         self._store_figures(iv)
         if level != "normal":
             self._figures["diagnosis"] = self._diagnosis
+            self._figures["raised_by"] = self._raised_by
         return Verdict(level, self._summary(iv), dict(self._figures))
 
-    def _interval(self) -> Any:
+    def _interval(self) -> LossInterval:
         self._stale = False
-        return mean_interval(self.window.array(), self.settings.confidence)
+        return loss_interval(self.window.array(), self.settings.confidence, self.card_df)
 
-    def _store_figures(self, iv: Any) -> None:
+    def _store_figures(self, iv: LossInterval) -> None:
         s = self.settings
+        # The live mean above which the interval raises, and how much of its margin over the
+        # warning limit is the card's uncertainty rather than the live window's.
+        live_factor = f_ppf(s.confidence, iv.live_df, math.inf)
+        total_factor = live_factor if math.isinf(self.card_df) else f_ppf(s.confidence, iv.live_df, self.card_df)
+        card_share = (total_factor - live_factor) / (total_factor - 1.0) if total_factor > 1.0 else 0.0
         self._figures = {
             "live_loss": iv.mean,
             "lower": iv.lower,
             "upper": iv.upper,
+            "lower_live_only": iv.lower_live,
             "confidence": s.confidence,
             "expected_loss": self.context.expected_loss,
             "expected_source": self.context.expected_source,
             "warning_limit": self.warning_limit,
             "critical_limit": self.critical_limit,
+            "raise_above_live_loss": self.warning_limit * total_factor,
+            "card_df": None if math.isinf(self.card_df) else self.card_df,
+            "live_df": iv.live_df,
+            "card_share_of_margin": card_share,
+            "gross_errors": self._gross_run(),
             "pairs": iv.n,
             "bandwidth": iv.bandwidth,
+            "prewhitening_rho": iv.rho,
             "loss": self.context.loss_kind,
         }
 
-    def _summary(self, iv: Any) -> str:
+    def _summary(self, iv: LossInterval) -> str:
         kind = "squared" if self.context.loss_kind == "squared" else "absolute"
         pct = int(round(self.settings.confidence * 100))
         src = "held-out loss" if self.context.expected_source == "holdout" else "final prediction error"
@@ -180,6 +253,13 @@ class GapCheck(Check[GapSettings]):
             else "the model or its inputs have degraded"
         )
         limit = self.critical_limit if self._level == "critical" else self.warning_limit
+        if self._raised_by == "gross errors":
+            return (
+                f"{self._gross_run()} of the latest {self.settings.gross_run_pairs} {kind} errors are over "
+                f"{fmt(self.gross_threshold)}, and the live mean {fmt(iv.mean)} over {iv.n} pairs is above the "
+                f"{self._level} limit {fmt(limit)} set from the expected {fmt(self.context.expected_loss)} "
+                f"({src}); {self._diagnosis}: {why}."
+            )
         return (
             f"Live mean {kind} error {fmt(iv.mean)} over {iv.n} pairs (lower {pct}% bound "
             f"{fmt(iv.lower)}) is above the {self._level} limit {fmt(limit)} set from the expected "
@@ -213,6 +293,9 @@ class GapCheck(Check[GapSettings]):
             "healthy_seen": self._healthy_seen,
             "diagnosis": self._diagnosis,
             "figures": self._figures,
+            "seq": self._seq,
+            "gross": list(self._gross),
+            "raised_by": self._raised_by,
         }
 
     def restore(self, data: dict[str, Any]) -> None:
@@ -226,3 +309,6 @@ class GapCheck(Check[GapSettings]):
         self._healthy_seen = data["healthy_seen"]
         self._diagnosis = data["diagnosis"]
         self._figures = data["figures"]
+        self._seq = int(data.get("seq", 0))  # snapshots from before the gross-error test lack these
+        self._gross = deque(data.get("gross", []), maxlen=self.settings.gross_min_pairs)
+        self._raised_by = data.get("raised_by", "interval" if self._level != "normal" else "")
