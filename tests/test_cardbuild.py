@@ -12,7 +12,16 @@ from typer.testing import CliRunner
 from watchdog_edge.cli.card import app as card_app
 from watchdog_edge.core.cards import expected_loss
 from watchdog_edge.errors import CardError, DataError
-from watchdog_edge.files.cardbuild import build_card, quantile_histogram, read_table, render_card
+from watchdog_edge.files.cardbuild import (
+    build_card,
+    card_cautions,
+    card_from_arrays,
+    constant_loss,
+    quantile_histogram,
+    read_table,
+    render_card,
+    value_histogram,
+)
 from watchdog_edge.files.cardfile import load_card
 
 cli = typer.Typer()
@@ -280,9 +289,12 @@ def test_cli_errors_are_one_line_on_stderr_with_exit_code_2(tmp_path, files):
 def test_render_says_when_no_expected_loss_can_be_given(tmp_path, rows):
     x1, x2, y, pred = rows
     train = write(tmp_path / "train.csv", ["flow", "y", "p"], list(zip(x1, y, pred)))
-    card = build_card(train, target="y", prediction="p", params=2, loss="absolute")
+    with pytest.raises(CardError, match="--allow-no-expected-loss"):
+        build_card(train, target="y", prediction="p", params=2, loss="absolute")
+    card = build_card(train, target="y", prediction="p", params=2, loss="absolute", require_expected_loss=False)
     text = render_card(card)
     assert "expected in field  unavailable" in text and "holdout" in text
+    assert "- no usable expected loss" in text
     assert "expected in field  7, from the held-out loss" in render_card(card, expected=(7.0, "holdout"))
 
 
@@ -308,3 +320,96 @@ def test_a_semicolon_separated_file_gets_the_separator_named(tmp_path):
     p.write_text("flow;y;p\n1,5;2;2,1\n")
     with pytest.raises(DataError, match=r"separated by ';', and a CSV here is separated by ','"):
         read_table(p)
+
+
+def test_features_with_few_values_get_one_bin_per_value():
+    rng = np.random.default_rng(2)
+    switch = (rng.uniform(size=400) < 0.45).astype(float)
+    mode = rng.choice([1.0, 2.0, 5.0], size=400, p=[0.2, 0.5, 0.3])
+    mode[:40] = np.nan
+    smooth = rng.normal(size=400)
+    y = smooth + switch
+    card = card_from_arrays(model_id="m", x={"switch": switch, "mode": mode, "t": smooth}, y=y, yhat=y, params=3)
+    h = card.features["switch"].histogram
+    assert h.values == [0.0, 1.0] and h.edges is None
+    assert h.shares == pytest.approx([1 - switch.mean(), switch.mean()])
+    hm = card.features["mode"].histogram
+    assert hm.values == [1.0, 2.0, 5.0] and hm.missing == pytest.approx(0.1)
+    np.testing.assert_allclose(hm.shares, [np.mean(mode[40:] == v) for v in (1, 2, 5)])
+    assert card.features["t"].histogram.values is None  # continuous: quantile bins
+    # a continuous feature on a handful of rows keeps quantile bins; more values than bins too
+    assert value_histogram(np.arange(8.0)) is None and value_histogram(np.arange(12.0).repeat(3)) is None
+    assert "2 values" in render_card(card)
+
+
+def test_constant_loss_is_the_leave_one_out_loss_of_the_mean_or_median():
+    # Outside check: brute-force leave-one-out with numpy (mean and median of the other rows).
+    rng = np.random.default_rng(6)
+    for n in (2, 3, 8, 31):
+        y = rng.gamma(2.0, 1.0, n)
+        others = [np.delete(y, i) for i in range(n)]
+        sq = np.mean([(y[i] - o.mean()) ** 2 for i, o in enumerate(others)])
+        ab = np.mean([abs(y[i] - np.median(o)) for i, o in enumerate(others)])
+        assert constant_loss(y, "squared") == pytest.approx(sq, rel=1e-12)
+        assert constant_loss(y, "absolute") == pytest.approx(ab, rel=1e-12)
+
+
+def build_args(train, out, *extra):
+    return ["card", "build", str(train), "--target", "y", "--prediction", "p", *extra, "-o", str(out)]
+
+
+def test_build_warns_and_show_lists_what_the_card_cannot_do(tmp_path):
+    # 28 rows, 20 parameters, 3 features: the demo's commissioning model. Its field error is
+    # 6 times the training error by FPE, 13.5 by the random-design estimate; its range limit
+    # is far above a fifth; its histograms come from 28 rows.
+    rng = np.random.default_rng(11)
+    x = rng.normal(size=(28, 3))
+    y = x.sum(axis=1) + rng.normal(size=28)
+    pred = y + rng.normal(0, 0.3, 28)
+    train = write(tmp_path / "q.csv", ["a", "b", "c", "y", "p"], [[*r, t, q] for r, t, q in zip(x, y, pred)])
+    out = tmp_path / "q.json"
+    r = CliRunner().invoke(cli, build_args(train, out, "--params", "20"))
+    assert r.exit_code == 0, r.output
+    warnings = [line for line in r.stderr.splitlines() if line.startswith("warning: ")]
+    assert any("high d/N" in w and "6 times" in w and "13.5 times" in w for w in warnings)
+    assert any("too few rows for range" in w for w in warnings)
+    assert any("too few rows for shift" in w for w in warnings)
+    r = CliRunner().invoke(cli, ["card", "show", str(out)])
+    assert "cautions" in r.stdout and "high d/N" in r.stdout
+    assert "FPE (same inputs)" in r.stdout and "random design" in r.stdout
+    # the random-design estimate as the card's choice
+    r = CliRunner().invoke(cli, build_args(train, out, "--params", "20", "--expected-loss-estimate", "random_design"))
+    assert r.exit_code == 0, r.output
+    assert expected_loss(load_card(out))[1] == "random_design" and "the random-design estimate" in r.stdout
+
+
+def test_build_warns_when_the_model_is_not_expected_to_beat_the_mean(tmp_path):
+    rng = np.random.default_rng(12)
+    x = rng.normal(size=3000)
+    y = rng.normal(size=3000)  # x says nothing of y
+    pred = 0.5 * x  # and the model adds noise
+    train = write(tmp_path / "w.csv", ["x", "y", "p"], list(zip(x, y, pred)))
+    r = CliRunner().invoke(cli, build_args(train, tmp_path / "w.json", "--params", "2"))
+    assert r.exit_code == 0, r.output
+    assert "no better than predicting the training mean" in r.stderr
+    card = load_card(tmp_path / "w.json")
+    assert card.target.constant_loss == pytest.approx(np.var(y) * (3000 / 2999) ** 2)
+    # a good model on many rows draws no caution at all
+    good = write(tmp_path / "g.csv", ["x", "y", "p"], list(zip(x, x + 0.1 * y, x)))
+    r = CliRunner().invoke(cli, build_args(good, tmp_path / "g.json", "--params", "2"))
+    assert r.exit_code == 0 and "warning" not in r.stderr
+    assert card_cautions(load_card(tmp_path / "g.json")) == []
+
+
+def test_build_refuses_a_card_with_no_usable_expected_loss_unless_asked(tmp_path, rows):
+    x1, x2, y, pred = rows
+    train = write(tmp_path / "a.csv", ["flow", "y", "p"], list(zip(x1, y, pred)))
+    out = tmp_path / "a.json"
+    r = CliRunner().invoke(cli, build_args(train, out, "--params", "2", "--loss", "absolute"))
+    assert r.exit_code == 2 and not out.exists()
+    assert "no 'holdout' loss" in r.stderr and "--allow-no-expected-loss" in r.stderr
+    r = CliRunner().invoke(
+        cli, build_args(train, out, "--params", "2", "--loss", "absolute", "--allow-no-expected-loss")
+    )
+    assert r.exit_code == 0 and out.exists()
+    assert "warning: no usable expected loss" in r.stderr

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from helpers import card
 
-from watchdog_edge.core.cards import ModelCard, expected_loss, final_prediction_error
+from watchdog_edge.core.cards import ModelCard, expected_loss, final_prediction_error, random_design_error
 from watchdog_edge.errors import CardError
 from watchdog_edge.files.cardfile import load_card
 
@@ -86,3 +86,80 @@ def test_histogram_shape_is_validated():
             fitted_parameters=1,
             features={"a": {"min": 0, "max": 1, "histogram": {"edges": [0, 1], "shares": [0.5, 0.5]}}},
         )
+
+
+@pytest.mark.parametrize("n, d, ratio_to_fpe", [(28, 20, 2.24), (30, 5, 1.03), (200, 10, None)])
+def test_random_design_estimate_matches_monte_carlo_ols_on_gaussian_inputs(n, d, ratio_to_fpe):
+    # Outside check: least squares fitted with numpy (an intercept and d - 1 Gaussian
+    # regressors, correct linear model, Gaussian noise), its squared error measured at new
+    # Gaussian inputs. The mean field error must be sigma^2 (1 + 1/N)(N - 2)/(N - d - 1) (the
+    # S_p criterion's target, Hocking 1976), and the estimate from each fit's training loss
+    # must be unbiased for it. The issue's own Monte Carlo found the field error 2.24 times
+    # the final prediction error at N = 28, d = 20, and 1.03 times at N = 30, d = 5.
+    rng = np.random.default_rng(n * 100 + d)
+    reps, new, sigma = 20000, 50, 0.7
+    p = d - 1
+    beta = rng.normal(size=d)
+    x = np.concatenate([np.ones((reps, n, 1)), rng.standard_normal((reps, n, p))], axis=2)
+    y = x @ beta + rng.normal(0, sigma, (reps, n))
+    xtx = np.einsum("rni,rnj->rij", x, x)
+    coef = np.linalg.solve(xtx, np.einsum("rni,rn->ri", x, y)[..., None])[..., 0]
+    train = np.mean((y - np.einsum("rni,ri->rn", x, coef)) ** 2, axis=1)
+    x0 = np.concatenate([np.ones((reps, new, 1)), rng.standard_normal((reps, new, p))], axis=2)
+    y0 = x0 @ beta + rng.normal(0, sigma, (reps, new))
+    field = np.mean((y0 - np.einsum("rni,ri->rn", x0, coef)) ** 2, axis=1)
+    theory = sigma**2 * (1 + 1 / n) * (n - 2) / (n - d - 1)
+    se = field.std() / np.sqrt(reps)
+    assert abs(field.mean() - theory) < 4 * se
+    est = np.array([random_design_error(t, n, d) for t in train])
+    assert abs(est.mean() - field.mean()) < 4 * np.hypot(est.std(), field.std()) / np.sqrt(reps)
+    fpe = np.array([final_prediction_error(t, n, d) for t in train])
+    if ratio_to_fpe is not None:
+        assert field.mean() / fpe.mean() == pytest.approx(ratio_to_fpe, abs=0.08)
+        assert random_design_error(1.0, n, d) / final_prediction_error(1.0, n, d) == pytest.approx(
+            ratio_to_fpe, abs=0.005
+        )
+    # the check can fail: at N = 28, d = 20 the final prediction error is far below the field error
+    if d == 20:
+        assert fpe.mean() < field.mean() / 2
+
+
+def test_the_card_chooses_its_estimate_and_old_cards_load(tmp_path):
+    c = card(holdout=None, train=1.0, n=28, d=20)
+    assert expected_loss(c) == (pytest.approx(6.0), "fpe")  # the default, as the contract says
+    c2 = c.model_copy(update={"expected_loss_estimate": "random_design"})
+    assert expected_loss(c2) == (pytest.approx(29 * 26 / (8 * 7)), "random_design")
+    with pytest.raises(CardError, match="two more training rows"):
+        random_design_error(1.0, 21, 20)
+    # A card written by the previous version (card_format 1, no new fields) loads as before.
+    old = {
+        "card_format": 1,
+        "model_id": "pump",
+        "loss": "squared",
+        "training": {"loss": 0.5, "count": 400},
+        "fitted_parameters": 4,
+        "least_squares": True,
+        "features": {"flow": {"min": 0, "max": 9, "histogram": {"edges": [0, 3, 6, 9], "shares": [0.3, 0.4, 0.3]}}},
+        "target": {"min": 1.0, "max": 7.5},
+    }
+    path = tmp_path / "old.json"
+    path.write_text(json.dumps(old))
+    loaded = load_card(path)
+    assert loaded.card_format == 1 and loaded.target.constant_loss is None
+    assert expected_loss(loaded) == (pytest.approx(0.5 * 404 / 396), "fpe")
+    # and the input checks take its histogram as before (edges, open outer bins)
+    from watchdog_edge.core.checks.base import CheckContext
+    from watchdog_edge.core.checks.shift import ShiftCheck, ShiftSettings
+    from watchdog_edge.core.records import Prediction
+
+    shift = ShiftCheck(
+        ShiftSettings(recent_predictions=50, evaluate_every_predictions=50),
+        CheckContext("pump", loaded, "squared", 1.0, "fpe"),
+    )
+    for i in range(50):
+        shift.on_prediction(Prediction("pump", str(i), 0.0, float(i), features={"flow": float(i % 10)}))
+    assert shift.counts()["flow"] == [15, 15, 20, 0]  # [0, 3), [3, 6), [6, inf), missing
+    old["card_format"] = 3
+    path.write_text(json.dumps(old))
+    with pytest.raises(CardError, match="card_format = 3.*expected 1 or 2"):
+        load_card(path)

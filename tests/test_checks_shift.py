@@ -214,6 +214,101 @@ def test_check_config_prints_the_small_window_warning():
     assert w.startswith("models[press].checks.shift: recent_predictions = 400 is below 1000")
 
 
+def test_a_discrete_feature_moving_from_45_to_100_percent_is_raised():
+    # Regression: a 0/1 feature got one histogram bin at card build (its quantile edges merge),
+    # so 45 % -> 100 % of one value raised nothing over 1,500 predictions.
+    from watchdog_edge.files.cardbuild import card_from_arrays
+
+    rng = np.random.default_rng(21)
+    for n in (300, 3000):
+        switch = (rng.uniform(size=n) < 0.45).astype(float)
+        y = rng.normal(size=n)
+        card = card_from_arrays(model_id="m", x={"switch": switch}, y=y, yhat=y, params=2)
+        check = ShiftCheck(ShiftSettings(), CheckContext("m", card, "squared", 1.0, "holdout"))
+        levels = []
+        for i in range(3000):
+            on = float(rng.uniform() < 0.45) if i < 1500 else 1.0
+            check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"switch": on}))
+            v = check.evaluate(float(i))
+            if v is not None:
+                levels.append((i, v.level))
+        assert all(level == "normal" for i, level in levels if i < 1500)
+        assert any(level == "critical" for i, level in levels if i < 2500)  # within a window of the change
+        # a value the card never saw lands in the "other" bin
+        assert check.counts()["switch"] == [0, 1000, 0, 0]
+
+
+def test_small_cards_raise_the_limits_so_fair_inputs_stay_quiet():
+    # A card's histogram from n rows is itself an estimate: with 30 rows and 10 bins the index of
+    # fair inputs averages about 9/30 = 0.3, above the critical 0.25. The limits are raised by
+    # the two-sample chi-square bound. Fair inputs stay quiet; a large move is still raised.
+    from watchdog_edge.files.cardbuild import card_from_arrays
+
+    rng = np.random.default_rng(22)
+    for n in (30, 300, 3000):
+        for d in (1, 5):
+            x = {f"f{j}": rng.normal(size=n) for j in range(d)}
+            x["mode"] = rng.choice([0.0, 1.0, 2.0], size=n, p=[0.3, 0.3, 0.4])
+            y = rng.normal(size=n)
+            card = card_from_arrays(model_id="m", x=x, y=y, yhat=y, params=2)
+            check = ShiftCheck(ShiftSettings(), CheckContext("m", card, "squared", 1.0, "holdout"))
+            if n == 30:
+                assert min(check.factors.values()) > 1
+            levels = []
+            for i in range(5000):
+                feats = {f"f{j}": float(rng.normal()) for j in range(d)}
+                feats["mode"] = float(rng.choice([0.0, 1.0, 2.0], p=[0.3, 0.3, 0.4]))
+                check.on_prediction(Prediction("m", str(i), 0.0, float(i), features=feats))
+                v = check.evaluate(float(i))
+                if v is not None:
+                    levels.append(v.level)
+            assert set(levels) == {"normal"}, (n, d)
+            figs = check.figures()
+            assert figs["warning_limits"]["mode"] >= 0.1
+            # the inputs move by three standard deviations: raised even from 30 rows
+            for i in range(1000):
+                feats = {f"f{j}": float(rng.normal(3.0)) for j in range(d)}
+                feats["mode"] = 0.0
+                check.on_prediction(Prediction("m", str(i), 0.0, float(i), features=feats))
+                check.evaluate(float(i))
+            assert check.figures()["level"] == "critical", (n, d)
+
+
+def test_a_large_move_is_seen_on_the_recent_part_of_the_window():
+    # 45 % -> 75 % of ones: over the whole window of 1,000 the index passes 0.1 only once about
+    # half the window has moved; over the latest 250 it passes its own (higher) limit sooner.
+    from watchdog_edge.files.cardbuild import card_from_arrays
+
+    rng = np.random.default_rng(23)
+    n = 3000
+    switch = (rng.uniform(size=n) < 0.45).astype(float)
+    y = rng.normal(size=n)
+    card = card_from_arrays(model_id="m", x={"switch": switch}, y=y, yhat=y, params=2)
+    delays = {}
+    assert ShiftSettings().short_window_predictions == 0  # off by default (daily cycles)
+    for recent in (0, 250):
+        check = ShiftCheck(
+            ShiftSettings(short_window_predictions=recent, evaluate_every_predictions=50),
+            CheckContext("m", card, "squared", 1.0, "holdout"),
+        )
+        stream = np.concatenate([rng.uniform(size=2000) < 0.45, rng.uniform(size=2000) < 0.75]).astype(float)
+        for i, on in enumerate(stream.tolist()):
+            check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"switch": on}))
+            v = check.evaluate(float(i))
+            if v is not None and v.level != "normal":
+                delays[recent] = i - 2000
+                break
+        if recent:
+            # the recent index is the index of the latest 250 values, counted here with numpy
+            last = stream[i - 249 : i + 1]
+            counts = [int((last == 0).sum()), int((last == 1).sum()), 0, 0]
+            e = card.features["switch"].histogram.shares + [0.0, 0.0]
+            a = (np.array(counts) + 0.5) / (250 + 2.0)
+            q = (np.array(e) * 250 + 0.5) / (250 + 2.0)
+            assert v.figures["short_window_index"]["switch"] == pytest.approx(float(np.sum((a - q) * np.log(a / q))))
+    assert delays[250] < 300 < delays[0]
+
+
 def test_nulls_and_absent_features_go_to_the_missing_bin_of_their_own_feature_only():
     hist = {"edges": [0.0, 1.0, 2.0], "shares": [0.5, 0.5], "missing": 0.0}
     card = ModelCard(

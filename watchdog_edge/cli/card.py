@@ -81,12 +81,28 @@ def build(
         max=100,
         help="Quantile bins per feature histogram (used by the shift check); tied cut points are merged.",
     ),
+    estimate: str = typer.Option(
+        "fpe",
+        "--expected-loss-estimate",
+        help="Without a hold-out, how a least-squares card's training loss is adjusted for new data: "
+        "fpe (Akaike's final prediction error: new noise at the training inputs) or random_design "
+        "(new inputs drawn like the training ones; larger where d/N is high). See README 'Expected loss'.",
+    ),
+    allow_no_expected_loss: bool = typer.Option(
+        False,
+        "--allow-no-expected-loss",
+        help="Write the card even when no expected loss follows from it (no hold-out, and absolute loss "
+        "or not least squares); the agent then refuses it for gap, drift and baseline.",
+    ),
     out: Path = typer.Option(..., "-o", "--output", help="Where to write the card (JSON)."),
 ) -> None:
-    """Compute a card: training loss and count, training range of the inputs, histograms, target range, held-out loss."""
-    from watchdog_edge.files.cardbuild import build_card, render_card
+    """Compute a card: training loss and count, training range of the inputs, histograms, target range,
+    held-out loss; warn about what the card leaves the checks unable to do."""
+    from watchdog_edge.files.cardbuild import build_card, card_cautions, render_card
     from watchdog_edge.files.cardfile import save_card
 
+    if estimate not in ("fpe", "random_design"):
+        raise _fail(f"--expected-loss-estimate = {estimate!r}: use 'fpe' or 'random_design'")
     try:
         feats = [f.strip() for f in features.split(",") if f.strip()] if features is not None else None
         card = build_card(
@@ -101,6 +117,8 @@ def build(
             model_id=model_id,
             version=version,
             bins=bins,
+            estimate=estimate,  # type: ignore[arg-type]  # checked above
+            require_expected_loss=not allow_no_expected_loss,
         )
         save_card(card, out)
     except WatchdogError as e:
@@ -109,6 +127,8 @@ def build(
         raise _fail(f"cannot write the card to {out}: {e.strerror}") from None
     typer.echo(render_card(card))
     typer.echo(f"written to {out}")
+    for caution in card_cautions(card):
+        typer.echo(f"warning: {caution}", err=True)
 
 
 @app.command(cls=PlainCommand)

@@ -1,8 +1,9 @@
-"""Building a model card from training rows: losses, training range, quantile histograms, hold-out.
+"""Building a model card from training rows: losses, training range, histograms, hold-out, cautions.
 
 ``card_from_arrays`` does the computation; ``build_card`` reads the rows from CSV files first;
-``render_card`` shows a card as text. Row numbers in messages count as a spreadsheet does: the
-header is row 1, the first data row is row 2.
+``render_card`` shows a card as text and ``card_cautions`` says what the card leaves the
+checks unable to do. Row numbers in messages count as a spreadsheet does: the header is row
+1, the first data row is row 2.
 """
 
 from __future__ import annotations
@@ -15,8 +16,26 @@ from pathlib import Path
 
 import numpy as np
 
-from watchdog_edge.core.cards import FeatureProfile, Histogram, LossFigure, ModelCard, TargetRange, expected_loss
+from watchdog_edge.core.cards import (
+    Estimate,
+    FeatureProfile,
+    Histogram,
+    LossFigure,
+    ModelCard,
+    TargetRange,
+    expected_loss,
+    final_prediction_error,
+    random_design_error,
+)
+from watchdog_edge.core.checks.base import CheckContext
+from watchdog_edge.core.checks.range import RangeCheck, RangeSettings
+from watchdog_edge.core.checks.shift import ShiftCheck, ShiftSettings
 from watchdog_edge.errors import CardError, DataError
+
+# Cautions: the expected field loss this many times the training loss or more is "high d/N".
+HIGH_OPTIMISM = 1.5
+# range is of little use where a fifth of the inputs leaving the range is not significant.
+RANGE_EXCURSION = 0.2
 
 LOSS_KINDS = ("squared", "absolute")
 # Cell texts read as missing: the empty cell, and the "nan" that numpy and many tools write.
@@ -65,6 +84,56 @@ def quantile_histogram(values: np.ndarray, bins: int = 10) -> Histogram:
     )
 
 
+def value_histogram(values: np.ndarray, bins: int = 10) -> Histogram | None:
+    """One bin per value for a feature with few distinct values, else None.
+
+    Few means at most ``bins`` distinct values, each seen twice on average or more (so a
+    continuous feature measured on a handful of rows keeps quantile bins).
+
+    >>> value_histogram(np.array([0, 1, 1, 0, 1, 1.0])).shares
+    [0.3333333333333333, 0.6666666666666666]
+    >>> value_histogram(np.arange(50.0)) is None
+    True
+    """
+    v = np.asarray(values, dtype=float)
+    missing = np.isnan(v)
+    present = v[~missing]
+    if present.size == 0:
+        return None
+    distinct, counts = np.unique(present, return_counts=True)
+    if distinct.size > bins or 2 * distinct.size > present.size:
+        return None
+    return Histogram(
+        values=[float(x) for x in distinct],
+        shares=[float(c) / present.size for c in counts],
+        missing=float(missing.mean()),
+    )
+
+
+def constant_loss(y: np.ndarray, kind: str) -> float:
+    """Leave-one-out loss of predicting each training row by the mean (squared loss) or the
+    median (absolute loss) of the other rows: what a model must beat.
+
+    >>> constant_loss(np.array([1.0, 2.0, 3.0]), "squared")   # (1.5^2 + 0 + 1.5^2) / 3
+    1.5
+    """
+    _check_loss(kind)
+    y = np.asarray(y, dtype=float)
+    n = y.size
+    if kind == "squared":
+        # y_i - mean of the others = (y_i - mean) n / (n - 1)
+        return float(np.mean((y - y.mean()) ** 2) * (n / (n - 1)) ** 2)
+    ys = np.sort(y)
+    r = np.arange(n)  # the rank left out
+    m = n - 1
+
+    def kth(k: int) -> np.ndarray:  # the k-th smallest of the others, for every left-out rank
+        return np.where(k < r, ys[k], ys[np.minimum(k + 1, n - 1)])
+
+    med = kth((m - 1) // 2) if m % 2 else 0.5 * (kth(m // 2 - 1) + kth(m // 2))
+    return float(np.mean(np.abs(ys - med)))
+
+
 def card_from_arrays(
     *,
     model_id: str,
@@ -78,8 +147,15 @@ def card_from_arrays(
     version: str | None = None,
     bins: int = 10,
     notes: str | None = None,
+    estimate: Estimate = "fpe",
+    require_expected_loss: bool = True,
 ) -> ModelCard:
-    """A card from training arrays (NaN = missing feature); ``holdout`` is ``(truth, prediction)``."""
+    """A card from training arrays (NaN = missing feature); ``holdout`` is ``(truth, prediction)``.
+
+    Features with few distinct values get one bin per value (:func:`value_histogram`), the
+    others quantile bins. A card from which no expected loss follows is refused unless
+    ``require_expected_loss`` is False.
+    """
     _check_loss(loss)
     if params is not None and params < 0:
         raise CardError(
@@ -107,28 +183,37 @@ def card_from_arrays(
         present = col[~np.isnan(col)]
         if present.size == 0:
             raise DataError(f"feature column '{name}' has no values in any row; leave it out of --features")
-        features[name] = FeatureProfile(
-            min=float(present.min()), max=float(present.max()), histogram=quantile_histogram(col, bins)
-        )
+        hist = value_histogram(col, bins) or quantile_histogram(col, bins)
+        features[name] = FeatureProfile(min=float(present.min()), max=float(present.max()), histogram=hist)
     hold = None
     if holdout is not None:
         hy, hp = holdout
         if np.asarray(hy).size < 1:
             raise DataError("the hold-out rows are empty; give at least one row or leave out --holdout")
         hold = LossFigure(loss=mean_loss(hy, hp, loss), count=int(np.asarray(hy).size))
-    return ModelCard(
+    card = ModelCard(
         model_id=model_id,
         model_version=version,
         loss=loss,
         training=LossFigure(loss=mean_loss(y, yhat, loss), count=int(y.size)),
         fitted_parameters=params,
         least_squares=least_squares,
+        expected_loss_estimate=estimate,
         holdout=hold,
         features=features,
-        target=TargetRange(min=float(y.min()), max=float(y.max())),
+        target=TargetRange(min=float(y.min()), max=float(y.max()), constant_loss=constant_loss(y, loss)),
         created=datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         notes=notes,
     )
+    if require_expected_loss:
+        try:
+            expected_loss(card)
+        except CardError as e:
+            raise CardError(
+                f"{e}. The agent would refuse this card; to write it anyway (for a config that turns "
+                "gap, drift and baseline off), pass --allow-no-expected-loss"
+            ) from None
+    return card
 
 
 def _number(cell: str) -> float | None:
@@ -267,6 +352,8 @@ def build_card(
     model_id: str | None = None,
     version: str | None = None,
     bins: int = 10,
+    estimate: Estimate = "fpe",
+    require_expected_loss: bool = True,
 ) -> ModelCard:
     """A card from a CSV of training rows holding the target and the model's fitted prediction.
 
@@ -304,7 +391,73 @@ def build_card(
         holdout=hold,
         version=version,
         bins=bins,
+        estimate=estimate,
+        require_expected_loss=require_expected_loss,
     )
+
+
+def card_cautions(card: ModelCard) -> list[str]:
+    """What the card leaves the checks unable to do, one sentence each (``card build`` prints
+    them as warnings, ``card show`` lists them); empty when there is nothing to say."""
+    out = []
+    n, d = card.training.count, card.fitted_parameters
+    try:
+        value, source = expected_loss(card)
+    except CardError as e:
+        out.append(f"no usable expected loss: {e}; gap, drift and baseline cannot run on this card")
+        value, source = math.nan, ""
+    train = card.training.loss
+    if source and train > 0 and value / train >= HIGH_OPTIMISM:
+        how = "the held-out loss" if source == "holdout" else _estimate_name(source)
+        extra = ""
+        if source == "fpe" and d is not None and d + 1 < n:
+            extra = (
+                f" (for inputs drawn anew, the random-design estimate puts it at "
+                f"{random_design_error(train, n, d) / train:.3g} times)"
+            )
+        out.append(
+            f"high d/N: {d if d is not None else 'an unknown number of'} fitted parameters on {n} rows; "
+            f"{how} puts the field error at "
+            f"{value / train:.3g} times the training error{extra}; the model is likely overfit and "
+            "its expected loss uncertain: fit fewer parameters, add rows or give a hold-out set"
+        )
+    target = card.target
+    if source and target is not None and target.constant_loss is not None and value >= target.constant_loss:
+        out.append(
+            f"the expected loss {value:.4g} is no better than predicting the training "
+            f"{'mean' if card.loss == 'squared' else 'median'} ({target.constant_loss:.4g}): the model "
+            "is not expected to beat a constant"
+        )
+    if card.features:
+        ctx = CheckContext(card.model_id, card, card.loss, 1.0, "holdout")
+        rng = RangeCheck(RangeSettings.model_validate({}), ctx)
+        warning, _ = rng.limits(rng.settings.recent_predictions)
+        if warning >= RANGE_EXCURSION:
+            out.append(
+                f"too few rows for range: from {rng.training_rows} rows and {len(card.features)} features, as many "
+                f"as {rng.expected_share:.1%} of fair inputs fall outside the training range on average, so range "
+                "raises "
+                f"only above {warning:.1%} of its window and a fifth of the inputs leaving the range would "
+                "go unseen (far-outside inputs are still raised at once); add training rows"
+            )
+        shift = ShiftCheck(ShiftSettings.model_validate({}), ctx)
+        base = shift.settings
+        blunt = {
+            k: f * base.warning_index for k, f in shift.factors.items() if f * base.warning_index > base.critical_index
+        }
+        if blunt:
+            worst = max(blunt, key=blunt.__getitem__)
+            out.append(
+                f"too few rows for shift: the card's histograms are estimated from few rows, so the index "
+                f"must pass {blunt[worst]:.3g} ({worst}; {len(blunt)} of {len(shift.factors)} features above "
+                f"the usual critical {base.critical_index:g}) before a move is told from chance; add training rows "
+                "or build with fewer --bins"
+            )
+    return out
+
+
+def _estimate_name(source: str) -> str:
+    return "the final prediction error" if source == "fpe" else "the random-design estimate"
 
 
 def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> str:
@@ -325,6 +478,7 @@ def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> s
         lines.append(f"  held-out loss      {card.holdout.loss:{g}} over {card.holdout.count} rows")
     else:
         lines.append("  held-out loss      (none)")
+    n, d, train = card.training.count, card.fitted_parameters, card.training.loss
     try:
         value, source = expected if expected is not None else expected_loss(card)
     except CardError as e:
@@ -332,27 +486,48 @@ def render_card(card: ModelCard, expected: tuple[float, str] | None = None) -> s
     else:
         if source == "holdout":
             how = "the held-out loss"
-        else:
-            n, d = card.training.count, card.fitted_parameters or 0
+        elif source == "fpe":
             how = (
                 f"the training loss corrected for fitting (final prediction error), training loss x (N + d) / (N - d) = "
-                f"{card.training.loss:{g}} x ({n} + {d}) / ({n} - {d})"
+                f"{train:{g}} x ({n} + {d}) / ({n} - {d})"
+            )
+        else:
+            how = (
+                f"the random-design estimate, training loss x (N + 1)(N - 2) / ((N - d)(N - d - 1)) = "
+                f"{train:{g}} x ({n} + 1)({n} - 2) / (({n} - {d})({n} - {d} - 1))"
             )
         lines.append(f"  expected in field  {value:{g}}, from {how}")
-        if card.training.loss > 0:
-            lines.append(f"  optimism ratio     {value / card.training.loss:.4g} (expected / training loss)")
+        if train > 0:
+            lines.append(f"  optimism ratio     {value / train:.4g} (expected / training loss)")
         else:
             lines.append("  optimism ratio     undefined (the training loss is 0)")
+    if card.loss == "squared" and card.least_squares and d is not None:
+        # both estimates, whichever the card uses: they differ where d/N is high
+        for name, fn in (("fpe", final_prediction_error), ("random_design", random_design_error)):
+            try:
+                est = f"{fn(train, n, d):{g}}"
+            except CardError:
+                est = "not defined for these N and d"
+            chosen = "  (the card's choice without hold-out)" if name == card.expected_loss_estimate else ""
+            label = "FPE (same inputs)" if name == "fpe" else "random design"
+            lines.append(f"  {label:<19}{est}{chosen}")
     if card.target:
         lines.append(f"  target range       {card.target.min:{g}} .. {card.target.max:{g}}")
+        if card.target.constant_loss is not None:
+            const = "mean" if card.loss == "squared" else "median"
+            lines.append(f"  constant's loss    {card.target.constant_loss:{g}} (predicting the training {const})")
     if card.features:
         width = max(7, *(len(n) for n in card.features))
-        lines.append(f"  {'feature':<{width}}  {'min':>12}  {'max':>12}  {'bins':>4}  {'missing':>7}")
+        lines.append(f"  {'feature':<{width}}  {'min':>12}  {'max':>12}  {'bins':>9}  {'missing':>7}")
         for name, f in card.features.items():
             h = f.histogram
-            nb = str(len(h.shares)) if h else "-"
+            nb = "-" if h is None else f"{h.bins} values" if h.values is not None else str(h.bins)
             miss = f"{h.missing:.1%}" if h else "-"
-            lines.append(f"  {name:<{width}}  {f.min:>12{g}}  {f.max:>12{g}}  {nb:>4}  {miss:>7}")
+            lines.append(f"  {name:<{width}}  {f.min:>12{g}}  {f.max:>12{g}}  {nb:>9}  {miss:>7}")
     else:
         lines.append("  features           (none)")
+    cautions = card_cautions(card)
+    if cautions:
+        lines.append("  cautions")
+        lines.extend(f"  - {c}" for c in cautions)
     return "\n".join(lines)

@@ -4,10 +4,44 @@ Each prediction's features are compared with the card's per-feature ``min`` and 
 on each side by ``margin`` x (max - min). Over the last ``recent_predictions`` predictions that carry
 features, the share of those with at least one input outside is the figure that raises and
 clears; the check keeps only the outside ones (with their place in the stream), so a
-prediction inside the training range costs a comparison per feature and nothing more. Needs no
+prediction inside the range costs a comparison per feature and nothing more. Needs no
 truth. The figures give, per feature outside in the window, how many predictions were
-outside and the largest distance below ``low`` and above ``high`` (the training range's edges), in
+outside and the largest distance below ``low`` and above ``high`` (the range's edges), in
 the feature's own units.
+
+Some inputs fall outside even when nothing has changed, the more so the fewer training rows
+the card has. By order statistics, a new value drawn like n training values falls outside
+their min-max with probability 2/(n + 1) (any continuous distribution; ties only lower it).
+For one card that probability is itself random: it is the sum of the two outer spacings,
+Beta(2, n - 1)-distributed. With d features, a prediction is outside when any feature is, so
+the card's outside rate is at most the sum of the d features' rates (the union bound; we use
+it rather than the rate under independence, 1 - (1 - 2/(n + 1))^d, because it holds whatever
+the features' dependence). The check therefore:
+
+1. bounds the card's rate from above: the sum of d Beta(2, n - 1) is bounded by a gamma
+   variable of shape 2d and scale 1/(n + 1) (each Beta(2, n - 1) is gamma(2)/(n + 1) with the
+   gamma's mean-one denominator averaged away, which only thickens the tail), whose upper
+   ``CARD_TAIL`` quantile is ``q_hi``; n is the card's row count less its missing values for
+   the feature with the most missing;
+2. raises a warning only when the outside count in the window is significant against a
+   binomial(window, ``q_hi``) at level ``significance`` (one-sided), and above
+   ``warning_share``; critical above ``critical_share`` and that same count limit.
+
+``expected_share`` in the figures is the union bound's mean, sum over features of
+2/(n_j + 1); ``warning_limit`` is the share the window must pass to raise. Where the warning
+limit is above a fifth, a fifth of the inputs leaving the range cannot be told from chance at
+this card's row count, and ``card build`` says so.
+
+A prediction with an input far beyond the training min or max raises critical at once,
+whatever the share. Far means more than k training ranges (max - min) past the nearer edge,
+where k is the larger of ``far_outside_ranges`` (3) and what the card's row count asks for
+an exponential tail, the heaviest of the common ones: for n exponential training values a
+new one passes max + k ranges with probability n/(n + 1) / C(n + k, k + 1) (the minimum and
+the range are independent, by the memoryless property, and the range is the largest of n - 1
+exponentials), and k is the smallest with that below ``FAR_PROBABILITY`` (1e-9):
+14 ranges for 20 rows, 10 for 30, 5 for 100, 3 from 1,000. A Gaussian input never gets that far; a
+sensor dropout, a fill value (-999) or a unit change lands tens of ranges away. A feature
+constant in training has no range to measure by and is left out of this rule.
 
 A feature that is null or absent in a prediction is not outside (``shift`` counts missing
 values); a feature the card does not describe is ignored; a prediction with no features at
@@ -25,6 +59,7 @@ from pydantic import Field, model_validator
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict, fmt
 from watchdog_edge.core.levels import LevelGate
 from watchdog_edge.core.records import Prediction
+from watchdog_edge.core.tails import binomial_limit, erlang_isf
 
 
 def distance(x: float) -> str:
@@ -38,6 +73,40 @@ def distance(x: float) -> str:
     digits = 2 - math.floor(math.log10(abs(x)))
     r = round(x, digits)
     return f"{r:.{max(digits, 0)}f}"
+
+
+# The share of fair cards whose own outside rate may exceed the rate the test assumes.
+CARD_TAIL = 1e-3
+# The chance that a fair input from an exponential tail counts as far outside.
+FAR_PROBABILITY = 1e-9
+
+
+def far_ranges(rows: int, floor: float, probability: float = FAR_PROBABILITY) -> float:
+    """Training ranges beyond the edge past which an input is far outside, for a card of
+    ``rows`` rows: at least ``floor`` (see the module docstring).
+
+    >>> [far_ranges(n, 3.0) for n in (20, 30, 100, 1000, 100_000)]
+    [14.0, 10.0, 5.0, 3.0, 3.0]
+    """
+    n = max(rows, 2)
+    target = -math.log(probability) + math.log(n / (n + 1))
+    a = 1
+    # log C(n - 1 + a, a) must reach ``target``
+    while math.lgamma(n + a) - math.lgamma(a + 1) - math.lgamma(n) < target:
+        a += 1
+    return max(floor, float(a - 1))
+
+
+def outside_rate_bound(rows: int, features: int, tail: float = CARD_TAIL) -> float:
+    """Upper ``tail`` quantile of a fair card's outside rate, for ``features`` features each
+    with ``rows`` training values (see the module docstring).
+
+    >>> round(outside_rate_bound(300, 1), 4)   # mean 2/301 = 0.0066
+    0.0307
+    """
+    if features < 1:
+        return 0.0
+    return min(1.0, erlang_isf(tail, 2 * features) / (max(rows, 1) + 1))
 
 
 class RangeSettings(CheckSettings):
@@ -66,6 +135,19 @@ class RangeSettings(CheckSettings):
         0.2, ge=0, lt=1, description="Clear only when the share is at or below the limit x (1 - this)."
     )
     clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    significance: float = Field(
+        1e-6,
+        gt=0,
+        lt=0.01,
+        description="Raise only when the outside count is this unlikely (one-sided) from the card's own "
+        "outside rate; small, because the test is repeated at every evaluation.",
+    )
+    far_outside_ranges: float = Field(
+        3.0,
+        gt=0,
+        description="An input more than this many training ranges (max - min) beyond the training min or "
+        "max raises critical at once; cards with few rows raise it further (see the check's docs).",
+    )
 
     @model_validator(mode="after")
     def _order(self) -> RangeSettings:
@@ -82,7 +164,7 @@ class RangeCheck(Check[RangeSettings]):
     """Share of recent predictions whose inputs lie outside the card's training range.
 
     >>> from watchdog_edge.core.cards import ModelCard
-    >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 100}, fitted_parameters=2,
+    >>> card = ModelCard(model_id="m", training={"loss": 1.0, "count": 10000}, fitted_parameters=2,
     ...                  holdout={"loss": 1.0, "count": 50},
     ...                  features={"temp": {"min": 0.0, "max": 50.0}})
     >>> ctx = CheckContext("m", card, "squared", 1.0, "holdout")
@@ -102,14 +184,38 @@ class RangeCheck(Check[RangeSettings]):
     def __init__(self, settings: RangeSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
         bounds = []
-        for fname, prof in context.card.features.items():
+        card = context.card
+        rows = card.training.count
+        for fname, prof in card.features.items():
             pad = settings.margin * (prof.max - prof.min)
             bounds.append((fname, prof.min - pad, prof.max + pad))
+            if prof.histogram is not None:
+                rows = min(rows, round(card.training.count * (1.0 - prof.histogram.missing)))
         self._bounds: tuple[tuple[str, float, float], ...] = tuple(bounds)
+        self.training_rows = max(rows, 1)
+        self.far_ranges = far_ranges(self.training_rows, settings.far_outside_ranges)
+        # distance past the widened edge beyond which an input is far outside
+        self._far = {
+            fname: self.far_ranges * (prof.max - prof.min) - settings.margin * (prof.max - prof.min)
+            for fname, prof in card.features.items()
+            if prof.max > prof.min
+        }
+        d = len(bounds)
+        self.expected_share = min(1.0, 2.0 * d / (self.training_rows + 1))
+        self.rate_bound = outside_rate_bound(self.training_rows, d)
         self._gate = LevelGate(
             settings.warning_share, settings.critical_share, settings.hysteresis, settings.clear_after_evaluations
         )
         self.reset()
+
+    def limits(self, predictions: int) -> tuple[float, float]:
+        """Warning and critical limits on the outside share over ``predictions`` predictions:
+        the share must exceed them to raise."""
+        s = self.settings
+        c = binomial_limit(predictions, self.rate_bound, s.significance)
+        chance = (c - 1) / predictions  # a share above it means a count of c or more
+        warning = max(s.warning_share, chance)
+        return warning, max(s.critical_share, warning)
 
     def reset(self) -> None:
         self._seq = 0  # predictions with features taken so far
@@ -117,6 +223,7 @@ class RangeCheck(Check[RangeSettings]):
         # the window: the share is their count over the window, so inside ones cost nothing
         self._details: deque[tuple[int, dict[str, float]]] = deque()
         self._last_eval = 0  # ``_seq`` at the latest evaluation
+        self._far_new = False  # a far-outside prediction came since the latest evaluation
         self._gate.reset()
         self._figures: dict[str, Any] = {}
 
@@ -134,8 +241,14 @@ class RangeCheck(Check[RangeSettings]):
             far[fname] = x - lo if x < lo else x - hi  # signed distance past the nearer edge
         if far is not None:
             self._details.append((self._seq, far))
+            if self._is_far(far):
+                self._far_new = True
         self._seq += 1
-        return self._seq - self._last_eval >= self.settings.evaluate_every_predictions
+        return self._far_new or self._seq - self._last_eval >= self.settings.evaluate_every_predictions
+
+    def _is_far(self, far: dict[str, float]) -> bool:
+        lim = self._far
+        return any(fname in lim and abs(d) > lim[fname] for fname, d in far.items())
 
     @property
     def _filled(self) -> int:
@@ -143,16 +256,24 @@ class RangeCheck(Check[RangeSettings]):
 
     def evaluate(self, t: float) -> Verdict | None:
         s = self.settings
-        if self._seq - self._last_eval < s.evaluate_every_predictions or self._seq < s.min_predictions:
+        due = self._seq - self._last_eval >= s.evaluate_every_predictions and self._seq >= s.min_predictions
+        if not (due or self._far_new):
             return None
+        self._far_new = False
         self._last_eval = self._seq
         oldest = self._seq - self._filled
         details = self._details
         while details and details[0][0] < oldest:
             details.popleft()
         outside = len(details)
-        share = outside / self._filled
-        level = self._gate.update_figure(share)
+        filled = self._filled
+        share = outside / filled
+        far_count = sum(1 for _, far in details if self._is_far(far))
+        warning, critical = self.limits(filled)
+        self._gate.warning, self._gate.critical = warning, critical
+        # a far-outside input counts as a full window outside: critical now, cleared by the
+        # usual rule once it has left the window
+        level = self._gate.update_figure(1.0 if far_count else share)
         per: dict[str, dict[str, Any]] = {}
         for _, far in details:
             for fname, d in far.items():
@@ -171,20 +292,34 @@ class RangeCheck(Check[RangeSettings]):
         self._figures = {
             "share": share,
             "outside": outside,
-            "predictions": self._filled,
+            "predictions": filled,
+            "expected_share": self.expected_share,
+            "warning_limit": warning,
+            "critical_limit": critical,
+            "far_outside": far_count,
+            "far_outside_ranges": self.far_ranges,
+            "training_rows": self.training_rows,
             "warning_share": s.warning_share,
             "critical_share": s.critical_share,
             "margin": s.margin,
             "features": per,
         }
-        return Verdict(level, self._summary(level, share, per), dict(self._figures))
+        return Verdict(level, self._summary(level, share, per, far_count), dict(self._figures))
 
-    def _summary(self, level: str, share: float, per: dict[str, dict[str, Any]]) -> str:
+    def _summary(self, level: str, share: float, per: dict[str, dict[str, Any]], far_count: int) -> str:
         s = self.settings
-        head = f"{share:.1%} of the last {self._filled} predictions had inputs outside the training range"
+        head = (
+            f"{share:.1%} of the last {self._filled} predictions had inputs outside the training range "
+            f"(at most {self.expected_share:.1%} expected from {self.training_rows} training rows)"
+        )
+        warning, critical = self._gate.warning, self._gate.critical
         if level == "normal":
-            return f"{head}, within the limit of {s.warning_share:.1%}."
-        limit = s.critical_share if level == "critical" else s.warning_share
+            return f"{head}, within the limit of {warning:.1%}."
+        if far_count:
+            head += (
+                f"; {far_count} of them more than {self.far_ranges:g} training ranges beyond the training min or max"
+            )
+        limit = critical if level == "critical" else warning
         if s.margin:
             up, down = "the upper edge (training maximum plus margin)", "the lower edge (training minimum minus margin)"
         else:
@@ -212,6 +347,7 @@ class RangeCheck(Check[RangeSettings]):
             "seq": self._seq,
             "details": [[seq, far] for seq, far in self._details if seq >= oldest],
             "since_eval": self._seq - self._last_eval,
+            "far_new": self._far_new,
             "gate": self._gate.snapshot(),
             "figures": self._figures,
         }
@@ -220,5 +356,6 @@ class RangeCheck(Check[RangeSettings]):
         self._seq = int(data["seq"])
         self._details = deque((int(seq), {k: float(v) for k, v in far.items()}) for seq, far in data["details"])
         self._last_eval = self._seq - int(data["since_eval"])
+        self._far_new = bool(data.get("far_new", False))
         self._gate.restore(data["gate"])
         self._figures = data["figures"]

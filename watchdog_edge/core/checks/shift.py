@@ -14,8 +14,31 @@ The index is biased upwards on small windows: for a window of n rows drawn from 
 distribution, n x PSI is close to Pearson's chi-square statistic (ln(a/e) ~ (a - e)/e for small
 differences), so it is about chi-square with b - 1 degrees of freedom, b the number of bins with
 a training share, and its mean is about (b - 1) / n. Hence the default window of 1,000 predictions; ``check-config``
-prints :func:`settings_warnings` for smaller ones. Warning at 0.1 and critical at 0.25 are
+prints :func:`settings_warnings` for smaller ones (the limits below allow for the bias, at the
+cost of missing small moves). Warning at 0.1 and critical at 0.25 are
 common practice, no single source. Needs no truth.
+
+A feature with few distinct values has one bin per value on the card (``values``); a live
+value that matches none falls into an "other" bin, whose training share is 0.
+
+The card's shares are themselves estimates from n training rows, so on unchanged inputs the
+index is about chi-square(b - 1) x (1/window + 1/n) (the two-sample form of the same
+approximation): from a card of 30 rows, 10 bins give an index of about 0.3 on average
+without any change. Each feature's limits are therefore raised by the factor
+max(1, chi-square_(b-1) upper ``significance`` quantile x (1/window + 1/n) / warning), so that
+an index is reported only where it is both above the configured limit and significant given
+both sample sizes; the figures give each feature's warning limit (``warning_limits``), and
+the level is taken from the largest index relative to its factor. n is the card's row count
+less the feature's missing share.
+
+A window of 1,000 sees small moves but is slow to see a large one: a share moving from 45 %
+to 75 % passes the warning index only once half the window has moved. With
+``short_window_predictions`` set (say 250, with ``evaluate_every_predictions`` 50), the index is also taken
+over the latest that many predictions of the window, with its own limits (the same rule, for
+the shorter window), and the level follows whichever of the two is further above its
+limits; the figures give both (``index``, ``short_window_index``). It is off by default: where the
+inputs have a cycle (a day) longer than the recent part, that part holds only a piece of the
+cycle and is raised every cycle, as the built-in demo shows.
 
 A prediction with no features at all is not counted; in one that has features, a feature that
 is null or absent falls into the missing bin.
@@ -35,8 +58,24 @@ from pydantic import Field, model_validator
 from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, Verdict
 from watchdog_edge.core.levels import LevelGate
 from watchdog_edge.core.records import Prediction
+from watchdog_edge.core.tails import chi2_isf
 
 ADVISED_MIN_WINDOW = 1000
+
+
+def limit_factor(warning: float, bins: int, window: int, rows: int, significance: float) -> float:
+    """How much a feature's limits are raised for chance: ``bins`` bins with a training share,
+    ``rows`` training rows, ``window`` live predictions (see the module docstring).
+
+    >>> limit_factor(0.1, 10, 1000, 100_000, 1e-6)   # a large card: the limits stand
+    1.0
+    >>> round(limit_factor(0.1, 10, 1000, 30, 1e-6), 1)
+    15.4
+    """
+    if bins < 2:
+        return 1.0
+    chance = chi2_isf(significance, bins - 1) * (1.0 / window + 1.0 / max(rows, 1))
+    return max(1.0, chance / warning)
 
 
 _NAN = float("nan")
@@ -68,10 +107,24 @@ class ShiftSettings(CheckSettings):
     evaluate_every_predictions: int = Field(
         250, ge=1, description="Predictions between evaluations (the index moves slowly on a window of 1000)."
     )
+    short_window_predictions: int = Field(
+        0,
+        ge=0,
+        description="Also compare the latest this many predictions of the window, with limits for their "
+        "number, to see large moves sooner (off with 0, the default: inputs with a daily cycle "
+        "longer than this many predictions would be raised every cycle).",
+    )
     hysteresis: float = Field(
         0.2, ge=0, lt=1, description="Clear only when the index is at or below the limit x (1 - this)."
     )
     clear_after_evaluations: int = Field(3, ge=1, description="Evaluations in a row that must meet the clearing rule.")
+    significance: float = Field(
+        1e-6,
+        gt=0,
+        lt=0.01,
+        description="A feature's limits are raised until an index above them is this unlikely on unchanged "
+        "inputs, given the window and the card's row count.",
+    )
 
     @model_validator(mode="after")
     def _order(self) -> ShiftSettings:
@@ -91,7 +144,8 @@ def settings_warnings(settings: ShiftSettings) -> list[str]:
         out.append(
             f"recent_predictions = {settings.recent_predictions} is below {ADVISED_MIN_WINDOW}: the population "
             f"stability index is biased upwards on few predictions (about bins/predictions on unchanged inputs), "
-            f"so false alerts become likely; use recent_predictions >= {ADVISED_MIN_WINDOW} or raise warning_index"
+            f"so the limits are raised for it and small moves of the inputs go unseen; use recent_predictions >= "
+            f"{ADVISED_MIN_WINDOW} to see them"
         )
     return out
 
@@ -152,17 +206,44 @@ class ShiftCheck(Check[ShiftSettings]):
 
     def __init__(self, settings: ShiftSettings, context: CheckContext) -> None:
         super().__init__(settings, context)
-        names, inner, expected, nbins = [], [], [], []
-        for fname, prof in context.card.features.items():
+        names: list[str] = []
+        inner: list[list[float]] = []
+        expected: list[list[float]] = []
+        nbins: list[int] = []
+        values: list[tuple[int, np.ndarray]] = []  # (column, values) of the one-bin-per-value features
+        factors: list[float] = []
+        recent_factors: list[float] = []
+        r = settings.short_window_predictions
+        self.recent = r if 0 < r < settings.recent_predictions else 0  # 0: no recent index
+        card = context.card
+        for fname, prof in card.features.items():
             h = prof.histogram
             if h is not None and h.shares:
-                names.append(fname)
-                inner.append(h.edges[1:-1])  # bin i is [edges[i], edges[i+1]); outer bins open
                 present = 1.0 - h.missing
-                expected.append([sh * present for sh in h.shares] + [h.missing])
-                nbins.append(len(h.shares) + 1)  # the card's bins, then the missing bin
+                shares = [sh * present for sh in h.shares]
+                if h.values is not None:
+                    values.append((len(names), np.array(h.values, dtype=float)))
+                    inner.append([])
+                    shares.append(0.0)  # the "other" bin: values the card never saw
+                else:
+                    assert h.edges is not None
+                    inner.append(h.edges[1:-1])  # bin i is [edges[i], edges[i+1]); outer bins open
+                names.append(fname)
+                expected.append(shares + [h.missing])
+                nbins.append(len(shares) + 1)  # the card's bins, then the missing bin
+                seen = sum(1 for e in expected[-1] if e > 0)
+                rows = round(card.training.count * present) if h.missing < 1 else card.training.count
+                factors.append(
+                    limit_factor(settings.warning_index, seen, settings.recent_predictions, rows, settings.significance)
+                )
+                recent_factors.append(
+                    limit_factor(settings.warning_index, seen, max(self.recent, 1), rows, settings.significance)
+                )
         self.names: tuple[str, ...] = tuple(names)
         self.expected: dict[str, list[float]] = dict(zip(names, expected))
+        self.factors: dict[str, float] = dict(zip(names, factors))
+        self.recent_factors: dict[str, float] = dict(zip(names, recent_factors))
+        self._values = values
         self._nbins = np.array(nbins, dtype=np.int64)
         # Every feature's bins side by side in one flat count vector, at these offsets.
         self._offset = np.concatenate(([0], np.cumsum(self._nbins)[:-1])).astype(np.int64)
@@ -232,6 +313,10 @@ class ShiftCheck(Check[ShiftSettings]):
             m = size
         x = x.reshape(m, k)
         bins = (x[:, :, None] >= self._edges[None, :, :]).sum(axis=2)
+        for j, vals in self._values:
+            col = x[:, j]
+            idx = np.minimum(np.searchsorted(vals, col), vals.size - 1)
+            bins[:, j] = np.where(vals[idx] == col, idx, vals.size)  # no match: the "other" bin
         bins = np.where(np.isnan(x), self._missing, bins) + self._offset
         slots = (self._pos + np.arange(m)) % size
         old = self._ring[slots].ravel()
@@ -257,6 +342,20 @@ class ShiftCheck(Check[ShiftSettings]):
         s = self.settings.smoothing
         return {n: population_stability_index(self.expected[n], c, s) for n, c in self.counts().items()}
 
+    def recent_indices(self) -> dict[str, float]:
+        """The index of every feature over the latest ``short_window_predictions`` of a full window."""
+        self._flush()
+        r = self.recent
+        if not r or self._filled < self.settings.recent_predictions:
+            return {}
+        slots = (self._pos - r + np.arange(r)) % self.settings.recent_predictions
+        c = np.bincount(self._ring[slots].ravel(), minlength=self._total).tolist()
+        sm = self.settings.smoothing
+        return {
+            n: population_stability_index(self.expected[n], c[o : o + k], sm)
+            for n, o, k in zip(self.names, self._offset.tolist(), self._nbins.tolist())
+        }
+
     def evaluate(self, t: float) -> Verdict | None:
         if self._since_eval < self._every:
             return None
@@ -266,32 +365,51 @@ class ShiftCheck(Check[ShiftSettings]):
             return None
         s = self.settings
         idx = self.indices()
-        top = max(idx, key=idx.__getitem__)
-        level = self._gate.update_figure(idx[top])
+        f = self.factors
+        # the level follows the index furthest above its own limits, over the whole window
+        # or over its recent part
+        score = {n: idx[n] / f[n] for n in idx}
+        span = {n: self._filled for n in idx}
+        recent = self.recent_indices()
+        rf = self.recent_factors
+        for n, v in recent.items():
+            if v / rf[n] > score[n]:
+                score[n], span[n] = v / rf[n], self.recent
+        top = max(score, key=score.__getitem__)
+        level = self._gate.update_figure(score[top])
         self._figures = {
             "index": idx,
+            "short_window_index": recent,
             "top_feature": top,
             "predictions": self._filled,
+            "short_window_predictions": self.recent,
             "warning_index": s.warning_index,
             "critical_index": s.critical_index,
+            "warning_limits": {n: s.warning_index * f[n] for n in idx},
+            "critical_limits": {n: s.critical_index * f[n] for n in idx},
+            "short_window_warning_limits": {n: s.warning_index * rf[n] for n in recent},
         }
-        return Verdict(level, self._summary(level, idx, top), dict(self._figures))
+        return Verdict(level, self._summary(level, score, span, top), dict(self._figures))
 
-    def _summary(self, level: str, idx: dict[str, float], top: str) -> str:
+    def _summary(self, level: str, score: dict[str, float], span: dict[str, int], top: str) -> str:
         s = self.settings
-        n = self._filled
+        n = span[top]
+        f = self.factors if n == self._filled else self.recent_factors
+        warn = s.warning_index * f[top]
+        idx = {k: v * (self.factors if span[k] == self._filled else self.recent_factors)[k] for k, v in score.items()}
         if level == "normal":
             return (
                 f"The inputs of the last {n} predictions look like the training data: the largest "
-                f"population stability index is {idx[top]:.3g} ({top}), within the warning limit {s.warning_index:g}."
+                f"population stability index for its limit is {idx[top]:.3g} ({top}), within the warning limit "
+                f"{warn:.3g}."
             )
-        limit = s.critical_index if level == "critical" else s.warning_index
-        moved = [name for name, v in sorted(idx.items(), key=lambda kv: -kv[1]) if v > s.warning_index]
+        limit = (s.critical_index if level == "critical" else s.warning_index) * f[top]
+        moved = [name for name, v in sorted(score.items(), key=lambda kv: -kv[1]) if v > s.warning_index]
         names = ", ".join(moved[:3]) + (f" and {len(moved) - 3} more" if len(moved) > 3 else "")
         return (
             f"The inputs have moved away from the training data: population stability index "
-            f"{idx[top]:.3g} for {top} over the last {n} predictions (the {level} limit is {limit:g}); "
-            f"features past the warning limit: {names or 'none now'}."
+            f"{idx[top]:.3g} for {top} over the last {n} predictions (the {level} limit is {limit:.3g}); "
+            f"features past their warning limit: {names or 'none now'}."
         )
 
     def figures(self) -> dict[str, Any]:

@@ -1,0 +1,402 @@
+"""Detection quality of the checks: false alerts on fair models, delays on real changes.
+
+One table, one row per check (gap, drift, range, shift, baseline; and shift with its
+``short_window_predictions`` option at 250, evaluated every 50) and two references
+measured in the same run on the same streams: raw ADWIN (``river.drift.ADWIN``, default
+delta, every detection counted, fed what ``drift`` is fed: the loss over the expected loss,
+clipped at 10) and a plain rolling mean of the last 500 losses against 1.25 x the expected
+loss. For the input changes the references watch the input instead (the share of
+predictions outside the training range, or the share of one value), against 1.25 x its
+training share.
+
+False alerts: every check at its defaults, driven as the core drives it (the verb, then
+``evaluate`` unless the verb said False), on stationary streams from a fair model: ordinary
+least squares fitted with numpy on n training rows (n = 30, 300, 3,000) of d features
+(1, 5, 20; continuous Gaussian, or discrete with values 0, 1, 2), the card built by
+``card_from_arrays`` (no hold-out, so the expected loss is the card's default estimate), and
+field records with new inputs drawn like the training ones and errors AR(1) with coefficient
+0, 0.5 or 0.9 (unit variance). A false alert is a level rise (normal to warning or
+critical, or warning to critical), counted per 100,000 records.
+
+Delays, in records after the change (median over the repetitions, and how many of them
+raised within the stream):
+- doubling: the error variance doubles (independent errors; n = 3,000, d = 5);
+- FriedmanDrift: river's ``FriedmanDrift`` stream, global recurring abrupt drift (``gra``), a
+  linear least-squares model fitted on 3,000 rows before the drift;
+- leaving the range: a fifth of the predictions get feature 0 at the training max plus half
+  its range (n = 300, d = 5);
+- discrete share: a 0/1 feature's share of ones moves from 45 % to 75 % (n = 3,000).
+
+    python3 bench/detection_quality.py --short     # under a minute on 2 cores
+    python3 bench/detection_quality.py             # the full form: 100,000 records per stream
+
+The full form ran in about 3 minutes on the 2-core test machine when idle, up to 13 with the
+test suite beside it (see README "Detection, measured").
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import statistics
+import sys
+import time
+from collections import deque
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from multiprocessing import Pool
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from watchdog_edge.core.cards import ModelCard, expected_loss
+from watchdog_edge.core.checks import check_class, settings_class
+from watchdog_edge.core.checks.base import Check, CheckContext
+from watchdog_edge.core.records import Pair, Prediction, Truth
+from watchdog_edge.files.cardbuild import card_from_arrays
+
+CHECKS = ("gap", "drift", "range", "shift", "baseline")
+SHIFT_RECENT = "shift, short window 250"  # shift with short_window_predictions = 250, evaluate_every_predictions = 50
+REFERENCES = ("raw ADWIN", "rolling mean")
+RANK = {"normal": 0, "warning": 1, "critical": 2}
+ROLLING = 500  # pairs in the rolling mean reference (the gap window's default size)
+
+
+# ------------------------------------------------------------------ streams
+
+
+def ar1(rng: np.random.Generator, n: int, phi: float) -> np.ndarray:
+    """AR(1) errors with unit marginal variance."""
+    z = rng.standard_normal(n)
+    e = np.empty(n)
+    prev = rng.standard_normal()
+    s = math.sqrt(1 - phi * phi)
+    for i in range(n):
+        prev = phi * prev + s * z[i]
+        e[i] = prev
+    return e
+
+
+def draw_inputs(rng: np.random.Generator, n: int, d: int, kind: str) -> np.ndarray:
+    if kind == "discrete":
+        return rng.choice([0.0, 1.0, 2.0], size=(n, d), p=[0.3, 0.3, 0.4])
+    return rng.standard_normal((n, d))
+
+
+@dataclass
+class Fair:
+    """A fair model: its card, coefficients and the field stream it sees."""
+
+    card: ModelCard
+    coef: np.ndarray
+    names: list[str]
+
+
+def fit_card(x: np.ndarray, y: np.ndarray, names: list[str]) -> Fair:
+    design = np.column_stack([np.ones(len(y)), x])
+    coef, *_ = np.linalg.lstsq(design, y, rcond=None)
+    card = card_from_arrays(
+        model_id="m", x={n: x[:, j] for j, n in enumerate(names)}, y=y, yhat=design @ coef, params=design.shape[1]
+    )
+    return Fair(card, coef, names)
+
+
+# ------------------------------------------------------------------ driving the checks
+
+
+@dataclass
+class Tracker:
+    """One check (or reference) over a stream: its level rises and when they came."""
+
+    rises: list[int] = field(default_factory=list)
+    level: str = "normal"
+
+    def see(self, i: int, level: str) -> None:
+        if RANK[level] > RANK[self.level]:
+            self.rises.append(i)
+        self.level = level
+
+    def first_after(self, start: int) -> int | None:
+        return next((i - start for i in self.rises if i >= start), None)
+
+
+class Driver:
+    """The checks at their defaults, fed one record (a prediction with its truth) at a time."""
+
+    def __init__(self, card: ModelCard, names: list[str], checks: tuple[str, ...] = CHECKS) -> None:
+        from river.drift import ADWIN
+
+        exp, src = expected_loss(card)
+        self.expected = exp
+        ctx = CheckContext("m", card, "squared", exp, src)
+        self.checks: dict[str, Check] = {n: check_class(n)(settings_class(n).model_validate({}), ctx) for n in checks}
+        if "shift" in checks:  # the option that sees large moves sooner, measured beside the default
+            self.checks[SHIFT_RECENT] = check_class("shift")(
+                settings_class("shift").model_validate(
+                    {"short_window_predictions": 250, "evaluate_every_predictions": 50}
+                ),
+                ctx,
+            )
+        self.track = {n: Tracker() for n in (*self.checks, *REFERENCES)}
+        self.names = names
+        self.adwin = ADWIN()
+        self.roll: deque[float] = deque(maxlen=ROLLING)
+        self.roll_sum = 0.0
+        self.i = 0
+
+    def feed(self, x: list[float], value: float, truth: float, ref: float | None = None) -> None:
+        """One record; ``ref`` replaces the loss for the references (an input indicator)."""
+        i = self.i
+        self.i += 1
+        t = float(i)
+        p = Prediction("m", str(i), value, t, features=dict(zip(self.names, x)))
+        tr = Truth("m", str(i), truth, t)
+        pair = Pair(p, tr, t)
+        loss = (truth - value) ** 2
+        for name, c in self.checks.items():
+            r = c.on_prediction(p)
+            if r is not False and "prediction" in c.reacts_to:
+                v = c.evaluate(t)
+                if v is not None:
+                    self.track[name].see(i, v.level)
+            c.on_truth(tr)
+            r = c.on_pair(pair, loss)
+            if r is not False and "pair" in c.reacts_to:
+                v = c.evaluate(t)
+                if v is not None:
+                    self.track[name].see(i, v.level)
+        if ref is None:
+            self.adwin.update(min(loss / self.expected, 10.0) if self.expected > 0 else 10.0)
+            limit = 1.25 * self.expected
+            obs = loss
+        else:
+            self.adwin.update(ref)
+            limit = self.ref_limit
+            obs = ref
+        if self.adwin.drift_detected:
+            self.track["raw ADWIN"].rises.append(i)
+        if len(self.roll) == ROLLING:
+            self.roll_sum -= self.roll[0]
+        self.roll.append(obs)
+        self.roll_sum += obs
+        if len(self.roll) == ROLLING:
+            self.track["rolling mean"].see(i, "warning" if self.roll_sum / ROLLING > limit else "normal")
+
+    ref_limit = 0.0
+
+
+# ------------------------------------------------------------------ false alerts
+
+
+def false_alerts(task: tuple[int, int, str, float, int, int]) -> dict[str, Any]:
+    """False alerts of every check on one stationary stream from a fair model."""
+    n, d, kind, phi, records, seed = task
+    rng = np.random.default_rng(seed)
+    names = [f"x{j}" for j in range(d)]
+    beta = rng.normal(size=d)
+    xt = draw_inputs(rng, n, d, kind)
+    fair = fit_card(xt, 1.0 + xt @ beta + rng.standard_normal(n), names)
+    drv = Driver(fair.card, names)
+    xf = draw_inputs(rng, records, d, kind)
+    truth = 1.0 + xf @ beta + ar1(rng, records, phi)
+    pred = fair.coef[0] + xf @ fair.coef[1:]
+    rows = xf.tolist()
+    for k in range(records):
+        drv.feed(rows[k], float(pred[k]), float(truth[k]))
+    scale = 100_000 / records
+    return {
+        "n": n,
+        "d": d,
+        "kind": kind,
+        "phi": phi,
+        "rate": {name: len(t.rises) * scale for name, t in drv.track.items()},
+    }
+
+
+# ------------------------------------------------------------------ delays
+
+
+def delay_doubling(task: tuple[int, int, int]) -> dict[str, int | None]:
+    before, after, seed = task
+    rng = np.random.default_rng(seed)
+    d, n = 5, 3000
+    names = [f"x{j}" for j in range(d)]
+    beta = rng.normal(size=d)
+    xt = draw_inputs(rng, n, d, "continuous")
+    fair = fit_card(xt, 1.0 + xt @ beta + rng.standard_normal(n), names)
+    drv = Driver(fair.card, names, ("gap", "drift", "baseline"))
+    total = before + after
+    xf = draw_inputs(rng, total, d, "continuous")
+    e = rng.standard_normal(total)
+    e[before:] *= math.sqrt(2.0)
+    truth = 1.0 + xf @ beta + e
+    pred = fair.coef[0] + xf @ fair.coef[1:]
+    rows = xf.tolist()
+    for k in range(total):
+        drv.feed(rows[k], float(pred[k]), float(truth[k]))
+    return {name: t.first_after(before) for name, t in drv.track.items()}
+
+
+def friedman_rows(seed: int, count: int, change: int) -> Iterator[tuple[list[float], float]]:
+    from river.datasets import synth
+
+    stream = synth.FriedmanDrift(drift_type="gra", position=(change, change + 10 * count), seed=seed)
+    for x, y in stream.take(count):
+        yield [x[j] for j in range(10)], float(y)
+
+
+def delay_friedman(task: tuple[int, int, int]) -> dict[str, int | None]:
+    before, after, seed = task
+    n = 3000
+    rows = list(friedman_rows(seed, n + before + after, n + before))
+    x = np.array([r[0] for r in rows])
+    y = np.array([r[1] for r in rows])
+    names = [f"x{j}" for j in range(10)]
+    fair = fit_card(x[:n], y[:n], names)
+    drv = Driver(fair.card, names, ("gap", "drift", "baseline"))
+    pred = fair.coef[0] + x @ fair.coef[1:]
+    xl = x.tolist()
+    for k in range(n, len(y)):
+        drv.feed(xl[k], float(pred[k]), float(y[k]))
+    return {name: t.first_after(before) for name, t in drv.track.items()}
+
+
+def delay_inputs(task: tuple[str, int, int, int]) -> dict[str, int | None]:
+    what, before, after, seed = task
+    rng = np.random.default_rng(seed)
+    d = 5
+    names = [f"x{j}" for j in range(d)]
+    beta = rng.normal(size=d)
+    total = before + after
+    if what == "range":
+        n = 300
+        xt = draw_inputs(rng, n, d, "continuous")
+        xf = draw_inputs(rng, total, d, "continuous")
+        lo, hi = xt.min(axis=0), xt.max(axis=0)
+        moved = rng.uniform(size=after) < 0.2
+        xf[before:, 0] = np.where(moved, hi[0] + 0.5 * (hi[0] - lo[0]), xf[before:, 0])
+        ind = ((xf < lo) | (xf > hi)).any(axis=1).astype(float)
+        base = 2 * d / (n + 1)
+    else:
+        n = 3000
+        xt = draw_inputs(rng, n, d, "continuous")
+        xt[:, 0] = rng.uniform(size=n) < 0.45
+        xf = draw_inputs(rng, total, d, "continuous")
+        share = np.where(np.arange(total) < before, 0.45, 0.75)
+        xf[:, 0] = rng.uniform(size=total) < share
+        ind = xf[:, 0].copy()
+        base = float(xt[:, 0].mean())
+    fair = fit_card(xt, 1.0 + xt @ beta + rng.standard_normal(n), names)
+    drv = Driver(fair.card, names, ("range", "shift"))
+    drv.ref_limit = 1.25 * base
+    truth = 1.0 + xf @ beta + rng.standard_normal(total)
+    pred = fair.coef[0] + xf @ fair.coef[1:]
+    rows = xf.tolist()
+    for k in range(total):
+        drv.feed(rows[k], float(pred[k]), float(truth[k]), ref=float(ind[k]))
+    return {name: t.first_after(before) for name, t in drv.track.items()}
+
+
+# ------------------------------------------------------------------ the table
+
+
+def summarise_delays(runs: list[dict[str, int | None]]) -> dict[str, str]:
+    out = {}
+    for name in (*CHECKS, SHIFT_RECENT, *REFERENCES):
+        vals = [r[name] for r in runs if name in r]
+        if not vals:
+            continue
+        hit = [v for v in vals if v is not None]
+        med = f"{statistics.median(hit):.0f}" if hit else "-"
+        out[name] = f"{med} ({len(hit)}/{len(vals)})"
+    return out
+
+
+def run(
+    records: int,
+    reps: int,
+    sizes: tuple[int, ...] = (30, 300, 3000),
+    dims: tuple[int, ...] = (1, 5, 20),
+    jobs: int = 2,
+    change: tuple[int, int] = (3000, 5000),
+) -> str:
+    """Measure everything and return the table as Markdown; ``jobs`` = 0 runs in this process,
+    ``change`` is (records before, records after) of the injected changes."""
+    kinds = ("continuous", "discrete")
+    phis = (0.0, 0.5, 0.9)
+    tasks = [
+        (n, d, kind, phi, records, 1000 * i + 7)
+        for i, (n, d, kind, phi) in enumerate((n, d, k, p) for n in sizes for d in dims for k in kinds for p in phis)
+        if d + 2 < n  # the card needs more rows than parameters
+    ]
+    before, after = change
+    pool = Pool(jobs) if jobs > 0 else None
+    pmap: Any = pool.map if pool is not None else lambda f, xs, chunksize=1: list(map(f, xs))
+    try:
+        fa = pmap(false_alerts, tasks, chunksize=1)
+        dbl = pmap(delay_doubling, [(before, after, 50 + r) for r in range(reps)])
+        fri = pmap(delay_friedman, [(before, after, 80 + r) for r in range(reps)])
+        rng_ = pmap(delay_inputs, [("range", before // 3, after // 2, 110 + r) for r in range(reps)])
+        dis = pmap(delay_inputs, [("shift", before * 2 // 3, after, 140 + r) for r in range(reps)])
+    finally:
+        if pool is not None:
+            pool.close()
+            pool.join()
+    delays = {
+        "doubling": summarise_delays(dbl),
+        "FriedmanDrift": summarise_delays(fri),
+        "leaving the range": summarise_delays(rng_),
+        "discrete share": summarise_delays(dis),
+    }
+
+    def mean_rate(name: str, pick) -> str:  # type: ignore[no-untyped-def]
+        vals = [r["rate"][name] for r in fa if pick(r)]
+        return f"{statistics.fmean(vals):.3g}" if vals else "-"
+
+    cols = [f"AR {p:g}" for p in phis] + [f"n={n:,}" for n in sizes] + [f"d={d}" for d in dims] + list(kinds)
+    picks = (
+        [lambda r, p=p: r["phi"] == p for p in phis]
+        + [lambda r, n=n: r["n"] == n for n in sizes]
+        + [lambda r, d=d: r["d"] == d for d in dims]
+        + [lambda r, k=k: r["kind"] == k for k in kinds]
+    )
+    head = ["check", *[f"false/100k {c}" for c in cols], "worst stream", *[f"delay: {k}" for k in delays]]
+    lines = ["| " + " | ".join(head) + " |", "|" + " --- |" * len(head)]
+    for name in (*CHECKS, SHIFT_RECENT, *REFERENCES):
+        worst = max(fa, key=lambda r: r["rate"][name])
+        w = worst["rate"][name]
+        wtxt = "0" if w == 0 else f"{w:.3g} (n={worst['n']}, d={worst['d']} {worst['kind']}, AR {worst['phi']:g})"
+        cells = [mean_rate(name, p) for p in picks]
+        dl = [delays[k].get(name, "-") for k in delays]
+        lines.append("| " + " | ".join([name, *cells, wtxt, *dl]) + " |")
+    streams = len(tasks)
+    lines.append("")
+    lines.append(
+        f"False alerts: mean over the {streams} stationary streams in each slice, {records:,} records each "
+        f"({streams * records:,} in all). Delays: median records from the change to the first raise, "
+        f"(raised / repetitions), {reps} repetitions; the references watch the loss for doubling and "
+        "FriedmanDrift, the input for the range and the discrete share."
+    )
+    return "\n".join(lines)
+
+
+def main(argv: list[str] | None = None) -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--short", action="store_true", help="a quick look: 5,000 records per stream, 3 repetitions")
+    ap.add_argument("--records", type=int, default=None, help="records per stationary stream (default 100,000)")
+    ap.add_argument("--reps", type=int, default=None, help="repetitions of each injected change (default 20)")
+    ap.add_argument("--jobs", type=int, default=2, help="worker processes (default 2)")
+    a = ap.parse_args(argv)
+    records = a.records or (5000 if a.short else 100_000)
+    reps = a.reps or (3 if a.short else 20)
+    start = time.perf_counter()
+    table = run(records, reps, jobs=a.jobs)
+    print(table)
+    print(f"\n(ran in {time.perf_counter() - start:.0f} s with {a.jobs} worker processes)")
+
+
+if __name__ == "__main__":
+    main()
