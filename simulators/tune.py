@@ -41,7 +41,7 @@ from pathlib import Path
 from typing import Any
 
 from watchdog_edge.core.cards import ModelCard
-from watchdog_edge.core.events import Alert, DeadLetter
+from watchdog_edge.core.events import Alert, DeadLetter, PlannedWork
 from watchdog_edge.core.monitor import Monitor, PairStep, Step
 from watchdog_edge.core.renames import CONFIG_RENAMES
 from watchdog_edge.core.settings import Config, parse_config
@@ -234,7 +234,7 @@ def intake_recording(
             if math.isnan(start):
                 start = t
         for s in out:
-            if isinstance(s, DeadLetter):
+            if isinstance(s, (DeadLetter, PlannedWork)):  # events, not steps
                 continue
             add(s)
             if type(s) is PairStep:

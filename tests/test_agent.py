@@ -257,6 +257,7 @@ def test_end_to_end_gap_alert_and_retained_state(tmp_path, broker, protocol):
             "ts",
             "summary",
             "figures",
+            "episode",
         }
         assert a["figures"]["expected_loss"] == 1.0
         # retained state, read by a client that connects afterwards

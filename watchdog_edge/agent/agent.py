@@ -44,7 +44,7 @@ from watchdog_edge import __version__
 from watchdog_edge.agent.link import Inbound, Link, LinkEvent, outbound_topic, status_payload
 from watchdog_edge.agent.store import OutboxItem, Store, state_path
 from watchdog_edge.core.cards import ModelCard
-from watchdog_edge.core.events import Alert, DeadLetter, rfc3339
+from watchdog_edge.core.events import Alert, DeadLetter, PlannedWork, rfc3339
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import Config
 from watchdog_edge.errors import BrokerError
@@ -167,6 +167,7 @@ class Agent:
         self._log_times: dict[str, float] = {}
         self.started = time.time()
         self.running = False  # true once the broker accepted us
+        self.said_offline = False  # set at shutdown: no "online" status after "offline"
         self.monitor = self._restore()
         self.recorder = RecordingWriter(record) if record is not None else None
         subs = []
@@ -174,6 +175,8 @@ class Agent:
             for flt in (m.prediction_topic, m.truth_topic):
                 if flt not in subs:
                     subs.append(flt)
+        # planned-work commands arrive as records the core routes (and the journal keeps)
+        subs.append(self.monitor.command_topic)
         self.link = Link(
             b,
             b.client_id or f"watchdog-edge-{a.name}",
@@ -348,8 +351,9 @@ class Agent:
         link.flush()
         if rec is not None and rows:
             rec.flush()
-        if outbox:
+        if outbox or alerted:
             self._publish_states(sorted(alerted))
+            self._refresh_status()  # received and outbox depth as they are now
         if self.events:
             events = self.events[:]
             self.events.clear()  # the same list: the link appends to it
@@ -363,6 +367,7 @@ class Agent:
                         self.pending_other.discard(ev.mid)
             if acked_alerts:
                 self.store.mark_sent(acked_alerts)  # before a reconnect re-sends the outbox
+                self._refresh_status()  # alerts_sent counts acknowledged alerts
             for ev in events:
                 if ev.kind != "puback":
                     self._link_event(ev)
@@ -382,6 +387,24 @@ class Agent:
                     ev.topic,
                     ev.reason,
                     ev.detail,
+                )
+            elif isinstance(ev, PlannedWork):
+                w = ev.window
+                covered = w["models"] or self.monitor.models()
+                alerted.update(covered)
+                log.warning(
+                    "planned work '%s' %s (%s, %s to %s%s): %s",
+                    w["name"],
+                    ev.state,
+                    w["source"],
+                    w["start"],
+                    w["end"],
+                    f", {w['reason']}" if w["reason"] else "",
+                    (
+                        f"raises of {', '.join(covered)} are held back and counted until it ends"
+                        if ev.state == "began"
+                        else "episodes still open are published now, with a note"
+                    ),
                 )
             else:
                 log.info("%s", ev)
@@ -416,17 +439,25 @@ class Agent:
                 self._publish_alert(item)
 
     def _publish_states(self, models: list[str]) -> None:
-        if not self.link.connected.is_set():
-            return
+        """Publish the retained state of ``models`` and keep a copy in the state file.
+
+        The copy is written while the broker is away too, so that ``watchdog-edge status``
+        on the gateway can read it (read-only) when there is no broker to ask.
+        """
         now = time.time()
+        connected = self.link.connected.is_set()
+        kept = []
         for m in models:
             if m not in self.state_topics:
                 continue
             st = dict(self.monitor.state(m), agent=self.name, ts=rfc3339(now))
-            mid = self.link.publish(
-                self.state_topics[m], json.dumps(json_safe(st), separators=(",", ":")).encode(), qos=1, retain=True
-            )
-            self.pending_other.add(mid)
+            payload = json.dumps(json_safe(st), separators=(",", ":")).encode()
+            kept.append((self.state_topics[m], payload, now))
+            if connected:
+                mid = self.link.publish(self.state_topics[m], payload, qos=1, retain=True)
+                self.pending_other.add(mid)
+        if kept:
+            self.store.keep_published(kept)
 
     def status(self, connection: str = "online") -> dict[str, Any]:
         """The agent status as published (counters of the core, the outbox, the journal, the link)."""
@@ -440,6 +471,7 @@ class Agent:
                 "version": __version__,
                 "heartbeat": rfc3339(now),
                 "uptime_s": round(now - self.started, 3),
+                "state_every_s": self.config.agent.state_every_s,
                 **core,
                 "alerts_sent": self.store.counter("alerts_sent"),
                 "outbox_depth": self.store.outbox_depth(),
@@ -450,13 +482,19 @@ class Agent:
         )
 
     def _publish_status(self, connection: str) -> int | None:
+        """Publish the retained status (kept in the state file as well); the message id, if sent."""
+        payload = json.dumps(self.status(connection), separators=(",", ":")).encode()
+        self.store.keep_published([(self.status_topic, payload, time.time())])
         if not self.link.connected.is_set():
             return None
-        mid = self.link.publish(
-            self.status_topic, json.dumps(self.status(connection), separators=(",", ":")).encode(), qos=1, retain=True
-        )
+        mid = self.link.publish(self.status_topic, payload, qos=1, retain=True)
         self.pending_other.add(mid)
         return mid
+
+    def _refresh_status(self) -> None:
+        """The status again after alerts went out or were acknowledged (not once offline was said)."""
+        if not self.said_offline:
+            self._publish_status("online")
 
     def _snapshot(self) -> None:
         data = {"monitor": self.monitor.snapshot(), "recent": self.recent.rows()}
@@ -480,6 +518,7 @@ class Agent:
             self._process(tick=False)
         self._drain_events(5.0, lambda: not self.pending or not self.link.connected.is_set())
         self._snapshot()
+        self.said_offline = True
         mid = self._publish_status("offline")
         if mid is not None:
             self._drain_events(2.0, lambda: mid not in self.pending_other or not self.link.connected.is_set())

@@ -1,6 +1,7 @@
 """The agent's state on disk: one SQLite file in WAL mode.
 
-Four things live here, and the rules between them are what make "nothing lost" hold:
+Four things live here, and the rules between them are what make "nothing lost" hold (a fifth,
+``published``, keeps the latest retained state and status for readers when the broker is away):
 
 - ``journal``: every inbound message (topic, payload bytes, receive time) and every timer tick,
   exactly like a recording line. Rows are written in small batched transactions before the
@@ -57,6 +58,11 @@ CREATE TABLE IF NOT EXISTS outbox (
     payload BLOB NOT NULL,
     t REAL NOT NULL,
     journal_seq INTEGER
+);
+CREATE TABLE IF NOT EXISTS published (
+    topic TEXT PRIMARY KEY,
+    payload BLOB NOT NULL,
+    t REAL NOT NULL
 );
 CREATE TABLE IF NOT EXISTS dead_letters (
     id INTEGER PRIMARY KEY AUTOINCREMENT,
@@ -399,6 +405,22 @@ class Store:
             raise
         return removed
 
+    # --- the latest retained messages, for readers with no broker -------------------------
+    def keep_published(self, rows: Iterable[tuple[str, bytes, float]]) -> None:
+        """Keep the latest retained payload per topic, ``(topic, payload, t)`` rows, in one transaction."""
+        db = self._db
+        db.execute("BEGIN")
+        try:
+            db.executemany(
+                "INSERT INTO published (topic, payload, t) VALUES (?, ?, ?) "
+                "ON CONFLICT(topic) DO UPDATE SET payload = excluded.payload, t = excluded.t",
+                rows,
+            )
+            db.execute("COMMIT")
+        except BaseException:
+            db.execute("ROLLBACK")
+            raise
+
     # --- dead letters ---------------------------------------------------------------------
     def _insert_dead_letters(self, letters: list[DeadLetter]) -> None:
         db = self._db
@@ -471,6 +493,21 @@ def read_dead_letters(path: str | Path, limit: int | None = None) -> list[Stored
         StoredDeadLetter(id=r[0], topic=r[1], t=r[2], reason=r[3], detail=r[4], payload=bytes(r[5]), size=r[6])
         for r in rows
     ]
+
+
+def read_published(path: str | Path) -> list[tuple[str, bytes, float]]:
+    """The latest retained payloads the agent kept, ``(topic, payload, t)``, opened read-only."""
+    db = open_readonly(path)
+    try:
+        try:
+            rows = db.execute("SELECT topic, payload, t FROM published ORDER BY topic").fetchall()
+        except sqlite3.OperationalError as e:
+            raise StoreError(
+                f"{path} holds no retained copies ({e}); is it a watchdog-edge state file of this version?"
+            ) from None
+    finally:
+        db.close()
+    return [(str(r[0]), bytes(r[1]), float(r[2])) for r in rows]
 
 
 STATE_FILE = "state.sqlite"

@@ -219,7 +219,12 @@ def _register_optional() -> None:
     except ModuleNotFoundError as e:
         if e.name != "watchdog_edge.cli.card":
             raise
-    for mod in ("watchdog_edge.cli.agent", "watchdog_edge.cli.sim", "watchdog_edge.cli.jetstream"):
+    for mod in (
+        "watchdog_edge.cli.agent",
+        "watchdog_edge.cli.sim",
+        "watchdog_edge.cli.jetstream",
+        "watchdog_edge.cli.status",
+    ):
         try:
             importlib.import_module(mod).register(app)
         except ModuleNotFoundError as e:

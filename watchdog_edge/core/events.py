@@ -27,14 +27,17 @@ class Alert:
     t: float
     summary: str
     figures: dict[str, Any] = field(default_factory=dict)
+    episode: str = ""  # shared by an episode's raises and its clear (alerts.episode_id)
+    closes: tuple[str, ...] = ()  # on a clear: the severities of the published raises it closes
+    note: str | None = None  # on a raise held back by planned work and published when it ended
 
     @property
     def ts(self) -> str:
         return rfc3339(self.t)
 
     def to_dict(self) -> dict[str, Any]:
-        """The contract's JSON object."""
-        return {
+        """The contract's JSON object; ``closes`` only on a clear, ``note`` only where set."""
+        out: dict[str, Any] = {
             "alert_id": self.alert_id,
             "agent": self.agent,
             "model": self.model,
@@ -45,7 +48,13 @@ class Alert:
             "ts": self.ts,
             "summary": self.summary,
             "figures": self.figures,
+            "episode": self.episode,
         }
+        if self.state == "cleared":
+            out["closes"] = list(self.closes)
+        if self.note is not None:
+            out["note"] = self.note
+        return out
 
 
 @dataclass(frozen=True, slots=True)
@@ -69,4 +78,13 @@ class VersionStarted:
     version: str | None
 
 
-Event = Union[Alert, DeadLetter, VersionStarted]
+@dataclass(frozen=True, slots=True)
+class PlannedWork:
+    """A planned-work window began or ended (``window`` as ``planned.Window.to_dict`` gives it)."""
+
+    t: float
+    state: str  # "began" | "ended"
+    window: dict[str, Any]
+
+
+Event = Union[Alert, DeadLetter, VersionStarted, PlannedWork]

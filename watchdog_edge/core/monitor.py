@@ -3,7 +3,7 @@
 ``feed`` and ``tick`` are all an adapter needs. ``feed`` gives what ``apply(intake(...))``
 gives: ``intake`` routes, parses and pairs (it owns the pairing buffers and the bad-record
 counters) and returns typed steps (:class:`PredictionStep`, :class:`TruthStep`,
-:class:`PairStep`, :class:`TickStep`); ``apply`` runs the live windows, the checks and the
+:class:`PairStep`, :class:`TickStep`, :class:`PlannedStep`); ``apply`` runs the live windows, the checks and the
 alert states on them. A tuner intakes a recording once and applies the same steps to many
 monitors built with other check settings. ``feed`` does both in one pass, without steps.
 
@@ -13,6 +13,7 @@ The core never reads a clock, opens a socket, starts a thread or touches disk.
 from __future__ import annotations
 
 import base64
+import math
 from collections import deque
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
@@ -24,7 +25,7 @@ import watchdog_edge.core.checks as registry
 from watchdog_edge.core.alerts import AlertBook
 from watchdog_edge.core.cards import ModelCard, expected_loss
 from watchdog_edge.core.checks.base import Check, CheckContext, Input, Verdict
-from watchdog_edge.core.events import DeadLetter, Event, VersionStarted
+from watchdog_edge.core.events import Alert, DeadLetter, Event, PlannedWork, VersionStarted, rfc3339
 from watchdog_edge.core.losses import loss_function
 from watchdog_edge.core.pairing import COUNTERS as PAIR_COUNTERS
 from watchdog_edge.core.pairing import Pairer
@@ -37,6 +38,7 @@ from watchdog_edge.core.parsing import (
     decode_exact,
     element_bytes,
 )
+from watchdog_edge.core.planned import CommandError, Schedule, Window
 from watchdog_edge.core.records import Pair, Prediction, Truth
 from watchdog_edge.core.settings import Config, ModelSettings
 from watchdog_edge.core.topics import Router
@@ -80,7 +82,14 @@ class TickStep(NamedTuple):
     t: float
 
 
-Step = PredictionStep | TruthStep | PairStep | TickStep
+class PlannedStep(NamedTuple):
+    """Planned work began or ended: the window now holding each model, or None, for ``apply``."""
+
+    t: float
+    holding: dict[str, Window | None]
+
+
+Step = PredictionStep | TruthStep | PairStep | TickStep | PlannedStep
 
 
 @dataclass(slots=True, eq=False)
@@ -163,13 +172,35 @@ class ModelTrack:
         self.version_seen = False
         self.pairs = 0
         self.stale_pairs = 0
-        self.last_alert_t: float | None = None
+        self.last_alert: dict[str, Any] | None = None  # the latest published alert, in short
+        self.alerts: dict[str, int] = {}  # "check/state/severity" -> alerts published
+        self.planned: Window | None = None  # the planned-work window holding this model's raises
 
     def _verdict(self, name: str, verdict: Verdict, t: float, out: list[Event]) -> None:
-        alert = self.book.update(name, verdict, t, self.version)
+        alert = self.book.update(name, verdict, t, self.version, self.planned is not None)
         if alert is not None:
-            self.last_alert_t = t
+            self._note(alert)
             out.append(alert)
+
+    def _note(self, a: Alert) -> None:
+        self.last_alert = {"check": a.check, "state": a.state, "severity": a.severity, "ts": a.ts, "t": a.t}
+        key = f"{a.check}/{a.state}/{a.severity}"
+        self.alerts[key] = self.alerts.get(key, 0) + 1
+
+    def set_planned(self, window: Window | None, t: float, out: list[Event]) -> None:
+        """Hold this model's raises in ``window``; ``None`` ends the holding and releases what was held."""
+        was = self.planned
+        self.planned = window
+        if window is None and was is not None:
+            why = f" ({was.reason})" if was.reason else ""
+            note = (
+                f"Raised at {{raised}} during planned work '{was.name}'{why}; held back and "
+                f"published when the window ended at {rfc3339(t)}."
+            )
+            released = self.book.release(t, self.version, note)
+            for a in released:
+                self._note(a)
+            out.extend(released)
 
     def prediction(self, p: Prediction, out: list[Event]) -> None:
         v = p.model_version
@@ -186,13 +217,14 @@ class ModelTrack:
 
     def _new_version(self, p: Prediction, out: list[Event]) -> None:
         if self.version_seen or self.version is not None:
-            out.extend(
-                self.book.close_all(
-                    p.t,
-                    self.version,
-                    f"Model version {p.model_version} replaced {self.version}; live windows start afresh.",
-                )
+            closed = self.book.close_all(
+                p.t,
+                self.version,
+                f"Model version {p.model_version} replaced {self.version}; live windows start afresh.",
             )
+            for a in closed:
+                self._note(a)
+            out.extend(closed)
             for check in self.checks.values():
                 check.reset()
         out.append(VersionStarted(self.settings.id, p.t, self.version, p.model_version))
@@ -244,6 +276,10 @@ class ModelTrack:
             "expected_source": self.context.expected_source,
             "loss": self.context.loss_kind,
             "checks": checks,
+            "last_alert": None if self.last_alert is None else {k: v for k, v in self.last_alert.items() if k != "t"},
+            "planned_work": None if self.planned is None else self.planned.to_dict(),
+            "held_raises": self.book.held,
+            "held_open": self.book.holding(),
         }
 
     def snapshot(self) -> dict[str, Any]:
@@ -254,6 +290,10 @@ class ModelTrack:
             "stale_pairs": self.stale_pairs,
             "book": self.book.snapshot(),
             "checks": {n: c.snapshot() for n, c in self.checks.items()},
+            "held_raises": self.book.held,
+            "last_alert": self.last_alert,
+            "alerts": dict(self.alerts),
+            "planned": None if self.planned is None else self.planned.snapshot(),
         }
 
     def restore(self, data: dict[str, Any]) -> None:
@@ -262,6 +302,10 @@ class ModelTrack:
         self.pairs = data["pairs"]
         self.stale_pairs = data["stale_pairs"]
         self.book.restore(data["book"])
+        self.book.held = data.get("held_raises", 0)
+        self.last_alert = data.get("last_alert")
+        self.alerts = dict(data.get("alerts", {}))
+        self.planned = None if data.get("planned") is None else Window.restore(data["planned"])
         for n, c in self.checks.items():
             if n in data["checks"]:
                 c.restore(data["checks"][n])
@@ -314,6 +358,23 @@ class Monitor:
         self._dead: deque[DeadLetter] = deque()
         self._dead_bytes = 0
         self._exact: tuple[bytes | None, list[Any]] = (None, [])
+        # planned work: the windows, the command topic, and the next time the holding may change
+        self.schedule = Schedule(config.planned_work)
+        for pw in config.planned_work:
+            unknown = [m for m in pw.models or () if m not in self.tracks]
+            if unknown:
+                raise ConfigError(
+                    f"planned_work[{pw.name}].models: {unknown[0]!r} is not a model of this config; "
+                    f"models are {', '.join(self.tracks)}"
+                )
+        self.command_topic = config.broker.topics.planned_work.replace("{agent}", self.agent)
+        if self.router.route(self.command_topic):
+            raise ConfigError(
+                f"broker.topics.planned_work = {config.broker.topics.planned_work!r}: the command topic "
+                f"{self.command_topic!r} matches a model's prediction or truth topic; give it a topic of its own"
+            )
+        self._pw_next = -math.inf if self.schedule else math.inf
+        self._pw_active: dict[str, Window] = {}
 
     # -- time -------------------------------------------------------------------------------
     def _clock(self, t: float) -> float:
@@ -358,8 +419,13 @@ class Monitor:
             raw = payload
         else:
             raw = payload.encode() if isinstance(payload, str) else bytes(payload)
+        if t >= self._pw_next:
+            self._planned(t, out, True)
         lanes = self._routes.get(topic) or self.router.route(topic)
         if not lanes:
+            if topic == self.command_topic:
+                self._command(raw, t, out, True)
+                return None
             self._dead_letter(topic, t, "unknown_topic", f"no model listens on topic {topic!r}", raw, out)
             return None
         for lane in lanes:
@@ -404,8 +470,13 @@ class Monitor:
         else:
             raw = payload.encode() if isinstance(payload, str) else bytes(payload)
         out: list[Any] = []
+        if t >= self._pw_next:
+            self._planned(t, out, False)
         lanes = self._routes.get(topic) or self.router.route(topic)
         if not lanes:
+            if topic == self.command_topic:
+                self._command(raw, t, out, False)
+                return out
             self._dead_letter(topic, t, "unknown_topic", f"no model listens on topic {topic!r}", raw, out)
             return out
         for lane in lanes:
@@ -463,7 +534,7 @@ class Monitor:
                         track.pair(pr, out)
         return out
 
-    def intake(self, topic: str, payload: bytes | str, t: float) -> list[Step | DeadLetter]:
+    def intake(self, topic: str, payload: bytes | str, t: float) -> list[Step | DeadLetter | PlannedWork]:
         """Route, parse and pair one message like ``feed``, without running the checks.
 
         Returns the steps and dead letters; :meth:`apply` of them gives the events ``feed``
@@ -533,19 +604,65 @@ class Monitor:
         self._dead_letter(topic, t, e.reason, e.detail, raw if len(elements) == 1 else element_bytes(el), out)
         return None
 
+    # -- planned work ------------------------------------------------------------------------
+    def _command(self, raw: bytes, t: float, out: list[Any], steps: bool) -> None:
+        """A message on the planned-work command topic: begin or end a window (planned.py)."""
+        try:
+            doc = decode(raw, self.max_payload)
+            if len(doc) != 1:
+                raise CommandError("send one planned-work command per message, as one JSON object")
+            self.schedule.command(doc[0], t, list(self.tracks))
+        except BadRecord as e:
+            self._dead_letter(self.command_topic, t, "bad_command", f"not a planned-work command: {e.detail}", raw, out)
+            return
+        except CommandError as e:
+            self._dead_letter(self.command_topic, t, "bad_command", str(e), raw, out)
+            return
+        self._planned(t, out, steps)
+
+    def _planned(self, t: float, out: list[Any], steps: bool) -> None:
+        """Windows may have begun or ended by ``t``: report them and set each model's holding."""
+        self._pw_next = self.schedule.next_change(t)
+        active = self.schedule.windows_at(t)
+        now = {w.name: w for w in active}
+        for name, w in self._pw_active.items():
+            if name not in now:
+                out.append(PlannedWork(t, "ended", w.to_dict()))
+        for name, w in now.items():
+            if self._pw_active.get(name) != w:
+                out.append(PlannedWork(t, "began", w.to_dict()))
+        self._pw_active = now
+        holding: dict[str, Window | None] = {}
+        for m in self.tracks:
+            covering = [w for w in active if w.covers(m)]
+            holding[m] = max(covering, key=lambda w: (w.end, w.name)) if covering else None
+        if steps:
+            out.append(PlannedStep(t, holding))
+        else:
+            self._hold(holding, t, out)
+
+    def _hold(self, holding: dict[str, Window | None], t: float, out: list[Any]) -> None:
+        for m, w in holding.items():
+            self.tracks[m].set_planned(w, t, out)
+
     def _expire(self, t: float) -> None:
         for p in self.pairers.values():
             p.expire(t)
 
-    def intake_tick(self, t: float) -> list[Step | DeadLetter]:
+    def intake_tick(self, t: float) -> list[Step | DeadLetter | PlannedWork]:
         """A timer tick as a step."""
         t = self._clock(t)
         self.ticks += 1
         self._expire(t)
+        if t >= self._pw_next:
+            out: list[Any] = []
+            self._planned(t, out, True)
+            out.append(TickStep(t))
+            return out
         return [TickStep(t)]
 
     # -- apply: windows, checks, alerts -----------------------------------------------------
-    def apply(self, steps: Iterable[Step | DeadLetter]) -> list[Event]:
+    def apply(self, steps: Iterable[Step | DeadLetter | PlannedWork]) -> list[Event]:
         """Run steps from ``intake`` through the checks; dead letters pass through."""
         out: list[Event] = []
         tracks = self.tracks
@@ -562,11 +679,13 @@ class Monitor:
                     self.now = s.t
                 for tr in tracks.values():
                     tr.tick(s.t, out)
-            elif isinstance(s, DeadLetter):
+            elif type(s) is PlannedStep:
+                self._hold(s.holding, s.t, out)
+            elif isinstance(s, (DeadLetter, PlannedWork)):  # they pass through
                 out.append(s)
         return out
 
-    def relevant(self, steps: Iterable[Step | DeadLetter]) -> list[Step]:
+    def relevant(self, steps: Iterable[Step | DeadLetter | PlannedWork]) -> list[Step]:
         """The steps that can change this monitor's alerts, for applying one recording many times.
 
         Pairs and ticks are kept; a prediction or truth only where some enabled check of its
@@ -593,8 +712,8 @@ class Monitor:
             elif type(s) is TruthStep:
                 if not wants[s.model][1]:
                     continue
-            elif type(s) is not PairStep and type(s) is not TickStep:
-                continue  # a dead letter
+            elif type(s) is not PairStep and type(s) is not TickStep and type(s) is not PlannedStep:
+                continue  # a dead letter or a planned-work event
             out.append(s)
         return out
 
@@ -634,9 +753,22 @@ class Monitor:
             "bad_total": sum(self.bad.values()),
             "clock_backwards": self.clock_backwards,
             "dead_letters_kept": len(self._dead),
+            "planned_work": [w.to_dict() for w in self._pw_active.values()],
+            "held_raises": sum(tr.book.held for tr in self.tracks.values()),
+            "alerts": self.alert_counts(),
             **totals,
             "models": per_model,
         }
+
+    def alert_counts(self) -> dict[str, dict[str, dict[str, int]]]:
+        """Alerts published since the first start: check -> state -> severity -> count."""
+        out: dict[str, dict[str, dict[str, int]]] = {}
+        for tr in self.tracks.values():
+            for key, n in tr.alerts.items():
+                check, state, severity = key.split("/")
+                by_sev = out.setdefault(check, {}).setdefault(state, {})
+                by_sev[severity] = by_sev.get(severity, 0) + n
+        return out
 
     def dead_letters(self) -> list[DeadLetter]:
         """The dead letters the core still holds (bounded by count and bytes)."""
@@ -666,6 +798,10 @@ class Monitor:
             ],
             "pairers": {m: p.snapshot() for m, p in self.pairers.items()},
             "tracks": {m: tr.snapshot() for m, tr in self.tracks.items()},
+            "planned": {
+                "commands": self.schedule.snapshot(),
+                "active": [w.snapshot() for w in self._pw_active.values()],
+            },
         }
 
     @classmethod
@@ -689,4 +825,8 @@ class Monitor:
         for m, snap in data["tracks"].items():
             if m in mon.tracks:
                 mon.tracks[m].restore(snap)
+        planned = data.get("planned") or {"commands": [], "active": []}
+        mon.schedule.restore(planned["commands"])
+        mon._pw_active = {d["name"]: Window.restore(d) for d in planned["active"]}
+        mon._pw_next = -math.inf if (mon.schedule or mon._pw_active) else math.inf
         return mon

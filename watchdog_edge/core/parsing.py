@@ -29,6 +29,7 @@ REASONS = (
     "not_finite",
     "bad_ts",
     "unknown_topic",
+    "bad_command",  # a planned-work command that cannot be applied (core/planned.py)
 )
 
 

@@ -7,6 +7,7 @@ A key that was renamed is refused with its new name (``renames.CONFIG_RENAMES``)
 
 from __future__ import annotations
 
+from datetime import datetime
 from pathlib import Path
 from typing import Any, Literal
 
@@ -65,8 +66,12 @@ class TopicTemplates(_Strict):
     alerts: str = "watchdog/{model}/alerts"
     state: str = "watchdog/{model}/state"
     status: str = "watchdog/agents/{agent}/status"
+    planned_work: str = Field(
+        default="watchdog/agents/{agent}/commands/planned-work",
+        description="Inbound: planned-work commands for this agent; let only operators publish here (deploy/acl).",
+    )
 
-    @field_validator("alerts", "state", "status")
+    @field_validator("alerts", "state", "status", "planned_work")
     @classmethod
     def _template(cls, v: str) -> str:
         if "+" in v or "#" in v:
@@ -297,6 +302,77 @@ class ModelSettings(_Strict):
         return [n for n, s in self.checks.items() if s.enabled]
 
 
+def parse_rfc3339(text: str) -> float:
+    """RFC 3339 text with a UTC offset as Unix seconds; ValueError otherwise.
+
+    >>> parse_rfc3339("2025-12-01T02:00:00Z")
+    1764554400.0
+    """
+    try:
+        dt = datetime.fromisoformat(text.replace("Z", "+00:00").replace("z", "+00:00"))
+    except ValueError:
+        raise ValueError(f"{text!r} is not RFC 3339 text, e.g. 2026-12-03T06:00:00Z") from None
+    if dt.tzinfo is None:
+        raise ValueError(f"{text!r} has no UTC offset; end it with Z or +HH:MM")
+    return dt.timestamp()
+
+
+class PlannedWorkSettings(_Strict):
+    """A planned-work window from the config: daily at a local time for a duration, or a dated span."""
+
+    name: str = Field(min_length=1, description="Shown in state, status and the note of held raises.")
+    models: list[str] | None = Field(None, description="Model ids held back; left out: every model.")
+    reason: str = ""
+    daily_at: str | None = Field(None, description="Every day at this local time, HH:MM (24-hour), in timezone.")
+    duration_s: float | None = Field(None, gt=0, le=86400, description="Length of the daily window in seconds.")
+    timezone: str = Field("UTC", description="IANA time zone of daily_at, e.g. Europe/Berlin; default UTC.")
+    start: str | None = Field(None, description="Start of a dated span, RFC 3339 with an offset.")
+    end: str | None = Field(None, description="End of a dated span, RFC 3339 with an offset.")
+
+    @field_validator("daily_at")
+    @classmethod
+    def _hh_mm(cls, v: str | None) -> str | None:
+        if v is None:
+            return v
+        hh, sep, mm = v.partition(":")
+        if not (sep and hh.isdigit() and mm.isdigit() and len(mm) == 2 and int(hh) < 24 and int(mm) < 60):
+            raise ValueError(f"daily_at must be HH:MM on a 24-hour clock, e.g. '02:30', not {v!r}")
+        return v
+
+    @field_validator("timezone")
+    @classmethod
+    def _zone(cls, v: str) -> str:
+        from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+        try:
+            ZoneInfo(v)
+        except (ZoneInfoNotFoundError, ValueError):
+            raise ValueError(f"unknown time zone {v!r}; give an IANA name such as 'UTC' or 'Europe/Berlin'") from None
+        return v
+
+    @field_validator("start", "end")
+    @classmethod
+    def _time(cls, v: str | None) -> str | None:
+        if v is not None:
+            parse_rfc3339(v)
+        return v
+
+    @model_validator(mode="after")
+    def _one_form(self) -> PlannedWorkSettings:
+        daily = self.daily_at is not None or self.duration_s is not None
+        dated = self.start is not None or self.end is not None
+        if daily == dated:
+            raise ValueError("give daily_at with duration_s (every day) or start with end (one dated span)")
+        if daily and (self.daily_at is None or self.duration_s is None):
+            raise ValueError("a daily window needs both daily_at (HH:MM) and duration_s (seconds)")
+        if dated:
+            if self.start is None or self.end is None:
+                raise ValueError("a dated window needs both start and end")
+            if parse_rfc3339(self.end) <= parse_rfc3339(self.start):
+                raise ValueError(f"end {self.end!r} must come after start {self.start!r}")
+        return self
+
+
 class Config(_Strict):
     """The whole config file."""
 
@@ -304,6 +380,9 @@ class Config(_Strict):
     broker: BrokerSettings = BrokerSettings()
     jetstream: JetStreamSettings = JetStreamSettings()
     models: list[ModelSettings] = Field(min_length=1)
+    planned_work: list[PlannedWorkSettings] = Field(
+        default_factory=list, description="Windows in which raises are held back (see core/planned.py)."
+    )
     _base_dir: Path = PrivateAttr(default_factory=Path.cwd)
 
     @model_validator(mode="after")
@@ -313,6 +392,10 @@ class Config(_Strict):
             if m.id in seen:
                 raise ValueError(f"model id {m.id!r} appears twice; give each [[models]] entry its own id")
             seen.add(m.id)
+        names = [w.name for w in self.planned_work]
+        dup = next((n for n in names if names.count(n) > 1), None)
+        if dup is not None:
+            raise ValueError(f"planned_work name {dup!r} appears twice; each window needs its own name")
         return self
 
     @property
