@@ -706,3 +706,108 @@ def test_a_redelivered_message_already_journaled_is_acknowledged_and_not_fed_twi
     assert again.counters["redelivered"] == 1 and status["predictions"] == 3
     assert status["duplicate_predictions"] == 1  # id 1 again: the core counts it, as it must
     again._close_files()
+
+
+def test_broker_unreachable_at_boot_is_retried_and_reported_once_connected(tmp_path):
+    # On a gateway the agent often starts before the broker: it waits, saying so, instead of exiting.
+    b = Broker(tmp_path / "broker")
+    b.stop()
+    (tmp_path / "pw").write_text("secret\n")
+    os.chmod(tmp_path / "pw", 0o644)
+    cfg = write_setup(tmp_path, b, broker_extra='username = "edge"\npassword_file = "pw"\n')
+    agent = AgentProc(cfg)
+    try:
+        deadline = time.monotonic() + 15
+        while time.monotonic() < deadline and "cannot be reached yet" not in agent.text():
+            time.sleep(0.1)
+        assert "cannot be reached yet" in agent.text() and "connection refused" in agent.text(), agent.text()
+        time.sleep(1.0)
+        assert agent.proc.poll() is None, agent.text()  # still waiting, not exit 3
+        b.start()
+        agent.wait_ready()
+        status = _status_now(b)
+        link = status["link"]
+        assert link["unreachable_at_start"] >= 1 and link["waited_for_broker_s"] > 1.0, link
+        assert "answered after" in agent.text()
+        # The password file others can read: a warning at start and in the status (as ssh does for keys).
+        assert any("password_file" in w and "chmod 600" in w for w in status["warnings"]), status["warnings"]
+        assert "can be read by group and others" in agent.text()
+        assert "secret" not in agent.text()
+    finally:
+        rc = agent.stop()
+        b.stop()
+    assert rc == 0, agent.text()
+
+
+def test_stopped_while_waiting_for_the_broker_exits_cleanly(tmp_path):
+    b = Broker(tmp_path / "broker")
+    b.stop()
+    agent = AgentProc(write_setup(tmp_path, b))
+    deadline = time.monotonic() + 15
+    while time.monotonic() < deadline and "cannot be reached yet" not in agent.text():
+        time.sleep(0.1)
+    assert agent.stop() == 0, agent.text()
+    assert "stopped before the broker could be reached" in agent.text()
+
+
+def test_tls_without_hostname_verification_says_so_at_start_and_in_the_status(tmp_path):
+    tls = make_tls(tmp_path / "tls", server_host="broker.invalid")  # a name that is not our host
+    b = Broker(tmp_path / "broker", tls=tls)
+    try:
+        extra = f'[broker.tls]\nca_file = "{tls.ca}"\nverify_hostname = false\n'
+        agent = AgentProc(write_setup(tmp_path, b, broker_extra=extra))
+        try:
+            agent.wait_ready()
+            reader = Client(b, "reader", [STATUS], tls={"ca_certs": str(tls.ca)})
+            reader.c.tls_insecure_set(True)
+            reader.wait_for(lambda: reader.on(STATUS), what="status")
+            warnings = reader.json_on(STATUS)[-1]["warnings"]
+            reader.close()
+        finally:
+            rc = agent.stop()
+        assert rc == 0, agent.text()
+        assert any("verify_hostname = false" in w for w in warnings), warnings
+        assert "verify_hostname = false" in agent.text()
+    finally:
+        b.stop()
+
+
+def test_check_config_warns_about_a_password_file_others_can_read(tmp_path, broker):
+    (tmp_path / "pw").write_text("secret\n")
+    os.chmod(tmp_path / "pw", 0o640)
+    cfg = write_setup(tmp_path, broker, broker_extra='username = "edge"\npassword_file = "pw"\n')
+    env = dict(os.environ, PYTHONPATH=str(REPO))
+    cmd = [sys.executable, "-m", "watchdog_edge.cli.app", "check-config", str(cfg)]
+    out = subprocess.run(cmd, capture_output=True, text=True, env=env, timeout=60)
+    assert out.returncode == 0, out.stderr
+    assert "can be read by its group (mode 640)" in out.stderr and "chmod 600" in out.stderr, out.stderr
+    os.chmod(tmp_path / "pw", 0o600)
+    out = subprocess.run(cmd, capture_output=True, text=True, env=env, timeout=60)
+    assert "password_file" not in out.stderr
+
+
+def test_a_restart_completes_the_recording_a_crash_left_short(tmp_path, broker):
+    # Recording lines are written after the journal commit; a crash in between leaves the
+    # journal ahead of the recording. The next start writes what is missing (and removes a cut
+    # line first), so the one recording holds exactly what the journal held.
+    from watchdog_edge.agent.agent import Agent
+    from watchdog_edge.agent.link import Inbound
+
+    cfg = write_setup(tmp_path, broker)
+    config = load_config(cfg)
+    rec = tmp_path / "live.jsonl"
+    agent = Agent(config, load_cards(config), record=rec)
+    agent.intake_open = True
+    for i in range(6):
+        agent._on_message(Inbound(PRED, f'{{"id": {i}, "value": 2.0}}'.encode(), i + 1, 1, False))
+        agent._process(tick=i == 3)
+    journal = [(e.t, e.topic, e.payload, e.tick) for e in agent.store.journal_tail(0)]
+    agent._close_files()
+    lines = rec.read_bytes().splitlines(keepends=True)
+    assert len(lines) == len(journal) == 7
+    rec.write_bytes(b"".join(lines[:4]) + lines[4][:9])  # two rows never written, one cut
+    again = Agent(config, load_cards(config), record=rec)
+    again._close_files()
+    got = [(ln.t, ln.topic, ln.payload, ln.tick) for ln in read_recording(rec)]
+    assert got == journal
+    assert os.stat(rec).st_mode & 0o777 == 0o600

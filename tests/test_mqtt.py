@@ -12,11 +12,18 @@ from broker import Broker, make_tls
 from paho.mqtt import __version__ as paho_version
 from paho.mqtt.enums import CallbackAPIVersion
 
-from watchdog_edge.agent.link import Backoff, Link, check_topic_name, outbound_topic, read_password
+from watchdog_edge.agent.link import (
+    Backoff,
+    Link,
+    check_topic_name,
+    outbound_topic,
+    read_password,
+    secret_warnings,
+)
 from watchdog_edge.agent.link_socket import BufferedSocket
 from watchdog_edge.agent.paho_private import FastClient, client_class, missing_steps
 from watchdog_edge.core.settings import BrokerSettings
-from watchdog_edge.errors import BrokerError, ConfigError
+from watchdog_edge.errors import BrokerError, BrokerUnreachable, ConfigError
 
 
 def _publish(b: Broker, topic: str, payloads: list[bytes]) -> None:
@@ -259,8 +266,47 @@ def test_unreachable_broker_gives_one_line_reason(tmp_path):
 
     s = BrokerSettings(host="127.0.0.1", port=free_port())
     link = Link(s, "x", ["a"], "s", b"", tmp_path, lambda m: None, lambda e: None)
-    with pytest.raises(BrokerError, match=r"connection refused\); is the broker running"):
-        link.start()
+    with pytest.raises(BrokerUnreachable, match=r"connection refused\); is the broker running"):
+        link.start()  # BrokerUnreachable: the agent retries it at start (a broker that boots later)
+
+
+def test_an_untrusted_certificate_is_not_taken_for_an_unreachable_broker(tmp_path):
+    # A certificate needs a person: the agent must exit 3, not wait for it to change.
+    from watchdog_edge.core.settings import TLSSettings
+
+    tls = make_tls(tmp_path / "tls")
+    rogue = make_tls(tmp_path / "rogue", name="rogue")
+    b = Broker(tmp_path / "broker", tls=tls)
+    try:
+        s = BrokerSettings(host="127.0.0.1", port=b.port, tls=TLSSettings(ca_file=str(rogue.ca)))
+        link = Link(s, "x", ["a"], "s", b"", tmp_path, lambda m: None, lambda e: None)
+        with pytest.raises(BrokerError, match="certificate") as caught:
+            link.start()
+        assert not isinstance(caught.value, BrokerUnreachable)
+    finally:
+        b.stop()
+
+
+def test_secret_warnings_name_the_file_its_mode_and_the_fix(tmp_path):
+    import os
+
+    from watchdog_edge.core.settings import TLSSettings
+
+    (tmp_path / "pw").write_text("x\n")
+    (tmp_path / "client.key").write_text("k")
+    os.chmod(tmp_path / "pw", 0o600)
+    os.chmod(tmp_path / "client.key", 0o600)
+    tls = TLSSettings(key_file="client.key", verify_hostname=True)
+    s = BrokerSettings(username="u", password_file="pw", tls=tls)
+    assert secret_warnings(s, tmp_path) == []
+    os.chmod(tmp_path / "pw", 0o604)
+    os.chmod(tmp_path / "client.key", 0o640)
+    got = secret_warnings(s, tmp_path)
+    assert got[0].startswith("broker.password_file = 'pw' can be read by group and others (mode 604)")
+    assert got[1].startswith("broker.tls.key_file = 'client.key' can be read by its group (mode 640)")
+    assert all("chmod 600" in w for w in got)
+    off = BrokerSettings(tls=TLSSettings(verify_hostname=False))
+    assert ["verify_hostname = false" in w for w in secret_warnings(off, tmp_path)] == [True]
 
 
 def test_outbound_topics_refuse_wildcards_nul_and_empty_levels():
@@ -299,3 +345,19 @@ def test_backoff_doubles_up_to_the_cap_with_jitter_and_resets():
     assert len({round(w, 6) for w in waits[3:]}) > 1  # jitter: not all the same at the cap
     b.reset()
     assert 0.25 <= b.next() <= 0.5
+
+
+def test_a_busy_spell_longer_than_the_keepalive_is_no_disconnect(tmp_path, broker):
+    # The link pings after half a keepalive of silence; a caller busy for longer than a whole
+    # keepalive must not be taken for a dead connection when it polls again (the broker itself
+    # allows 1.5 keepalives, MQTT 3.1.1 section 3.1.2.10, from memory).
+    events: list = []
+    s = BrokerSettings(host=broker.host, port=broker.port, keepalive_s=5)
+    link = Link(s, "busy-caller", ["a/b"], "st/busy", b"off", tmp_path, lambda m: None, events.append)
+    link.start()
+    time.sleep(5.5)
+    for _ in range(10):
+        link.poll(0.1)
+        link.flush()
+    assert link.connected.is_set() and not [e for e in events if e.kind == "disconnected"], events
+    link.stop()

@@ -239,3 +239,43 @@ def test_snapshot_text_is_exactly_what_json_dumps_writes():
         "mixed": {1: "a", "b": [float("nan")]},
     }
     assert snapshot_text(big) == dumps(big)
+
+
+def test_state_folder_and_files_are_private_to_the_agents_user(tmp_path):
+    # The state file holds payloads and dead letters: folder 0700, file 0600, and SQLite's
+    # -wal and -shm files take the database file's mode (SQLite docs, "Write-Ahead Logging").
+    old = os.umask(0o022)  # a common default umask, which would give 0755 and 0644
+    try:
+        s = Store(tmp_path / "state" / "deep" / "state.sqlite")
+        s.append([_msg(1)])
+        folder = tmp_path / "state" / "deep"
+        modes = {p.name: p.stat().st_mode & 0o777 for p in folder.iterdir()}
+        assert folder.stat().st_mode & 0o777 == 0o700
+        assert modes["state.sqlite"] == 0o600 and modes["state.sqlite-wal"] == 0o600, modes
+        assert all(m == 0o600 for m in modes.values()), modes
+        s.close()
+        # A file made earlier with loose bits is narrowed on the next open.
+        os.chmod(folder / "state.sqlite", 0o644)
+        Store(folder / "state.sqlite").close()
+        assert (folder / "state.sqlite").stat().st_mode & 0o777 == 0o600
+    finally:
+        os.umask(old)
+
+
+def test_a_write_the_file_system_refuses_is_one_clear_error_and_keeps_nothing_half(tmp_path):
+    from watchdog_edge.agent.store import StoreWriteError
+
+    s = Store(tmp_path / "s.sqlite")
+    s.append([_msg(1)])
+    # SQLite's own page limit stands in for a full disk here (SQLite docs, "PRAGMA max_page_count":
+    # a write past it fails with SQLITE_FULL); tests/test_faults.py fills a real small file system.
+    pages = s._db.execute("PRAGMA page_count").fetchone()[0]
+    s._db.execute(f"PRAGMA max_page_count={pages}")
+    big = [JournalEntry(t=2000.0 + i, topic="plant/pred", payload=b"x" * 4000, mid=i) for i in range(50)]
+    with pytest.raises(StoreWriteError, match=r"cannot write the state file .*full.*free space"):
+        s.append(big)
+    assert s.journal_depth() == 1  # the failed batch left nothing behind
+    s._db.execute("PRAGMA max_page_count=1073741823")
+    assert s.append(big) == 51  # space back: the same batch goes in
+    assert s._db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    s.close()

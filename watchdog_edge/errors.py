@@ -13,7 +13,10 @@ are counted and kept aside as dead letters.
     ├── RecordingError  a recording cannot be read, or holds nothing for the config's topics
     ├── DataError       training or hold-out rows (CSV) are unusable: names column and row
     ├── BrokerError     the MQTT broker refused the agent or could not be reached
+    │   └── BrokerUnreachable  nothing answered at its address: the agent retries it
     └── StoreError      the agent's state file (SQLite) cannot be opened, written or read
+        └── StoreWriteError    the disk is full or read-only: the agent holds back
+                               its acks and retries
 
 >>> issubclass(StoreError, WatchdogError)
 True
@@ -46,5 +49,13 @@ class BrokerError(WatchdogError):
     """The broker refused us or could not be reached; the message gives the reason."""
 
 
+class BrokerUnreachable(BrokerError):
+    """Nothing answered at the broker's address (refused, no route, no name, timeout): worth retrying."""
+
+
 class StoreError(WatchdogError):
     """The state file cannot be opened, used or read; the message names the file and what to do."""
+
+
+class StoreWriteError(StoreError):
+    """The state file refused a write (disk full, read-only, I/O error); nothing of the batch was kept."""

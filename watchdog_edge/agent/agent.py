@@ -23,7 +23,16 @@ The rules of this file, in the order a message meets them:
 5. A message the broker sends again (DUP flag, same packet id and content) after its journal
    row was committed but before our PUBACK reached the broker is acknowledged and not fed
    twice (MQTT 3.1.1, 4.4: the re-send keeps its packet identifier).
-6. SIGTERM or SIGINT: stop intake (later messages stay with the broker, unacknowledged), finish
+6. The state file cannot be written (disk full, read-only): the batch that failed stays in
+   memory with its acknowledgements held back, and no further message is taken or tick run,
+   so the broker keeps everything after it (the agent stops acknowledging). The commit is
+   retried with backoff; when it succeeds the agent goes on by itself. Monitoring in memory
+   while acks wait would not go far anyway: the broker stops sending at its inflight window
+   (mosquitto's default is 20), and a journal missing rows would break "replay equals live".
+7. The broker is unreachable at start (refused, no route, no name, timeout): the agent retries
+   with backoff, as it does after losing the connection; only a refusal a person must fix
+   (password, authorisation, certificate) stops it at start.
+8. SIGTERM or SIGINT: stop intake (later messages stay with the broker, unacknowledged), finish
    the batch, wait for outstanding PUBACKs while connected, snapshot, publish status offline,
    disconnect, exit 0.
 """
@@ -38,17 +47,25 @@ import time
 import zlib
 from itertools import islice
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 from watchdog_edge import __version__
-from watchdog_edge.agent.link import Inbound, Link, LinkEvent, outbound_topic, status_payload
+from watchdog_edge.agent.link import (
+    Backoff,
+    Inbound,
+    Link,
+    LinkEvent,
+    outbound_topic,
+    secret_warnings,
+    status_payload,
+)
 from watchdog_edge.agent.store import OutboxItem, Store, state_path
 from watchdog_edge.core.cards import ModelCard
 from watchdog_edge.core.events import Alert, DeadLetter, PlannedWork, rfc3339
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import Config
-from watchdog_edge.errors import BrokerError
-from watchdog_edge.replay.recording import RecordingWriter
+from watchdog_edge.errors import BrokerError, BrokerUnreachable, StoreWriteError, WatchdogError
+from watchdog_edge.replay.recording import RecordingWriter, last_line, trim_cut_line
 
 log = logging.getLogger("watchdog_edge.agent.agent")
 
@@ -125,6 +142,16 @@ class RecentMessages:
         return kept is not None and kept == self.key(topic, payload)
 
 
+class _HeldBatch(NamedTuple):
+    """A batch fed to the core whose journal commit failed: its rows, alerts, dead letters and acks."""
+
+    rows: list[tuple]
+    outbox: list[OutboxItem]
+    dead: list[DeadLetter]
+    acks: list[tuple[int, int]]
+    alerted: set[str]
+
+
 class Agent:
     """One running agent. ``run()`` blocks until SIGTERM/SIGINT and returns the exit code."""
 
@@ -162,14 +189,27 @@ class Agent:
             "redelivered": 0,
             "journal_batches": 0,
             "snapshots": 0,
+            "unreachable_at_start": 0,
+            "publish_refused": 0,
+            "subscribe_refused": 0,
         }
         self.last_refusal: str | None = None
+        self.last_disconnect: str | None = None
+        self.waited_for_broker_s = 0.0
+        # Rule 6: a batch whose commit failed, kept until the state file takes it.
+        self.held: _HeldBatch | None = None
+        self.store_failures = 0
+        self.store_error: str | None = None
+        self.store_error_since: float | None = None
+        self._store_backoff = Backoff(1.0, 10.0)
+        self._store_retry_at = 0.0
+        self.warnings = secret_warnings(b, config.base_dir)
         self._log_times: dict[str, float] = {}
         self.started = time.time()
         self.running = False  # true once the broker accepted us
         self.said_offline = False  # set at shutdown: no "online" status after "offline"
         self.monitor = self._restore()
-        self.recorder = RecordingWriter(record) if record is not None else None
+        self.recorder = self._open_recording(record) if record is not None else None
         subs = []
         for m in config.models:
             for flt in (m.prediction_topic, m.truth_topic):
@@ -188,6 +228,43 @@ class Agent:
             self.events.append,
         )
 
+    def _open_recording(self, record: str | Path) -> RecordingWriter:
+        """The ``--record`` file, appended to: a restart continues the recording a crash cut.
+
+        A last line the crash cut short is removed first, and the journal rows a crash left
+        out (committed, not yet written to the recording) are written now, so the file holds
+        what the journal held; replaying it from the top gives what the agent gave since its
+        state folder was fresh.
+        """
+        cut = trim_cut_line(record)
+        if cut:
+            log.warning("recording %s: removed its last line, cut short by an earlier stop (%d bytes)", record, cut)
+        try:
+            last = last_line(record)
+        except WatchdogError:
+            last = None  # not a recording we can read: append, and leave it as it is
+        writer = RecordingWriter(record, append=True, private=True)
+        if last is None:
+            return writer
+        # Rows of the journal's tail after the recording's last line (all of them if that line
+        # is older than the tail: a snapshot covered it).
+        mark = (last.t, last.tick, last.topic, last.payload)
+        start = self._restored_after
+        for e in self.store.journal_tail(self._restored_after):
+            if (e.t, e.tick, e.topic, e.payload) == mark and e.seq is not None:
+                start = e.seq
+        added = 0
+        for e in self.store.journal_tail(start):
+            if e.tick:
+                writer.tick(e.t)
+            else:
+                writer.message(e.t, e.topic or "", e.payload or b"")
+            added += 1
+        writer.flush()
+        if added:
+            log.info("recording %s: wrote %d journal rows an earlier stop left out of it", record, added)
+        return writer
+
     # --- restart ---------------------------------------------------------------------------
     def _restore(self) -> Monitor:
         snap = self.store.latest_snapshot()
@@ -200,6 +277,7 @@ class Agent:
             # the snapshot is still recognised (rule 5).
             self.recent.restore(snap.data.get("recent", []))
             after = snap.journal_seq
+        self._restored_after = after
         n = 0
         for e in self.store.journal_tail(after):
             # Events are dropped on purpose: the alerts are in the outbox or already sent, the
@@ -238,16 +316,23 @@ class Agent:
         """Connect, then work until a signal; 0 on a clean shutdown. BrokerError if refused at start."""
         a = self.config.agent
         link = self.link
+        for w in self.warnings:
+            log.warning("%s", w)
+        for sig in (signal.SIGTERM, signal.SIGINT):
+            signal.signal(sig, self._on_signal)
         self.intake_open = True
         try:
-            link.start()
+            connected = self._connect_at_start()
         except BrokerError:
             self.intake_open = False
             self._close_files()
             raise
+        if not connected:  # stopped by a signal while waiting for the broker
+            self.intake_open = False
+            self._close_files()
+            log.info("stopped before the broker could be reached")
+            return 0
         self.running = True
-        for sig in (signal.SIGTERM, signal.SIGINT):
-            signal.signal(sig, self._on_signal)
         log.info(
             "agent %s connected to %s:%d; listening on %s",
             self.name,
@@ -261,6 +346,21 @@ class Agent:
         next_state = now  # publish state and status right away
         batch_max = a.journal_batch_max_messages
         while not self.stopping:
+            if self.held is not None:
+                # Rule 6: keep the session alive, take nothing new, retry the commit now and then.
+                link.poll(max(0.0, min(self._store_retry_at - time.monotonic(), _POLL_MAX_S)), 0)
+                now = time.monotonic()
+                if now >= self._store_retry_at:
+                    self._retry_held()
+                if self.events:
+                    self._handle_events()
+                if now >= next_state:
+                    next_state = now + a.state_every_s
+                    self._publish_status("online")
+                if self.held is None:  # the state file took the batch: ticks start afresh
+                    next_tick = now + a.tick_every_s
+                link.flush()
+                continue
             room = batch_max - len(self.inbox)
             if room > 0:
                 if self.inbox or self.events:
@@ -289,6 +389,40 @@ class Agent:
     def _on_signal(self, signum: int, frame: Any) -> None:
         self.stopping = True
 
+    def _connect_at_start(self) -> bool:
+        """Connect, retrying an unreachable broker with backoff (rule 7); False if stopped meanwhile."""
+        b = self.config.broker
+        backoff = Backoff(b.reconnect_min_s, b.reconnect_max_s)
+        began = time.monotonic()
+        while True:
+            try:
+                self.link.start()
+                break
+            except BrokerUnreachable as e:
+                self.counters["unreachable_at_start"] += 1
+                wait = backoff.next()
+                self._log_limited(
+                    "unreachable_at_start",
+                    logging.WARNING,
+                    "the broker cannot be reached yet: %s; retrying with backoff (next in %.1f s, "
+                    "logged once a minute)",
+                    e,
+                    wait,
+                )
+                until = time.monotonic() + wait
+                while not self.stopping and time.monotonic() < until:
+                    time.sleep(min(0.1, max(0.0, until - time.monotonic())))
+                if self.stopping:
+                    return False
+        if self.counters["unreachable_at_start"]:
+            self.waited_for_broker_s = round(time.monotonic() - began, 3)
+            log.info(
+                "the broker answered after %.1f s of waiting (%d attempts failed)",
+                self.waited_for_broker_s,
+                self.counters["unreachable_at_start"],
+            )
+        return True
+
     def _process(self, tick: bool) -> None:
         items = self.inbox
         rows: list[tuple] = []
@@ -297,7 +431,6 @@ class Agent:
         acks: list[tuple[int, int]] = []
         alerted: set[str] = set()  # models whose retained state is refreshed after this batch
         feed = self.monitor.feed
-        rec = self.recorder
         recent = self.recent
         clock = time.time
         # A batch commits (and acks) no later than agent.journal_batch_ms after it started,
@@ -325,8 +458,6 @@ class Agent:
                 recent.remember(mid, topic, payload)
             else:
                 rows.append((t, topic, payload, 0, None))
-            if rec is not None:
-                rec.message(t, topic, payload)
             if out:
                 self._collect(out, outbox, dead, alerted)
         self.inbox = items[done:] if done < len(items) else []
@@ -334,14 +465,26 @@ class Agent:
             t = clock()
             out = self.monitor.tick(t)
             rows.append((t, None, None, 1, None))
-            if rec is not None:
-                rec.tick(t)
             if out:
                 self._collect(out, outbox, dead, alerted)
         if rows or outbox or dead:
-            self.store.commit(rows, outbox, dead)
+            try:
+                self.store.commit(rows, outbox, dead)
+            except StoreWriteError as e:
+                self._hold(_HeldBatch(rows, outbox, dead, acks, alerted), e)
+                return
             self.counters["journal_batches"] += 1
-        # Committed: alerts go out first (latency), then the acks, all in one write.
+            if self.store_error is not None:
+                self._store_ok()
+        self._committed(rows, outbox, acks, alerted)
+        if self.events:
+            self._handle_events()
+
+    def _committed(
+        self, rows: list[tuple], outbox: list[OutboxItem], acks: list[tuple[int, int]], alerted: set[str]
+    ) -> None:
+        """After the commit: alerts out first (latency), then the acks in one write, then the recording."""
+        rec = self.recorder
         link = self.link
         if outbox and link.connected.is_set():
             for item in outbox:
@@ -350,10 +493,19 @@ class Agent:
             link.ack(mid, qos)
         link.flush()
         if rec is not None and rows:
+            # Written only now, so the recording holds exactly what the journal holds; a crash
+            # during this one write cuts at most the last line.
+            for t, topic, payload, tick, _ in rows:
+                if tick:
+                    rec.tick(t)
+                else:
+                    rec.message(t, topic, payload)
             rec.flush()
         if outbox or alerted:
             self._publish_states(sorted(alerted))
             self._refresh_status()  # received and outbox depth as they are now
+
+    def _handle_events(self) -> None:
         if self.events:
             events = self.events[:]
             self.events.clear()  # the same list: the link appends to it
@@ -366,7 +518,11 @@ class Agent:
                     else:
                         self.pending_other.discard(ev.mid)
             if acked_alerts:
-                self.store.mark_sent(acked_alerts)  # before a reconnect re-sends the outbox
+                try:
+                    self.store.mark_sent(acked_alerts)  # before a reconnect re-sends the outbox
+                except StoreWriteError as e:
+                    # They stay in the outbox and go out again later with the same alert_id.
+                    self._store_trouble(e)
                 self._refresh_status()  # alerts_sent counts acknowledged alerts
             for ev in events:
                 if ev.kind != "puback":
@@ -418,11 +574,34 @@ class Agent:
             self._resend_outbox()
         elif ev.kind == "disconnected":
             self.counters["disconnects"] += 1
+            self.last_disconnect = f"{rfc3339(time.time())} {ev.detail}"
             log.warning("lost the broker connection (%s); alerts wait in the outbox, reconnecting", ev.detail)
         elif ev.kind == "refused":
             self.counters["connection_refused"] += 1
             self.last_refusal = ev.detail
             self._log_limited("refused", logging.ERROR, "%s", ev.detail)
+        elif ev.kind == "publish_refused":
+            self.counters["publish_refused"] += 1
+            alert_id = self.pending.pop(ev.mid, None)
+            self.pending_other.discard(ev.mid)
+            what = f"alert {alert_id} stays in the outbox" if alert_id else "a state or status message was dropped"
+            self._log_limited(
+                "publish_refused",
+                logging.ERROR,
+                "the broker refused a publish (%s): %s; check the broker's ACL for this agent's "
+                "topics (logged once a minute)",
+                ev.detail,
+                what,
+            )
+        elif ev.kind == "subscribe_refused":
+            self.counters["subscribe_refused"] += 1
+            self._log_limited(
+                "subscribe_refused",
+                logging.ERROR,
+                "the broker refused the subscription to %s; no records arrive from there: check "
+                "the broker's ACL for this agent",
+                ev.detail,
+            )
         elif ev.kind == "unreachable":
             self.counters["connect_failures"] += 1
             self._log_limited("unreachable", logging.WARNING, "reconnect failed: %s", ev.detail)
@@ -457,7 +636,7 @@ class Agent:
                 mid = self.link.publish(self.state_topics[m], payload, qos=1, retain=True)
                 self.pending_other.add(mid)
         if kept:
-            self.store.keep_published(kept)
+            self._keep_published(kept)
 
     def status(self, connection: str = "online") -> dict[str, Any]:
         """The agent status as published (counters of the core, the outbox, the journal, the link)."""
@@ -477,14 +656,29 @@ class Agent:
                 "outbox_depth": self.store.outbox_depth(),
                 "journal_depth": self.store.journal_depth(),
                 "dead_letters": self.store.dead_letter_stats(),
-                "link": dict(self.counters, connected=self.link.connected.is_set(), last_refusal=self.last_refusal),
+                "link": dict(
+                    self.counters,
+                    connected=self.link.connected.is_set(),
+                    last_refusal=self.last_refusal,
+                    last_disconnect=self.last_disconnect,
+                    waited_for_broker_s=self.waited_for_broker_s,
+                ),
+                "store": self._store_status(),
+                "warnings": self.warnings,
             }
         )
+
+    def _keep_published(self, rows: list[tuple[str, bytes, float]]) -> None:
+        """The readers' copy of retained messages; a full or read-only state file only skips it."""
+        try:
+            self.store.keep_published(rows)
+        except StoreWriteError as e:
+            self._store_trouble(e)
 
     def _publish_status(self, connection: str) -> int | None:
         """Publish the retained status (kept in the state file as well); the message id, if sent."""
         payload = json.dumps(self.status(connection), separators=(",", ":")).encode()
-        self.store.keep_published([(self.status_topic, payload, time.time())])
+        self._keep_published([(self.status_topic, payload, time.time())])
         if not self.link.connected.is_set():
             return None
         mid = self.link.publish(self.status_topic, payload, qos=1, retain=True)
@@ -497,16 +691,82 @@ class Agent:
             self._publish_status("online")
 
     def _snapshot(self) -> None:
+        if self.held is not None:
+            return  # the core holds messages the journal lacks: a snapshot now would skip them
         data = {"monitor": self.monitor.snapshot(), "recent": self.recent.rows()}
-        self.store.save_snapshot(data, time.time())
+        try:
+            self.store.save_snapshot(data, time.time())
+        except StoreWriteError as e:
+            self._store_trouble(e)  # nothing lost: the journal still holds every row
+            return
         self.counters["snapshots"] += 1
+        if self.store_error is not None:
+            self._store_ok()
+
+    def _store_ok(self) -> None:
+        log.warning("the state file takes writes again")
+        self.store_error = None
+        self.store_error_since = None
+
+    # --- the state file cannot be written (rule 6) ------------------------------------------
+    def _store_trouble(self, e: StoreWriteError) -> None:
+        self.store_failures += 1
+        if self.store_error is None:
+            self.store_error_since = time.time()
+        self.store_error = str(e)
+        self._log_limited("store", logging.ERROR, "%s (logged once a minute)", e)
+
+    def _hold(self, batch: _HeldBatch, e: StoreWriteError) -> None:
+        self.held = batch
+        self._store_trouble(e)
+        self._store_retry_at = time.monotonic() + self._store_backoff.next()
+        self._log_limited(
+            "store.hold",
+            logging.ERROR,
+            "the journal cannot take %d messages: intake paused, they and every later message wait "
+            "unacknowledged with the broker; retrying by itself with backoff (logged once a minute)",
+            len(batch.acks),
+        )
+
+    def _retry_held(self) -> None:
+        batch = self.held
+        assert batch is not None
+        try:
+            self.store.commit(batch.rows, batch.outbox, batch.dead)
+        except StoreWriteError as e:
+            self._store_trouble(e)
+            self._store_retry_at = time.monotonic() + self._store_backoff.next()
+            return
+        self.held = None
+        self._store_backoff.reset()
+        self.counters["journal_batches"] += 1
+        since = self.store_error_since or time.time()
+        log.warning(
+            "the state file takes writes again after %.1f s: %d held messages committed, intake resumed",
+            time.time() - since,
+            len(batch.acks),
+        )
+        self.store_error = None
+        self.store_error_since = None
+        self._committed(batch.rows, batch.outbox, batch.acks, batch.alerted)
+
+    def _store_status(self) -> dict[str, Any]:
+        return {
+            "writes": "accepted" if self.held is None and self.store_error is None else "failing",
+            "error": self.store_error,
+            "since": None if self.store_error_since is None else rfc3339(self.store_error_since),
+            "held_messages": 0 if self.held is None else len(self.held.acks),
+            "write_failures": self.store_failures,
+        }
 
     # --- shutdown ---------------------------------------------------------------------------
     def _drain_events(self, seconds: float, done) -> None:
         until = time.monotonic() + seconds
         while time.monotonic() < until and not done():
             self.link.poll(0.02)
-            if self.inbox or self.events:
+            if self.held is not None:
+                self._handle_events()
+            elif self.inbox or self.events:
                 self._process(tick=False)
             self.link.flush()
 
@@ -514,8 +774,10 @@ class Agent:
         log.info("stopping: intake closed, flushing the outbox")
         self.intake_open = False
         # Messages already read were received before the stop: journal and acknowledge them.
-        while self.inbox:
+        while self.inbox and self.held is None:
             self._process(tick=False)
+        if self.held is not None:
+            self._retry_held()  # a last try; otherwise the broker sends the held messages again
         self._drain_events(5.0, lambda: not self.pending or not self.link.connected.is_set())
         self._snapshot()
         self.said_offline = True

@@ -38,7 +38,7 @@ from paho.mqtt.properties import Properties
 from watchdog_edge.agent.link_socket import BufferedSocket
 from watchdog_edge.agent.paho_private import client_class, missing_steps
 from watchdog_edge.core.settings import BrokerSettings
-from watchdog_edge.errors import BrokerError, ConfigError
+from watchdog_edge.errors import BrokerError, BrokerUnreachable, ConfigError
 
 log = logging.getLogger("watchdog_edge.agent.link")
 
@@ -121,6 +121,40 @@ def read_password(settings: BrokerSettings, base_dir: Path) -> str | None:
     return None
 
 
+def secret_warnings(settings: BrokerSettings, base_dir: Path) -> list[str]:
+    """Warnings about how the broker's secrets are set up: files others can read, hostname checks off.
+
+    A password or key file that group or others can read is reported the way ssh reports a
+    private key with loose permissions; TLS without hostname verification accepts any
+    certificate the CA signed, for any host.
+    """
+    out: list[str] = []
+    files: list[tuple[str, str | None]] = [("broker.password_file", settings.password_file)]
+    if settings.tls is not None:
+        files.append(("broker.tls.key_file", settings.tls.key_file))
+    for key, name in files:
+        if not name:
+            continue
+        p = Path(name).expanduser()
+        p = p if p.is_absolute() else base_dir / p
+        try:
+            mode = p.stat().st_mode & 0o777
+        except OSError:
+            continue  # a missing file is an error elsewhere
+        if mode & 0o077:
+            out.append(
+                f"{key} = {name!r} can be read by {'group and others' if mode & 0o007 else 'its group'} "
+                f"(mode {mode:o}); make it private to the agent's user: chmod 600 {p}"
+            )
+    if settings.tls is not None and not settings.tls.verify_hostname:
+        out.append(
+            "broker.tls.verify_hostname = false: the broker's certificate is not checked against "
+            f"broker.host ({settings.host}); any certificate the CA signed is accepted. Turn it on "
+            "unless the certificate cannot name the host"
+        )
+    return out
+
+
 # --- backoff -------------------------------------------------------------------------------
 class Backoff:
     """Exponential backoff with jitter: the n-th wait is uniform in [d/2, d], d = min(max, base * 2^n).
@@ -160,7 +194,8 @@ class Inbound(NamedTuple):
 
 @dataclass(frozen=True, slots=True)
 class LinkEvent:
-    """Something the agent should know: ``connected``, ``refused``, ``disconnected``, ``unreachable`` or ``puback``."""
+    """Something the agent should know: ``connected``, ``refused``, ``disconnected``, ``unreachable``,
+    ``puback``, ``publish_refused`` (MQTT 5) or ``subscribe_refused``."""
 
     kind: str
     detail: str = ""
@@ -243,6 +278,7 @@ class Link:
         self._delivered = 0
         self._attempt: threading.Thread | None = None
         self._attempt_error: BaseException | None = None
+        self._sub_mids: dict[int, list[str]] = {}
         self._next_attempt = 0.0
         self.backoff = Backoff(settings.reconnect_min_s, settings.reconnect_max_s)
         v5 = settings.protocol == "5"
@@ -302,6 +338,7 @@ class Link:
         c.on_disconnect = self._on_disconnect
         c.on_message = self._on_message
         c.on_publish = self._on_publish
+        c.on_subscribe = self._on_subscribe
         # With these two set (paho's interface for an outside event loop) paho only queues
         # packets and ``flush`` writes them; without them paho writes each packet at once.
         c.on_socket_register_write = _no_op
@@ -319,7 +356,8 @@ class Link:
             return
         self.backoff.reset()
         for flt in self.subscriptions:
-            client.subscribe(flt, qos=1)
+            _, mid = client.subscribe(flt, qos=1)
+            self._sub_mids[mid] = [flt]
         self.connected.set()
         if not self._first_done:
             self._first_result = None
@@ -337,7 +375,23 @@ class Link:
         self.on_message(Inbound(msg.topic, msg.payload, msg.mid, msg.qos, msg.dup))
 
     def _on_publish(self, client, userdata, mid, reason_code, properties) -> None:
-        self.on_event(LinkEvent("puback", str(reason_code), mid=mid))
+        # MQTT 5 PUBACKs carry a reason code (3.4.2.1): 0x87 "Not authorized" is how a broker
+        # says its ACL dropped the message. MQTT 3.1.1 has no such code, so there a denied
+        # publish looks delivered.
+        if getattr(reason_code, "is_failure", False):
+            self.on_event(LinkEvent("publish_refused", str(reason_code), mid=mid))
+        else:
+            self.on_event(LinkEvent("puback", str(reason_code), mid=mid))
+
+    def _on_subscribe(self, client, userdata, mid, reason_codes, properties) -> None:
+        # SUBACK return code 0x80 (MQTT 3.1.1, 3.9.3) or a v5 reason code >= 0x80: refused.
+        refused = [
+            f"{flt} ({rc})"
+            for flt, rc in zip(self._sub_mids.pop(mid, []), reason_codes)
+            if getattr(rc, "is_failure", False)
+        ]
+        if refused:
+            self.on_event(LinkEvent("subscribe_refused", ", ".join(refused)))
 
     # --- connection --------------------------------------------------------------------------
     def _connect_args(self) -> dict[str, Any]:
@@ -352,14 +406,19 @@ class Link:
     def start(self, timeout: float = 15.0) -> None:
         """Connect once and wait for the CONNACK; raise BrokerError with a one-line reason if refused.
 
+        ``BrokerUnreachable`` (a BrokerError) when nothing answered at the address, which a
+        caller may retry; any other BrokerError needs a person (password, certificate, port).
+
         Messages the broker kept for the session may already arrive (through ``on_message``)
         before this returns.
         """
         s = self.settings
         try:
             self.client.connect(**self._connect_args())
-        except (OSError, ssl.SSLError) as e:
+        except ssl.SSLError as e:  # a certificate or TLS setting: a person must fix it
             raise BrokerError(describe_failure(e, s.host, s.port)) from None
+        except OSError as e:  # refused, no route, no name yet, timeout: the broker may come later
+            raise BrokerUnreachable(describe_failure(e, s.host, s.port)) from None
         deadline = time.monotonic() + timeout
         while not self._first_done and time.monotonic() < deadline:
             self.poll(0.05)
@@ -411,11 +470,38 @@ class Link:
         c = self.client
         if c.socket() is None:
             return
+        self._ping_early()
         rc = c.loop_misc()  # keepalive: a PINGREQ, or a dead connection noticed
         if rc != MQTTErrorCode.MQTT_ERR_SUCCESS or c.socket() is None:
             self._lost(rc)
         elif self.want_write():
             self.flush()
+
+    def _ping_early(self) -> None:
+        """Send the PINGREQ after half a keepalive without a byte from the broker.
+
+        paho pings only after a whole keepalive of silence and gives up one more keepalive
+        later, so a frozen connection (a stalled link, a half-dead NAT) went unnoticed for up
+        to two keepalives. Pinging at half makes paho's own check close it once a whole
+        keepalive has passed without an answer. It reads paho 2's private timers; with a
+        paho without them, paho's own timing applies.
+        """
+        c = self.client
+        last = getattr(c, "_last_bytes_received", None)
+        ping_t = getattr(c, "_ping_t", None)
+        keepalive = getattr(c, "_keepalive", 0)
+        if last is None or ping_t != 0 or not keepalive or not self.connected.is_set():
+            return
+        # Past a whole keepalive already (the caller's loop was busy that long): leave it to
+        # paho, which pings first and only then waits, so a busy spell is no disconnect.
+        if keepalive / 2 <= paho.time_func() - last < keepalive:
+            try:
+                c._send_pingreq()
+            except Exception:
+                return  # paho's own check finds out what is wrong
+            # The PINGREQ is a packet out: without this, paho's check, seeing nothing sent for
+            # a keepalive, would treat the wait as fresh and start the silence over.
+            c._last_msg_out = paho.time_func()
 
     def _lost(self, rc: MQTTErrorCode) -> None:
         # paho has closed the socket (and called on_disconnect) by now.

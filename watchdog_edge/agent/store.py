@@ -21,7 +21,9 @@ cache); a power cut can lose the last commits. ``FULL`` syncs the WAL on every c
 
 from __future__ import annotations
 
+import errno
 import json
+import os
 import sqlite3
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
@@ -30,7 +32,7 @@ from pathlib import Path
 from typing import Any, Literal
 
 from watchdog_edge.core.events import DeadLetter
-from watchdog_edge.errors import StoreError
+from watchdog_edge.errors import StoreError, StoreWriteError
 
 SCHEMA_VERSION = 1
 _CACHE_KIB = 512
@@ -201,6 +203,21 @@ class StoredDeadLetter:
         return out
 
 
+def _write_error(path: Path, e: sqlite3.Error) -> StoreWriteError:
+    text = str(e)
+    low = text.lower()
+    if "full" in low:
+        why = "the disk (or agent.state_dir's file system) is full"
+    elif "readonly" in low or "read-only" in low:
+        why = "the state file or its folder is read-only"
+    else:
+        why = "the file system reported an error"
+    return StoreWriteError(
+        f"cannot write the state file {path}: {text} ({why}); free space or make agent.state_dir "
+        "writable: the agent goes on by itself"
+    )
+
+
 class Store:
     """The agent's SQLite file. Use from one thread only (the agent's worker).
 
@@ -223,7 +240,7 @@ class Store:
         if synchronous not in ("NORMAL", "FULL"):
             raise StoreError(f"sqlite_synchronous = {synchronous!r}: must be 'NORMAL' or 'FULL'")
         self.path = Path(path)
-        self.path.parent.mkdir(parents=True, exist_ok=True)
+        make_private(self.path)
         self.dead_letter_max_count = dead_letter_max_count
         self.dead_letter_max_bytes = dead_letter_max_bytes
         try:
@@ -231,22 +248,25 @@ class Store:
             # exactly one transaction.
             self._db = sqlite3.connect(str(self.path), isolation_level=None, timeout=10.0)
             mode = self._db.execute("PRAGMA journal_mode=WAL").fetchone()[0]
+            self._db.execute(f"PRAGMA synchronous={synchronous}")
+            # The agent appends and rarely reads back: a small page cache holds the pages a commit
+            # touches (SQLite's default is 2 MB).
+            self._db.execute(f"PRAGMA cache_size=-{_CACHE_KIB}")
+            self._db.executescript(_SCHEMA)
+            found = self._meta_get("schema_version")
+            if found is None:
+                self._meta_set("schema_version", str(SCHEMA_VERSION))
         except sqlite3.Error as e:
+            low = str(e).lower()
+            if "full" in low or "readonly" in low or "read-only" in low or "disk i/o" in low:
+                raise _write_error(self.path, e) from None
             raise StoreError(f"cannot open the state file {self.path}: {e}; check agent.state_dir") from None
         if str(mode).lower() != "wal":
             raise StoreError(
                 f"the state file {self.path} cannot use WAL mode (got {mode!r}); "
                 "put agent.state_dir on a local file system"
             )
-        self._db.execute(f"PRAGMA synchronous={synchronous}")
-        # The agent appends and rarely reads back: a small page cache holds the pages a commit
-        # touches (SQLite's default is 2 MB).
-        self._db.execute(f"PRAGMA cache_size=-{_CACHE_KIB}")
-        self._db.executescript(_SCHEMA)
-        found = self._meta_get("schema_version")
-        if found is None:
-            self._meta_set("schema_version", str(SCHEMA_VERSION))
-        elif int(found) != SCHEMA_VERSION:
+        if found is not None and int(found) != SCHEMA_VERSION:
             raise StoreError(
                 f"the state file {self.path} has schema {found}, this version reads "
                 f"{SCHEMA_VERSION}; move it away to start fresh"
@@ -254,6 +274,13 @@ class Store:
         self._last_seq = self.last_seq()
 
     # --- plumbing -------------------------------------------------------------------------
+    def _rollback(self) -> None:
+        if self._db.in_transaction:
+            try:
+                self._db.execute("ROLLBACK")
+            except sqlite3.Error:
+                pass  # SQLite rolled back already (it does after some I/O errors)
+
     def close(self) -> None:
         """Close the file (a WAL checkpoint happens on the last close)."""
         self._db.close()
@@ -320,8 +347,11 @@ class Store:
             if dl:
                 self._insert_dead_letters(dl)
             db.execute("COMMIT")
+        except sqlite3.Error as e:
+            self._rollback()
+            raise _write_error(self.path, e) from None
         except BaseException:
-            db.execute("ROLLBACK")
+            self._rollback()
             raise
         self._last_seq = last
         return last
@@ -364,8 +394,11 @@ class Store:
             db.execute("DELETE FROM snapshots WHERE id < (SELECT MAX(id) FROM snapshots)")
             db.execute("DELETE FROM journal WHERE seq <= ?", (seq,))
             db.execute("COMMIT")
+        except sqlite3.Error as e:
+            self._rollback()
+            raise _write_error(self.path, e) from None
         except BaseException:
-            db.execute("ROLLBACK")
+            self._rollback()
             raise
         return seq
 
@@ -400,8 +433,11 @@ class Store:
                 removed += db.execute("DELETE FROM outbox WHERE alert_id = ?", (a,)).rowcount
             self._meta_set("counter.alerts_sent", str(self.counter("alerts_sent") + removed))
             db.execute("COMMIT")
+        except sqlite3.Error as e:
+            self._rollback()
+            raise _write_error(self.path, e) from None
         except BaseException:
-            db.execute("ROLLBACK")
+            self._rollback()
             raise
         return removed
 
@@ -409,16 +445,19 @@ class Store:
     def keep_published(self, rows: Iterable[tuple[str, bytes, float]]) -> None:
         """Keep the latest retained payload per topic, ``(topic, payload, t)`` rows, in one transaction."""
         db = self._db
-        db.execute("BEGIN")
         try:
+            db.execute("BEGIN")
             db.executemany(
                 "INSERT INTO published (topic, payload, t) VALUES (?, ?, ?) "
                 "ON CONFLICT(topic) DO UPDATE SET payload = excluded.payload, t = excluded.t",
                 rows,
             )
             db.execute("COMMIT")
+        except sqlite3.Error as e:
+            self._rollback()
+            raise _write_error(self.path, e) from None
         except BaseException:
-            db.execute("ROLLBACK")
+            self._rollback()
             raise
 
     # --- dead letters ---------------------------------------------------------------------
@@ -465,6 +504,31 @@ class Store:
             "SELECT COUNT(*), COALESCE(SUM(LENGTH(payload)), 0) FROM dead_letters"
         ).fetchone()
         return {"count": int(count), "bytes": int(total), "dropped": self.counter("dead_letters_dropped")}
+
+
+def make_private(path: Path) -> None:
+    """Create the state folder (0700) and the state file (0600) private to the agent's user.
+
+    The file holds payloads and dead letters. SQLite gives its ``-wal`` and ``-shm`` files the
+    mode of the database file, so they are private as well. A folder or file that exists
+    already keeps its owner; its mode is narrowed to the same bits.
+    """
+    folder = path.parent
+    try:
+        if not folder.exists():
+            folder.mkdir(mode=0o700, parents=True)
+            os.chmod(folder, 0o700)  # mkdir's mode is filtered by the umask
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o600)
+        os.close(fd)
+        for p in (path, path.with_name(path.name + "-wal"), path.with_name(path.name + "-shm")):
+            if p.exists() and p.stat().st_mode & 0o077:
+                os.chmod(p, 0o600)
+    except OSError as e:
+        cls = StoreWriteError if e.errno in (errno.EROFS, errno.ENOSPC, errno.EDQUOT) else StoreError
+        raise cls(
+            f"agent.state_dir = {str(folder)!r}: cannot create the state file there ({e.strerror}); "
+            "check that the folder exists and is writable by the agent's user"
+        ) from None
 
 
 def open_readonly(path: str | Path) -> sqlite3.Connection:

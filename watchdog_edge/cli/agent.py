@@ -28,7 +28,7 @@ What it keeps on disk, in agent.state_dir (one SQLite file):
 
 A restart resumes from the snapshot plus the journal, so windows continue and no alert is raised twice.
 
-Stop it with SIGTERM or Ctrl-C: it finishes the batch in hand, sends what the broker accepts, takes a snapshot, sets its status to offline and exits 0. If the broker refuses it at start (wrong password, untrusted certificate, not authorised) it prints one line saying why and exits 3; a bad config or card exits 2.
+Stop it with SIGTERM or Ctrl-C: it finishes the batch in hand, sends what the broker accepts, takes a snapshot, sets its status to offline and exits 0. If the broker refuses it at start (wrong password, untrusted certificate, not authorised) it prints one line saying why and exits 3; a bad config or card exits 2. A broker that cannot be reached yet (it may start later than the agent at boot) is retried with backoff, as is a state folder that is full or read-only; the log says so.
 
 The password comes from the file named by broker.password_file or the environment variable named by broker.password_env, never from the command line.
 
@@ -65,7 +65,7 @@ def run(
         None,
         "--record",
         help="Also write every received message and timer tick to this JSON Lines recording "
-        "(overwritten); 'watchdog-edge replay' on it gives the same alerts as this run.",
+        "(appended to, across restarts); 'watchdog-edge replay' on it gives the same alerts as the agent.",
     ),
     log_level: str = typer.Option("info", "--log-level", help="debug, info, warning or error."),
 ) -> None:

@@ -82,7 +82,9 @@ def check_config(
         comments[("models", i)] = [
             f"expected {card.loss} loss {exp:.6g}, from the {source_words(src)} (card {m['card']})"
         ]
-    warnings = config_warnings(cfg)
+    from watchdog_edge.agent.link import secret_warnings
+
+    warnings = config_warnings(cfg) + secret_warnings(cfg.broker, cfg.base_dir)
     if as_json:
         typer.echo(json.dumps(data, indent=2))
     else:
@@ -113,6 +115,11 @@ def replay(
     ),
     as_json: bool = typer.Option(False, "--json", help="Print the summary as JSON instead of tables."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="Do not print alerts as they happen."),
+    skip_bad_lines: bool = typer.Option(
+        False,
+        "--skip-bad-lines",
+        help="Skip and count malformed lines instead of stopping (a cut last line is always skipped).",
+    ),
 ) -> None:
     """Run a recording through the same core as the live agent and report what it finds.
 
@@ -124,7 +131,7 @@ def replay(
     from watchdog_edge.cli.durations import parse_duration_s
     from watchdog_edge.core.events import Alert
     from watchdog_edge.files.configfile import load_monitor
-    from watchdog_edge.replay.recording import alert_line, read_recording
+    from watchdog_edge.replay.recording import ReadCounts, alert_line, read_recording
     from watchdog_edge.replay.recording import replay as run_replay
     from watchdog_edge.replay.report import format_alert, print_summary, summary
 
@@ -144,7 +151,8 @@ def replay(
                 if not quiet and not as_json:
                     console.print(format_alert(ev), highlight=False)
 
-        lines = read_recording(recording)
+        skipped = ReadCounts()
+        lines = read_recording(recording, skip_bad=skip_bad_lines, counts=skipped)
         show_bar = size > 5_000_000 and console.is_terminal
         if show_bar:
             with Progress(
@@ -176,10 +184,15 @@ def replay(
     if as_json:
         data = summary(mon)
         data["alerts"] = len(found)
+        data["skipped_lines"] = {"cut_last_line": skipped.cut_last_line, "bad": skipped.bad_lines_skipped}
         typer.echo(json.dumps(data, indent=2, default=str))
     else:
         print_summary(mon, console)
         console.print(f"{len(found)} alerts" + (f", written to {alerts}" if alerts else ""))
+        if skipped.cut_last_line or skipped.bad_lines_skipped:
+            console.print(
+                f"skipped lines: {skipped.cut_last_line} cut last line, {skipped.bad_lines_skipped} bad lines"
+            )
 
 
 @app.command(cls=PlainCommand)
@@ -224,6 +237,7 @@ def _register_optional() -> None:
         "watchdog_edge.cli.sim",
         "watchdog_edge.cli.jetstream",
         "watchdog_edge.cli.status",
+        "watchdog_edge.cli.page",
     ):
         try:
             importlib.import_module(mod).register(app)

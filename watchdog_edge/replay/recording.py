@@ -9,7 +9,9 @@ from __future__ import annotations
 
 import base64
 import json
+import logging
 import math
+import os
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -20,6 +22,8 @@ import orjson
 from watchdog_edge.core.events import Event
 from watchdog_edge.core.parsing import loads_json
 from watchdog_edge.errors import RecordingError
+
+log = logging.getLogger("watchdog_edge.replay.recording")
 
 _orjson_loads = orjson.loads
 _OrjsonError = orjson.JSONDecodeError
@@ -40,21 +44,47 @@ def parse_line(text: str | bytes, lineno: int = 0, source: str = "recording") ->
     return next(parse_lines((text,), source, lineno), None)
 
 
+@dataclass(slots=True)
+class ReadCounts:
+    """Lines a reading skipped: a last line cut short, and bad lines skipped on request."""
+
+    cut_last_line: int = 0
+    bad_lines_skipped: int = 0
+
+
+_LOG_BAD_LINES = 10  # bad lines logged one by one at most; the rest only counted
+
+
 def parse_lines(
-    texts: Iterable[str | bytes], source: str = "recording", first: int = 1, close: bool = False
+    texts: Iterable[str | bytes],
+    source: str = "recording",
+    first: int = 1,
+    close: bool = False,
+    cut_last_ok: bool = False,
+    skip_bad: bool = False,
+    counts: ReadCounts | None = None,
 ) -> Iterator[RecordLine]:
     """Recording lines from their texts, blank ones skipped; line numbers count from ``first``.
 
     With ``close`` the texts (an open file) are closed when the lines end or stop being read.
+    With ``cut_last_ok`` a bad line without a line end (only a file's last line can lack one:
+    the writer was stopped mid-line by a crash or power loss) is skipped with a warning; with
+    ``skip_bad`` every other bad line is skipped with a warning too. ``counts`` counts both.
     """
     try:
         for i, text in enumerate(texts, first):
             try:
                 obj = _orjson_loads(text)  # the common case: a well-formed line, read in one step
             except _OrjsonError:
-                obj = _parse_slowly(text, i, source)
-                if obj is not None:
-                    yield _check_line(obj, i, source)
+                try:
+                    obj = _parse_slowly(text, i, source)
+                    line = None if obj is None else _check_line(obj, i, source)
+                except RecordingError as e:
+                    if not _tolerate(e, text, i, source, cut_last_ok, skip_bad, counts):
+                        raise
+                    continue
+                if line is not None:
+                    yield line
                 continue
             if type(obj) is dict:  # orjson's floats are finite and its text holds no surrogates
                 t = obj.get("t")
@@ -64,10 +94,47 @@ def parse_lines(
                     if type(topic) is str and topic:
                         yield RecordLine(t, topic, payload.encode())
                         continue
-            yield _check_line(obj, i, source)
+            try:
+                line = _check_line(obj, i, source)
+            except RecordingError as e:
+                if not _tolerate(e, text, i, source, cut_last_ok, skip_bad, counts):
+                    raise
+                continue
+            yield line
     finally:
         if close and hasattr(texts, "close"):
             texts.close()
+
+
+def _tolerate(
+    e: RecordingError,
+    text: str | bytes,
+    lineno: int,
+    source: str,
+    cut_last_ok: bool,
+    skip_bad: bool,
+    counts: ReadCounts | None,
+) -> bool:
+    """Whether a bad line is skipped (and counted, and logged) rather than stopping the reading."""
+    ends = text.endswith(b"\n") if isinstance(text, bytes) else text.endswith("\n")
+    if cut_last_ok and not ends:
+        if counts is not None:
+            counts.cut_last_line += 1
+        log.warning(
+            "%s, line %d: the last line is cut short (a crash or power loss while it was written); skipped",
+            source,
+            lineno,
+        )
+        return True
+    if skip_bad:
+        if counts is not None:
+            counts.bad_lines_skipped += 1
+            if counts.bad_lines_skipped <= _LOG_BAD_LINES:
+                log.warning("%s; skipped as asked", e)
+        else:
+            log.warning("%s; skipped as asked", e)
+        return True
+    return False
 
 
 def _parse_slowly(text: str | bytes, lineno: int, source: str) -> Any:
@@ -115,14 +182,18 @@ def _check_line(obj: Any, lineno: int, source: str) -> RecordLine:
     return RecordLine(float(t), topic, payload)
 
 
-def read_recording(path: str | Path) -> Iterator[RecordLine]:
-    """Lines of a recording file, in order; a missing file is an error at once."""
+def read_recording(path: str | Path, skip_bad: bool = False, counts: ReadCounts | None = None) -> Iterator[RecordLine]:
+    """Lines of a recording file, in order; a missing file is an error at once.
+
+    A last line cut short by a crash is skipped with a warning (and counted in ``counts``);
+    any other bad line is an error, unless ``skip_bad`` (then it is skipped and counted too).
+    """
     p = Path(path)
     try:
         fh = p.open("rb")
     except FileNotFoundError:
         raise RecordingError(f"recording not found: {p}") from None
-    return parse_lines(fh, str(p), close=True)
+    return parse_lines(fh, str(p), close=True, cut_last_ok=True, skip_bad=skip_bad, counts=counts)
 
 
 def format_message(t: float, topic: str, payload: bytes) -> str:
@@ -150,9 +221,13 @@ class RecordingWriter:
     '{"t": 2.0, "tick": true}'
     """
 
-    def __init__(self, target: str | Path | IO[str], append: bool = False) -> None:
+    def __init__(self, target: str | Path | IO[str], append: bool = False, private: bool = False) -> None:
         if isinstance(target, (str, Path)):
-            self._fh: IO[str] = open(target, "a" if append else "w", encoding="utf-8")
+            if private:  # the agent's recording holds payloads: readable by its user only
+                flags = os.O_WRONLY | os.O_CREAT | (os.O_APPEND if append else os.O_TRUNC)
+                self._fh: IO[str] = os.fdopen(os.open(target, flags, 0o600), "a" if append else "w", encoding="utf-8")
+            else:
+                self._fh = open(target, "a" if append else "w", encoding="utf-8")
             self._own = True
         else:
             self._fh = target
@@ -176,6 +251,60 @@ class RecordingWriter:
 
     def __exit__(self, *exc: object) -> None:
         self.close()
+
+
+def trim_cut_line(path: str | Path) -> int:
+    """Cut a recording back to its last line end (a line cut short by a crash); the bytes removed.
+
+    >>> import tempfile, os
+    >>> p = os.path.join(tempfile.mkdtemp(), "r.jsonl")
+    >>> _ = open(p, "w").write('{"t": 1.0, "tick": true}\\n{"t": 2.0, "ti')
+    >>> trim_cut_line(p), open(p).read()
+    (14, '{"t": 1.0, "tick": true}\\n')
+    """
+    p = Path(path)
+    try:
+        size = p.stat().st_size
+    except FileNotFoundError:
+        return 0
+    if size == 0:
+        return 0
+    with open(p, "rb+") as fh:
+        fh.seek(size - 1)
+        if fh.read(1) == b"\n":
+            return 0
+        end, keep = size, 0
+        while end > 0:
+            start = max(0, end - 65536)
+            fh.seek(start)
+            i = fh.read(end - start).rfind(b"\n")
+            if i >= 0:
+                keep = start + i + 1
+                break
+            end = start
+        fh.truncate(keep)
+    return size - keep
+
+
+def last_line(path: str | Path) -> RecordLine | None:
+    """The last line of a recording whose lines are whole (see :func:`trim_cut_line`); None if empty."""
+    p = Path(path)
+    try:
+        size = p.stat().st_size
+    except FileNotFoundError:
+        return None
+    with open(p, "rb") as fh:
+        end = size
+        while end > 0:
+            start = max(0, end - 65536)
+            fh.seek(start)
+            text = fh.read(size - start).rstrip(b"\r\n")
+            i = text.rfind(b"\n")
+            if i >= 0 or start == 0:
+                line = text[i + 1 :]
+                return parse_line(line, source=str(p)) if line.strip() else None
+            end = start
+    return None
 
 
 def with_ticks(lines: Iterable[RecordLine], every: float | None) -> Iterator[RecordLine]:
