@@ -2,7 +2,7 @@
 
 import json
 
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from watchdog_edge.core.pairing import COUNTERS, Pairer
@@ -90,13 +90,12 @@ class _Plain:
         self.counts = dict.fromkeys(COUNTERS, 0)
 
     def expire(self, now: float) -> None:
-        limit = now - self.h
         for store, key in ((self.preds, "expired_predictions"), (self.truths, "expired_truths")):
-            old = [k for k, t in store.items() if t < limit]
+            old = [k for k, t in store.items() if t + self.h < now]
             for k in old:
                 del store[k]
             self.counts[key] += len(old)
-        for k in [k for k, t in self.done.items() if t < limit]:
+        for k in [k for k, t in self.done.items() if t + self.h < now]:
             del self.done[k]
 
     def add(self, side: str, rid: str, t: float) -> bool:
@@ -127,6 +126,8 @@ class _Plain:
 
 
 @settings(max_examples=300, deadline=None)
+# a record whose horizon ends at the very time of the next one, in floating point
+@example(steps=[("p", 0, 0.5976432851712189), ("t", 0, 20.0)], horizon=20.0, cap=8, restore_at=120)
 @given(
     steps=st.lists(st.tuples(st.sampled_from("pt"), st.integers(0, 12), st.floats(0, 30)), min_size=1, max_size=120),
     horizon=st.sampled_from([5.0, 20.0, 1e9]),

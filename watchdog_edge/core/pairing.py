@@ -166,10 +166,12 @@ class Pairer:
         """Drop records older than the horizon (records arrive in core-time order)."""
         if now <= self.due:
             return
-        limit = now - self.horizon_s
+        # "expired" is t + horizon < now, the very sum that ``due`` holds: written as
+        # t < now - horizon it could differ from ``due`` in the last bit
+        h = self.horizon_s
         for store, ids, ts, key in self._expiring:
             n = 0
-            while ts and ts[0] < limit:
+            while ts and ts[0] + h < now:
                 t = ts.popleft()
                 rid = ids.popleft()
                 rec = store.get(rid)
@@ -179,7 +181,7 @@ class Pairer:
             if n:
                 self.counts[key] += n
         done, done_ids, done_ts = self._done, self._done_ids, self._done_ts
-        while done_ts and done_ts[0] < limit:
+        while done_ts and done_ts[0] + h < now:
             done_ts.popleft()
             done.discard(done_ids.popleft())
         self._set_due()
