@@ -97,6 +97,36 @@ def outbound_topic(template: str, *, model: str | None = None, agent: str | None
 
 
 # --- secrets -------------------------------------------------------------------------------
+
+
+def client_tls(client: Any, settings: BrokerSettings, base_dir: Path) -> None:
+    """Set up TLS on a paho client from ``broker.tls`` (paths relative to the config); nothing without it."""
+    tls = settings.tls
+    if tls is None:
+        return
+
+    def path(p: str | None) -> str | None:
+        if p is None:
+            return None
+        q = Path(p).expanduser()
+        full = q if q.is_absolute() else base_dir / q
+        if not full.exists():
+            raise ConfigError(f"broker.tls: file {p!r} does not exist (looked at {full})")
+        return str(full)
+
+    try:
+        client.tls_set(
+            ca_certs=path(tls.ca_file),
+            certfile=path(tls.cert_file),
+            keyfile=path(tls.key_file),
+            cert_reqs=ssl.CERT_REQUIRED,
+            tls_version=ssl.PROTOCOL_TLS_CLIENT,
+        )
+    except (ssl.SSLError, OSError) as e:
+        raise ConfigError(f"broker.tls: cannot load the certificates or key ({e}); check the files") from None
+    client.tls_insecure_set(not tls.verify_hostname)
+
+
 def read_password(settings: BrokerSettings, base_dir: Path) -> str | None:
     """The broker password from ``password_file`` or ``password_env``; never from the command line."""
     if settings.password_file:
@@ -303,29 +333,7 @@ class Link:
         # re-sends what waited on disk. Inside one process paho re-sends in-flight QoS 1
         # messages after a reconnect (MQTT 3.1.1, 4.4).
         c.max_queued_messages_set(0)
-        if settings.tls is not None:
-            tls = settings.tls
-
-            def path(p: str | None) -> str | None:
-                if p is None:
-                    return None
-                q = Path(p).expanduser()
-                full = q if q.is_absolute() else base_dir / q
-                if not full.exists():
-                    raise ConfigError(f"broker.tls: file {p!r} does not exist (looked at {full})")
-                return str(full)
-
-            try:
-                c.tls_set(
-                    ca_certs=path(tls.ca_file),
-                    certfile=path(tls.cert_file),
-                    keyfile=path(tls.key_file),
-                    cert_reqs=ssl.CERT_REQUIRED,
-                    tls_version=ssl.PROTOCOL_TLS_CLIENT,
-                )
-            except (ssl.SSLError, OSError) as e:
-                raise ConfigError(f"broker.tls: cannot load the certificates or key ({e}); check the files") from None
-            c.tls_insecure_set(not tls.verify_hostname)
+        client_tls(c, settings, base_dir)
         password = read_password(settings, base_dir)
         if settings.username is not None:
             c.username_pw_set(settings.username, password)

@@ -41,6 +41,7 @@ from typing import Any
 from urllib.parse import parse_qs, urlsplit
 
 from watchdog_edge import __version__
+from watchdog_edge.agent.link import client_tls
 from watchdog_edge.core.settings import BrokerSettings, TopicTemplates
 from watchdog_edge.errors import BrokerError, ConfigError
 from watchdog_edge.readers.history import History, number, parse_time
@@ -254,33 +255,6 @@ class Intake:
         return kind
 
 
-def _client_tls(client: Any, settings: BrokerSettings, base_dir: Path) -> None:
-    tls = settings.tls
-    if tls is None:
-        return
-
-    def path(p: str | None) -> str | None:
-        if p is None:
-            return None
-        q = Path(p).expanduser()
-        full = q if q.is_absolute() else base_dir / q
-        if not full.exists():
-            raise ConfigError(f"broker.tls: file {p!r} does not exist (looked at {full})")
-        return str(full)
-
-    try:
-        client.tls_set(
-            ca_certs=path(tls.ca_file),
-            certfile=path(tls.cert_file),
-            keyfile=path(tls.key_file),
-            cert_reqs=ssl.CERT_REQUIRED,
-            tls_version=ssl.PROTOCOL_TLS_CLIENT,
-        )
-    except (ssl.SSLError, OSError) as e:
-        raise ConfigError(f"broker.tls: cannot load the certificates or key ({e}); check the files") from None
-    client.tls_insecure_set(not tls.verify_hostname)
-
-
 class Listener:
     """A clean-session, subscribe-only MQTT client on paho's own network thread."""
 
@@ -303,7 +277,7 @@ class Listener:
         if not v5:
             kwargs["clean_session"] = True
         c = paho.Client(**kwargs)
-        _client_tls(c, settings, base_dir)
+        client_tls(c, settings, base_dir)
         if settings.username is not None:
             c.username_pw_set(settings.username, password)
         c.reconnect_delay_set(min_delay=1, max_delay=30)
