@@ -26,6 +26,7 @@ import json
 import os
 import sqlite3
 from collections.abc import Iterable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from itertools import islice
 from pathlib import Path
@@ -274,6 +275,21 @@ class Store:
         self._last_seq = self.last_seq()
 
     # --- plumbing -------------------------------------------------------------------------
+    @contextmanager
+    def _transaction(self) -> Iterator[sqlite3.Connection]:
+        """One write transaction; a failed write rolls back and becomes a StoreWriteError."""
+        db = self._db
+        try:
+            db.execute("BEGIN")
+            yield db
+            db.execute("COMMIT")
+        except sqlite3.Error as e:
+            self._rollback()
+            raise _write_error(self.path, e) from None
+        except BaseException:
+            self._rollback()
+            raise
+
     def _rollback(self) -> None:
         if self._db.in_transaction:
             try:
@@ -332,9 +348,7 @@ class Store:
     ) -> int:
         """``append`` for journal rows given as ``(t, topic, payload, tick, mid)`` tuples (the agent's hot path)."""
         dl = list(dead_letters)
-        db = self._db
-        db.execute("BEGIN")
-        try:
+        with self._transaction() as db:
             if rows:
                 db.executemany("INSERT INTO journal (t, topic, payload, tick, mid) VALUES (?, ?, ?, ?, ?)", rows)
             # One writer, AUTOINCREMENT: the rows just written took the next seq numbers.
@@ -346,13 +360,6 @@ class Store:
                 )
             if dl:
                 self._insert_dead_letters(dl)
-            db.execute("COMMIT")
-        except sqlite3.Error as e:
-            self._rollback()
-            raise _write_error(self.path, e) from None
-        except BaseException:
-            self._rollback()
-            raise
         self._last_seq = last
         return last
 
@@ -386,20 +393,11 @@ class Store:
         dropped. Returns the covered ``seq``.
         """
         text = snapshot_text(data)
-        db = self._db
-        db.execute("BEGIN")
-        try:
+        with self._transaction() as db:
             seq = self.last_seq() if journal_seq is None else journal_seq
             db.execute("INSERT INTO snapshots (t, journal_seq, data) VALUES (?, ?, ?)", (t, seq, text))
             db.execute("DELETE FROM snapshots WHERE id < (SELECT MAX(id) FROM snapshots)")
             db.execute("DELETE FROM journal WHERE seq <= ?", (seq,))
-            db.execute("COMMIT")
-        except sqlite3.Error as e:
-            self._rollback()
-            raise _write_error(self.path, e) from None
-        except BaseException:
-            self._rollback()
-            raise
         return seq
 
     def latest_snapshot(self) -> Snapshot | None:
@@ -425,40 +423,22 @@ class Store:
         ids = list(alert_ids)
         if not ids:
             return 0
-        db = self._db
-        db.execute("BEGIN")
-        try:
+        with self._transaction() as db:
             removed = 0
             for a in ids:
                 removed += db.execute("DELETE FROM outbox WHERE alert_id = ?", (a,)).rowcount
             self._meta_set("counter.alerts_sent", str(self.counter("alerts_sent") + removed))
-            db.execute("COMMIT")
-        except sqlite3.Error as e:
-            self._rollback()
-            raise _write_error(self.path, e) from None
-        except BaseException:
-            self._rollback()
-            raise
         return removed
 
     # --- the latest retained messages, for readers with no broker -------------------------
     def keep_published(self, rows: Iterable[tuple[str, bytes, float]]) -> None:
         """Keep the latest retained payload per topic, ``(topic, payload, t)`` rows, in one transaction."""
-        db = self._db
-        try:
-            db.execute("BEGIN")
+        with self._transaction() as db:
             db.executemany(
                 "INSERT INTO published (topic, payload, t) VALUES (?, ?, ?) "
                 "ON CONFLICT(topic) DO UPDATE SET payload = excluded.payload, t = excluded.t",
                 rows,
             )
-            db.execute("COMMIT")
-        except sqlite3.Error as e:
-            self._rollback()
-            raise _write_error(self.path, e) from None
-        except BaseException:
-            self._rollback()
-            raise
 
     # --- dead letters ---------------------------------------------------------------------
     def _insert_dead_letters(self, letters: list[DeadLetter]) -> None:
