@@ -132,3 +132,31 @@ def cluster(folder: Path, mappings: str, ports: list[int]) -> list[NatsServer]:
         )
         for i in range(size)
     ]
+
+
+def wait_jetstream(urls: list[str], replicas: int, timeout: float = 45.0) -> None:
+    """Wait until the cluster's JetStream can create a stream of ``replicas`` (a new cluster elects its leaders first)."""
+    import asyncio
+
+    import nats
+    from nats.js.api import StreamConfig
+
+    async def probe() -> None:
+        nc = await nats.connect(servers=urls, connect_timeout=1, allow_reconnect=False)
+        try:
+            js = nc.jetstream(timeout=2)
+            await js.add_stream(StreamConfig(name="READY_PROBE", subjects=["ready.probe"], num_replicas=replicas))
+            await js.delete_stream("READY_PROBE")
+        finally:
+            await nc.close()
+
+    deadline = time.monotonic() + timeout
+    last: Exception | None = None
+    while time.monotonic() < deadline:
+        try:
+            asyncio.run(probe())
+            return
+        except Exception as e:  # not up yet, or no leader elected yet: try again
+            last = e
+            time.sleep(0.3)
+    raise AssertionError(f"the JetStream cluster at {urls} was not ready within {timeout} s: {last!r}")

@@ -34,7 +34,7 @@ from jetstream_setup import (
     wait_for,
     write_setup,
 )
-from natsserver import NatsServer, cluster
+from natsserver import NatsServer, cluster, wait_jetstream
 
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import parse_config
@@ -362,6 +362,9 @@ def test_cluster_r3_loses_nothing_when_a_server_and_a_worker_die_under_load(tmp_
     urls = [f"nats://127.0.0.1:{p}" for p in ports]
     cfg = write_setup(tmp_path, urls, MODELS, partitions=4, replicas=3)
     servers = cluster(tmp_path / "cluster", mappings_for(cfg), ports=ports)
+    # the workers start once the new cluster has elected its leaders; on a loaded machine that
+    # took longer than a worker's start timeout
+    wait_jetstream(urls, replicas=3)
     msgs = traffic(MODELS, seed=5)
     workers = {n: start_worker(tmp_path, cfg, n) for n in ("w1", "w2")}
     stored: list[int] = []
