@@ -23,6 +23,26 @@ import pytest
 INSTALL_HINT = "apt-get install -y mosquitto mosquitto-clients"
 
 
+def stop_process(proc: subprocess.Popen | None) -> None:
+    """SIGTERM a test server by pid (mosquitto saves its persistence file then), SIGKILL after 10 s."""
+    if proc is None or proc.poll() is not None:
+        return
+    os.kill(proc.pid, signal.SIGTERM)
+    try:
+        proc.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=5)
+
+
+def read_log(path: Path) -> str:
+    """A server's log so far ('' before it wrote one)."""
+    try:
+        return path.read_text(errors="replace")
+    except FileNotFoundError:
+        return ""
+
+
 def free_port() -> int:
     """A TCP port nobody listens on right now (the OS picks it)."""
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
@@ -308,22 +328,11 @@ class Broker:
 
     def stop(self) -> None:
         """SIGTERM by pid (mosquitto saves its persistence file), then wait."""
-        if self.proc is None or self.proc.poll() is not None:
-            self.proc = None
-            return
-        os.kill(self.proc.pid, signal.SIGTERM)
-        try:
-            self.proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            os.kill(self.proc.pid, signal.SIGKILL)
-            self.proc.wait(timeout=5)
+        stop_process(self.proc)
         self.proc = None
 
     def log_text(self) -> str:
-        try:
-            return self.log.read_text(errors="replace")
-        except FileNotFoundError:
-            return ""
+        return read_log(self.log)
 
     def __enter__(self) -> Broker:
         return self

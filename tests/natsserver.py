@@ -16,7 +16,7 @@ import time
 from pathlib import Path
 
 import pytest
-from broker import free_port
+from broker import free_port, read_log, stop_process
 
 INSTALL_HINT = "apt-get install -y nats-server"
 
@@ -97,22 +97,11 @@ class NatsServer:
 
     def stop(self) -> None:
         """SIGTERM by pid, then wait."""
-        if self.proc is None or self.proc.poll() is not None:
-            self.proc = None
-            return
-        os.kill(self.proc.pid, signal.SIGTERM)
-        try:
-            self.proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            os.kill(self.proc.pid, signal.SIGKILL)
-            self.proc.wait(timeout=5)
+        stop_process(self.proc)
         self.proc = None
 
     def log_text(self) -> str:
-        try:
-            return self.log.read_text(errors="replace")
-        except FileNotFoundError:
-            return ""
+        return read_log(self.log)
 
 
 def cluster(folder: Path, mappings: str, ports: list[int]) -> list[NatsServer]:
