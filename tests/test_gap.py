@@ -58,8 +58,10 @@ def test_overfit_polynomial_raises_gap_from_deployment_and_sensible_fits_do_not(
     crit = lambda runs: sum(1 for r in runs if any(a.severity == "critical" for a in r))  # noqa: E731
     # The 20-row card has only 20 - 13 = 7 degrees of freedom, so the limit allows for a card
     # that is itself far off (item 8); the overfit fit is still raised in most deployments.
-    assert sum(1 for r in overfit if r) >= 20  # measured: 23 of 30
-    assert crit(overfit) >= 18  # measured: 21 of 30
+    # Measured: 21 of 30 (19 critical); 23 (21) before the lower bound was held at 95 % over a
+    # window span rather than per evaluation.
+    assert sum(1 for r in overfit if r) >= 20
+    assert crit(overfit) >= 18
     assert all(r[0].figures["diagnosis"] == "present from deployment" for r in overfit if r)
     assert sum(1 for r in plenty if r) == 0
 
@@ -79,7 +81,10 @@ def test_a_fair_cubic_on_a_small_card_stays_quiet():
 
 def test_the_card_share_of_the_limit_is_in_the_figures():
     # External check: scipy.stats.f.ppf gives the live mean at which the interval raises,
-    # warning limit x F_0.95(live df, card df); with an infinite card it is chi2 / df.
+    # warning limit x F_p(live df, card df) at the lower bound's level p; with an infinite card
+    # it is chi2 / df. p is the one-look level (scipy: b phi(b) = 0.05) after the Student
+    # correction for the variance's degrees of freedom (scipy's t and normal).
+    from scipy import optimize
     from scipy import stats as sps
 
     rng = np.random.default_rng(3)
@@ -90,9 +95,13 @@ def test_the_card_share_of_the_limit_is_in_the_figures():
     [v] = feed(gap, list(3.0 * rng.chisquare(1, 200)))
     f = v.figures
     assert f["card_df"] == 26.0
-    factor = float(sps.f.ppf(0.95, f["live_df"], 26.0))
+    b = optimize.brentq(lambda b: b * sps.norm.pdf(b) - 0.05, 1.0, 10.0)
+    assert f["raise_confidence"] == pytest.approx(float(sps.norm.cdf(b)), rel=1e-9)
+    level = float(sps.norm.cdf(sps.t.ppf(f["raise_confidence"], f["variance_df"])))
+    assert f["lower_level"] == pytest.approx(level, rel=1e-9)
+    factor = float(sps.f.ppf(level, f["live_df"], 26.0))
     assert f["raise_above_live_loss"] == pytest.approx(1.25 * factor, rel=1e-7)
-    live = float(sps.chi2.ppf(0.95, f["live_df"])) / f["live_df"]
+    live = float(sps.chi2.ppf(level, f["live_df"])) / f["live_df"]
     assert f["card_share_of_margin"] == pytest.approx((factor - live) / (factor - 1.0), rel=1e-6)
     assert f["lower"] == pytest.approx(f["live_loss"] / factor, rel=1e-7)
     assert f["lower"] < f["lower_live_only"] < f["live_loss"] < f["upper"]
@@ -251,3 +260,71 @@ def test_the_field_dropout_then_a_lasting_rise_is_raised_and_held(phi):
     assert all(lv != "normal" for lv in levels[1010:])
     f = gap.figures()
     assert f["level"] == "critical" and 0.0 < f["lower"] and f["lower"] > gap.critical_limit
+
+
+def test_a_fair_model_on_persistent_errors_stays_quiet_over_a_million_pairs():
+    # Issue 10: the lower bound is looked at every 10 pairs on an overlapping window, so a 95 %
+    # bound per look is crossed by chance far more often than 5 % of the time, and most often
+    # where the effective sample is small (AR(1) 0.9: about 50 of the window's 500 pairs).
+    # Measured on these ten streams of 100,000 pairs before the lower bound was held at 95 %
+    # over a window span, with a Student correction for the variance's own noise: 11 false
+    # raises; now none.
+    from scipy.signal import lfilter
+
+    card = ModelCard(
+        model_id="m", training={"loss": 1.0, "count": 5000}, fitted_parameters=5, holdout={"loss": 1.0, "count": 2000}
+    )
+    context = CheckContext("m", card, "squared", 1.0, "holdout", window_size=500, min_pairs=100)
+    raised = 0
+    for seed in range(10):
+        gap = GapCheck(GapSettings(), context)
+        e = lfilter([1.0], [1.0, -0.9], np.random.default_rng(seed).normal(size=100_000)) * np.sqrt(1 - 0.81)
+        level = "normal"
+        for i, loss in enumerate((e * e).tolist()):
+            if gap.on_pair(PAIR, loss):
+                v = gap.evaluate(float(i))
+                if v is not None:
+                    raised += level == "normal" and v.level != "normal"
+                    level = v.level
+    assert raised == 0
+
+
+PAIR = Pair(Prediction("m", "0", 0.0, 0.0), Truth("m", "0", 0.0, 0.0), 0.0)
+
+
+def test_gross_errors_allow_for_a_small_card():
+    # A card from 12 rows and 3 parameters (9 degrees of freedom) can be low by a factor of 4
+    # by chance; a run of gross errors over a live mean within that factor is the card's noise,
+    # not proof of a gap (the bench's 30-row, 20-feature card raised this way). A live mean
+    # beyond it is raised by the gross errors at once.
+    from scipy import stats as sps
+
+    card = ModelCard(model_id="m", training={"loss": 0.75, "count": 12}, fitted_parameters=3, least_squares=True)
+    context = CheckContext("m", card, "squared", 1.0, "fpe", window_size=200, min_pairs=100)
+    gap = GapCheck(GapSettings(), context)
+    # External check: the card's one-sided factor is df / chi2_(1 - level)(df), scipy's chi2.
+    assert gap.card_factor == pytest.approx(9.0 / sps.chi2.ppf(1 - gap.raise_confidence, 9), rel=1e-9)
+    rng = np.random.default_rng(2)
+    for live, expect in ((3.0, "normal"), (5.0, "warning")):
+        gap = GapCheck(GapSettings(), context)
+        losses = list(live * rng.chisquare(1, 150)) + [30.0] * 6  # six gross errors (over 1.25 x 20)
+        levels = [v.level for v in feed(gap, losses)]
+        f = gap.figures()
+        assert levels[-1] == expect, (live, f["live_loss"], gap.card_factor)
+        assert (f["live_loss"] > 1.25 * gap.card_factor) == (expect != "normal")
+        if expect != "normal":
+            assert f["raised_by"] == "gross errors" and levels[-2] == "normal"
+
+
+def test_the_lower_bound_per_evaluation_is_still_available():
+    # confidence_span = "evaluation" looks at each evaluation alone (the rule before issue 10):
+    # it raises sooner on a real rise, at the price of false raises on persistent errors.
+    window = GapCheck(GapSettings(), ctx(size=500, min_pairs=100))
+    each = GapCheck(GapSettings(confidence_span="evaluation"), ctx(size=500, min_pairs=100))
+    assert each.raise_confidence == 0.95 and window.raise_confidence > 0.99
+    rng = np.random.default_rng(11)
+    losses = list(rng.chisquare(1, 600)) + list(2.0 * rng.chisquare(1, 600))
+    first = {}
+    for name, gap in (("window", window), ("each", each)):
+        first[name] = next(i for i, v in enumerate(feed(gap, losses)) if v.level != "normal")
+    assert first["each"] < first["window"]

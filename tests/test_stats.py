@@ -22,6 +22,7 @@ from watchdog_edge.core.stats import (
     prewhitened_long_run_variance,
     t_ppf,
     t_sf,
+    window_span_level,
 )
 
 DFS = [1.0, 2.0, 3.5, 10.0, 100.0, 1e5, 1e6, 0.7, 4.3, 27.9, 499.0, 3333.3]
@@ -276,10 +277,40 @@ def test_loss_interval_with_a_card_is_an_f_bound():
         over_without += iv.lower_live > card
     assert 0.03 <= over_with / reps <= 0.07
     assert over_without / reps > 0.2
+    # The levels carry the Student correction for the standard error's own degrees of
+    # freedom: p becomes Phi(t_p(variance_df)) (scipy's t and normal).
     iv = loss_interval(np.random.default_rng(2).chisquare(1, 400), 0.95, card_df=20)
-    assert iv.lower == pytest.approx(iv.mean / float(sps.f.ppf(0.95, iv.live_df, 20)), rel=1e-8)
-    assert iv.lower_live == pytest.approx(iv.mean * iv.live_df / float(sps.chi2.ppf(0.95, iv.live_df)), rel=1e-8)
-    assert iv.upper == pytest.approx(iv.mean * iv.live_df / float(sps.chi2.ppf(0.05, iv.live_df)), rel=1e-8)
+    p = float(sps.norm.cdf(sps.t.ppf(0.95, iv.variance_df)))
+    assert 20 < iv.variance_df < 400 and iv.lower_level == pytest.approx(p, rel=1e-10)
+    assert iv.lower == pytest.approx(iv.mean / float(sps.f.ppf(p, iv.live_df, 20)), rel=1e-8)
+    assert iv.lower_live == pytest.approx(iv.mean * iv.live_df / float(sps.chi2.ppf(p, iv.live_df)), rel=1e-8)
+    assert iv.upper == pytest.approx(iv.mean * iv.live_df / float(sps.chi2.ppf(1 - p, iv.live_df)), rel=1e-8)
+    # A stricter level for the lower bounds leaves the upper one as it was.
+    strict = loss_interval(np.random.default_rng(2).chisquare(1, 400), 0.95, card_df=20, raise_confidence=0.99)
+    assert strict.upper == iv.upper and strict.lower < iv.lower and strict.lower_live < iv.lower_live
+
+
+def test_window_span_level_holds_the_confidence_over_a_window_of_looks():
+    # External check: the level solves b phi(b) = 1 - confidence (scipy's brentq and normal).
+    # Simulation: the standardized mean of a moving window of 500 independent normals, looked
+    # at every 10 pairs over one window span (51 looks), exceeds b in at most 5 % of draws
+    # (measured 4.75 %; one look alone: 0.74 %; continuous looking would give about
+    # 0.74 + 5 %, Pickands' approximation). 4,000 draws: binomial sd 0.35 points.
+    from scipy import optimize
+
+    for conf in (0.9, 0.95, 0.99):
+        b = optimize.brentq(lambda b, a=1 - conf: b * sps.norm.pdf(b) - a, 1.0, 10.0)
+        assert window_span_level(conf) == pytest.approx(float(sps.norm.cdf(b)), abs=1e-12)
+    assert window_span_level(0.7) == 0.7  # b phi(b) never reaches 0.3: nothing to correct
+    b = normal_ppf(window_span_level(0.95))
+    n = 500
+    x = np.random.default_rng(5).standard_normal((4000, 2 * n))
+    c = np.concatenate([np.zeros((4000, 1)), np.cumsum(x, axis=1)], axis=1)
+    looks = np.arange(n, 2 * n + 1, 10)
+    m = (c[:, looks] - c[:, looks - n]) / math.sqrt(n)
+    rate = float((m.max(axis=1) > b).mean())
+    assert 0.035 <= rate <= 0.055, rate
+    assert float((m[:, 0] > b).mean()) < 0.015
 
 
 def test_loss_interval_stays_positive_through_a_burst():

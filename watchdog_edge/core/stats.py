@@ -26,6 +26,7 @@ __all__ = [
     "prewhitened_long_run_variance",
     "t_ppf",
     "t_sf",
+    "window_span_level",
 ]
 
 
@@ -631,12 +632,20 @@ def _lrv_of_demeaned(z: np.ndarray, bandwidth: float) -> float:
 
 def _prewhitened_of_demeaned(z: np.ndarray) -> tuple[float, float, float]:
     """(long-run variance, bandwidth on the residuals, AR coefficient used) of a demeaned series."""
+    return _prewhitened_parts(z)[:3]
+
+
+def _prewhitened_parts(z: np.ndarray) -> tuple[float, float, float, float]:
+    """`_prewhitened_of_demeaned` and, fourth, the variance of the logarithm of the estimate
+    (delta method): the noise of the residuals' variance, (kurtosis - 1) / n, plus that of
+    the AR coefficient, (1 - rho^2) / n, through the recolouring's d ln / d rho = 2 / (1 - rho).
+    The Bartlett lags on the residuals are left out (their bandwidth is short once prewhitened)."""
     n = z.size
     if n < 3:
-        return max(0.0, float(np.dot(z, z)) / max(n, 1)), 0.0, 0.0
+        return max(0.0, float(np.dot(z, z)) / max(n, 1)), 0.0, 0.0, 0.0
     denom = float(np.dot(z[:-1], z[:-1]))
     if denom <= 0.0:
-        return 0.0, 0.0, 0.0
+        return 0.0, 0.0, 0.0, 0.0
     rho = float(np.dot(z[1:], z[:-1])) / denom
     rho = min(max(rho, -_RHO_CLIP), _RHO_CLIP)
     u = z[1:] - rho * z[:-1]
@@ -651,7 +660,10 @@ def _prewhitened_of_demeaned(z: np.ndarray) -> tuple[float, float, float]:
     # (it shrinks the variance less, and losses are seldom negatively autocorrelated).
     if rho > 0.0:
         rho = min(rho + (1.0 + 3.0 * rho) / n + math.sqrt(max(0.0, 1.0 - rho * rho) / n), _RHO_CLIP)
-    return lrv_u / (1.0 - rho) ** 2, bw, rho
+    m2 = float(np.dot(u, u)) / u.size
+    kurt = float(np.dot(u * u, u * u)) / u.size / (m2 * m2) if m2 > 0.0 else 1.0
+    var_log = max(kurt - 1.0, 0.0) / u.size + 4.0 * (1.0 - rho * rho) / (n * (1.0 - rho) ** 2)
+    return lrv_u / (1.0 - rho) ** 2, bw, rho, var_log
 
 
 def prewhitened_long_run_variance(x: np.ndarray) -> float:
@@ -711,6 +723,8 @@ class LossInterval:
     bandwidth: float
     rho: float
     n: int
+    variance_df: float = math.inf
+    lower_level: float = math.nan  # normal-scale level of the lower bounds after the Student correction
 
 
 def _df_grid(df: float) -> float:
@@ -724,7 +738,51 @@ def _df_grid(df: float) -> float:
     return max(_DF_MIN, math.floor(df / step) * step)
 
 
-def loss_interval(x: np.ndarray, confidence: float, card_df: float = math.inf) -> LossInterval:
+def window_span_level(confidence: float) -> float:
+    """One-look confidence at which a moving-window bound, looked at (nearly) continuously,
+    is crossed by chance within one window span with probability 1 - ``confidence``.
+
+    A standardized mean over a moving window of n pairs is a stationary process whose
+    correlation at a lag of s pairs is 1 - s/n; for such a process Pickands' asymptotics give
+    P(max over T pairs > b) ~ (T / n) b phi(b) (Pickands 1969; Leadbetter, Lindgren and
+    Rootzen 1983; from memory), against phi(b) / b for one look. So b solves
+    b phi(b) = 1 - confidence, and the one-look level is Phi(b). Looks every k pairs cross
+    less often than continuous looking, so the level is on the safe side.
+
+    >>> round(window_span_level(0.95), 4)
+    0.9926
+    """
+    alpha = 1.0 - _check_probability(confidence, "confidence")
+
+    def crossings(b: float) -> float:
+        return b * math.exp(-0.5 * b * b) / math.sqrt(2.0 * math.pi)
+
+    if alpha >= crossings(1.0):  # b phi(b) peaks at b = 1: nothing to correct
+        return confidence
+    lo, hi = 1.0, 40.0
+    for _ in range(200):  # b phi(b) falls on [1, inf): bisect
+        mid = 0.5 * (lo + hi)
+        if crossings(mid) > alpha:
+            lo = mid
+        else:
+            hi = mid
+        if hi - lo < 1e-12:
+            break
+    return max(confidence, 1.0 - 0.5 * math.erfc(hi / math.sqrt(2.0)))
+
+
+def _student_level(p: float, df: float) -> float:
+    """The normal-scale level at which a bound with a standard error of ``df`` degrees of
+    freedom is as wide as Student's t makes it: Phi(t_p(df))."""
+    if df >= _DF_MAX:
+        return p
+    # Kept below 1 - 1e-9 (z = 6): with so few degrees of freedom the bound says nothing anyway.
+    return min(0.5 * math.erfc(-t_ppf(p, df) / math.sqrt(2.0)), 1.0 - 1e-9)
+
+
+def loss_interval(
+    x: np.ndarray, confidence: float, card_df: float = math.inf, raise_confidence: float | None = None
+) -> LossInterval:
     """Bounds on the mean of non-negative losses, on the scale of a gamma distribution.
 
     The mean m of n losses is taken as m ~ mu chi2(v) / v, a gamma law matched to the mean
@@ -736,6 +794,13 @@ def loss_interval(x: np.ndarray, confidence: float, card_df: float = math.inf) -
     m / expected ~ (mu / expected_true) F(v, card_df) under Gaussian errors, so ``lower`` =
     m / F_conf(v, card_df): compared with expected x (1 + tolerance), it raises only when the
     gap is beyond both the live window's noise and the card's. card_df = inf gives lower_live.
+
+    The standard error is itself an estimate, noisy where the effective sample is small
+    (persistent or heavy-tailed losses): its logarithm has variance w from the delta method
+    (`_prewhitened_parts`), i.e. about ``variance_df`` = 2 / w degrees of freedom, and every
+    level p is taken as Phi(t_p(variance_df)), the normal-scale level a Student t bound with
+    those degrees of freedom has (our rule, checked by the coverage tests in tests/test_stats.py).
+    ``raise_confidence`` (default ``confidence``) sets the level of the two lower bounds only.
 
     >>> iv = loss_interval(np.random.default_rng(1).chisquare(1, 500), 0.95, card_df=30)
     >>> iv.lower < iv.lower_live < iv.mean < iv.upper
@@ -753,15 +818,24 @@ def loss_interval(x: np.ndarray, confidence: float, card_df: float = math.inf) -
     n = arr.size
     mean = float(arr.mean())
     z = arr - mean
-    lrv, bw, rho = _prewhitened_of_demeaned(z)
+    up_level = confidence
+    if raise_confidence is not None:
+        raise_confidence = float(raise_confidence)
+        if not (0.5 < raise_confidence < 1.0):
+            raise ValueError(f"raise_confidence={raise_confidence!r} must be in (0.5, 1) (one-sided level)")
+        confidence = raise_confidence
+    lrv, bw, rho, var_log = _prewhitened_parts(z)
     se = math.sqrt(lrv / n)
     if mean <= 0.0:
-        return LossInterval(0.0, 0.0, 0.0, 0.0, se, _DF_MAX, card_df, bw, rho, n)
+        return LossInterval(0.0, 0.0, 0.0, 0.0, se, _DF_MAX, card_df, bw, rho, n, _DF_MAX, confidence)
+    var_df = _df_grid(2.0 / var_log) if var_log > 0.0 else _DF_MAX
+    lo_p = _student_level(confidence, var_df)
+    up_p = _student_level(up_level, var_df)
     live_df = _df_grid(2.0 * mean * mean / (se * se)) if se > 0.0 else _DF_MAX
-    lower_live = mean / _f_ppf_cached(confidence, live_df, math.inf)
-    upper = mean / _f_ppf_cached(1.0 - confidence, live_df, math.inf)
-    lower = lower_live if math.isinf(card_df) else mean / _f_ppf_cached(confidence, live_df, card_df)
-    return LossInterval(mean, lower, lower_live, upper, se, live_df, card_df, bw, rho, n)
+    lower_live = mean / _f_ppf_cached(lo_p, live_df, math.inf)
+    upper = mean / _f_ppf_cached(1.0 - up_p, live_df, math.inf)
+    lower = lower_live if math.isinf(card_df) else mean / _f_ppf_cached(lo_p, live_df, card_df)
+    return LossInterval(mean, lower, lower_live, upper, se, live_df, card_df, bw, rho, n, var_df, lo_p)
 
 
 def diebold_mariano(loss_a: np.ndarray, loss_b: np.ndarray, horizon: int = 1) -> DMResult:

@@ -2,10 +2,15 @@
 
 Two tests, either of which raises:
 - the interval: one-sided bounds on the live mean loss (`stats.loss_interval`: a gamma law
-  matched to the mean and its prewhitened Newey-West standard error), the lower one widened
-  for the card's own degrees of freedom (an F law); raised when it exceeds the limits;
+  matched to the mean and its prewhitened Newey-West standard error, with a Student
+  correction for that standard error's own noise), the lower one widened for the card's own
+  degrees of freedom (an F law); raised when it exceeds the limits. The lower bound is looked
+  at every ``evaluate_every_pairs`` pairs on an overlapping window, so a 95 % bound per look
+  would be crossed by chance far more often than 5 % of the time: ``confidence`` is held over
+  any span of one window instead (`stats.window_span_level`: 0.95 gives 0.9926 per look);
 - gross errors: at least ``gross_min_pairs`` of the latest ``gross_run_pairs`` losses above
-  ``gross_multiple`` x the warning limit, while the live mean is above the warning limit.
+  ``gross_multiple`` x the warning limit, while the live mean is above the warning limit
+  widened for the card's degrees of freedom alone (the live variance says nothing then).
   A burst of gross errors inflates the long-run variance so much that no interval on the mean
   can exclude the limit, exactly when the model fails most; a run of losses that far above
   the limit needs no variance estimate. It is looked at on every pair (one comparison), so a
@@ -30,7 +35,7 @@ from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, V
 from watchdog_edge.core.levels import RANK, LevelRule, level_above
 from watchdog_edge.core.losses import LossWindow
 from watchdog_edge.core.records import Pair
-from watchdog_edge.core.stats import LossInterval, f_ppf, loss_interval
+from watchdog_edge.core.stats import LossInterval, chi2_ppf, f_ppf, loss_interval, window_span_level
 
 FROM_DEPLOYMENT = "present from deployment"
 AFTER_HEALTHY = "appeared after a healthy period"
@@ -44,7 +49,16 @@ class GapSettings(CheckSettings):
     """
 
     confidence: float = Field(
-        0.95, gt=0.5, lt=1, description="One-sided confidence of the bounds on the live mean loss."
+        0.95,
+        gt=0.5,
+        lt=1,
+        description="One-sided confidence of the upper bound at each evaluation, and of the lower bound over any span of one window.",
+    )
+    confidence_span: Literal["window", "evaluation"] = Field(
+        "window",
+        description="window: the lower bound holds its confidence over any span of one window of evaluations "
+        "(a correction for looking every evaluate_every_pairs); evaluation: at each evaluation alone "
+        "(raises sooner, and falsely more often).",
     )
     warning_tolerance: float = Field(
         0.25, gt=0, description="Warning when the lower bound exceeds expected x (1 + this)."
@@ -120,6 +134,14 @@ class GapCheck(Check[GapSettings]):
             expected_loss_df(context.card, context.expected_source) if settings.card_uncertainty else math.inf
         )
         self.gross_threshold = self.warning_limit * settings.gross_multiple
+        self.raise_confidence = (
+            window_span_level(settings.confidence) if settings.confidence_span == "window" else settings.confidence
+        )
+        # A card from N - d degrees of freedom may be low by chance: the gross-error test asks
+        # the live mean to exceed the limit by the card's own one-sided factor, chi2 / df.
+        self.card_factor = (
+            1.0 if math.isinf(self.card_df) else self.card_df / chi2_ppf(1.0 - self.raise_confidence, self.card_df)
+        )
         self._rule = LevelRule(settings.clear_after_evaluations)
         self.reset()
 
@@ -128,8 +150,8 @@ class GapCheck(Check[GapSettings]):
         self._rule.reset()
         self._since_eval = 0
         self._evaluated = False
-        self._clean_pairs = 0  # pairs seen since evaluations began, with no open gap
-        self._healthy_seen = False  # one full window without a gap has passed
+        self._clean_pairs = 0  # pairs since evaluations began, or the live mean was last over the limit
+        self._healthy_seen = False  # one full window of them has passed
         self._diagnosis: str | None = None
         self._figures: dict[str, Any] = {}
         self._stale = False  # the window moved since the figures were computed
@@ -170,11 +192,16 @@ class GapCheck(Check[GapSettings]):
             return None
         s = self.settings
         mean = self.window.mean()
-        gross = self._gross_run() >= s.gross_min_pairs and mean > self.warning_limit
+        gross = self._gross_run() >= s.gross_min_pairs and mean > self.warning_limit * self.card_factor
         if self._since_eval < s.evaluate_every_pairs and not (gross and self._rule.level == "normal"):
             return None
         self._since_eval = 0
         self._evaluated = True
+        if mean > self.warning_limit:
+            # A healthy period is a full window of pairs over which the live mean stayed within
+            # the warning limit, not merely one in which the gap was not yet proven: a model
+            # bad from the start but slow to prove so is still diagnosed as bad from the start.
+            self._clean_pairs = 0
         if self._rule.level == "normal" and mean <= self.warning_limit:
             # The lower bound never exceeds the mean, so nothing can be raised: skip the
             # interval, the costliest step, while the model is healthy.
@@ -186,7 +213,7 @@ class GapCheck(Check[GapSettings]):
         # limits eased by the hysteresis, says how far it may come down.
         raised = level_above(iv.lower, self.warning_limit, self.critical_limit)
         if gross:
-            by_gross = level_above(mean, self.warning_limit, self.critical_limit)
+            by_gross = level_above(mean / self.card_factor, self.warning_limit, self.critical_limit)
             if RANK[by_gross] > RANK[raised]:
                 raised = by_gross
         if raised != "normal":
@@ -208,14 +235,16 @@ class GapCheck(Check[GapSettings]):
 
     def _interval(self) -> LossInterval:
         self._stale = False
-        return loss_interval(self.window.array(), self.settings.confidence, self.card_df)
+        return loss_interval(
+            self.window.array(), self.settings.confidence, self.card_df, raise_confidence=self.raise_confidence
+        )
 
     def _store_figures(self, iv: LossInterval) -> None:
         s = self.settings
         # The live mean above which the interval raises, and how much of its margin over the
         # warning limit is the card's uncertainty rather than the live window's.
-        live_factor = f_ppf(s.confidence, iv.live_df, math.inf)
-        total_factor = live_factor if math.isinf(self.card_df) else f_ppf(s.confidence, iv.live_df, self.card_df)
+        live_factor = f_ppf(iv.lower_level, iv.live_df, math.inf)
+        total_factor = live_factor if math.isinf(self.card_df) else f_ppf(iv.lower_level, iv.live_df, self.card_df)
         card_share = (total_factor - live_factor) / (total_factor - 1.0) if total_factor > 1.0 else 0.0
         self._figures = {
             "live_loss": iv.mean,
@@ -223,6 +252,8 @@ class GapCheck(Check[GapSettings]):
             "upper": iv.upper,
             "lower_live_only": iv.lower_live,
             "confidence": s.confidence,
+            "raise_confidence": self.raise_confidence,
+            "lower_level": iv.lower_level,
             "expected_loss": self.context.expected_loss,
             "expected_source": self.context.expected_source,
             "warning_limit": self.warning_limit,
@@ -230,6 +261,7 @@ class GapCheck(Check[GapSettings]):
             "raise_above_live_loss": self.warning_limit * total_factor,
             "card_df": None if math.isinf(self.card_df) else self.card_df,
             "live_df": iv.live_df,
+            "variance_df": iv.variance_df,
             "card_share_of_margin": card_share,
             "gross_errors": self._gross_run(),
             "pairs": iv.n,
@@ -254,15 +286,16 @@ class GapCheck(Check[GapSettings]):
         )
         limit = self.critical_limit if self._level == "critical" else self.warning_limit
         if self._raised_by == "gross errors":
+            card = f"{fmt(self.card_factor)} x (the card's own uncertainty) " if self.card_factor > 1.005 else ""
             return (
                 f"{self._gross_run()} of the latest {self.settings.gross_run_pairs} {kind} errors are over "
-                f"{fmt(self.gross_threshold)}, and the live mean {fmt(iv.mean)} over {iv.n} pairs is above the "
-                f"{self._level} limit {fmt(limit)} set from the expected {fmt(self.context.expected_loss)} "
+                f"{fmt(self.gross_threshold)}, and the live mean {fmt(iv.mean)} over {iv.n} pairs is above "
+                f"{card}the {self._level} limit {fmt(limit)} set from the expected {fmt(self.context.expected_loss)} "
                 f"({src}); {self._diagnosis}: {why}."
             )
         return (
-            f"Live mean {kind} error {fmt(iv.mean)} over {iv.n} pairs (lower {pct}% bound "
-            f"{fmt(iv.lower)}) is above the {self._level} limit {fmt(limit)} set from the expected "
+            f"Live mean {kind} error {fmt(iv.mean)} over {iv.n} pairs (lower bound {fmt(iv.lower)}, "
+            f"{pct}% over a window span) is above the {self._level} limit {fmt(limit)} set from the expected "
             f"{fmt(self.context.expected_loss)} ({src}); {self._diagnosis}: {why}."
         )
 
