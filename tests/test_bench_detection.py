@@ -28,3 +28,25 @@ def test_the_detection_table_has_a_row_per_check_and_reference():
     # every data row has a cell per column
     widths = {line.count("|") for line in table.splitlines() if line.startswith("|")}
     assert len(widths) == 1
+
+
+def test_the_delay_bound_uses_the_kullback_leibler_information_of_squared_gaussian_errors():
+    # External check: KL of a squared N(0, 2) error against a squared N(0, 1.25) one, by
+    # numerical integration of scipy's chi-square densities, against (r - 1 - ln r) / 2.
+    import math
+
+    import pytest
+    from scipy import integrate
+    from scipy import stats as sps
+
+    def kl(a: float, b: float) -> float:
+        def term(x: float) -> float:
+            log_a = sps.chi2.logpdf(x / a, 1) - math.log(a)
+            log_b = sps.chi2.logpdf(x / b, 1) - math.log(b)
+            return math.exp(log_a) * (log_a - log_b)
+
+        return integrate.quad(term, 0, math.inf, limit=200)[0]
+
+    assert detection_quality.kl_scale(2.0 / 1.25) == pytest.approx(kl(2.0, 1.25), rel=1e-6)
+    assert detection_quality.kl_scale(2.0) == pytest.approx(kl(2.0, 1.0), rel=1e-6)
+    assert round(detection_quality.delay_bound(1e6)) == 213  # ln(1e6) / 0.0650
