@@ -71,8 +71,9 @@ def test_a_fair_cubic_on_a_small_card_stays_quiet():
     # rows it is easily 30 % off, and before the limit allowed for that a fair cubic showed a
     # "gap" in a good share of deployments (measured before: 25, 16 and 17 of 60 at N = 20,
     # 25 and 30). Now the lower bound is widened by the F law of the two mean squares.
-    # Measured: 2, 0 and 0 of 30 (N = 20 is close to 5 %: its 95 % one-sided bound is looked
-    # at 70 times a deployment, and a cubic on 20 points of this curve is only nearly fair).
+    # Measured: 0, 0 and 0 of 30; 2, 0 and 0 while the 95 % one-sided bound held per look
+    # rather than over a window span (it is looked at 70 times a deployment), and a cubic on
+    # 20 points of this curve is only nearly fair.
     for n_train, allowed in [(20, 3), (25, 1), (30, 1)]:
         runs = [polynomial_deployment(s, 3, n_train) for s in range(30)]
         assert sum(1 for r in runs if r) <= allowed, n_train
