@@ -335,8 +335,12 @@ def bound_lines(delays: dict[str, dict[str, str]]) -> list[str]:
     ]
     med = {n: delays["doubling"].get(n, "-").split(" ")[0] for n in ("gap", "raw ADWIN")}
     if med["gap"].isdigit():
+        own = ROLLING / 0.05  # gap's interval and CUSUM each allow one false alarm in this many at the limit
         out.append(
-            f"  gap's median {med['gap']} is the 1.25 x bound at an ARL of {math.exp(int(med['gap']) * kl_gap):.2g}."
+            f"  gap is designed for an ARL at the limit of about {own:.0e} (window / (1 - confidence), for its "
+            f"interval and its CUSUM each): there the bound is {delay_bound(own):.0f}; gap's median {med['gap']} "
+            f"is {int(med['gap']) / delay_bound(own):.2f} times it (it sits on the bound at an ARL of "
+            f"{math.exp(int(med['gap']) * kl_gap):.2g})."
         )
     if med["raw ADWIN"].isdigit():
         a = int(med["raw ADWIN"])
