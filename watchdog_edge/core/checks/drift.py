@@ -290,6 +290,7 @@ class DriftCheck(Check[DriftSettings]):
         last = min(s.calibration_pairs, s.history_pairs)
         first = min(self.min_pairs, last)
         self._calibrate_at = {first, max(first, last // 4), last} if self._auto else set()
+        self._quiet = False
         self._detector = _detector(s, max(1, self._chosen))
         self._acc = 0.0  # sum of the ratios of the block being filled
         self._acc_n = 0
@@ -337,14 +338,13 @@ class DriftCheck(Check[DriftSettings]):
         """Choose the block from the pairs so far and feed them to a new detector.
 
         Done after ``min_pairs`` pairs, again after a quarter of ``calibration_pairs`` and after
-        all of them (at most ``history_pairs``), each time from all the pairs so far, as long as
-        nothing has been raised: a raised change makes the history a poor picture of the
-        stationary losses, and re-feeding it would raise the same change twice. What the new
-        detector finds in the history is handled as usual (an estimate from 500 pairs of
-        strongly autocorrelated losses still came out too small in a good share of streams;
-        the one from 2,000 is about twice as precise)."""
-        if self._change or self._rule.level != "normal":
-            return False
+        all of them (at most ``history_pairs``), each time from all the pairs so far: an
+        estimate from 500 pairs of strongly autocorrelated losses still came out too small in
+        a good share of streams, and the one from 2,000 is about twice as precise. As long as
+        nothing has been raised, what the new detector finds in the history is handled as
+        usual; after a raise it is only brought up to date, silently, so that the same change
+        is not raised twice. Re-choosing only until a first raise kept blocks of 1 chosen from
+        100 pairs on autocorrelated losses, where that first raise was itself a false one."""
         ratios = np.fromiter((h[4] for h in self._history), dtype=float, count=len(self._history))
         block = choose_block(ratios)
         if block == self._chosen:
@@ -356,10 +356,13 @@ class DriftCheck(Check[DriftSettings]):
         self._block = block
         self._win_sum, self._win_n = 0.0, 0
         self._segment_start = self._history[0][0]
-        self._detections = self._ignored = 0  # the new detector's, over the same pairs
+        self._quiet = bool(self._change) or self._rule.level != "normal"
+        if not self._quiet:
+            self._detections = self._ignored = 0  # the new detector's, over the same pairs
         b = block
         for k in range(0, len(self._history) - len(self._history) % b, b):
             self._feed(float(ratios[k : k + b].mean()), self._history[k + b - 1][0], t)
+        self._quiet = False
         rest = len(self._history) % b
         self._acc = float(ratios[len(ratios) - rest :].sum()) if rest else 0.0
         self._acc_n = rest
@@ -374,6 +377,10 @@ class DriftCheck(Check[DriftSettings]):
             self._on_change(t, seq)
 
     def _on_change(self, t: float, seq: int) -> None:
+        if self._quiet:
+            self._segment_start = seq + 1
+            self._win_sum, self._win_n = 0.0, 0
+            return
         self._detections += 1
         seg = [h for h in self._history if self._segment_start <= h[0] <= seq]
         ratios = np.fromiter((h[4] for h in seg), dtype=float, count=len(seg))
