@@ -135,6 +135,7 @@ class DriftSettings(CheckSettings):
 
 _MAX_BLOCK = 64
 _TAU_FACTOR = 2.0  # blocks of this many integrated autocorrelation times (measured in bench)
+_BLOCK_SHARE = 0.75  # share of the long-run variance a block's mean must hold (see choose_block)
 _SOKAL_C = 5.0  # Sokal's window: the first lag M with M >= 5 x the time summed up to M
 
 
@@ -166,7 +167,11 @@ def windowed_time(x: np.ndarray) -> tuple[float, int]:
     >>> round(windowed_time(x)[0])
     3
     """
-    taus = 2.0 * np.cumsum(autocorrelations(x)) - 1.0
+    return _windowed(autocorrelations(x))
+
+
+def _windowed(rho: np.ndarray) -> tuple[float, int]:
+    taus = 2.0 * np.cumsum(rho) - 1.0
     lags = np.arange(taus.size)
     ok = lags >= _SOKAL_C * taus
     m = int(np.argmax(ok)) if bool(ok.any()) else taus.size - 1
@@ -194,16 +199,21 @@ def choose_block(ratios: np.ndarray) -> int:
     var = float(np.dot(z, z)) / n
     if n < 3 or var <= 0.0:
         return 1
-    tau = 1.0
+    block = 1
     rho1 = float(np.dot(z[1:], z[:-1])) / n / var
     if rho1 > 2.0 / math.sqrt(n):
-        tau = prewhitened_long_run_variance(ratios) / var
-    sokal, m = windowed_time(ratios)
+        block = math.ceil(_TAU_FACTOR * prewhitened_long_run_variance(ratios) / var)
+    rho = autocorrelations(ratios)
+    sokal, m = _windowed(rho)
     if sokal - 1.0 > 4.0 * math.sqrt(max(m, 1) / n):
-        tau = max(tau, sokal)
-    if tau <= 1.0:
-        return 1
-    return int(min(_MAX_BLOCK, max(2, math.ceil(_TAU_FACTOR * tau))))
+        # the shortest block whose mean holds _BLOCK_SHARE of the windowed long-run variance
+        r = rho[1 : m + 1]
+        k = np.arange(1, m + 1)
+        for b in range(2, _MAX_BLOCK + 1):
+            if 1.0 + 2.0 * float(np.dot(np.clip(1.0 - k / b, 0.0, None), r)) >= _BLOCK_SHARE * sokal:
+                break
+        block = max(block, b)
+    return int(min(_MAX_BLOCK, max(1, block)))
 
 
 def _detector(settings: DriftSettings, block: int = 1) -> Any:
@@ -290,7 +300,6 @@ class DriftCheck(Check[DriftSettings]):
         last = min(s.calibration_pairs, s.history_pairs)
         first = min(self.min_pairs, last)
         self._calibrate_at = {first, max(first, last // 4), last} if self._auto else set()
-        self._quiet = False
         self._detector = _detector(s, max(1, self._chosen))
         self._acc = 0.0  # sum of the ratios of the block being filled
         self._acc_n = 0
@@ -335,17 +344,22 @@ class DriftCheck(Check[DriftSettings]):
         return self._pending or self._rule.level != "normal"  # else evaluate has nothing to say
 
     def _calibrate(self, t: float) -> bool:
-        """Choose the block from the pairs so far and feed them to a new detector.
+        """Choose the block from the pairs since the detector's latest start and feed them to
+        a new detector.
 
         Done after ``min_pairs`` pairs, again after a quarter of ``calibration_pairs`` and after
-        all of them (at most ``history_pairs``), each time from all the pairs so far: an
-        estimate from 500 pairs of strongly autocorrelated losses still came out too small in
-        a good share of streams, and the one from 2,000 is about twice as precise. As long as
-        nothing has been raised, what the new detector finds in the history is handled as
-        usual; after a raise it is only brought up to date, silently, so that the same change
-        is not raised twice. Re-choosing only until a first raise kept blocks of 1 chosen from
-        100 pairs on autocorrelated losses, where that first raise was itself a false one."""
-        ratios = np.fromiter((h[4] for h in self._history), dtype=float, count=len(self._history))
+        all of them (at most ``history_pairs``): an estimate from 500 pairs of strongly
+        autocorrelated losses still came out too small in a good share of streams, and the one
+        from 2,000 is about twice as precise. Only the pairs since the detector's latest
+        detection are used (at least ``min_pairs`` of them, else the block stays): they are
+        the ones it holds as one level, a level shift inside them would pass for a long
+        memory, and the new detector finds in them only changes the old one has not reported,
+        handled as usual. Re-choosing only until a first raise kept blocks of 1 chosen from
+        100 pairs on autocorrelated losses where that first raise was itself a false one."""
+        seg = [h for h in self._history if h[0] >= self._segment_start]
+        if len(seg) < min(self._calibrate_at):
+            return False
+        ratios = np.fromiter((h[4] for h in seg), dtype=float, count=len(seg))
         block = choose_block(ratios)
         if block == self._chosen:
             return False
@@ -355,15 +369,10 @@ class DriftCheck(Check[DriftSettings]):
             block = 1
         self._block = block
         self._win_sum, self._win_n = 0.0, 0
-        self._segment_start = self._history[0][0]
-        self._quiet = bool(self._change) or self._rule.level != "normal"
-        if not self._quiet:
-            self._detections = self._ignored = 0  # the new detector's, over the same pairs
         b = block
-        for k in range(0, len(self._history) - len(self._history) % b, b):
-            self._feed(float(ratios[k : k + b].mean()), self._history[k + b - 1][0], t)
-        self._quiet = False
-        rest = len(self._history) % b
+        for k in range(0, len(seg) - len(seg) % b, b):
+            self._feed(float(ratios[k : k + b].mean()), seg[k + b - 1][0], t)
+        rest = len(seg) % b
         self._acc = float(ratios[len(ratios) - rest :].sum()) if rest else 0.0
         self._acc_n = rest
         return True
@@ -377,10 +386,6 @@ class DriftCheck(Check[DriftSettings]):
             self._on_change(t, seq)
 
     def _on_change(self, t: float, seq: int) -> None:
-        if self._quiet:
-            self._segment_start = seq + 1
-            self._win_sum, self._win_n = 0.0, 0
-            return
         self._detections += 1
         seg = [h for h in self._history if self._segment_start <= h[0] <= seq]
         ratios = np.fromiter((h[4] for h in seg), dtype=float, count=len(seg))
