@@ -4,19 +4,17 @@ Each pair's loss is divided by the card's expected loss and clipped at ``clip``,
 detector's settings do not depend on the target's units and one wild truth cannot dominate.
 The detector is fed the means of blocks of ``block_pairs`` consecutive ratios. Both detectors
 take their inputs as independent; field errors are autocorrelated, and raw ADWIN raised 4 and
-87 times in 50,000 stationary pairs at AR(1) coefficients 0.5 and 0.9. Means over blocks a few
-times longer than the losses' integrated autocorrelation time are nearly independent, keep the
+87 times in 50,000 stationary pairs at AR(1) coefficients 0.5 and 0.9. Means over blocks long
+enough to hold most of the losses' long-run variance are nearly independent, keep the
 detector's own variance estimate honest, and cost about a block of delay. Prewhitening the
 stream instead would feed the detector innovations, in which a lasting rise of the level shows
-only as a short blip. With ``block_pairs = 0`` (the default) the block is chosen from the first
-``min_pairs`` pairs, and again from the first ``calibration_pairs`` (500) if it then comes out
-otherwise: 1 when their lag-1 autocorrelation is not significant (above 2 / sqrt(n), common
-practice), so independent losses are watched exactly as raw ADWIN watches them; otherwise twice
-the integrated autocorrelation time (the prewhitened long-run variance over the variance; the
-factor 2 is our choice, measured in bench/gap_drift_quality.py: 1.5 and 3 gave as few false
-alerts, 3 a slower detection), at most 64 pairs. Page-Hinkley sums deviations, and block means
-do not change a sum's variance: it is fed pair by pair with its threshold multiplied by the
-integrated autocorrelation time (half the block) instead.
+only as a short blip. With ``block_pairs = 0`` (the default) the block is chosen by
+``choose_block`` after ``min_pairs``, 500 and ``calibration_pairs`` (2,000) pairs since the
+detector's latest start, and from autocorrelations summed over the whole level after 8,000,
+32,000 ... pairs (``_long_accumulate``); each time only from more pairs than the block in force
+came from. Page-Hinkley sums deviations, and block means do not change a sum's variance: it
+is fed pair by pair with its threshold multiplied by half the block (about the integrated
+autocorrelation time) instead.
 
 When the detector reports a change, the change point is estimated on the segment the detector
 itself was looking at (river's detectors start afresh after each detection, so the pairs since
@@ -134,7 +132,7 @@ class DriftSettings(CheckSettings):
 
 
 _MAX_BLOCK = 64
-_TAU_FACTOR = 2.0  # blocks of this many integrated autocorrelation times (measured in bench)
+_TAU_FACTOR = 2.0  # blocks of this many prewhitened integrated autocorrelation times (see choose_block)
 _BLOCK_SHARE = 0.75  # share of the long-run variance a block's mean must hold (see choose_block)
 _LAGS = 64  # autocorrelations accumulated over a long level, lags 1 .. this
 _LONG_FIRST = 8000  # pairs of one level before the accumulated autocorrelations choose the block
@@ -181,17 +179,26 @@ def _windowed(rho: np.ndarray) -> tuple[float, int]:
 
 
 def choose_block(ratios: np.ndarray) -> int:
-    """Pairs per block: 1 for losses without significant autocorrelation, else 2 x their
-    integrated autocorrelation time, at most 64.
+    """Pairs per block: 1 for losses without significant autocorrelation, else the larger of
+    two choices, at most 64.
 
-    The time is the larger of two estimates, each counted only when significant: the
-    prewhitened long-run variance over the variance, when the lag-1 autocorrelation is above
-    2 / sqrt(n), and Sokal's windowed sum of autocorrelations, when it is above 1 by twice its
-    standard deviation under independence, 2 sqrt(M / n) (each autocorrelation has variance
-    about 1 / n). The first alone missed losses where an independent part (the error of the
-    model's own coefficients, large with a small card) dilutes an autocorrelation that lasts:
-    lag 1 near 0.17 but a time of 2.5 (squared AR(1) 0.9 errors with a 30-row, 20-feature
-    card), so blocks of 1 and 46 false alerts in 100,000 pairs.
+    - 2 x the prewhitened integrated autocorrelation time (long-run variance over variance),
+      when the lag-1 autocorrelation is above 2 / sqrt(n) (common practice); the factor 2 is
+      our choice, measured in bench/gap_drift_quality.py (1.5 and 3 gave as few false alerts
+      on AR(1) losses, 3 a slower detection; 1.5 more false alerts on the streams of
+      bench/detection_quality.py);
+    - the shortest block b whose mean holds ``_BLOCK_SHARE`` (3/4) of the long-run variance,
+      1 + 2 sum_k (1 - k / b) rho_k >= 3/4 x Sokal's windowed time, when that time is above 1
+      by twice its standard deviation under independence, 2 sqrt(M / n) (each
+      autocorrelation has variance about 1 / n); the means of such blocks have an integrated
+      time of at most about 4/3. For a geometric autocorrelation this is about 2 x the time.
+
+    The first alone missed losses where an independent part (the error of the model's own
+    coefficients on new inputs, large with a small card) dilutes an autocorrelation that
+    lasts: lag 1 near 0.17, not significant on 100 or 500 pairs, but a time of 2.5 (squared
+    AR(1) 0.9 errors, a 30-row, 20-feature card): blocks of 1 and 46 false alerts in 100,000
+    pairs. And 2 x that diluted time is too short a block: the memory is as long as the
+    undiluted noise's, which the share rule sees.
 
     >>> choose_block(np.random.default_rng(0).chisquare(1, 500))
     1
