@@ -1,7 +1,8 @@
 """Detection quality of the checks: false alerts on fair models, delays on real changes.
 
 One table, one row per check (gap, drift, range, shift, baseline; and shift with its
-``short_window_predictions`` option at 250, evaluated every 50) and two references
+``short_window_predictions`` option at 250, evaluated every 50, on all features and on the
+discrete ones only, ``short_window_features = "discrete"``) and two references
 measured in the same run on the same streams: raw ADWIN (``river.drift.ADWIN``, default
 delta, every detection counted, fed what ``drift`` is fed: the loss over the expected loss,
 clipped at 10) and a plain rolling mean of the last 500 losses against 1.25 x the expected
@@ -60,6 +61,7 @@ from watchdog_edge.files.cardbuild import card_from_arrays
 
 CHECKS = ("gap", "drift", "range", "shift", "baseline")
 SHIFT_RECENT = "shift, short window 250"  # shift with short_window_predictions = 250, evaluate_every_predictions = 50
+SHIFT_DISCRETE = "shift, short window 250 discrete"  # the same, short_window_features = "discrete"
 REFERENCES = ("raw ADWIN", "rolling mean")
 RANK = {"normal": 0, "warning": 1, "critical": 2}
 ROLLING = 500  # pairs in the rolling mean reference (the gap window's default size)
@@ -137,6 +139,16 @@ class Driver:
             self.checks[SHIFT_RECENT] = check_class("shift")(
                 settings_class("shift").model_validate(
                     {"short_window_predictions": 250, "evaluate_every_predictions": 50}
+                ),
+                ctx,
+            )
+            self.checks[SHIFT_DISCRETE] = check_class("shift")(
+                settings_class("shift").model_validate(
+                    {
+                        "short_window_predictions": 250,
+                        "evaluate_every_predictions": 50,
+                        "short_window_features": "discrete",
+                    }
                 ),
                 ctx,
             )
@@ -305,7 +317,7 @@ def delay_inputs(task: tuple[str, int, int, int]) -> dict[str, int | None]:
 
 def summarise_delays(runs: list[dict[str, int | None]]) -> dict[str, str]:
     out = {}
-    for name in (*CHECKS, SHIFT_RECENT, *REFERENCES):
+    for name in (*CHECKS, SHIFT_RECENT, SHIFT_DISCRETE, *REFERENCES):
         vals = [r[name] for r in runs if name in r]
         if not vals:
             continue
@@ -365,7 +377,7 @@ def run(
     )
     head = ["check", *[f"false/100k {c}" for c in cols], "worst stream", *[f"delay: {k}" for k in delays]]
     lines = ["| " + " | ".join(head) + " |", "|" + " --- |" * len(head)]
-    for name in (*CHECKS, SHIFT_RECENT, *REFERENCES):
+    for name in (*CHECKS, SHIFT_RECENT, SHIFT_DISCRETE, *REFERENCES):
         worst = max(fa, key=lambda r: r["rate"][name])
         w = worst["rate"][name]
         wtxt = "0" if w == 0 else f"{w:.3g} (n={worst['n']}, d={worst['d']} {worst['kind']}, AR {worst['phi']:g})"

@@ -325,3 +325,98 @@ def test_nulls_and_absent_features_go_to_the_missing_bin_of_their_own_feature_on
     # by hand: pressure None, absent, 1.5, 0.2 -> bins [1, 1, 0] with two missing;
     # speed 0.5, 1.5, None, absent -> [1, 1] with two missing
     assert check.counts() == {"pressure": [1, 1, 2], "speed": [1, 1, 2]}
+
+
+def switch_and_pressure_card(rng: np.random.Generator, n: int = 3000) -> ModelCard:
+    """A card built by ``card build``'s own code: a 0/1 switch on 45 % of rows (one bin per
+    value) and a continuous pressure (quantile bins)."""
+    from watchdog_edge.files.cardbuild import card_from_arrays
+
+    x = {"switch": (rng.uniform(size=n) < 0.45).astype(float), "pressure": rng.normal(5.0, 1.0, n)}
+    y = rng.normal(size=n)
+    return card_from_arrays(model_id="m", x=x, y=y, yhat=y, params=2)
+
+
+def test_the_short_window_can_watch_the_discrete_features_only():
+    # With short_window_features = "discrete" the latest 250 predictions are looked at for the
+    # switch (one bin per value) but not for the continuous pressure: a large move of the
+    # pressure waits for the whole window, a large move of the switch does not.
+    rng = np.random.default_rng(31)
+    card = switch_and_pressure_card(rng)
+    assert card.features["switch"].histogram.values == [0.0, 1.0]
+    assert card.features["pressure"].histogram.values is None
+    assert ShiftSettings().short_window_features == "all"
+    delays: dict[tuple[str, str], int] = {}
+    for which in ("all", "discrete"):
+        for moved in ("switch", "pressure"):
+            check = ShiftCheck(
+                ShiftSettings(short_window_predictions=250, evaluate_every_predictions=50, short_window_features=which),
+                CheckContext("m", card, "squared", 1.0, "holdout"),
+            )
+            assert set(check.recent_factors) == ({"switch", "pressure"} if which == "all" else {"switch"})
+            share = np.where(np.arange(4000) < 2000, 0.45, 0.75 if moved == "switch" else 0.45)
+            switch = (rng.uniform(size=4000) < share).astype(float)
+            pressure = rng.normal(5.0, 1.0, 4000) + np.where(
+                np.arange(4000) < 2000, 0.0, 1.0 if moved == "pressure" else 0
+            )
+            for i, (s, p) in enumerate(zip(switch.tolist(), pressure.tolist())):
+                check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"switch": s, "pressure": p}))
+                v = check.evaluate(float(i))
+                if v is not None and i >= 1000:
+                    assert set(v.figures["short_window_index"]) == set(check.recent_factors)
+                    if v.level != "normal":
+                        delays[which, moved] = i - 2000
+                        break
+    # the switch is seen on the short window either way; the pressure only with "all"
+    assert delays["discrete", "switch"] == delays["all", "switch"] < 300
+    assert delays["all", "pressure"] < 300 < delays["discrete", "pressure"]
+
+
+@pytest.mark.parametrize("rows", [30, 300, 3000])
+def test_short_window_limit_against_the_exact_binomial_tail(rows):
+    # For a 0/1 feature the chance of the short-window index passing its warning limit on
+    # unchanged inputs can be summed exactly: the card's count of ones is Binomial(rows, p)
+    # (the card stores count / rows), the window's Binomial(250, p) (scipy.stats.binom); the
+    # limit is the one of this card, which saw both values (a card that never saw a value has
+    # no bin for it, and the value then counts as new: a case this sum leaves out). The
+    # limit comes from the chi-square quantile at `significance` 1e-6; the exact chance is
+    # close to it for a balanced switch and larger, up to some 25 times, for a rare value (a
+    # few expected counts in the window, where the chi-square approximation is known to be poor).
+    w, s = 250, 0.5
+    rng = np.random.default_rng(rows)
+    x = {"switch": (rng.uniform(size=rows) < 0.45).astype(float)}
+    y = rng.normal(size=rows)
+    from watchdog_edge.files.cardbuild import card_from_arrays
+
+    card = card_from_arrays(model_id="m", x=x, y=y, yhat=y, params=1)
+    check = ShiftCheck(
+        ShiftSettings(short_window_predictions=w, short_window_features="discrete"),
+        CheckContext("m", card, "squared", 1.0, "holdout"),
+    )
+    limit = ShiftSettings().warning_index * check.recent_factors["switch"]
+    bins = len(check.expected["switch"])  # 0, 1, other, missing: each gets the pseudo-count
+    worst = 0.0
+    for p in (0.03, 0.1, 0.3, 0.45):
+        k = np.arange(rows + 1)
+        pk = sps.binom.pmf(k, rows, p)
+        c = np.arange(w + 1)
+        pc = sps.binom.pmf(c, w, p)
+        e1, c1 = (k / rows)[:, None], c[None, :]
+        index = 0.0
+        for e, cnt in ((e1, c1), (1 - e1, w - c1)):
+            a = (cnt + s) / (w + s * bins)
+            q = (e * w + s) / (w + s * bins)
+            index = index + (a - q) * np.log(a / q)
+        chance = float((pk[:, None] * pc[None, :] * (index > limit)).sum())
+        worst = max(worst, chance)
+        if p == 0.45:
+            assert chance < 10e-6  # a balanced switch: within 10 times the stated 1e-6
+    assert worst < 50e-6
+    # the check computes the same index as summed here (one point, by the check's own code)
+    vals = [1.0] * 140 + [0.0] * 110
+    for i, v in enumerate([0.0] * 750 + vals):
+        check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"switch": v}))
+    e = card.features["switch"].histogram.shares[1]
+    a = np.array([110 + s, 140 + s]) / (w + s * bins)
+    q = np.array([(1 - e) * w + s, e * w + s]) / (w + s * bins)
+    assert check.recent_indices()["switch"] == pytest.approx(float(np.sum((a - q) * np.log(a / q))))

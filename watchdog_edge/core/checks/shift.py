@@ -50,7 +50,7 @@ import math
 import operator
 from array import array
 from collections.abc import Callable, Sequence
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 from pydantic import Field, model_validator
@@ -113,6 +113,11 @@ class ShiftSettings(CheckSettings):
         description="Also compare the latest this many predictions of the window, with limits for their "
         "number, to see large moves sooner (off with 0, the default: inputs with a daily cycle "
         "longer than this many predictions would be raised every cycle).",
+    )
+    short_window_features: Literal["all", "discrete"] = Field(
+        "all",
+        description="Which features the short window watches: all, or only those with one bin per value "
+        "(few distinct values: a switch, a mode, a count), whose few bins keep its limits close to exact.",
     )
     hysteresis: float = Field(
         0.2, ge=0, lt=1, description="Clear only when the index is at or below the limit x (1 - this)."
@@ -215,6 +220,7 @@ class ShiftCheck(Check[ShiftSettings]):
         recent_factors: list[float] = []
         r = settings.short_window_predictions
         self.recent = r if 0 < r < settings.recent_predictions else 0  # 0: no recent index
+        short: list[str] = []  # the features the short window watches
         card = context.card
         for fname, prof in card.features.items():
             h = prof.histogram
@@ -236,13 +242,15 @@ class ShiftCheck(Check[ShiftSettings]):
                 factors.append(
                     limit_factor(settings.warning_index, seen, settings.recent_predictions, rows, settings.significance)
                 )
-                recent_factors.append(
-                    limit_factor(settings.warning_index, seen, max(self.recent, 1), rows, settings.significance)
-                )
+                if self.recent and (settings.short_window_features == "all" or h.values is not None):
+                    short.append(fname)
+                    recent_factors.append(
+                        limit_factor(settings.warning_index, seen, self.recent, rows, settings.significance)
+                    )
         self.names: tuple[str, ...] = tuple(names)
         self.expected: dict[str, list[float]] = dict(zip(names, expected))
         self.factors: dict[str, float] = dict(zip(names, factors))
-        self.recent_factors: dict[str, float] = dict(zip(names, recent_factors))
+        self.recent_factors: dict[str, float] = dict(zip(short, recent_factors))
         self._values = values
         self._nbins = np.array(nbins, dtype=np.int64)
         # Every feature's bins side by side in one flat count vector, at these offsets.
@@ -343,17 +351,20 @@ class ShiftCheck(Check[ShiftSettings]):
         return {n: population_stability_index(self.expected[n], c, s) for n, c in self.counts().items()}
 
     def recent_indices(self) -> dict[str, float]:
-        """The index of every feature over the latest ``short_window_predictions`` of a full window."""
+        """The index of every feature the short window watches, over the latest
+        ``short_window_predictions`` of a full window."""
         self._flush()
         r = self.recent
-        if not r or self._filled < self.settings.recent_predictions:
+        if not r or not self.recent_factors or self._filled < self.settings.recent_predictions:
             return {}
         slots = (self._pos - r + np.arange(r)) % self.settings.recent_predictions
         c = np.bincount(self._ring[slots].ravel(), minlength=self._total).tolist()
         sm = self.settings.smoothing
+        watched = self.recent_factors
         return {
             n: population_stability_index(self.expected[n], c[o : o + k], sm)
             for n, o, k in zip(self.names, self._offset.tolist(), self._nbins.tolist())
+            if n in watched
         }
 
     def evaluate(self, t: float) -> Verdict | None:
