@@ -186,6 +186,13 @@ def test_small_windows_are_warned_about_and_bad_settings_explained():
     assert settings_warnings(ShiftSettings()) == []
     [w] = settings_warnings(ShiftSettings(recent_predictions=200))
     assert "recent_predictions = 200" in w and "1000" in w
+    # a short window looked at only every 250 predictions sees a move up to 250 late
+    [w] = settings_warnings(ShiftSettings(evaluate_every_predictions=250))
+    assert "every 250 predictions" in w and "evaluate_every_predictions to about 50" in w
+    assert settings_warnings(ShiftSettings(short_window_predictions=0, evaluate_every_predictions=250)) == []
+    with pytest.raises(ValidationError) as e:
+        ShiftSettings(short_window_features="continuous")
+    assert "short_window_features" in format_validation(e.value)
     with pytest.raises(ValidationError) as e:
         ShiftSettings(warning_index=0.3, critical_index=0.2)
     assert "critical_index (0.2) must be >= warning_index (0.3)" in format_validation(e.value)
@@ -285,10 +292,11 @@ def test_a_large_move_is_seen_on_the_recent_part_of_the_window():
     y = rng.normal(size=n)
     card = card_from_arrays(model_id="m", x={"switch": switch}, y=y, yhat=y, params=2)
     delays = {}
-    assert ShiftSettings().short_window_predictions == 0  # off by default (daily cycles)
+    assert ShiftSettings().short_window_predictions == 250  # on by default for discrete features
+    assert ShiftSettings().evaluate_every_predictions == 50
     for recent in (0, 250):
         check = ShiftCheck(
-            ShiftSettings(short_window_predictions=recent, evaluate_every_predictions=50),
+            ShiftSettings(short_window_predictions=recent),
             CheckContext("m", card, "squared", 1.0, "holdout"),
         )
         stream = np.concatenate([rng.uniform(size=2000) < 0.45, rng.uniform(size=2000) < 0.75]).astype(float)
@@ -345,7 +353,7 @@ def test_the_short_window_can_watch_the_discrete_features_only():
     card = switch_and_pressure_card(rng)
     assert card.features["switch"].histogram.values == [0.0, 1.0]
     assert card.features["pressure"].histogram.values is None
-    assert ShiftSettings().short_window_features == "all"
+    assert ShiftSettings().short_window_features == "discrete"
     delays: dict[tuple[str, str], int] = {}
     for which in ("all", "discrete"):
         for moved in ("switch", "pressure"):
@@ -420,3 +428,100 @@ def test_short_window_limit_against_the_exact_binomial_tail(rows):
     a = np.array([110 + s, 140 + s]) / (w + s * bins)
     q = np.array([(1 - e) * w + s, e * w + s]) / (w + s * bins)
     assert check.recent_indices()["switch"] == pytest.approx(float(np.sum((a - q) * np.log(a / q))))
+
+
+def doors_card_and_day(rng: np.random.Generator, days: int = 6) -> tuple[ModelCard, np.ndarray]:
+    """A count that follows the day, as the demo's door openings: Poisson(2.5) from 06:00 to
+    20:00, Poisson(0.3) at night. The card is built from rows logged at random hours; the
+    field sends one prediction every 2 minutes (720 a day), in time order."""
+    from watchdog_edge.files.cardbuild import card_from_arrays
+
+    def doors(hours: np.ndarray) -> np.ndarray:
+        busy = ((hours % 24) >= 6) & ((hours % 24) < 20)
+        return rng.poisson(np.where(busy, 2.5, 0.3)).astype(float)
+
+    train = doors(rng.uniform(0, 24 * 30, 1200))
+    y = rng.normal(size=train.size)
+    card = card_from_arrays(model_id="m", x={"doors": train}, y=y, yhat=y, params=2)
+    assert card.features["doors"].histogram.values is not None  # one bin per value
+    return card, doors(np.arange(720 * days) * 2 / 60)
+
+
+def test_a_count_that_follows_the_day_is_left_to_the_whole_window():
+    # Over 250 predictions (8 hours) the night's counts are far from the card's day-and-night
+    # mix, every night. The older blocks of a 3-day window differ as much, so the homogeneity
+    # test sets the feature aside and the short window stays quiet; without the test it raises
+    # nightly.
+    rng = np.random.default_rng(41)
+    card, stream = doors_card_and_day(rng)
+    rises = {}
+    for alpha in (0.0, 0.01):
+        check = ShiftCheck(
+            ShiftSettings(recent_predictions=2160, homogeneity_significance=alpha),
+            CheckContext("m", card, "squared", 1.0, "holdout"),
+        )
+        level, rises[alpha] = "normal", 0
+        for i, v in enumerate(stream.tolist()):
+            check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"doors": v}))
+            verdict = check.evaluate(float(i))
+            if verdict is not None:
+                rises[alpha] += verdict.level != "normal" and level == "normal"
+                level = verdict.level
+        if alpha:
+            assert check.figures()["short_window_set_aside"] == ["doors"]
+            assert check.figures()["short_window_index"] == {}
+    assert rises[0.01] == 0
+    assert rises[0.0] >= 1  # raised (and, the days being far from the mix too, kept raised)
+
+
+def test_homogeneity_of_the_older_blocks_matches_scipy():
+    # The test on the older blocks is Pearson's chi-square test of homogeneity: the same
+    # decision as scipy.stats.chi2_contingency (no continuity correction) at the same level.
+    from watchdog_edge.files.cardbuild import card_from_arrays
+
+    rng = np.random.default_rng(43)
+    x = rng.choice([0.0, 1.0, 2.0], size=3000, p=[0.3, 0.3, 0.4])
+    y = rng.normal(size=3000)
+    card = card_from_arrays(model_id="m", x={"mode": x}, y=y, yhat=y, params=2)
+    seen = set()
+    for trial in range(30):
+        # blocks that differ by a random amount, from none to plainly
+        tilt = rng.uniform(0, 0.12) * np.sin(np.arange(1000) * 2 * np.pi / rng.uniform(300, 900))
+        p0 = np.clip(0.3 + tilt, 0.01, 0.9)
+        vals = np.where(rng.uniform(size=1000) < p0, 0.0, rng.choice([1.0, 2.0], size=1000, p=[3 / 7, 4 / 7]))
+        check = ShiftCheck(
+            ShiftSettings(evaluate_every_predictions=1000), CheckContext("m", card, "squared", 1.0, "holdout")
+        )
+        for i, v in enumerate(vals.tolist()):
+            check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"mode": v}))
+        older = vals[:750].reshape(3, 250)  # the three blocks before the latest 250
+        table = np.array([[int((b == v).sum()) for v in (0.0, 1.0, 2.0)] for b in older])
+        p = sps.chi2_contingency(table, correction=False).pvalue
+        assert check.homogeneous()["mode"] == (p >= 0.01), (trial, p)
+        seen.add(bool(p >= 0.01))
+    assert seen == {True, False}  # both outcomes were tried
+
+
+def test_a_lasting_change_is_raised_once_and_stays_raised():
+    # Once raised on the short window, the feature stays watched while the change fills the
+    # older blocks (which then differ): no clearing and raising again on the way.
+    from watchdog_edge.files.cardbuild import card_from_arrays
+
+    rng = np.random.default_rng(47)
+    n = 3000
+    switch = (rng.uniform(size=n) < 0.45).astype(float)
+    y = rng.normal(size=n)
+    card = card_from_arrays(model_id="m", x={"switch": switch}, y=y, yhat=y, params=2)
+    for seed in range(5):
+        r = np.random.default_rng(seed)
+        stream = np.concatenate([r.uniform(size=2000) < 0.45, r.uniform(size=4000) < 0.75]).astype(float)
+        check = ShiftCheck(ShiftSettings(), CheckContext("m", card, "squared", 1.0, "holdout"))
+        levels = []
+        for i, v in enumerate(stream.tolist()):
+            check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"switch": v}))
+            verdict = check.evaluate(float(i))
+            if verdict is not None:
+                levels.append((i, verdict.level))
+        raised = [i for i, lv in levels if lv != "normal"]
+        assert raised[0] - 2000 < 300  # seen on the short window
+        assert all(lv != "normal" for i, lv in levels if i >= raised[0])  # and held
