@@ -187,9 +187,9 @@ def test_small_windows_are_warned_about_and_bad_settings_explained():
     [w] = settings_warnings(ShiftSettings(recent_predictions=200))
     assert "recent_predictions = 200" in w and "1000" in w
     # a short window looked at only every 250 predictions sees a move up to 250 late
-    [w] = settings_warnings(ShiftSettings(evaluate_every_predictions=250))
-    assert "every 250 predictions" in w and "evaluate_every_predictions to about 50" in w
-    assert settings_warnings(ShiftSettings(short_window_predictions=0, evaluate_every_predictions=250)) == []
+    [w] = settings_warnings(ShiftSettings(short_window_every_predictions=250))
+    assert "every 250 predictions" in w and "short_window_every_predictions to about 50" in w
+    assert settings_warnings(ShiftSettings(short_window_predictions=0)) == []
     with pytest.raises(ValidationError) as e:
         ShiftSettings(short_window_features="continuous")
     assert "short_window_features" in format_validation(e.value)
@@ -293,7 +293,7 @@ def test_a_large_move_is_seen_on_the_recent_part_of_the_window():
     card = card_from_arrays(model_id="m", x={"switch": switch}, y=y, yhat=y, params=2)
     delays = {}
     assert ShiftSettings().short_window_predictions == 250  # on by default for discrete features
-    assert ShiftSettings().evaluate_every_predictions == 50
+    assert ShiftSettings().short_window_every_predictions == 50
     for recent in (0, 250):
         check = ShiftCheck(
             ShiftSettings(short_window_predictions=recent),
@@ -460,16 +460,19 @@ def test_a_count_that_follows_the_day_is_left_to_the_whole_window():
             ShiftSettings(recent_predictions=2160, homogeneity_significance=alpha),
             CheckContext("m", card, "squared", 1.0, "holdout"),
         )
-        level, rises[alpha] = "normal", 0
+        level, rises[alpha], set_aside = "normal", 0, 0
         for i, v in enumerate(stream.tolist()):
             check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"doors": v}))
             verdict = check.evaluate(float(i))
             if verdict is not None:
                 rises[alpha] += verdict.level != "normal" and level == "normal"
                 level = verdict.level
+                if verdict.figures["short_window_set_aside"]:
+                    assert verdict.figures["short_window_set_aside"] == ["doors"]
+                    assert verdict.figures["short_window_index"] == {}
+                    set_aside += 1
         if alpha:
-            assert check.figures()["short_window_set_aside"] == ["doors"]
-            assert check.figures()["short_window_index"] == {}
+            assert set_aside > 10  # the short window's index passed its limit, and was set aside
     assert rises[0.01] == 0
     assert rises[0.0] >= 1  # raised (and, the days being far from the mix too, kept raised)
 
@@ -489,9 +492,7 @@ def test_homogeneity_of_the_older_blocks_matches_scipy():
         tilt = rng.uniform(0, 0.12) * np.sin(np.arange(1000) * 2 * np.pi / rng.uniform(300, 900))
         p0 = np.clip(0.3 + tilt, 0.01, 0.9)
         vals = np.where(rng.uniform(size=1000) < p0, 0.0, rng.choice([1.0, 2.0], size=1000, p=[3 / 7, 4 / 7]))
-        check = ShiftCheck(
-            ShiftSettings(evaluate_every_predictions=1000), CheckContext("m", card, "squared", 1.0, "holdout")
-        )
+        check = ShiftCheck(ShiftSettings(), CheckContext("m", card, "squared", 1.0, "holdout"))
         for i, v in enumerate(vals.tolist()):
             check.on_prediction(Prediction("m", str(i), 0.0, float(i), features={"mode": v}))
         older = vals[:750].reshape(3, 250)  # the three blocks before the latest 250
@@ -525,3 +526,18 @@ def test_a_lasting_change_is_raised_once_and_stays_raised():
         raised = [i for i, lv in levels if lv != "normal"]
         assert raised[0] - 2000 < 300  # seen on the short window
         assert all(lv != "normal" for i, lv in levels if i >= raised[0])  # and held
+
+
+def test_evaluations_come_every_50_only_where_the_short_window_has_a_feature_to_watch():
+    # continuous features only: every 250 predictions, as before the short window; with a
+    # switch on the card: every 50 (short_window_every_predictions)
+    rng = np.random.default_rng(53)
+    for card, every in ((training_card(rng), 250), (switch_and_pressure_card(rng), 50)):
+        check = ShiftCheck(ShiftSettings(), CheckContext("m", card, "squared", 1.0, "holdout"))
+        due = []
+        for i in range(1000):
+            feats = {n: 0.0 for n in card.features}
+            if check.on_prediction(Prediction("m", str(i), 0.0, float(i), features=feats)):
+                due.append(i + 1)
+                check.evaluate(float(i))
+        assert due == list(range(every, 1001, every))

@@ -114,15 +114,19 @@ class ShiftSettings(CheckSettings):
         0.5, gt=0, le=10, description="Pseudo-count added to every bin on both sides, so empty bins stay finite."
     )
     evaluate_every_predictions: int = Field(
-        50,
-        ge=1,
-        description="Predictions between evaluations (a fifth of the short window, so that it is looked at often).",
+        250, ge=1, description="Predictions between evaluations (the index moves slowly on a window of 1000)."
     )
     short_window_predictions: int = Field(
         250,
         ge=0,
         description="Also compare the latest this many predictions of the window, with limits for their "
         "number, to see large moves sooner (off with 0).",
+    )
+    short_window_every_predictions: int = Field(
+        50,
+        ge=1,
+        description="Predictions between evaluations where the short window watches some feature (a fifth "
+        "of it, so that a large move is raised soon after the short window shows it).",
     )
     short_window_features: Literal["all", "discrete"] = Field(
         "discrete",
@@ -164,13 +168,14 @@ def settings_warnings(settings: ShiftSettings) -> list[str]:
     """
     out = []
     r = settings.short_window_predictions
-    if r and 5 * settings.evaluate_every_predictions > r:
+    every = min(settings.evaluate_every_predictions, settings.short_window_every_predictions)
+    if r and 5 * every > r:
         # a fifth: the move is then seen within a fifth of the short window of passing its limit
         # (a choice of ours, no source; the bench measures 250 with 50)
         out.append(
-            f"short_window_predictions = {r} is looked at only every {settings.evaluate_every_predictions} "
-            f"predictions (evaluate_every_predictions), so a large move waits up to that long after the short "
-            f"window has seen it; set evaluate_every_predictions to about {max(1, r // 5)}"
+            f"short_window_predictions = {r} is looked at only every {every} predictions "
+            f"(short_window_every_predictions), so a large move waits up to that long after the short "
+            f"window has seen it; set short_window_every_predictions to about {max(1, r // 5)}"
         )
     if settings.recent_predictions < ADVISED_MIN_WINDOW:
         out.append(
@@ -293,6 +298,8 @@ class ShiftCheck(Check[ShiftSettings]):
         # the features of one prediction, in ``names`` order (with no features nothing is queued)
         self._getter: Callable[[dict[str, float | None]], Any] = operator.itemgetter(*names) if names else tuple
         self._every = settings.evaluate_every_predictions
+        if self.recent_factors:  # the short window has features to watch: look more often
+            self._every = min(self._every, settings.short_window_every_predictions)
         self._gate = LevelGate(
             settings.warning_index, settings.critical_index, settings.hysteresis, settings.clear_after_evaluations
         )
@@ -317,9 +324,10 @@ class ShiftCheck(Check[ShiftSettings]):
         self._since_eval = 0
         self._gate.reset()
         self._figures: dict[str, Any] = {}
-        # the features the short window watches now: decided while the level is normal and kept
-        # while it is raised (else a change, once in the older blocks, would switch it off)
-        self._watched: list[str] = []
+        # the features the short window leaves to the whole window: decided while the level is
+        # normal and held while it is raised (else a change, once in the older blocks, would
+        # switch the short window off and the level would clear and rise again)
+        self._set_aside: list[str] = []
 
     def on_prediction(self, prediction: Prediction) -> bool:
         feats = prediction.features
@@ -418,21 +426,24 @@ class ShiftCheck(Check[ShiftSettings]):
         ids = self._ring[slots][:, self._short_cols].astype(np.int64)
         which = np.repeat(np.arange(blocks), r)[:, None] * self._total
         table = np.bincount((ids + which).ravel(), minlength=blocks * self._total).reshape(blocks, self._total)
+        # every block holds r predictions, so a cell's expected count is its bin's total / blocks;
+        # bins empty in every block drop out, and so do their degrees of freedom
+        total = table.sum(axis=0)
+        used = total > 0
+        exp = np.where(used, total / blocks, 1.0)
+        cell = np.where(used, ((table - exp) ** 2 / exp).sum(axis=0), 0.0)
+        starts = self._offset[self._short_cols]
+        x2 = np.add.reduceat(cell, starts)
+        cols = np.add.reduceat(used.astype(np.int64), starts)
         out = {}
-        for n, j in zip(names, self._short_cols.tolist()):
-            o, k = int(self._offset[j]), int(self._nbins[j])
-            obs = table[:, o : o + k]
-            obs = obs[:, obs.sum(axis=0) > 0]
-            cols = obs.shape[1]
-            if cols < 2:  # one value only in every block: nothing differs
+        for n, x, c in zip(names, x2.tolist(), cols.tolist()):
+            if c < 2:  # one value only in every block: nothing differs
                 out[n] = True
                 continue
-            exp = obs.sum(axis=1, keepdims=True) * obs.sum(axis=0, keepdims=True) / obs.sum()
-            x2 = float(((obs - exp) ** 2 / exp).sum())
-            df = (blocks - 1) * (cols - 1)
+            df = (blocks - 1) * (c - 1)
             if df not in self._critical_x2:
                 self._critical_x2[df] = chi2_isf(alpha, df)
-            out[n] = x2 <= self._critical_x2[df]
+            out[n] = x <= self._critical_x2[df]
         return out
 
     def evaluate(self, t: float) -> Verdict | None:
@@ -449,16 +460,28 @@ class ShiftCheck(Check[ShiftSettings]):
         # or over its recent part
         score = {n: idx[n] / f[n] for n in idx}
         span = {n: self._filled for n in idx}
-        if self._gate.level == "normal":
-            self._watched = [n for n, ok in self.homogeneous().items() if ok]
-        watched = set(self._watched)
-        recent = {n: v for n, v in self.recent_indices().items() if n in watched}
         rf = self.recent_factors
+        every = self.recent_indices()
+        # The homogeneity test decides only where the short window would raise, so it is run
+        # then: while the level is normal and some short-window index passes its warning limit,
+        # and at a raise (the decision is then held until the level clears).
+        tested = False
+        if self._gate.level == "normal":
+            self._set_aside = []
+            if any(v / rf[n] > s.warning_index for n, v in every.items()):
+                self._set_aside = [n for n, ok in self.homogeneous().items() if not ok]
+                tested = True
+        recent = {n: v for n, v in every.items() if n not in self._set_aside}
         for n, v in recent.items():
             if v / rf[n] > score[n]:
                 score[n], span[n] = v / rf[n], self.recent
         top = max(score, key=score.__getitem__)
+        was = self._gate.level
         level = self._gate.update_figure(score[top])
+        if was == "normal" and level != "normal" and not tested and every:
+            # raised on the whole window: hold the test's decision for the raised time
+            self._set_aside = [n for n, ok in self.homogeneous().items() if not ok]
+            recent = {n: v for n, v in every.items() if n not in self._set_aside}
         self._figures = {
             "index": idx,
             "short_window_index": recent,
@@ -470,9 +493,9 @@ class ShiftCheck(Check[ShiftSettings]):
             "warning_limits": {n: s.warning_index * f[n] for n in idx},
             "critical_limits": {n: s.critical_index * f[n] for n in idx},
             "short_window_warning_limits": {n: s.warning_index * rf[n] for n in recent},
-            # features the short window may watch but leaves to the whole window: their older
-            # blocks differ (a cycle), or there are too few blocks to tell
-            "short_window_set_aside": [n for n in rf if n not in watched],
+            # features the short window leaves to the whole window: their older blocks differ
+            # (a cycle), or there are too few blocks to tell
+            "short_window_set_aside": list(self._set_aside),
         }
         return Verdict(level, self._summary(level, score, span, top), dict(self._figures))
 
@@ -513,7 +536,7 @@ class ShiftCheck(Check[ShiftSettings]):
             "since_eval": self._since_eval,
             "gate": self._gate.snapshot(),
             "figures": self._figures,
-            "watched": list(self._watched),
+            "set_aside": list(self._set_aside),
         }
 
     def restore(self, data: dict[str, Any]) -> None:
@@ -530,4 +553,4 @@ class ShiftCheck(Check[ShiftSettings]):
         self._npend = 0
         self._gate.restore(data["gate"])
         self._figures = data["figures"]
-        self._watched = [n for n in data.get("watched", []) if n in self.recent_factors]
+        self._set_aside = [n for n in data.get("set_aside", []) if n in self.recent_factors]
