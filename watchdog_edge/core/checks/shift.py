@@ -32,22 +32,28 @@ the level is taken from the largest index relative to its factor. n is the card'
 less the feature's missing share.
 
 A window of 1,000 sees small moves but is slow to see a large one: a share moving from 45 %
-to 75 % passes the warning index only once half the window has moved. With
-``short_window_predictions`` set (say 250, with ``evaluate_every_predictions`` 50), the index is also taken
-over the latest that many predictions of the window, with its own limits (the same rule, for
-the shorter window), and the level follows whichever of the two is further above its
-limits; the figures give both (``index``, ``short_window_index``). It is off by default: where the
-inputs have a cycle (a day) longer than the recent part, that part holds only a piece of the
-cycle and is raised every cycle, as the built-in demo shows.
+to 75 % passes the warning index only once half the window has moved. So the index is also
+taken over the latest ``short_window_predictions`` (250) predictions of the window, with its
+own limits (the same rule, for the shorter window), looked at every
+``short_window_every_predictions`` (50), and the level follows whichever of the two is
+further above its limits; the figures give both (``index``, ``short_window_index``).
 
-``short_window_features = "discrete"`` keeps the short window to the features with one bin
-per value. Their few bins keep the chi-square limit near the exact one (for a 0/1 feature
-the exact binomial chance of passing it on unchanged inputs is about the stated
-``significance`` when the two values are balanced, some 25 times it for a value seen 3 % of
-the time), whereas continuous features with ten bins on 250 predictions were behind the
-option's false alerts in ``bench/detection_quality.py``. It does not help with cycles: a count
-or a mode that follows the day (the demo's door openings) moves as much in a night as a
-switch that really changed, and no test of a few hundred predictions tells the two apart.
+By default (``short_window_features = "discrete"``) the short window watches only the features
+with one bin per value. Their few bins keep the chi-square limit near the exact one (for a 0/1
+feature the exact binomial chance of passing it on unchanged inputs is about ``significance``
+when the two values are balanced, some 25 times it for a value seen 3 % of the time), whereas
+continuous features with ten bins on 250 predictions were behind the false alerts of the short
+window on all features in ``bench/detection_quality.py``.
+
+A count or a mode that follows the day (the demo's door openings) moves as much over a night as
+a switch that really changed, and no test on a few hundred predictions tells the two apart. So
+where a feature's short-window index passes its warning limit while the level is normal, the
+older part of the window, cut into blocks of the short window's size, must pass Pearson's
+chi-square test of homogeneity at ``homogeneity_significance`` (0.01); if the blocks already
+differ (a cycle within the window, which should span whole cycles) the feature is left to the
+whole window (``short_window_set_aside`` in the figures). The decision is held while the level
+is raised (taken at the raise if the whole window raised), so that a lasting change, once in
+the older blocks, does not switch the short window off and the level clear and rise again.
 
 A prediction with no features at all is not counted; in one that has features, a feature that
 is null or absent falls into the missing bin.
