@@ -184,8 +184,11 @@ def test_snapshot_restore_mid_stream_gives_identical_verdicts():
 def test_small_windows_are_warned_about_and_bad_settings_explained():
     assert settings_class("shift") is ShiftSettings
     assert settings_warnings(ShiftSettings()) == []
-    [w] = settings_warnings(ShiftSettings(recent_predictions=200))
+    [w] = settings_warnings(ShiftSettings(recent_predictions=200))  # shorter than the short window: off
     assert "recent_predictions = 200" in w and "1000" in w
+    # a window of 600 leaves one older block of 250: nothing for the homogeneity test to compare
+    w1, w2 = settings_warnings(ShiftSettings(recent_predictions=600))
+    assert "fewer than two older blocks" in w1 and "recent_predictions >= 750" in w1 and "below 1000" in w2
     # a short window looked at only every 250 predictions sees a move up to 250 late
     [w] = settings_warnings(ShiftSettings(short_window_every_predictions=250))
     assert "every 250 predictions" in w and "short_window_every_predictions to about 50" in w
@@ -217,8 +220,10 @@ def test_check_config_prints_the_small_window_warning():
             ]
         }
     )
-    [w] = config_warnings(cfg)
-    assert w.startswith("models[press].checks.shift: recent_predictions = 400 is below 1000")
+    w1, w2 = config_warnings(cfg)
+    # 400 also leaves one older block of 250 for the short window's homogeneity test
+    assert w1.startswith("models[press].checks.shift: recent_predictions = 400 leaves fewer than two older blocks")
+    assert w2.startswith("models[press].checks.shift: recent_predictions = 400 is below 1000")
 
 
 def test_a_discrete_feature_moving_from_45_to_100_percent_is_raised():

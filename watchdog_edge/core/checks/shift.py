@@ -169,8 +169,8 @@ class ShiftSettings(CheckSettings):
 def settings_warnings(settings: ShiftSettings) -> list[str]:
     """Advice on settings that are valid but unwise, for ``check-config`` to print.
 
-    >>> settings_warnings(ShiftSettings(recent_predictions=300))[0][:50]
-    'recent_predictions = 300 is below 1000: the popula'
+    >>> settings_warnings(ShiftSettings(recent_predictions=200))[0][:50]
+    'recent_predictions = 200 is below 1000: the popula'
     """
     out = []
     r = settings.short_window_predictions
@@ -182,6 +182,12 @@ def settings_warnings(settings: ShiftSettings) -> list[str]:
             f"short_window_predictions = {r} is looked at only every {every} predictions "
             f"(short_window_every_predictions), so a large move waits up to that long after the short "
             f"window has seen it; set short_window_every_predictions to about {max(1, r // 5)}"
+        )
+    if settings.homogeneity_significance and r < settings.recent_predictions < 3 * r:
+        out.append(
+            f"recent_predictions = {settings.recent_predictions} leaves fewer than two older blocks of "
+            f"short_window_predictions = {r} for the homogeneity test, so the short window never raises; "
+            f"use recent_predictions >= {3 * r}"
         )
     if settings.recent_predictions < ADVISED_MIN_WINDOW:
         out.append(
