@@ -34,7 +34,7 @@ from jetstream_setup import (
     wait_for,
     write_setup,
 )
-from natsserver import NatsServer, cluster, wait_jetstream
+from natsserver import NatsServer, cluster
 
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import parse_config
@@ -189,6 +189,25 @@ def test_no_server_at_start_exits_3_and_a_stop_while_connecting_exits_0(tmp_path
 
 
 # --- one server ----------------------------------------------------------------------------
+def test_a_refusal_that_needs_a_person_exits_3_at_once(tmp_path):
+    """Replicas 3 on a server without a cluster: no waiting out the start timeout, the server's reason shown."""
+    port = free_port()
+    cfg = write_setup(
+        tmp_path, [f"nats://127.0.0.1:{port}"], ["a"], replicas=3, jetstream_extra="start_timeout_s = 120.0"
+    )
+    srv = NatsServer(tmp_path / "srv", port=port, mqtt=False)
+    try:
+        t0 = time.monotonic()
+        w = start_worker(tmp_path, cfg, "w1")
+        assert w.proc.wait(timeout=60) == 3
+        took = time.monotonic() - t0
+    finally:
+        srv.stop()
+    assert w.stop() == 3
+    assert "replicas > 1 not supported in non-clustered mode" in w.text(), w.text()
+    assert took < 60 and "JetStream not ready" not in w.text()
+
+
 def test_server_partition_function_is_ours(tmp_path):
     """The server's own mapping is the reference for ``partition_of`` (its FNV-1a, modulo N)."""
     port = free_port()
@@ -358,15 +377,15 @@ def test_killed_worker_partitions_are_taken_over_and_alerts_equal_a_replay(tmp_p
 # --- a three-server cluster ----------------------------------------------------------------
 @pytest.mark.slow
 def test_cluster_r3_loses_nothing_when_a_server_and_a_worker_die_under_load(tmp_path):
+    """Workers started on a cluster with no quorum yet wait for it; then a server and a worker die under load."""
     ports = [free_port() for _ in range(3)]
     urls = [f"nats://127.0.0.1:{p}" for p in ports]
-    cfg = write_setup(tmp_path, urls, MODELS, partitions=4, replicas=3)
-    servers = cluster(tmp_path / "cluster", mappings_for(cfg), ports=ports)
-    # the workers start once the new cluster has elected its leaders; on a loaded machine that
-    # took longer than a worker's start timeout
-    wait_jetstream(urls, replicas=3)
-    msgs = traffic(MODELS, seed=5)
+    cfg = write_setup(tmp_path, urls, MODELS, partitions=4, replicas=3, jetstream_extra="start_timeout_s = 90.0")
+    # one server of three: it answers, but its JetStream cannot elect a leader until a second
+    # one joins, so the workers' first requests to make the streams cannot succeed
+    servers = cluster(tmp_path / "cluster", mappings_for(cfg), ports=ports, launch=1)
     workers = {n: start_worker(tmp_path, cfg, n) for n in ("w1", "w2")}
+    msgs = traffic(MODELS, seed=5)
     stored: list[int] = []
     errors: list[str] = []
 
@@ -391,7 +410,13 @@ def test_cluster_r3_loses_nothing_when_a_server_and_a_worker_die_under_load(tmp_
 
     th = threading.Thread(target=lambda: asyncio.run(publisher()))
     try:
-        wait_for(lambda: all_held(urls[0], 4), 30, "two workers holding four partitions", workers["w1"].text)
+        wait_for(
+            lambda: "JetStream not ready" in workers["w1"].text(), 30, "w1 waiting for JetStream", workers["w1"].text
+        )
+        for srv in servers[1:]:
+            srv.start(wait=False)
+        wait_for(lambda: all_held(urls[0], 4), 90, "two workers holding four partitions", workers["w1"].text)
+        assert all(w.proc.poll() is None for w in workers.values())
         th.start()
         time.sleep(1.0)
         servers[1].kill()  # under load

@@ -28,6 +28,28 @@ from nats.js.kv import KeyValue
 from watchdog_edge.core.settings import JetStreamSettings
 from watchdog_edge.jetstream.subjects import Subjects, delivery
 
+# Refusals that a new or changing cluster gives until its leaders are elected and its peers
+# known; every other refusal (a 400 for a bad name, R3 on a single server, ...) needs a person.
+# The codes are nats-server's ``err_code`` values (from its errors.json; the cluster test meets
+# them on a cluster started a moment before the worker).
+WAIT_ERR_CODES = {
+    10005: "no suitable peers for placement",
+    10008: "JetStream system temporarily unavailable",
+    10023: "insufficient resources",
+}
+
+
+def worth_waiting(e: BaseException) -> bool:
+    """True for what a JetStream still electing its leaders answers; False for a refusal a person must fix."""
+    if isinstance(e, (asyncio.TimeoutError, nats.errors.NoRespondersError, nats.errors.ConnectionClosedError)):
+        return True
+    if isinstance(e, nats.errors.NoServersError):
+        return True
+    if isinstance(e, nats.js.errors.ServiceUnavailableError):  # 503: no JetStream leader to answer yet
+        return True
+    # a 500 can be for good (10074: replicas > 1 on a single server), so only the listed codes wait
+    return isinstance(e, nats.js.errors.APIError) and e.err_code in WAIT_ERR_CODES
+
 
 async def ensure_stream(js: JetStreamContext, config: StreamConfig) -> None:
     """Create the stream unless it exists (a worker never changes a stream someone else made)."""
@@ -36,8 +58,11 @@ async def ensure_stream(js: JetStreamContext, config: StreamConfig) -> None:
     except nats.js.errors.NotFoundError:
         try:
             await js.add_stream(config)
-        except nats.js.errors.BadRequestError:
-            await js.stream_info(config.name or "")  # made meanwhile by another worker: fine
+        except nats.js.errors.BadRequestError as refused:
+            try:
+                await js.stream_info(config.name or "")  # made meanwhile by another worker: fine
+            except nats.js.errors.NotFoundError:
+                raise refused from None  # not made: the refusal stands
 
 
 async def ensure_all(
@@ -95,8 +120,11 @@ async def ensure_all(
                 raise
             try:
                 buckets[role] = await js.create_key_value(bucket=name, history=1, ttl=ttl, replicas=s.replicas)
-            except nats.js.errors.BadRequestError:
-                buckets[role] = await js.key_value(name)
+            except nats.js.errors.BadRequestError as refused:
+                try:
+                    buckets[role] = await js.key_value(name)
+                except nats.js.errors.BucketNotFoundError:
+                    raise refused from None
     return buckets
 
 

@@ -60,7 +60,7 @@ from watchdog_edge.core.cards import ModelCard
 from watchdog_edge.core.events import Alert, DeadLetter, rfc3339
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import Config
-from watchdog_edge.jetstream.engine import PullFeed, ensure_all, start_consumer
+from watchdog_edge.jetstream.engine import PullFeed, ensure_all, start_consumer, worth_waiting
 from watchdog_edge.jetstream.subjects import Subjects, delivery, partition_of, topic_to_subject
 
 log = logging.getLogger("watchdog_edge.jetstream.worker")
@@ -90,6 +90,10 @@ def default_worker_id() -> str:
 
 class SnapshotTooLarge(Exception):
     """A partition's snapshot does not fit in one message of the server."""
+
+
+class StartRefused(Exception):
+    """The streams and buckets could not be made at start (a refusal, or not ready within the start timeout)."""
 
 
 class LostPartition(Exception):
@@ -151,11 +155,17 @@ class Worker:
 
     # --- connection -------------------------------------------------------------------------
     async def connect(self) -> None:
-        """Connect (NoServersError after ``jetstream.start_timeout_s``), make the streams and buckets if missing.
+        """Connect, make the streams and buckets if missing; NoServersError or StartRefused otherwise.
 
-        Once connected, the client reconnects for as long as it takes.
+        Both steps share ``jetstream.start_timeout_s``: a server that is up but whose JetStream
+        is still electing its leaders (a cluster started a moment ago) is asked again, with a
+        growing pause, until the timeout; a refusal that needs a person (a name the server
+        refuses, replicas it cannot place on one server) ends the start at once. A request under
+        way when the timeout passes may add up to 5 s. Once connected, the client reconnects for as long as it takes.
         """
         s = self.settings
+        loop = asyncio.get_running_loop()
+        deadline = loop.time() + s.start_timeout_s
         try:
             self.nc = await asyncio.wait_for(
                 nats.connect(
@@ -173,12 +183,35 @@ class Worker:
             )
         except asyncio.TimeoutError:
             raise nats.errors.NoServersError() from None
-        self.js = self.nc.jetstream(timeout=5)
         a = self.config.agent
-        self.buckets = await ensure_all(self.js, s, s.lease_s, a.dead_letter_max_count, a.dead_letter_max_bytes)
-        # lease calls wait at most a third of the lease: a slow one must not outlast the lease itself
-        self.lease_js = self.nc.jetstream(timeout=max(0.5, s.lease_s / 3))
-        self.buckets["leases"] = await self.lease_js.key_value(s.lease_bucket)
+        pause = 0.2
+        for attempt in range(1, 1_000_000):
+            self.js = self.nc.jetstream(timeout=5)  # the buckets keep it: no shorter timeout here
+            try:
+                self.buckets = await ensure_all(self.js, s, s.lease_s, a.dead_letter_max_count, a.dead_letter_max_bytes)
+                # lease calls wait at most a third of the lease: a slow one must not outlast the lease
+                self.lease_js = self.nc.jetstream(timeout=max(0.5, s.lease_s / 3))
+                self.buckets["leases"] = await self.lease_js.key_value(s.lease_bucket)
+                break
+            except Exception as e:
+                if not worth_waiting(e):
+                    raise StartRefused(f"the NATS server refused to make the streams or buckets: {e}") from None
+                left = deadline - loop.time()
+                if left <= 0:
+                    raise StartRefused(
+                        f"JetStream at {', '.join(s.servers)} was not ready within jetstream.start_timeout_s "
+                        f"({s.start_timeout_s} s; {attempt} tries; last: {type(e).__name__} {e}); raise the timeout for a cluster "
+                        "that takes longer to elect its leaders"
+                    ) from None
+                log.warning(
+                    "JetStream not ready to make the streams and buckets (%s); trying again in %.1f s "
+                    "(%.1f s of the start timeout left)",
+                    f"{type(e).__name__}: {e}" if str(e) else type(e).__name__,
+                    min(pause, left),
+                    left,
+                )
+                await asyncio.sleep(min(pause, left))
+                pause = min(2 * pause, 2.0)
 
     async def _on_error(self, e: Exception) -> None:
         now = time.monotonic()
