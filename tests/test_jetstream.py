@@ -129,6 +129,10 @@ def test_mappings_put_both_topics_of_a_model_on_its_partition_token():
     assert mappings(cfg) == {
         "site.*.pred": "wd.in.{{partition(6,1)}}.m.site.{{wildcard(1)}}.pred",
         "lab.*.truth": "wd.in.{{partition(6,1)}}.m.lab.{{wildcard(1)}}.truth",
+        # planned-work commands are not partitioned: every partition's holder reads them
+        "watchdog.agents.edge-agent.commands.planned-work": (
+            "wd.in.c.m.watchdog.agents.edge-agent.commands.planned-work"
+        ),
     }
 
 
@@ -327,6 +331,117 @@ def test_mqtt_gateway_traffic_gives_the_alerts_of_a_replay(tmp_path):
         rc = w.stop()
         srv.stop()
     assert rc == 0, w.text()
+
+
+COMMAND_TOPIC = "watchdog/agents/central/commands/planned-work"
+
+
+def with_commands(msgs: list[tuple[str, bytes]], plan: dict[int, dict]) -> list[tuple[str, bytes]]:
+    """``msgs`` with each planned-work command of ``plan`` put before the message at its index."""
+    out = list(msgs)
+    for i in sorted(plan, reverse=True):
+        out.insert(i, (COMMAND_TOPIC, json.dumps(plan[i]).encode()))
+    return out
+
+
+async def _worker_status(url: str, worker: str) -> dict:
+    nc = await nats.connect(url, connect_timeout=2)
+    try:
+        kv = await nc.jetstream().key_value("watchdog_leases")
+        return json.loads((await kv.get(f"w.{worker}")).value)
+    finally:
+        await nc.close()
+
+
+@pytest.mark.slow
+def test_planned_work_commands_reach_every_partition_survive_a_restart_and_equal_a_replay(tmp_path):
+    """Commands by MQTT and by NATS: held raises as in a replay, a worker killed inside a window, one dead letter."""
+    port = free_port()
+    cfg = write_setup(tmp_path, [f"nats://127.0.0.1:{port}"], MODELS)
+    srv = NatsServer(tmp_path / "srv", port=port, mappings=mappings_for(cfg))
+    assert len({partition_of(m, 4) for m in ("a", "c")}) == 2  # the window spans two partitions
+    plain = traffic(MODELS, seed=3)
+    plan = {
+        4: {"action": "begin", "name": "meter-calibration"},  # no duration: refused, one dead letter
+        40: {"action": "begin", "name": "meter-calibration", "duration_s": 86400, "models": ["a", "c"], "by": "t"},
+        110: {"action": "end", "name": "meter-calibration"},
+        170: {"action": "begin", "name": "plant-stop", "duration_s": 86400, "reason": "stop"},
+        200: {"action": "end", "name": "plant-stop"},
+    }
+    msgs = with_commands(plain, plan)
+    half = 80 + 2  # after the window for a and c began (two commands before it)
+    expected = replay_plain(cfg, msgs)
+    assert expected != replay_plain(cfg, plain), "the commands must change the alerts for this test to mean anything"
+    workers = {"w1": start_worker(tmp_path, cfg, "w1")}
+    try:
+        wait_for(lambda: all_held(srv.url, 4), 20, "the worker holding every partition", workers["w1"].text)
+        # the first half through the MQTT listener, as a gateway and an operator would send it
+        pub = paho.Client(paho.CallbackAPIVersion.VERSION2, client_id="gateway-1")
+        pub.connect("127.0.0.1", srv.mqtt_port)
+        pub.loop_start()
+        for topic, payload in msgs[:half]:
+            info = pub.publish(topic, payload, qos=1)
+            info.wait_for_publish(5)
+            assert info.is_published()
+        pub.loop_stop()
+        pub.disconnect()
+        wait_for(
+            lambda: (
+                [w["name"] for w in asyncio.run(_worker_status(srv.url, "w1"))["planned_work"]] == ["meter-calibration"]
+            ),
+            20,
+            "w1 showing the window begun",
+            workers["w1"].text,
+        )
+        workers["w1"].kill()  # inside the window: its successor must still hold a and c
+        workers["w2"] = start_worker(tmp_path, cfg, "w2")
+        wait_for(lambda: all_held(srv.url, 4, by={"w2"}), 20, "w2 holding every partition", workers["w2"].text)
+        publish_nats(srv.url, msgs[half:])  # the rest, the end commands too, on NATS subjects
+        n = sum(len(v) for v in expected.values())
+        wait_for(lambda: len(read_alerts(srv.url, cfg, 0.3)) >= n, 30, f"{n} alerts", workers["w2"].text)
+        time.sleep(1.0)
+        alerts = read_alerts(srv.url, cfg)
+        assert len({a["alert_id"] for a in alerts}) == len(alerts), "an alert raised twice"
+        assert {m: alert_keys(v) for m, v in by_model(alerts).items()} == expected
+        assert by_model(alerts) == replay_stream(srv.url, cfg)
+        notes = [a for a in alerts if "meter-calibration" in (a.get("note") or "")]
+        assert notes and {a["model"] for a in notes} <= {"a", "c"}
+        assert "planned work 'meter-calibration' ended" in workers["w2"].text()
+        assert "planned work 'plant-stop' began" in workers["w2"].text()
+
+        async def dead() -> list:
+            nc = await nats.connect(srv.url)
+            sub = await nc.jetstream().subscribe("wd.dead.>", stream="WATCHDOG_DEAD", ordered_consumer=True)
+            out = []
+            with contextlib.suppress(nats.errors.TimeoutError):
+                while True:
+                    out.append(await sub.next_msg(timeout=0.5))
+            await nc.close()
+            return out
+
+        letters = asyncio.run(dead())
+        assert [(m.headers["Wd-Reason"], m.headers["Wd-Topic"]) for m in letters] == [("bad_command", COMMAND_TOPIC)]
+
+        # the command line: export a's partition (the commands come with it) and replay it
+        p = partition_of("a", 4)
+        rec, out = tmp_path / "p.jsonl", tmp_path / "p-alerts.jsonl"
+        cli = [sys.executable, "-m", "watchdog_edge.cli.app"]
+        env = dict(os.environ, PYTHONPATH=str(REPO))
+        for args in (
+            ["jetstream", "export", "-c", str(cfg), "-o", str(rec), "--partition", str(p)],
+            ["replay", str(rec), "-c", str(cfg), "--alerts", str(out), "--quiet"],
+        ):
+            done = subprocess.run([*cli, *args], capture_output=True, text=True, env=env, timeout=60)
+            assert done.returncode == 0, done.stderr
+        assert COMMAND_TOPIC in rec.read_text()
+        mine = [m for m in MODELS if partition_of(m, 4) == p]
+        replayed = [json.loads(line) for line in out.read_text().splitlines()]
+        assert [a for a in replayed if a["model"] in mine] == [a for a in alerts if a["model"] in mine]
+    finally:
+        codes = {"w2": workers["w2"].stop()} if "w2" in workers else {}
+        workers["w1"].kill()
+        srv.stop()
+    assert codes == {"w2": 0}, workers["w2"].text()[-3000:]
 
 
 @pytest.mark.slow

@@ -6,8 +6,11 @@ Every call here is idempotent, so any number of workers may start at once.
 from __future__ import annotations
 
 import asyncio
+import base64
+import calendar
 import contextlib
 import json
+import time
 from collections.abc import AsyncIterator
 from dataclasses import dataclass
 from typing import Any
@@ -26,7 +29,7 @@ from nats.js.api import (
 from nats.js.kv import KeyValue
 
 from watchdog_edge.core.settings import JetStreamSettings
-from watchdog_edge.jetstream.subjects import Subjects, delivery
+from watchdog_edge.jetstream.subjects import COMMANDS, Subjects, delivery
 
 # Refusals that a new or changing cluster gives until its leaders are elected and its peers
 # known; every other refusal (a 400 for a bad name, R3 on a single server, ...) needs a person.
@@ -167,10 +170,51 @@ class InboundMessage:
     payload: bytes
 
 
+def rfc3339_ns(text: str) -> int:
+    """Unix nanoseconds of the server's RFC 3339 time (it gives nanoseconds; floats would lose them).
+
+    >>> rfc3339_ns("2026-12-02T17:16:40.843405263Z"), rfc3339_ns("1970-01-01T00:00:01.5+00:00")
+    (1796231800843405263, 1500000000)
+    """
+    body, offset = text, 0
+    if body.endswith("Z"):
+        body = body[:-1]
+    elif len(body) > 6 and body[-6] in "+-" and body[-3] == ":":
+        sign = 1 if body[-6] == "+" else -1
+        offset = sign * (int(body[-5:-3]) * 3600 + int(body[-2:]) * 60)
+        body = body[:-6]
+    whole, _, frac = body.partition(".")
+    seconds = calendar.timegm(time.strptime(whole, "%Y-%m-%dT%H:%M:%S")) - offset
+    return seconds * 1_000_000_000 + int((frac + "000000000")[:9])
+
+
+async def next_command(nc: Any, s: JetStreamSettings, from_seq: int, timeout: float = 5.0) -> InboundMessage | None:
+    """The first planned-work command stored at stream sequence ``from_seq`` or later; None when there is none.
+
+    One request to the stream (a message get by subject); stream sequences only grow, so a
+    "none" holds for every sequence the caller has already seen delivered.
+    """
+    subjects = Subjects(s.subject_prefix, s.partitions)
+    req = {"seq": from_seq, "next_by_subj": subjects.all_commands()}
+    resp = await nc.request(f"$JS.API.STREAM.MSG.GET.{s.input_stream}", json.dumps(req).encode(), timeout=timeout)
+    doc = json.loads(resp.data)
+    err = doc.get("error")
+    if err is not None:
+        if err.get("code") == 404:
+            return None
+        raise nats.js.errors.APIError(
+            code=err.get("code"), err_code=err.get("err_code"), description=err.get("description")
+        )
+    m = doc["message"]
+    p, topic = subjects.split(m["subject"])
+    data = base64.b64decode(m["data"]) if m.get("data") else b""
+    return InboundMessage(p, int(m["seq"]), rfc3339_ns(m["time"]) / 1e9, topic, data)
+
+
 async def read_input(
     js: JetStreamContext, s: JetStreamSettings, partition: int | None = None, idle_s: float = 1.0
 ) -> AsyncIterator[InboundMessage]:
-    """Every message of the input stream (or one partition) in stream order, up to the stream's last message now.
+    """Every message of the input stream (or one partition and the commands) in stream order, up to its last now.
 
     It also stops when none comes for ``idle_s``.
 
@@ -178,7 +222,9 @@ async def read_input(
         the workers' alerts.
     """
     subjects = Subjects(s.subject_prefix, s.partitions)
-    flt = subjects.all_inbound() if partition is None else subjects.partition_filter(partition)
+    # one partition's holder also reads the commands (subjects.py, rule 4); the server (2.9)
+    # takes one filter a consumer, so the others are skipped here
+    flt = subjects.all_inbound()
     last = (await js.stream_info(s.input_stream)).state.last_seq
     sub = await js.subscribe(flt, stream=s.input_stream, ordered_consumer=True, deliver_policy=DeliverPolicy.ALL)
     try:
@@ -189,7 +235,8 @@ async def read_input(
                 return
             d = delivery(msg.reply)
             p, topic = subjects.split(msg.subject)
-            yield InboundMessage(p, d.stream_seq, d.timestamp_ns / 1e9, topic, msg.data)
+            if partition is None or p == partition or p == COMMANDS:
+                yield InboundMessage(p, d.stream_seq, d.timestamp_ns / 1e9, topic, msg.data)
             if d.stream_seq >= last:
                 return
     finally:
