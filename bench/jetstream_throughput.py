@@ -9,7 +9,8 @@ mapping), and the consumers are let go (SIGCONT):
 - reference: a bare nats-py consumer in its own process that only fetches, decodes each
   payload (orjson) and acknowledges each message;
 - one worker, then two workers (processes of ``watchdog-edge jetstream run``), once every
-  partition is held, until every partition's consumer has nothing left to deliver.
+  partition is held, until every partition's consumer has nothing left to deliver and the
+  workers have finished what they pulled (their CPU time stops growing).
 
 Each is timed from SIGCONT until the last record is consumed.
 
@@ -199,6 +200,35 @@ class Probe:
         return True
 
 
+def cpu_ns(pid: int) -> int:
+    """CPU time of a process in nanoseconds (the scheduler's own count, finer than clock ticks)."""
+    return int(Path(f"/proc/{pid}/schedstat").read_text().split()[0])
+
+
+async def finished(probe: Probe, pids: list[int], t0: float, quiet_s: float = 0.5) -> float:
+    """Seconds from ``t0`` until the workers finished the records: every partition drained, and then
+    the last moment any worker was busy (over 2 ms of CPU in a 20 ms poll) before ``quiet_s`` of quiet.
+
+    Drained alone is not the end: the last pulled batches (up to ``fetch_batch_messages`` a
+    partition) are then still in the workers' hands.
+    """
+    last_busy = t0
+    prev = sum(cpu_ns(p) for p in pids)
+    drained = False
+    for k in range(30000):
+        await asyncio.sleep(0.02)
+        now = time.perf_counter()
+        cur = sum(cpu_ns(p) for p in pids)
+        if cur - prev > 2_000_000:
+            last_busy = now
+        prev = cur
+        if not drained and k % 5 == 0:
+            drained = await probe.drained("watchdog-p")
+        if drained and now - last_busy > quiet_s:
+            break
+    return last_busy - t0
+
+
 def cpu_s(pid: int) -> float:
     fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
     return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
@@ -215,7 +245,7 @@ def fresh(tmp: Path, name: str, args, lease_s: float = 8.0) -> tuple[NatsServer,
     port = free_port()
     folder = tmp / name
     models = [f"m{i}" for i in range(args.models)]
-    extra = "snapshot_every_messages = 5000\nfetch_batch_messages = 2000\n"  # the defaults
+    extra = "snapshot_every_messages = 5000\nfetch_batch_messages = 5000\n"  # the defaults
     cfg = write_setup(folder, [f"nats://127.0.0.1:{port}"], models, partitions=args.partitions, jetstream_extra="")
     text = cfg.read_text()
     text = (
@@ -252,11 +282,7 @@ def run_workers(tmp: Path, n: int, args, msgs, records: int | None = None, tag: 
             t0 = time.perf_counter()
             for w in workers:
                 os.kill(w.proc.pid, signal.SIGCONT)
-            for _ in range(6000):
-                if await probe.drained("watchdog-p"):
-                    break
-                await asyncio.sleep(0.05)
-            elapsed = time.perf_counter() - t0
+            elapsed = await finished(probe, [w.proc.pid for w in workers], t0)
             cpu = sum(cpu_s(w.proc.pid) for w in workers) - c0
             server_cpu = cpu_s(srv.proc.pid) - s0
             return {

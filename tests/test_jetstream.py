@@ -489,6 +489,38 @@ def test_killed_worker_partitions_are_taken_over_and_alerts_equal_a_replay(tmp_p
     assert "claimed" in workers["w1"].text() + workers["w3"].text()
 
 
+@pytest.mark.slow
+def test_a_single_server_killed_and_restarted_loses_nothing(tmp_path):
+    """The consumers' state is in the server's memory: after a restart the holder re-makes them from its snapshots."""
+    port = free_port()
+    cfg = write_setup(tmp_path, [f"nats://127.0.0.1:{port}"], MODELS)
+    srv = NatsServer(tmp_path / "srv", port=port, mappings=mappings_for(cfg), mqtt=False)
+    msgs = traffic(MODELS, seed=29)
+    w = start_worker(tmp_path, cfg, "w1")
+    try:
+        wait_for(lambda: all_held(srv.url, 4), 20, "the worker holding every partition", w.text)
+        half = len(msgs) // 2
+        publish_nats(srv.url, msgs[:half])
+        time.sleep(0.3)
+        srv.kill()
+        srv.start()
+        wait_for(lambda: publish_nats(srv.url, []) is None, 20, "the server back")
+        publish_nats(srv.url, msgs[half:])
+        expected = replay_plain(cfg, msgs)
+        n = sum(len(v) for v in expected.values())
+        wait_for(lambda: len(read_alerts(srv.url, cfg, 0.3)) >= n, 60, f"{n} alerts", w.text)
+        time.sleep(1.0)
+        alerts = read_alerts(srv.url, cfg)
+        assert len({a["alert_id"] for a in alerts}) == len(alerts), "an alert raised twice"
+        assert {m: alert_keys(v) for m, v in by_model(alerts).items()} == expected
+        assert by_model(alerts) == replay_stream(srv.url, cfg)
+        assert "resuming from its snapshot" in w.text()  # the consumers were re-made
+    finally:
+        rc = w.stop()
+        srv.stop()
+    assert rc == 0, w.text()[-3000:]
+
+
 # --- a three-server cluster ----------------------------------------------------------------
 @pytest.mark.slow
 def test_cluster_r3_loses_nothing_when_a_server_and_a_worker_die_under_load(tmp_path):
