@@ -1,4 +1,4 @@
-"""nats-server CPU per record for the partition consumers' settings, with a client that does only what a worker does to them.
+"""nats-server CPU per record for settings of the partition consumers, read as a worker reads them.
 
 The workers' own CPU per record hardly depends on these settings; the server's does. Here a
 client in this process pulls every partition with the workers' ``PullFeed`` (one pull request

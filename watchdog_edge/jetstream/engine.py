@@ -328,4 +328,4 @@ class PullFeed:
 
 
 class ConsumerGone(nats.errors.Error):
-    """The partition's consumer was deleted (another holder re-made it) or is served by no server: resume from the snapshot."""
+    """The partition's consumer was deleted (another holder re-made it) or nothing serves it: resume from the snapshot."""

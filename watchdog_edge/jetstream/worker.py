@@ -179,7 +179,8 @@ class Worker:
         is still electing its leaders (a cluster started a moment ago) is asked again, with a
         growing pause, until the timeout; a refusal that needs a person (a name the server
         refuses, replicas it cannot place on one server) ends the start at once. A request under
-        way when the timeout passes may add up to 5 s. Once connected, the client reconnects for as long as it takes.
+        way when the timeout passes may add up to 5 s. Once connected, the client reconnects for
+        as long as it takes.
         """
         s = self.settings
         loop = asyncio.get_running_loop()
@@ -218,8 +219,8 @@ class Worker:
                 if left <= 0:
                     raise StartRefused(
                         f"JetStream at {', '.join(s.servers)} was not ready within jetstream.start_timeout_s "
-                        f"({s.start_timeout_s} s; {attempt} tries; last: {type(e).__name__} {e}); raise the timeout for a cluster "
-                        "that takes longer to elect its leaders"
+                        f"({s.start_timeout_s} s; {attempt} tries; last: {type(e).__name__} {e}); raise the "
+                        "timeout for a cluster that takes longer to elect its leaders"
                     ) from None
                 log.warning(
                     "JetStream not ready to make the streams and buckets (%s); trying again in %.1f s "
