@@ -217,6 +217,48 @@ async def next_command(nc: Any, s: JetStreamSettings, from_seq: int, timeout: fl
     return InboundMessage(p, int(m["seq"]), rfc3339_ns(m["time"]) / 1e9, topic, data)
 
 
+class Commands:
+    """The planned-work commands of the input stream, read once for every partition a worker holds.
+
+    A message get by subject makes the server pass over every message from the sequence given
+    to the first command (about 0.16 ms of its CPU per 1,000 messages, measured on 2.9), so a
+    get per batch and partition would cost a scan of the backlog each time. Here the worker
+    keeps one stretch of sequences, ``known_from`` to ``known_to``, in which it holds every
+    command, and extends it only past its end: a "none" reaches the stream's last sequence,
+    asked just before, since a command stored later gets a higher sequence.
+    """
+
+    def __init__(self, nc: Any, js: JetStreamContext, s: JetStreamSettings) -> None:
+        self.nc, self.js, self.s = nc, js, s
+        self.known_from = 1
+        self.known_to = 0
+        self.found: list[InboundMessage] = []
+        self.lock = asyncio.Lock()
+        self.gets = 0  # message gets made (for the status counters)
+
+    async def between(self, after: int, before: int) -> list[InboundMessage]:
+        """The commands stored after sequence ``after`` and before ``before``, in stream order."""
+        async with self.lock:
+            if after + 1 < self.known_from:  # a partition resuming from an older snapshot: start again there
+                self.known_from, self.known_to, self.found = after + 1, after, []
+            while self.known_to < before - 1:
+                last = (await self.js.stream_info(self.s.input_stream)).state.last_seq
+                found = await next_command(self.nc, self.s, self.known_to + 1)
+                self.gets += 1
+                if found is None:
+                    self.known_to = max(before - 1, last)
+                    break
+                self.found.append(found)
+                self.known_to = found.seq
+            return [c for c in self.found if after < c.seq < before]
+
+    def forget_before(self, seq: int) -> None:
+        """Drop what no held partition needs any more (every one has fed past ``seq``)."""
+        if seq > self.known_from:
+            self.found = [c for c in self.found if c.seq >= seq]
+            self.known_from = min(seq, self.known_to + 1)
+
+
 async def read_input(
     js: JetStreamContext, s: JetStreamSettings, partition: int | None = None, idle_s: float = 1.0
 ) -> AsyncIterator[InboundMessage]:

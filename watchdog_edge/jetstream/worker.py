@@ -32,9 +32,10 @@ The rules of this file, in the order a partition meets them:
 6. Retained state per model goes to the state bucket after every alert, every planned-work
    window that begins or ends, and every ``agent.state_every_s``.
 7. Planned-work commands (subjects.py, rule 4) are in the input stream but in no partition's
-   consumer: before feeding a batch, the holder asks the stream for the commands stored
-   before the batch's last message (one message get a batch when there are none) and feeds
-   each at its place in stream order, with its stored time. Every partition thus meets every
+   consumer: before feeding a batch, the holder takes the commands stored before the batch's
+   last message from the worker's ``Commands`` (engine.py), which reads each stretch of the
+   stream once for all partitions, and feeds each at its place in stream order, with its
+   stored time. Every partition thus meets every
    command where a replay of the stream meets it; a command's dead letter has one id in all
    partitions (``c-<sequence>-<index>``), so the stream keeps it once. A command stored after
    a partition's last message is fed before the next tick (within ``agent.tick_every_s``).
@@ -68,10 +69,10 @@ from watchdog_edge.core.events import Alert, DeadLetter, PlannedWork, rfc3339
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import Config
 from watchdog_edge.jetstream.engine import (
+    Commands,
     InboundMessage,
     PullFeed,
     ensure_all,
-    next_command,
     start_consumer,
     worth_waiting,
 )
@@ -131,8 +132,6 @@ class Partition:
     release: bool = False  # hand back: final snapshot, ack, delete the lease
     claimed_at: float = field(default_factory=time.monotonic)
     last_msg: Any = None  # the last message fed: acknowledging it covers every one before it
-    commands: list[InboundMessage] = field(default_factory=list)  # read from the stream, not yet fed
-    commands_known: int = 0  # every command up to this stream sequence is fed or in ``commands``
 
 
 class Worker:
@@ -148,6 +147,7 @@ class Worker:
         self.nc: NATS | None = None
         self.js: JetStreamContext | None = None
         self.lease_js: JetStreamContext | None = None
+        self.commands: Commands | None = None
         self.buckets: dict[str, KeyValue] = {}
         self.mqtt_alert_subjects = {
             m.id: topic_to_subject(config.broker.topics.alerts.format(model=m.id, agent=config.agent.name))
@@ -206,6 +206,7 @@ class Worker:
         pause = 0.2
         for attempt in range(1, 1_000_000):
             self.js = self.nc.jetstream(timeout=5)  # the buckets keep it: no shorter timeout here
+            self.commands = Commands(self.nc, self.js, s)
             try:
                 self.buckets = await ensure_all(self.js, s, s.lease_s, a.dead_letter_max_count, a.dead_letter_max_bytes)
                 # lease calls wait at most a third of the lease: a slow one must not outlast the lease
@@ -350,7 +351,6 @@ class Worker:
         else:
             part.monitor = Monitor(cfg, cards, every)
             part.applied = part.snapshotted = 0
-        part.commands, part.commands_known = [], part.applied
         try:
             mark = await snaps.get(f"p.{p}.mark")
             part.mark = int(mark.value or b"0")
@@ -493,17 +493,12 @@ class Worker:
                 planned.append(ev)
 
     async def _commands_before(self, part: Partition, seq: int) -> list[InboundMessage]:
-        """The planned-work commands not yet fed with stream sequences below ``seq`` (asks the stream when needed)."""
-        while part.commands_known < seq:
-            found = await next_command(self.nc, self.settings, max(part.applied, part.commands_known) + 1)
-            if found is None:  # none up to the stream's end, which is past ``seq`` (it was delivered)
-                part.commands_known = seq
-                break
-            part.commands.append(found)
-            part.commands_known = found.seq
-        take = [c for c in part.commands if c.seq < seq]
-        part.commands = [c for c in part.commands if c.seq >= seq]
-        return take
+        """The planned-work commands stored after what the partition has fed and before ``seq``."""
+        assert self.commands is not None
+        held = [q.applied for q in self.held.values() if q.monitor is not None]
+        if held:
+            self.commands.forget_before(min(held) + 1)
+        return await self.commands.between(part.applied, seq)
 
     async def _planned_work(self, part: Partition, events: list[PlannedWork]) -> None:
         """Log a window beginning or ending (once a worker, not once a partition); retained state of its models."""
@@ -636,6 +631,7 @@ class Worker:
             "uptime_s": round(time.time() - self.started, 3),
             "partitions": sorted(self.held),
             "planned_work": self._windows(),
+            "command_lookups": self.commands.gets if self.commands is not None else 0,
             **self.counters,
         }
 
