@@ -245,7 +245,7 @@ def fresh(tmp: Path, name: str, args, lease_s: float = 8.0) -> tuple[NatsServer,
     port = free_port()
     folder = tmp / name
     models = [f"m{i}" for i in range(args.models)]
-    extra = "snapshot_every_messages = 5000\nfetch_batch_messages = 5000\n"  # the defaults
+    extra = "snapshot_every_messages = 5000\n"  # the default; fetch_batch_messages too is left at its default
     cfg = write_setup(folder, [f"nats://127.0.0.1:{port}"], models, partitions=args.partitions, jetstream_extra="")
     text = cfg.read_text()
     text = (
