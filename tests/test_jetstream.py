@@ -205,11 +205,23 @@ def test_a_refusal_that_needs_a_person_exits_3_at_once(tmp_path):
         w = start_worker(tmp_path, cfg, "w1")
         assert w.proc.wait(timeout=60) == 3
         took = time.monotonic() - t0
+        # a stream of the workers' name made by someone else for other subjects
+        cfg.write_text(cfg.read_text().replace("replicas = 3", "replicas = 1"))
+
+        async def other_stream() -> None:
+            nc = await nats.connect(srv.url)
+            await nc.jetstream().add_stream(name="WATCHDOG_IN", subjects=["elsewhere.>"])
+            await nc.close()
+
+        asyncio.run(other_stream())
+        w2 = start_worker(tmp_path, cfg, "w2")
+        assert w2.proc.wait(timeout=60) == 3
     finally:
         srv.stop()
-    assert w.stop() == 3
+    assert w.stop() == 3 and w2.stop() == 3
     assert "replicas > 1 not supported in non-clustered mode" in w.text(), w.text()
     assert took < 60 and "JetStream not ready" not in w.text()
+    assert "stream WATCHDOG_IN exists with subjects ['elsewhere.>'], without ['wd.in.>']" in w2.text(), w2.text()
 
 
 def test_server_partition_function_is_ours(tmp_path):

@@ -54,10 +54,23 @@ def worth_waiting(e: BaseException) -> bool:
     return isinstance(e, nats.js.errors.APIError) and e.err_code in WAIT_ERR_CODES
 
 
+class StreamMismatch(Exception):
+    """A stream of the workers' name exists but does not take their subjects: a person must settle it."""
+
+
 async def ensure_stream(js: JetStreamContext, config: StreamConfig) -> None:
-    """Create the stream unless it exists (a worker never changes a stream someone else made)."""
+    """Create the stream unless it exists (a worker never changes a stream someone else made).
+
+    An existing stream must take the workers' subjects; StreamMismatch otherwise.
+    """
     try:
-        await js.stream_info(config.name or "")
+        info = await js.stream_info(config.name or "")
+        missing = [x for x in config.subjects or [] if x not in (info.config.subjects or [])]
+        if missing:
+            raise StreamMismatch(
+                f"stream {config.name} exists with subjects {info.config.subjects}, without {missing}, which "
+                "the workers need; give the workers another stream name in [jetstream] or fix the stream"
+            )
     except nats.js.errors.NotFoundError:
         try:
             await js.add_stream(config)

@@ -215,7 +215,7 @@ class Worker:
                 break
             except Exception as e:
                 if not worth_waiting(e):
-                    raise StartRefused(f"the NATS server refused to make the streams or buckets: {e}") from None
+                    raise StartRefused(f"cannot make or use the streams and buckets: {e}") from None
                 left = deadline - loop.time()
                 if left <= 0:
                     raise StartRefused(
