@@ -10,6 +10,7 @@ import base64
 import calendar
 import contextlib
 import json
+import math
 import time
 from collections.abc import AsyncIterator
 from dataclasses import dataclass
@@ -238,11 +239,16 @@ class Commands:
     get per batch and partition would cost a scan of the backlog each time. Here the worker
     keeps one stretch of sequences, ``known_from`` to ``known_to``, in which it holds every
     command, and extends it only past its end: a "none" reaches the stream's last sequence,
-    asked just before, since a command stored later gets a higher sequence.
+    asked just before, since a command stored later gets a higher sequence. With traffic
+    flowing, nearly every batch passes the end, so the stretch is extended at most every
+    ``gap_s``: a partition then waits that long at most, and the server answers at most
+    two requests per ``gap_s`` per worker whatever the rate.
     """
 
-    def __init__(self, nc: Any, js: JetStreamContext, s: JetStreamSettings) -> None:
+    def __init__(self, nc: Any, js: JetStreamContext, s: JetStreamSettings, gap_s: float = 0.05) -> None:
         self.nc, self.js, self.s = nc, js, s
+        self.gap_s = gap_s
+        self.asked_at = -math.inf
         self.known_from = 1
         self.known_to = 0
         self.found: list[InboundMessage] = []
@@ -255,6 +261,10 @@ class Commands:
             if after + 1 < self.known_from:  # a partition resuming from an older snapshot: start again there
                 self.known_from, self.known_to, self.found = after + 1, after, []
             while self.known_to < before - 1:
+                wait = self.asked_at + self.gap_s - asyncio.get_running_loop().time()
+                if wait > 0:
+                    await asyncio.sleep(wait)
+                self.asked_at = asyncio.get_running_loop().time()
                 last = (await self.js.stream_info(self.s.input_stream)).state.last_seq
                 found = await next_command(self.nc, self.s, self.known_to + 1)
                 self.gets += 1
