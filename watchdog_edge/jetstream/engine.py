@@ -393,4 +393,4 @@ class PullFeed:
 
 
 class ConsumerGone(nats.errors.Error):
-    """The partition's consumer was deleted (another holder re-made it) or nothing serves it: resume from the snapshot."""
+    """The consumer was deleted (another holder re-made it) or nothing serves it: resume from the snapshot."""
