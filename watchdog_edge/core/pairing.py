@@ -247,30 +247,47 @@ class Pairer:
             return
         # "expired" is t + horizon < now, the very sum that ``due`` holds: written as
         # t < now - horizon it could differ from ``due`` in the last bit
+        # Runs for most records of a steady stream (each one moves ``due``): a queue is only
+        # walked when its front has expired, and the new ``due`` is taken on the way.
         h = self.horizon_s
+        first = math.inf
         for store, q, key in self._expiring:
-            ids, ts, i, end = q.ids, q.ts, q.head, len(q.ts)
-            n = 0
+            ts = q.ts
+            i, end = q.head, len(ts)
+            if i < end and ts[i] + h < now:
+                ids = q.ids
+                n = 0
+                while i < end and ts[i] + h < now:
+                    rid = ids[i]
+                    rec = store.get(rid)
+                    if rec is not None and rec[2] == ts[i]:  # else it paired, or was evicted, already
+                        del store[rid]
+                        n += 1
+                    i += 1
+                q.head = i
+                q.cut()
+                i = q.head
+                end = len(ts)
+                if n:
+                    self.counts[key] += n
+            if i < end and ts[i] < first:
+                first = ts[i]
+        q = self._done_q
+        ts = q.ts
+        i, end = q.head, len(ts)
+        if i < end and ts[i] + h < now:
+            preds, ids = self._preds, q.ids
             while i < end and ts[i] + h < now:
-                rid = ids[i]
-                rec = store.get(rid)
-                if rec is not None and rec[2] == ts[i]:  # else it paired, or was evicted, already
-                    del store[rid]
-                    n += 1
+                del preds[ids[i]]
                 i += 1
+            self._done -= i - q.head
             q.head = i
             q.cut()
-            if n:
-                self.counts[key] += n
-        preds, q = self._preds, self._done_q
-        ids, ts, i, end = q.ids, q.ts, q.head, len(q.ts)
-        while i < end and ts[i] + h < now:
-            del preds[ids[i]]
-            i += 1
-        self._done -= i - q.head
-        q.head = i
-        q.cut()
-        self._set_due()
+            i = q.head
+            end = len(ts)
+        if i < end and ts[i] < first:
+            first = ts[i]
+        self.due = first + h
 
     def _set_due(self) -> None:
         first = math.inf
