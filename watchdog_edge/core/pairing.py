@@ -138,6 +138,11 @@ class Pairer:
         )
         self.counts = dict.fromkeys(COUNTERS, 0)
         self.due = float("inf")  # no record can expire before this core time
+        # bound appends of the queues, for the per-record path (the queues are only ever
+        # changed in place, so these stay theirs)
+        self._pred_add = (self._pred_q.ids.append, self._pred_q.ts.append)
+        self._truth_add = (self._truth_q.ids.append, self._truth_q.ts.append)
+        self._done_add = (self._done_q.ids.append, self._done_q.ts.append)
 
     @property
     def pending(self) -> int:
@@ -147,27 +152,30 @@ class Pairer:
         """Store a prediction, or pair it with a waiting truth."""
         self.counts["predictions"] += 1
         pid = p.id
-        if pid in self._preds:  # waiting, or PAIRED
+        preds = self._preds
+        if pid in preds:  # waiting, or PAIRED
             self.counts["duplicate_predictions"] += 1
             return None
-        truth = self._truths.pop(pid, None)
-        if truth is not None:
-            return self._pair(pid, p, _truth(truth, self.model), p.t)
+        truths = self._truths
+        if truths:  # mostly empty: truths come after their predictions
+            truth = truths.pop(pid, None)
+            if truth is not None:
+                return self._pair(pid, p, _truth(truth, self.model), p.t)
         # _fields(p) written out: this runs for every prediction
         t = p.t
-        model = p.model
-        if self.model is None:
-            self.model = model
-        if p.ts is None and not p.features and p.model_version is None and model == self.model:
-            self._preds[pid] = (pid, p.value, t)
+        if p.ts is None and p.model_version is None and not p.features and p.model == self.model:
+            preds[pid] = (pid, p.value, t)
         else:
-            self._preds[pid] = (pid, p.value, t, p.ts, p.features or None, p.model_version, model)
-        q = self._pred_q
-        q.ids.append(pid)
-        q.ts.append(t)
-        if t + self.horizon_s < self.due:
-            self.due = t + self.horizon_s
-        if len(self._preds) - self._done + len(self._truths) > self.max_unpaired:
+            if self.model is None:
+                self.model = p.model
+            preds[pid] = (pid, p.value, t, p.ts, p.features or None, p.model_version, p.model)
+        add_id, add_t = self._pred_add
+        add_id(pid)
+        add_t(t)
+        end = t + self.horizon_s
+        if end < self.due:
+            self.due = end
+        if len(preds) - self._done + len(truths) > self.max_unpaired:
             self._cap()
         return None
 
@@ -182,17 +190,18 @@ class Pairer:
         if pred is not None:
             return self._pair(pred[0], _prediction(pred, self.model), tr, tr.t)
         t = tr.t
-        model = tr.model
-        if self.model is None:
-            self.model = model
-        self._truths[tid] = (
-            (tid, tr.value, t) if tr.ts is None and model == self.model else (tid, tr.value, t, tr.ts, model)
-        )
-        q = self._truth_q
-        q.ids.append(tid)
-        q.ts.append(t)
-        if t + self.horizon_s < self.due:
-            self.due = t + self.horizon_s
+        if tr.ts is None and tr.model == self.model:
+            self._truths[tid] = (tid, tr.value, t)
+        else:
+            if self.model is None:
+                self.model = tr.model
+            self._truths[tid] = (tid, tr.value, t, tr.ts, tr.model)
+        add_id, add_t = self._truth_add
+        add_id(tid)
+        add_t(t)
+        end = t + self.horizon_s
+        if end < self.due:
+            self.due = end
         if len(self._preds) - self._done + len(self._truths) > self.max_unpaired:
             self._cap()
         return None
@@ -201,12 +210,14 @@ class Pairer:
         self.counts["paired"] += 1
         self._preds[pid] = PAIRED  # in place of the waiting prediction, if any: its key stays
         self._done += 1
-        q = self._done_q
-        q.ids.append(pid)
-        q.ts.append(t)
-        if t + self.horizon_s < self.due:
-            self.due = t + self.horizon_s
+        add_id, add_t = self._done_add
+        add_id(pid)
+        add_t(t)
+        end = t + self.horizon_s
+        if end < self.due:
+            self.due = end
         if self._done > self.max_unpaired:
+            q = self._done_q
             del self._preds[q.ids[q.head]]
             self._done -= 1
             q.head += 1
@@ -257,21 +268,26 @@ class Pairer:
             if i < end and ts[i] + h < now:
                 ids = q.ids
                 n = 0
-                while i < end and ts[i] + h < now:
+                while i < end:
+                    ti = ts[i]  # read once: each read of an array of doubles makes a float
+                    if not ti + h < now:
+                        break
                     rid = ids[i]
                     rec = store.get(rid)
-                    if rec is not None and rec[2] == ts[i]:  # else it paired, or was evicted, already
+                    if rec is not None and rec[2] == ti:  # else it paired, or was evicted, already
                         del store[rid]
                         n += 1
                     i += 1
                 q.head = i
-                q.cut()
-                i = q.head
-                end = len(ts)
+                if i >= _CUT_AT or i * 2 >= end:  # cut()'s test, written out: most calls cut nothing
+                    q.cut()
+                    i, end = q.head, len(ts)
                 if n:
                     self.counts[key] += n
-            if i < end and ts[i] < first:
-                first = ts[i]
+            if i < end:
+                ti = ts[i]
+                if ti < first:
+                    first = ti
         q = self._done_q
         ts = q.ts
         i, end = q.head, len(ts)
@@ -282,11 +298,13 @@ class Pairer:
                 i += 1
             self._done -= i - q.head
             q.head = i
-            q.cut()
-            i = q.head
-            end = len(ts)
-        if i < end and ts[i] < first:
-            first = ts[i]
+            if i >= _CUT_AT or i * 2 >= end:
+                q.cut()
+                i, end = q.head, len(ts)
+        if i < end:
+            ti = ts[i]
+            if ti < first:
+                first = ti
         self.due = first + h
 
     def _set_due(self) -> None:
