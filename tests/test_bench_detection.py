@@ -18,7 +18,8 @@ def test_the_detection_table_has_a_row_per_check_and_reference():
         "range",
         "shift",
         "baseline",
-        "shift, short window 250",
+        "shift, short window on all features",
+        "shift, whole window only",
         "raw ADWIN",
         "rolling mean",
     ]

@@ -4,19 +4,17 @@ Each pair's loss is divided by the card's expected loss and clipped at ``clip``,
 detector's settings do not depend on the target's units and one wild truth cannot dominate.
 The detector is fed the means of blocks of ``block_pairs`` consecutive ratios. Both detectors
 take their inputs as independent; field errors are autocorrelated, and raw ADWIN raised 4 and
-87 times in 50,000 stationary pairs at AR(1) coefficients 0.5 and 0.9. Means over blocks a few
-times longer than the losses' integrated autocorrelation time are nearly independent, keep the
+87 times in 50,000 stationary pairs at AR(1) coefficients 0.5 and 0.9. Means over blocks long
+enough to hold most of the losses' long-run variance are nearly independent, keep the
 detector's own variance estimate honest, and cost about a block of delay. Prewhitening the
 stream instead would feed the detector innovations, in which a lasting rise of the level shows
-only as a short blip. With ``block_pairs = 0`` (the default) the block is chosen from the first
-``min_pairs`` pairs, and again from the first ``calibration_pairs`` (500) if it then comes out
-otherwise: 1 when their lag-1 autocorrelation is not significant (above 2 / sqrt(n), common
-practice), so independent losses are watched exactly as raw ADWIN watches them; otherwise twice
-the integrated autocorrelation time (the prewhitened long-run variance over the variance; the
-factor 2 is our choice, measured in bench/gap_drift_quality.py: 1.5 and 3 gave as few false
-alerts, 3 a slower detection), at most 64 pairs. Page-Hinkley sums deviations, and block means
-do not change a sum's variance: it is fed pair by pair with its threshold multiplied by the
-integrated autocorrelation time (half the block) instead.
+only as a short blip. With ``block_pairs = 0`` (the default) the block is chosen by
+``choose_block`` after ``min_pairs``, 500 and ``calibration_pairs`` (2,000) pairs since the
+detector's latest start, and from autocorrelations summed over the whole level after 8,000,
+32,000 ... pairs (``_long_accumulate``); each time only from more pairs than the block in force
+came from. Page-Hinkley sums deviations, and block means do not change a sum's variance: it
+is fed pair by pair with its threshold multiplied by half the block (about the integrated
+autocorrelation time) instead.
 
 When the detector reports a change, the change point is estimated on the segment the detector
 itself was looking at (river's detectors start afresh after each detection, so the pairs since
@@ -120,7 +118,10 @@ class DriftSettings(CheckSettings):
         description="Pairs per block mean fed to the detector; 0 chooses it from the first calibration_pairs pairs.",
     )
     calibration_pairs: int = Field(
-        500, ge=50, le=100_000, description="Pairs looked at to choose block_pairs when it is 0."
+        2000,
+        ge=50,
+        le=100_000,
+        description="Pairs looked at to choose block_pairs when it is 0 (at most history_pairs are kept).",
     )
     history_pairs: int = Field(
         2000,
@@ -131,12 +132,73 @@ class DriftSettings(CheckSettings):
 
 
 _MAX_BLOCK = 64
-_TAU_FACTOR = 2.0  # blocks of this many integrated autocorrelation times (measured in bench)
+_TAU_FACTOR = 2.0  # blocks of this many prewhitened integrated autocorrelation times (see choose_block)
+_BLOCK_SHARE = 0.75  # share of the long-run variance a block's mean must hold (see choose_block)
+_LAGS = 64  # autocorrelations accumulated over a long level, lags 1 .. this
+_LONG_FIRST = 8000  # pairs of one level before the accumulated autocorrelations choose the block
+_SOKAL_C = 5.0  # Sokal's window: the first lag M with M >= 5 x the time summed up to M
+
+
+def autocorrelations(x: np.ndarray) -> np.ndarray:
+    """Sample autocorrelations of ``x`` at lags 0 .. n - 1 (sums over n - k pairs, divided by n
+    times the variance: the usual biased estimate, statsmodels' ``acf``), by FFT.
+
+    >>> autocorrelations(np.array([1.0, 2.0, 3.0, 4.0]))[:2].round(2).tolist()
+    [1.0, 0.25]
+    """
+    n = x.size
+    z = x - x.mean()
+    f = np.fft.rfft(z, 2 * n)
+    acov = np.fft.irfft(f * np.conj(f), 2 * n)[:n]
+    return acov / acov[0] if acov[0] > 0 else np.r_[1.0, np.zeros(n - 1)]
+
+
+def windowed_time(x: np.ndarray) -> tuple[float, int]:
+    """Integrated autocorrelation time 1 + 2 (rho_1 + ... + rho_M) with Sokal's automatic window
+    (the first M with M >= 5 x the time up to M; Sokal 1997, also emcee's ``integrated_time``;
+    from memory), and M.
+
+    An AR(1) series with coefficient 0.5 has the time (1 + 0.5) / (1 - 0.5) = 3:
+
+    >>> x = np.zeros(20_000)
+    >>> e = np.random.default_rng(0).normal(size=x.size)
+    >>> for i in range(1, x.size):
+    ...     x[i] = 0.5 * x[i - 1] + e[i]
+    >>> round(windowed_time(x)[0])
+    3
+    """
+    return _windowed(autocorrelations(x))
+
+
+def _windowed(rho: np.ndarray) -> tuple[float, int]:
+    taus = 2.0 * np.cumsum(rho) - 1.0
+    lags = np.arange(taus.size)
+    ok = lags >= _SOKAL_C * taus
+    m = int(np.argmax(ok)) if bool(ok.any()) else taus.size - 1
+    return float(taus[m]), m
 
 
 def choose_block(ratios: np.ndarray) -> int:
-    """Pairs per block: 1 for losses without significant lag-1 autocorrelation, else 2 x their
-    integrated autocorrelation time (long-run variance over variance), at most 64.
+    """Pairs per block: 1 for losses without significant autocorrelation, else the larger of
+    two choices, at most 64.
+
+    - 2 x the prewhitened integrated autocorrelation time (long-run variance over variance),
+      when the lag-1 autocorrelation is above 2 / sqrt(n) (common practice); the factor 2 is
+      our choice, measured in bench/gap_drift_quality.py (1.5 and 3 gave as few false alerts
+      on AR(1) losses, 3 a slower detection; 1.5 more false alerts on the streams of
+      bench/detection_quality.py);
+    - the shortest block b whose mean holds ``_BLOCK_SHARE`` (3/4) of the long-run variance,
+      1 + 2 sum_k (1 - k / b) rho_k >= 3/4 x Sokal's windowed time, when that time is above 1
+      by twice its standard deviation under independence, 2 sqrt(M / n) (each
+      autocorrelation has variance about 1 / n); the means of such blocks have an integrated
+      time of at most about 4/3. For a geometric autocorrelation this is about 2 x the time.
+
+    The first alone missed losses where an independent part (the error of the model's own
+    coefficients on new inputs, large with a small card) dilutes an autocorrelation that
+    lasts: lag 1 near 0.17, not significant on 100 or 500 pairs, but a time of 2.5 (squared
+    AR(1) 0.9 errors, a 30-row, 20-feature card): blocks of 1 and 46 false alerts in 100,000
+    pairs. And 2 x that diluted time is too short a block: the memory is as long as the
+    undiluted noise's, which the share rule sees.
 
     >>> choose_block(np.random.default_rng(0).chisquare(1, 500))
     1
@@ -146,11 +208,31 @@ def choose_block(ratios: np.ndarray) -> int:
     var = float(np.dot(z, z)) / n
     if n < 3 or var <= 0.0:
         return 1
+    block = 1
     rho1 = float(np.dot(z[1:], z[:-1])) / n / var
-    if rho1 <= 2.0 / math.sqrt(n):
-        return 1
-    tau = prewhitened_long_run_variance(ratios) / var
-    return int(min(_MAX_BLOCK, max(2, math.ceil(_TAU_FACTOR * tau))))
+    if rho1 > 2.0 / math.sqrt(n):
+        block = math.ceil(_TAU_FACTOR * prewhitened_long_run_variance(ratios) / var)
+    return max(block, block_from_autocorrelations(autocorrelations(ratios), n))
+
+
+def block_from_autocorrelations(rho: np.ndarray, n: int) -> int:
+    """The block of Sokal's windowed time alone (``choose_block``), from autocorrelations
+    ``rho`` estimated on ``n`` values; 1 where that time is not significant.
+
+    >>> block_from_autocorrelations(0.5 ** np.arange(200), 10_000)  # time 3
+    6
+    """
+    block = 1
+    sokal, m = _windowed(rho)
+    if sokal - 1.0 > 4.0 * math.sqrt(max(m, 1) / n):
+        # the shortest block whose mean holds _BLOCK_SHARE of the windowed long-run variance
+        r = rho[1 : m + 1]
+        k = np.arange(1, m + 1)
+        for b in range(2, _MAX_BLOCK + 1):
+            if 1.0 + 2.0 * float(np.dot(np.clip(1.0 - k / b, 0.0, None), r)) >= _BLOCK_SHARE * sokal:
+                break
+        block = max(block, b)
+    return int(min(_MAX_BLOCK, max(1, block)))
 
 
 def _detector(settings: DriftSettings, block: int = 1) -> Any:
@@ -234,10 +316,13 @@ class DriftCheck(Check[DriftSettings]):
         self._chosen = s.block_pairs  # 0 until chosen from the first calibration_pairs pairs
         self._block = s.block_pairs if s.detector == "adwin" else min(1, s.block_pairs)  # pairs per input
         self._auto = s.block_pairs == 0
-        first = min(self.min_pairs, s.calibration_pairs, s.history_pairs)
-        self._calibrate_at = {first, min(s.calibration_pairs, s.history_pairs)} if self._auto else set()
-        self._quiet = False
+        last = min(s.calibration_pairs, s.history_pairs)
+        first = min(self.min_pairs, last)
+        self._calibrate_at = {first, max(first, last // 4), last} if self._auto else set()
+        self._chosen_from = 0  # pairs the block in force was chosen from
         self._detector = _detector(s, max(1, self._chosen))
+        self._chunk = max(1, min(1000, s.history_pairs - _LAGS))
+        self._long_reset(0)
         self._acc = 0.0  # sum of the ratios of the block being filled
         self._acc_n = 0
         self._win_sum = 0.0  # sum and count of the detector's inputs since its window began
@@ -265,8 +350,10 @@ class DriftCheck(Check[DriftSettings]):
         if self._rule.level != "normal":  # only a raised drift needs the loss since its change
             self._since_change.push(pair.t, loss)
             self._since_eval += 1
-        if self._auto and seq + 1 in self._calibrate_at and self._calibrate(pair.t, first=self._chosen == 0):
+        if self._auto and self._calibration_due(seq) and self._calibrate(pair.t):
             return self._pending or self._rule.level != "normal"  # the new detector has had this pair
+        if self._auto and seq + 1 - self._long_upto >= self._chunk and self._long_accumulate(pair.t):
+            return self._pending or self._rule.level != "normal"
         if self._block == 0:
             return self._pending or self._rule.level != "normal"
         if self._block == 1:
@@ -280,30 +367,96 @@ class DriftCheck(Check[DriftSettings]):
                 self._acc_n = 0
         return self._pending or self._rule.level != "normal"  # else evaluate has nothing to say
 
-    def _calibrate(self, t: float, first: bool) -> bool:
-        """Choose the block from the pairs so far and feed them to a new detector.
+    def _calibration_due(self, seq: int) -> bool:
+        """Whether the pairs since the detector's latest start have just reached a calibration
+        point that is more than the block in force was chosen from."""
+        n = seq + 1 - self._segment_start
+        return n > self._chosen_from and n in self._calibrate_at
 
-        The first time (after ``min_pairs``, at most ``calibration_pairs``) what the detector
-        finds in them is raised as usual; the second time (after ``calibration_pairs``, when
-        the block changed) the new detector is only brought up to date, silently."""
-        ratios = np.fromiter((h[4] for h in self._history), dtype=float, count=len(self._history))
+    def _calibrate(self, t: float) -> bool:
+        """Choose the block from the pairs since the detector's latest start and feed them to
+        a new detector.
+
+        Done after ``min_pairs`` pairs, again after a quarter of ``calibration_pairs`` and after
+        all of them (at most ``history_pairs``): an estimate from 500 pairs of strongly
+        autocorrelated losses still came out too small in a good share of streams, and the one
+        from 2,000 is about twice as precise. Only the pairs since the detector's latest
+        detection are used (at least ``min_pairs`` of them, else the block stays): they are
+        the ones it holds as one level, a level shift inside them would pass for a long
+        memory, and the new detector finds in them only changes the old one has not reported,
+        handled as usual. Re-choosing only until a first raise kept blocks of 1 chosen from
+        100 pairs on autocorrelated losses where that first raise was itself a false one."""
+        seg = [h for h in self._history if h[0] >= self._segment_start]
+        ratios = np.fromiter((h[4] for h in seg), dtype=float, count=len(seg))
+        self._chosen_from = len(seg)
         block = choose_block(ratios)
-        if not first and block == self._chosen:
+        if block == self._chosen:
             return False
+        self._refeed(block, t)
+        return True
+
+    def _refeed(self, block: int, t: float) -> None:
+        """A new detector with ``block``, fed the pairs since the latest detection."""
+        seg = [h for h in self._history if h[0] >= self._segment_start]
+        ratios = np.fromiter((h[4] for h in seg), dtype=float, count=len(seg))
         self._chosen = block
         self._detector = _detector(self.settings, block)
         if self.settings.detector != "adwin":
             block = 1
         self._block = block
         self._win_sum, self._win_n = 0.0, 0
-        self._quiet = not first
         b = block
-        for k in range(0, len(self._history) - len(self._history) % b, b):
-            self._feed(float(ratios[k : k + b].mean()), self._history[k + b - 1][0], t)
-        self._quiet = False
-        rest = len(self._history) % b
+        for k in range(0, len(seg) - len(seg) % b, b):
+            self._feed(float(ratios[k : k + b].mean()), seg[k + b - 1][0], t)
+        rest = len(seg) % b
         self._acc = float(ratios[len(ratios) - rest :].sum()) if rest else 0.0
         self._acc_n = rest
+
+    def _long_reset(self, start: int) -> None:
+        """Start accumulating autocorrelations afresh at pair ``start`` (a detection)."""
+        self._long_start = start  # first pair of the level
+        self._long_upto = start  # pairs before this one are accumulated
+        self._long_n = 0
+        self._long_sum = 0.0
+        self._long_prod = np.zeros(_LAGS + 1)  # sums of x_t x_(t-k), k = 0 .. _LAGS
+        self._long_next = _LONG_FIRST
+
+    def _long_accumulate(self, t: float) -> bool:
+        """Add the pairs since the last call to the sums behind the autocorrelations of the
+        level since the detector's latest start, and choose the block from them after 8,000,
+        32,000, 128,000 ... pairs: the 2,000 pairs of the last calibration leave a weak but
+        lasting autocorrelation uncertain (a lag-1 value of 0.07 was estimated anywhere from
+        0.01 to 0.11), and a level that lasts gives far more. True when the block changed."""
+        lo = max(self._long_start, self._long_upto - _LAGS)
+        seg = [h[4] for h in self._history if h[0] >= lo]
+        x = np.asarray(seg, dtype=float)
+        new = min(self._seq - self._long_upto, x.size)  # the last `new` values are not yet counted
+        head = x.size - new
+        for k in range(min(_LAGS, x.size - 1) + 1):
+            first = max(head, k)
+            self._long_prod[k] += float(np.dot(x[first:], x[first - k : x.size - k]))
+        self._long_sum += float(x[head:].sum())
+        self._long_n += new
+        self._long_upto = self._seq
+        n = self._long_n
+        if n < self._long_next:
+            return False
+        self._long_next *= 4
+        if n <= self._chosen_from:
+            return False
+        self._chosen_from = n
+        mean = self._long_sum / n
+        acov = self._long_prod / (n - np.arange(_LAGS + 1)) - mean * mean
+        if acov[0] <= 0.0:
+            return False
+        rho = acov / acov[0]
+        block = block_from_autocorrelations(rho, n)
+        if rho[1] > 2.0 / math.sqrt(n):  # as choose_block's prewhitened rule, for an AR(1)
+            block = max(block, math.ceil(_TAU_FACTOR * (1 + rho[1]) / (1 - rho[1])))
+        block = min(_MAX_BLOCK, block)
+        if block == self._chosen:
+            return False
+        self._refeed(block, t)
         return True
 
     def _feed(self, value: float, seq: int, t: float) -> None:
@@ -315,10 +468,6 @@ class DriftCheck(Check[DriftSettings]):
             self._on_change(t, seq)
 
     def _on_change(self, t: float, seq: int) -> None:
-        if self._quiet:
-            self._segment_start = seq + 1
-            self._win_sum, self._win_n = 0.0, 0
-            return
         self._detections += 1
         seg = [h for h in self._history if self._segment_start <= h[0] <= seq]
         ratios = np.fromiter((h[4] for h in seg), dtype=float, count=len(seg))
@@ -356,6 +505,7 @@ class DriftCheck(Check[DriftSettings]):
         cp_t, cp_ts = seg[k][1], seg[k][2]
         # river's detectors start afresh at the input after a detection: so does the segment.
         self._segment_start = seq + 1
+        self._long_reset(seq + 1)
         rise = not math.isnan(before) and after >= before * (1 + self.settings.min_rise)
         if rise and self.settings.clear_on == "recovery" and after <= self.clear_limit:
             rise = False
@@ -467,6 +617,15 @@ class DriftCheck(Check[DriftSettings]):
             "detector": base64.b64encode(pickle.dumps(self._detector)).decode("ascii"),
             "block": self._block,
             "chosen_block": self._chosen,
+            "chosen_from": self._chosen_from,
+            "long": {
+                "start": self._long_start,
+                "upto": self._long_upto,
+                "n": self._long_n,
+                "sum": self._long_sum,
+                "prod": self._long_prod.tolist(),
+                "next": self._long_next,
+            },
             "acc": self._acc,
             "acc_n": self._acc_n,
             "win_sum": self._win_sum,
@@ -491,6 +650,14 @@ class DriftCheck(Check[DriftSettings]):
         self._detector = pickle.loads(base64.b64decode(data["detector"]))
         self._block = int(data.get("block", 1))  # snapshots from before blocks fed pair by pair
         self._chosen = int(data.get("chosen_block", self._block))
+        self._chosen_from = int(data.get("chosen_from", 0 if self._chosen == 0 else self._seq))
+        long = data.get("long")
+        self._long_reset(int(data["seq"]))  # snapshots from before these sums start afresh
+        if long is not None:
+            self._long_start, self._long_upto = int(long["start"]), int(long["upto"])
+            self._long_n, self._long_sum = int(long["n"]), float(long["sum"])
+            self._long_prod = np.asarray(long["prod"], dtype=float)
+            self._long_next = int(long["next"])
         self._acc = float(data.get("acc", 0.0))
         self._acc_n = int(data.get("acc_n", 0))
         self._win_sum = float(data.get("win_sum", 0.0))

@@ -32,13 +32,28 @@ the level is taken from the largest index relative to its factor. n is the card'
 less the feature's missing share.
 
 A window of 1,000 sees small moves but is slow to see a large one: a share moving from 45 %
-to 75 % passes the warning index only once half the window has moved. With
-``short_window_predictions`` set (say 250, with ``evaluate_every_predictions`` 50), the index is also taken
-over the latest that many predictions of the window, with its own limits (the same rule, for
-the shorter window), and the level follows whichever of the two is further above its
-limits; the figures give both (``index``, ``short_window_index``). It is off by default: where the
-inputs have a cycle (a day) longer than the recent part, that part holds only a piece of the
-cycle and is raised every cycle, as the built-in demo shows.
+to 75 % passes the warning index only once half the window has moved. So the index is also
+taken over the latest ``short_window_predictions`` (250) predictions of the window, with its
+own limits (the same rule, for the shorter window), looked at every
+``short_window_every_predictions`` (50), and the level follows whichever of the two is
+further above its limits; the figures give both (``index``, ``short_window_index``).
+
+By default (``short_window_features = "discrete"``) the short window watches only the features
+with one bin per value. Their few bins keep the chi-square limit near the exact one (for a 0/1
+feature the exact binomial chance of passing it on unchanged inputs is about ``significance``
+when the two values are balanced, some 25 times it for a value seen 3 % of the time), whereas
+continuous features with ten bins on 250 predictions were behind the false alerts of the short
+window on all features in ``bench/detection_quality.py``.
+
+A count or a mode that follows the day (the demo's door openings) moves as much over a night as
+a switch that really changed, and no test on a few hundred predictions tells the two apart. So
+where a feature's short-window index passes its warning limit while the level is normal, the
+older part of the window, cut into blocks of the short window's size, must pass Pearson's
+chi-square test of homogeneity at ``homogeneity_significance`` (0.01); if the blocks already
+differ (a cycle within the window, which should span whole cycles) the feature is left to the
+whole window (``short_window_set_aside`` in the figures). The decision is held while the level
+is raised (taken at the raise if the whole window raised), so that a lasting change, once in
+the older blocks, does not switch the short window off and the level clear and rise again.
 
 A prediction with no features at all is not counted; in one that has features, a feature that
 is null or absent falls into the missing bin.
@@ -50,7 +65,7 @@ import math
 import operator
 from array import array
 from collections.abc import Callable, Sequence
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 from pydantic import Field, model_validator
@@ -108,11 +123,29 @@ class ShiftSettings(CheckSettings):
         250, ge=1, description="Predictions between evaluations (the index moves slowly on a window of 1000)."
     )
     short_window_predictions: int = Field(
-        0,
+        250,
         ge=0,
         description="Also compare the latest this many predictions of the window, with limits for their "
-        "number, to see large moves sooner (off with 0, the default: inputs with a daily cycle "
-        "longer than this many predictions would be raised every cycle).",
+        "number, to see large moves sooner (off with 0).",
+    )
+    short_window_every_predictions: int = Field(
+        50,
+        ge=1,
+        description="Predictions between evaluations where the short window watches some feature (a fifth "
+        "of it, so that a large move is raised soon after the short window shows it).",
+    )
+    short_window_features: Literal["all", "discrete"] = Field(
+        "discrete",
+        description="Which features the short window watches: those with one bin per value (few distinct "
+        "values: a switch, a mode, a count), whose few bins keep its limits close to exact, or all.",
+    )
+    homogeneity_significance: float = Field(
+        0.01,
+        ge=0,
+        lt=1,
+        description="The short window watches a feature only while the older part of the window, cut into "
+        "blocks of its size, passes a chi-square test of homogeneity at this level: a feature that moves "
+        "with a cycle (a day) fails it and is left to the whole window (0: always watch).",
     )
     hysteresis: float = Field(
         0.2, ge=0, lt=1, description="Clear only when the index is at or below the limit x (1 - this)."
@@ -136,10 +169,26 @@ class ShiftSettings(CheckSettings):
 def settings_warnings(settings: ShiftSettings) -> list[str]:
     """Advice on settings that are valid but unwise, for ``check-config`` to print.
 
-    >>> settings_warnings(ShiftSettings(recent_predictions=300))[0][:50]
-    'recent_predictions = 300 is below 1000: the popula'
+    >>> settings_warnings(ShiftSettings(recent_predictions=200))[0][:50]
+    'recent_predictions = 200 is below 1000: the popula'
     """
     out = []
+    r = settings.short_window_predictions
+    every = min(settings.evaluate_every_predictions, settings.short_window_every_predictions)
+    if r and 5 * every > r:
+        # a fifth: the move is then seen within a fifth of the short window of passing its limit
+        # (a choice of ours, no source; the bench measures 250 with 50)
+        out.append(
+            f"short_window_predictions = {r} is looked at only every {every} predictions "
+            f"(short_window_every_predictions), so a large move waits up to that long after the short "
+            f"window has seen it; set short_window_every_predictions to about {max(1, r // 5)}"
+        )
+    if settings.homogeneity_significance and r < settings.recent_predictions < 3 * r:
+        out.append(
+            f"recent_predictions = {settings.recent_predictions} leaves fewer than two older blocks of "
+            f"short_window_predictions = {r} for the homogeneity test, so the short window never raises; "
+            f"use recent_predictions >= {3 * r}"
+        )
     if settings.recent_predictions < ADVISED_MIN_WINDOW:
         out.append(
             f"recent_predictions = {settings.recent_predictions} is below {ADVISED_MIN_WINDOW}: the population "
@@ -215,6 +264,7 @@ class ShiftCheck(Check[ShiftSettings]):
         recent_factors: list[float] = []
         r = settings.short_window_predictions
         self.recent = r if 0 < r < settings.recent_predictions else 0  # 0: no recent index
+        short: list[str] = []  # the features the short window watches
         card = context.card
         for fname, prof in card.features.items():
             h = prof.histogram
@@ -236,13 +286,15 @@ class ShiftCheck(Check[ShiftSettings]):
                 factors.append(
                     limit_factor(settings.warning_index, seen, settings.recent_predictions, rows, settings.significance)
                 )
-                recent_factors.append(
-                    limit_factor(settings.warning_index, seen, max(self.recent, 1), rows, settings.significance)
-                )
+                if self.recent and (settings.short_window_features == "all" or h.values is not None):
+                    short.append(fname)
+                    recent_factors.append(
+                        limit_factor(settings.warning_index, seen, self.recent, rows, settings.significance)
+                    )
         self.names: tuple[str, ...] = tuple(names)
         self.expected: dict[str, list[float]] = dict(zip(names, expected))
         self.factors: dict[str, float] = dict(zip(names, factors))
-        self.recent_factors: dict[str, float] = dict(zip(names, recent_factors))
+        self.recent_factors: dict[str, float] = dict(zip(short, recent_factors))
         self._values = values
         self._nbins = np.array(nbins, dtype=np.int64)
         # Every feature's bins side by side in one flat count vector, at these offsets.
@@ -258,9 +310,15 @@ class ShiftCheck(Check[ShiftSettings]):
         # the features of one prediction, in ``names`` order (with no features nothing is queued)
         self._getter: Callable[[dict[str, float | None]], Any] = operator.itemgetter(*names) if names else tuple
         self._every = settings.evaluate_every_predictions
+        if self.recent_factors:  # the short window has features to watch: look more often
+            self._every = min(self._every, settings.short_window_every_predictions)
         self._gate = LevelGate(
             settings.warning_index, settings.critical_index, settings.hysteresis, settings.clear_after_evaluations
         )
+        # the columns the short window may watch, and the older blocks of its size its test compares
+        self._short_cols = np.array([names.index(n) for n in short], dtype=np.int64)
+        self._blocks = (settings.recent_predictions - self.recent) // self.recent if self.recent else 0
+        self._critical_x2: dict[int, float] = {}
         self.reset()
 
     def reset(self) -> None:
@@ -278,6 +336,10 @@ class ShiftCheck(Check[ShiftSettings]):
         self._since_eval = 0
         self._gate.reset()
         self._figures: dict[str, Any] = {}
+        # the features the short window leaves to the whole window: decided while the level is
+        # normal and held while it is raised (else a change, once in the older blocks, would
+        # switch the short window off and the level would clear and rise again)
+        self._set_aside: list[str] = []
 
     def on_prediction(self, prediction: Prediction) -> bool:
         feats = prediction.features
@@ -343,18 +405,58 @@ class ShiftCheck(Check[ShiftSettings]):
         return {n: population_stability_index(self.expected[n], c, s) for n, c in self.counts().items()}
 
     def recent_indices(self) -> dict[str, float]:
-        """The index of every feature over the latest ``short_window_predictions`` of a full window."""
+        """The index of every feature the short window watches, over the latest
+        ``short_window_predictions`` of a full window."""
         self._flush()
         r = self.recent
-        if not r or self._filled < self.settings.recent_predictions:
+        if not r or not self.recent_factors or self._filled < self.settings.recent_predictions:
             return {}
         slots = (self._pos - r + np.arange(r)) % self.settings.recent_predictions
         c = np.bincount(self._ring[slots].ravel(), minlength=self._total).tolist()
         sm = self.settings.smoothing
+        watched = self.recent_factors
         return {
             n: population_stability_index(self.expected[n], c[o : o + k], sm)
             for n, o, k in zip(self.names, self._offset.tolist(), self._nbins.tolist())
+            if n in watched
         }
+
+    def homogeneous(self) -> dict[str, bool]:
+        """For every feature the short window may watch: do the older blocks of the window (its
+        size each, before the latest one) pass the chi-square test of homogeneity?"""
+        self._flush()
+        r, blocks, alpha = self.recent, self._blocks, self.settings.homogeneity_significance
+        names = list(self.recent_factors)
+        if not names or self._filled < self.settings.recent_predictions:
+            return {}
+        if alpha == 0:
+            return dict.fromkeys(names, True)
+        if blocks < 2:  # nothing to compare: the short window is not trusted
+            return dict.fromkeys(names, False)
+        size = self.settings.recent_predictions
+        slots = (self._pos - r * (blocks + 1) + np.arange(r * blocks)) % size
+        ids = self._ring[slots][:, self._short_cols].astype(np.int64)
+        which = np.repeat(np.arange(blocks), r)[:, None] * self._total
+        table = np.bincount((ids + which).ravel(), minlength=blocks * self._total).reshape(blocks, self._total)
+        # every block holds r predictions, so a cell's expected count is its bin's total / blocks;
+        # bins empty in every block drop out, and so do their degrees of freedom
+        total = table.sum(axis=0)
+        used = total > 0
+        exp = np.where(used, total / blocks, 1.0)
+        cell = np.where(used, ((table - exp) ** 2 / exp).sum(axis=0), 0.0)
+        starts = self._offset[self._short_cols]
+        x2 = np.add.reduceat(cell, starts)
+        cols = np.add.reduceat(used.astype(np.int64), starts)
+        out = {}
+        for n, x, c in zip(names, x2.tolist(), cols.tolist()):
+            if c < 2:  # one value only in every block: nothing differs
+                out[n] = True
+                continue
+            df = (blocks - 1) * (c - 1)
+            if df not in self._critical_x2:
+                self._critical_x2[df] = chi2_isf(alpha, df)
+            out[n] = x <= self._critical_x2[df]
+        return out
 
     def evaluate(self, t: float) -> Verdict | None:
         if self._since_eval < self._every:
@@ -370,13 +472,28 @@ class ShiftCheck(Check[ShiftSettings]):
         # or over its recent part
         score = {n: idx[n] / f[n] for n in idx}
         span = {n: self._filled for n in idx}
-        recent = self.recent_indices()
         rf = self.recent_factors
+        every = self.recent_indices()
+        # The homogeneity test decides only where the short window would raise, so it is run
+        # then: while the level is normal and some short-window index passes its warning limit,
+        # and at a raise (the decision is then held until the level clears).
+        tested = False
+        if self._gate.level == "normal":
+            self._set_aside = []
+            if any(v / rf[n] > s.warning_index for n, v in every.items()):
+                self._set_aside = [n for n, ok in self.homogeneous().items() if not ok]
+                tested = True
+        recent = {n: v for n, v in every.items() if n not in self._set_aside}
         for n, v in recent.items():
             if v / rf[n] > score[n]:
                 score[n], span[n] = v / rf[n], self.recent
         top = max(score, key=score.__getitem__)
+        was = self._gate.level
         level = self._gate.update_figure(score[top])
+        if was == "normal" and level != "normal" and not tested and every:
+            # raised on the whole window: hold the test's decision for the raised time
+            self._set_aside = [n for n, ok in self.homogeneous().items() if not ok]
+            recent = {n: v for n, v in every.items() if n not in self._set_aside}
         self._figures = {
             "index": idx,
             "short_window_index": recent,
@@ -388,6 +505,9 @@ class ShiftCheck(Check[ShiftSettings]):
             "warning_limits": {n: s.warning_index * f[n] for n in idx},
             "critical_limits": {n: s.critical_index * f[n] for n in idx},
             "short_window_warning_limits": {n: s.warning_index * rf[n] for n in recent},
+            # features the short window leaves to the whole window: their older blocks differ
+            # (a cycle), or there are too few blocks to tell
+            "short_window_set_aside": list(self._set_aside),
         }
         return Verdict(level, self._summary(level, score, span, top), dict(self._figures))
 
@@ -428,6 +548,7 @@ class ShiftCheck(Check[ShiftSettings]):
             "since_eval": self._since_eval,
             "gate": self._gate.snapshot(),
             "figures": self._figures,
+            "set_aside": list(self._set_aside),
         }
 
     def restore(self, data: dict[str, Any]) -> None:
@@ -444,3 +565,4 @@ class ShiftCheck(Check[ShiftSettings]):
         self._npend = 0
         self._gate.restore(data["gate"])
         self._figures = data["figures"]
+        self._set_aside = [n for n in data.get("set_aside", []) if n in self.recent_factors]
