@@ -9,16 +9,30 @@ mapping), and the consumers are let go (SIGCONT):
 - reference: a bare nats-py consumer in its own process that only fetches, decodes each
   payload (orjson) and acknowledges each message;
 - one worker, then two workers (processes of ``watchdog-edge jetstream run``), once every
-  partition is held, until every partition's consumer has nothing left to deliver.
+  partition is held, until every partition's consumer has nothing left to deliver and the
+  workers have finished what they pulled (their CPU time stops growing).
 
 Each is timed from SIGCONT until the last record is consumed.
 
 It prints records per second of each, their ratios, CPU seconds per record of the workers
-(user + system time of the worker processes over the run; the figure that carries to a
-machine with more cores), peak memory per worker, and the failover time: SIGKILL one of two
-workers and time until the other holds every partition (goal: under 5 s with lease_s = 3).
+and of the server (user + system time of the processes over the run; the figures that carry
+to a machine with more cores), peak memory per worker, and the failover time: SIGKILL one of
+two workers and time until the other holds every partition (goal: under 5 s with lease_s = 3).
 
-    python3 bench/jetstream_throughput.py [--records 100000] [--models 64] [--partitions 8]
+It also prints the ceiling of the two-worker ratio that this run's CPU per record allows. A
+worker is one Python thread: with ``w`` CPU seconds per record for the workers and ``s`` for
+the server, on ``C`` cores that nothing else uses, ``n`` workers go at most
+``min(n / w, C / (w + s))`` records per second. With two workers on two cores the server
+takes its share of the cores the workers need, so two workers over one is at most
+``min(2/w2, C/(w2+s2)) / min(1/w1, C/(w1+s1))``, i.e. ``2 w / (w + s)`` when the figures are
+alike: under 1.5 as soon as ``s > w / 3``. Other work on the machine (the load average is
+printed) lowers what the wall clock shows further; the CPU per record does not depend on it.
+
+``--per-message K`` adds labelled rows with the same records sent K to a message (a JSON array,
+which the core takes as K records): the server's cost is per message, so it shows what a
+gateway that batches gets. The plain rows keep one record a message.
+
+    python3 bench/jetstream_throughput.py [--records 100000] [--models 64] [--partitions 8] [--per-message 10]
 """
 
 from __future__ import annotations
@@ -88,6 +102,29 @@ def messages(records: int, models: int, seed: int = 1) -> list[tuple[str, bytes]
             out.append(pending.pop(0))
         i += 1
     return out[:records]
+
+
+def per_message(msgs: list[tuple[str, bytes]], k: int) -> list[tuple[str, bytes]]:
+    """The same records, ``k`` of one topic to a message (a JSON array), in the order the k-th of each came."""
+    out: list[tuple[str, bytes]] = []
+    held: dict[str, list[bytes]] = {}
+    for topic, payload in msgs:
+        buf = held.setdefault(topic, [])
+        buf.append(payload)
+        if len(buf) == k:
+            out.append((topic, b"[" + b",".join(buf) + b"]"))
+            held[topic] = []
+    out += [(t, b"[" + b",".join(buf) + b"]") for t, buf in held.items() if buf]
+    return out
+
+
+def ceiling(cores: int, w1: float, s1: float, w2: float, s2: float) -> float:
+    """Two workers over one at most, from CPU seconds per record of workers (w) and server (s) in each run.
+
+    >>> round(ceiling(2, 12.4e-6, 4.4e-6, 12.4e-6, 4.4e-6), 3)
+    1.476
+    """
+    return min(2 / w2, cores / (w2 + s2)) / min(1 / w1, cores / (w1 + s1))
 
 
 async def _make_stream(url: str) -> None:
@@ -163,6 +200,35 @@ class Probe:
         return True
 
 
+def cpu_ns(pid: int) -> int:
+    """CPU time of a process in nanoseconds (the scheduler's own count, finer than clock ticks)."""
+    return int(Path(f"/proc/{pid}/schedstat").read_text().split()[0])
+
+
+async def finished(probe: Probe, pids: list[int], t0: float, quiet_s: float = 0.5) -> float:
+    """Seconds from ``t0`` until the workers finished the records: every partition drained, and then
+    the last moment any worker was busy (over 2 ms of CPU in a 20 ms poll) before ``quiet_s`` of quiet.
+
+    Drained alone is not the end: the last pulled batches (up to ``fetch_batch_messages`` a
+    partition) are then still in the workers' hands.
+    """
+    last_busy = t0
+    prev = sum(cpu_ns(p) for p in pids)
+    drained = False
+    for k in range(30000):
+        await asyncio.sleep(0.02)
+        now = time.perf_counter()
+        cur = sum(cpu_ns(p) for p in pids)
+        if cur - prev > 2_000_000:
+            last_busy = now
+        prev = cur
+        if not drained and k % 5 == 0:
+            drained = await probe.drained("watchdog-p")
+        if drained and now - last_busy > quiet_s:
+            break
+    return last_busy - t0
+
+
 def cpu_s(pid: int) -> float:
     fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
     return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
@@ -179,7 +245,7 @@ def fresh(tmp: Path, name: str, args, lease_s: float = 8.0) -> tuple[NatsServer,
     port = free_port()
     folder = tmp / name
     models = [f"m{i}" for i in range(args.models)]
-    extra = "snapshot_every_messages = 5000\nfetch_batch_messages = 2000\n"  # the defaults
+    extra = "snapshot_every_messages = 5000\n"  # the default; fetch_batch_messages too is left at its default
     cfg = write_setup(folder, [f"nats://127.0.0.1:{port}"], models, partitions=args.partitions, jetstream_extra="")
     text = cfg.read_text()
     text = (
@@ -198,9 +264,11 @@ def fresh(tmp: Path, name: str, args, lease_s: float = 8.0) -> tuple[NatsServer,
     return srv, cfg
 
 
-def run_workers(tmp: Path, n: int, args, msgs) -> dict:
-    srv, cfg = fresh(tmp, f"w{n}", args)
-    workers = [WorkerProc(cfg, f"w{i + 1}", tmp / f"w{n}-{i + 1}.log") for i in range(n)]
+def run_workers(tmp: Path, n: int, args, msgs, records: int | None = None, tag: str = "") -> dict:
+    """``n`` workers on a fresh server; ``records`` is how many records ``msgs`` hold (one a message by default)."""
+    records = records or len(msgs)
+    srv, cfg = fresh(tmp, f"w{n}{tag}", args)
+    workers = [WorkerProc(cfg, f"w{i + 1}", tmp / f"w{n}{tag}-{i + 1}.log") for i in range(n)]
 
     async def measure() -> dict:
         async with Probe(srv.url, args.partitions) as probe:
@@ -214,17 +282,13 @@ def run_workers(tmp: Path, n: int, args, msgs) -> dict:
             t0 = time.perf_counter()
             for w in workers:
                 os.kill(w.proc.pid, signal.SIGCONT)
-            for _ in range(6000):
-                if await probe.drained("watchdog-p"):
-                    break
-                await asyncio.sleep(0.05)
-            elapsed = time.perf_counter() - t0
+            elapsed = await finished(probe, [w.proc.pid for w in workers], t0)
             cpu = sum(cpu_s(w.proc.pid) for w in workers) - c0
             server_cpu = cpu_s(srv.proc.pid) - s0
             return {
-                "server_cpu_per_record": server_cpu / len(msgs),
-                "rate": len(msgs) / elapsed,
-                "cpu_per_record": cpu / len(msgs),
+                "server_cpu_per_record": server_cpu / records,
+                "rate": records / elapsed,
+                "cpu_per_record": cpu / records,
                 "peak_mib": [peak_rss_mib(w.proc.pid) for w in workers],
             }
 
@@ -291,15 +355,27 @@ def main() -> None:
     ap.add_argument("--records", type=int, default=100_000)
     ap.add_argument("--models", type=int, default=64)
     ap.add_argument("--partitions", type=int, default=8)
+    ap.add_argument("--per-message", type=int, default=0, help="Also run with this many records a message.")
     args = ap.parse_args()
     msgs = messages(args.records, args.models)
+    load0 = os.getloadavg()
     with tempfile.TemporaryDirectory() as d:
         tmp = Path(d)
         bare = run_bare(tmp, args, msgs)
         one = run_workers(tmp, 1, args, msgs)
         two = run_workers(tmp, 2, args, msgs)
         two["failover_s"] = run_failover(tmp, args, 3.0)
-    print(f"{args.records} records, {args.models} models, {args.partitions} partitions, {os.cpu_count()} cores")
+        if args.per_message > 1:
+            batched = per_message(msgs, args.per_message)
+            one_b = run_workers(tmp, 1, args, batched, len(msgs), "b")
+            two_b = run_workers(tmp, 2, args, batched, len(msgs), "b")
+    load1 = os.getloadavg()
+    cores = os.cpu_count() or 1
+    print(f"{args.records} records, {args.models} models, {args.partitions} partitions, {cores} cores")
+    print(
+        f"load average (1 min) at start {load0[0]:.2f}, at end {load1[0]:.2f}: "
+        "other work on the machine takes cores from the wall-clock figures"
+    )
     print(f"bare nats-py consumer (decode + ack each): {bare['rate']:>9,.0f} records/s")
     print(
         f"one worker:                               {one['rate']:>9,.0f} records/s  "
@@ -324,6 +400,29 @@ def main() -> None:
         + " MiB"
     )
     print(f"failover after SIGKILL of one of two workers (lease_s 3): {two['failover_s']:.2f} s")
+    w1, s1 = one["cpu_per_record"], one["server_cpu_per_record"]
+    w2, s2 = two["cpu_per_record"], two["server_cpu_per_record"]
+    top = ceiling(cores, w1, s1, w2, s2)
+    print(
+        f"ceiling of two workers over one from this run's CPU per record: min(2/w2, {cores}/(w2+s2)) / "
+        f"min(1/w1, {cores}/(w1+s1)) = {top:.2f} x; measured {two['rate'] / one['rate']:.2f} x "
+        f"({two['rate'] / one['rate'] / top * 100:.0f} % of the ceiling)"
+    )
+    if args.per_message > 1:
+        k = args.per_message
+        print(f"-- the same records, {k} to a message (a JSON array; not the benchmark's shape) --")
+        print(f"one worker, {k} a message:  {one_b['rate']:>9,.0f} records/s")
+        print(
+            f"two workers, {k} a message: {two_b['rate']:>9,.0f} records/s  "
+            f"({two_b['rate'] / one_b['rate']:.2f} x one worker)"
+        )
+        wb1, sb1 = one_b["cpu_per_record"], one_b["server_cpu_per_record"]
+        wb2, sb2 = two_b["cpu_per_record"], two_b["server_cpu_per_record"]
+        print(
+            f"CPU per record, {k} a message: one worker {wb1 * 1e6:.1f} us (server {sb1 * 1e6:.1f} us), "
+            f"two workers {wb2 * 1e6:.1f} us (server {sb2 * 1e6:.1f} us); "
+            f"ceiling {ceiling(cores, wb1, sb1, wb2, sb2):.2f} x"
+        )
 
 
 if __name__ == "__main__":

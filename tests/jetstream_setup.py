@@ -23,7 +23,7 @@ from watchdog_edge.core.settings import Config
 from watchdog_edge.files.cardfile import save_card
 from watchdog_edge.files.configfile import load_cards, load_config
 from watchdog_edge.jetstream.engine import read_input
-from watchdog_edge.jetstream.subjects import server_config
+from watchdog_edge.jetstream.subjects import COMMANDS, server_config
 from watchdog_edge.jetstream.worker import partition_config
 from watchdog_edge.replay.recording import RecordLine, replay
 
@@ -198,14 +198,18 @@ def read_alerts(url: str, cfg_path: Path, idle_s: float = 1.0) -> list[dict]:
 
 
 async def _read_lines(url: str, cfg: Config, idle_s: float) -> dict[int, list[RecordLine]]:
+    """Each partition's stored messages, with the planned-work commands (which every partition meets) in place."""
     nc = await nats.connect(url, connect_timeout=2)
-    out: dict[int, list[RecordLine]] = {}
+    stored: list[tuple[int, RecordLine]] = []
     try:
         async for m in read_input(nc.jetstream(timeout=10), cfg.jetstream, None, idle_s):
             line = RecordLine(m.t, tick=True) if m.topic is None else RecordLine(m.t, m.topic, m.payload)
-            out.setdefault(m.partition, []).append(line)
+            stored.append((m.partition, line))
     finally:
         await nc.close()
+    out: dict[int, list[RecordLine]] = {}
+    for p in sorted({p for p, _ in stored if p != COMMANDS}):
+        out[p] = [line for q, line in stored if q in (p, COMMANDS)]
     return out
 
 
@@ -216,7 +220,7 @@ def replay_stream(url: str, cfg_path: Path) -> dict[str, list[dict]]:
     per_model: dict[str, list[dict]] = {}
     for p, lines in _retry(lambda: _read_lines(url, cfg, 1.0)).items():
         pc = partition_config(cfg, p)
-        mon = Monitor(pc, {m.id: cards[m.id] for m in pc.models})
+        mon = Monitor(pc, {m.id: cards[m.id] for m in pc.models}, [m.id for m in cfg.models])
         for ev in replay(mon, lines):
             if hasattr(ev, "alert_id"):
                 per_model.setdefault(ev.model, []).append(json.loads(alert_payload(ev)))

@@ -43,6 +43,7 @@ class NatsServer:
         routes: list[int] | None = None,
         port: int | None = None,
         wait: bool = True,
+        launch: bool = True,
     ) -> None:
         self.folder = folder
         folder.mkdir(parents=True, exist_ok=True)
@@ -67,7 +68,8 @@ class NatsServer:
         self.conf = folder / "nats.conf"
         self.conf.write_text("\n".join(lines) + "\n")
         self.proc: subprocess.Popen | None = None
-        self.start(wait=wait)
+        if launch:
+            self.start(wait=wait)
 
     def start(self, timeout: float = 10.0, wait: bool = True) -> None:
         self.proc = subprocess.Popen(
@@ -104,8 +106,11 @@ class NatsServer:
         return read_log(self.log)
 
 
-def cluster(folder: Path, mappings: str, ports: list[int]) -> list[NatsServer]:
-    """One server per client port, routed to each other, JetStream clustered (no MQTT listener)."""
+def cluster(folder: Path, mappings: str, ports: list[int], launch: int | None = None) -> list[NatsServer]:
+    """One server per client port, routed to each other, JetStream clustered (no MQTT listener).
+
+    Only the first ``launch`` servers are started (all when None); ``start()`` the others later.
+    """
     size = len(ports)
     cports = [free_port() for _ in range(size)]
     return [
@@ -118,34 +123,7 @@ def cluster(folder: Path, mappings: str, ports: list[int]) -> list[NatsServer]:
             routes=[c for j, c in enumerate(cports) if j != i],
             port=ports[i],
             wait=False,
+            launch=launch is None or i < launch,
         )
         for i in range(size)
     ]
-
-
-def wait_jetstream(urls: list[str], replicas: int, timeout: float = 45.0) -> None:
-    """Wait until the cluster's JetStream can create a stream of ``replicas`` (a new cluster elects its leaders first)."""
-    import asyncio
-
-    import nats
-    from nats.js.api import StreamConfig
-
-    async def probe() -> None:
-        nc = await nats.connect(servers=urls, connect_timeout=1, allow_reconnect=False)
-        try:
-            js = nc.jetstream(timeout=2)
-            await js.add_stream(StreamConfig(name="READY_PROBE", subjects=["ready.probe"], num_replicas=replicas))
-            await js.delete_stream("READY_PROBE")
-        finally:
-            await nc.close()
-
-    deadline = time.monotonic() + timeout
-    last: Exception | None = None
-    while time.monotonic() < deadline:
-        try:
-            asyncio.run(probe())
-            return
-        except Exception as e:  # not up yet, or no leader elected yet: try again
-            last = e
-            time.sleep(0.3)
-    raise AssertionError(f"the JetStream cluster at {urls} was not ready within {timeout} s: {last!r}")

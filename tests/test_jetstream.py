@@ -34,7 +34,7 @@ from jetstream_setup import (
     wait_for,
     write_setup,
 )
-from natsserver import NatsServer, cluster, wait_jetstream
+from natsserver import NatsServer, cluster
 
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import parse_config
@@ -129,6 +129,10 @@ def test_mappings_put_both_topics_of_a_model_on_its_partition_token():
     assert mappings(cfg) == {
         "site.*.pred": "wd.in.{{partition(6,1)}}.m.site.{{wildcard(1)}}.pred",
         "lab.*.truth": "wd.in.{{partition(6,1)}}.m.lab.{{wildcard(1)}}.truth",
+        # planned-work commands are not partitioned: every partition's holder reads them
+        "watchdog.agents.edge-agent.commands.planned-work": (
+            "wd.in.c.m.watchdog.agents.edge-agent.commands.planned-work"
+        ),
     }
 
 
@@ -189,6 +193,37 @@ def test_no_server_at_start_exits_3_and_a_stop_while_connecting_exits_0(tmp_path
 
 
 # --- one server ----------------------------------------------------------------------------
+def test_a_refusal_that_needs_a_person_exits_3_at_once(tmp_path):
+    """Replicas 3 on a server without a cluster: no waiting out the start timeout, the server's reason shown."""
+    port = free_port()
+    cfg = write_setup(
+        tmp_path, [f"nats://127.0.0.1:{port}"], ["a"], replicas=3, jetstream_extra="start_timeout_s = 120.0"
+    )
+    srv = NatsServer(tmp_path / "srv", port=port, mqtt=False)
+    try:
+        t0 = time.monotonic()
+        w = start_worker(tmp_path, cfg, "w1")
+        assert w.proc.wait(timeout=60) == 3
+        took = time.monotonic() - t0
+        # a stream of the workers' name made by someone else for other subjects
+        cfg.write_text(cfg.read_text().replace("replicas = 3", "replicas = 1"))
+
+        async def other_stream() -> None:
+            nc = await nats.connect(srv.url)
+            await nc.jetstream().add_stream(name="WATCHDOG_IN", subjects=["elsewhere.>"])
+            await nc.close()
+
+        asyncio.run(other_stream())
+        w2 = start_worker(tmp_path, cfg, "w2")
+        assert w2.proc.wait(timeout=60) == 3
+    finally:
+        srv.stop()
+    assert w.stop() == 3 and w2.stop() == 3
+    assert "replicas > 1 not supported in non-clustered mode" in w.text(), w.text()
+    assert took < 60 and "JetStream not ready" not in w.text()
+    assert "stream WATCHDOG_IN exists with subjects ['elsewhere.>'], without ['wd.in.>']" in w2.text(), w2.text()
+
+
 def test_server_partition_function_is_ours(tmp_path):
     """The server's own mapping is the reference for ``partition_of`` (its FNV-1a, modulo N)."""
     port = free_port()
@@ -310,6 +345,117 @@ def test_mqtt_gateway_traffic_gives_the_alerts_of_a_replay(tmp_path):
     assert rc == 0, w.text()
 
 
+COMMAND_TOPIC = "watchdog/agents/central/commands/planned-work"
+
+
+def with_commands(msgs: list[tuple[str, bytes]], plan: dict[int, dict]) -> list[tuple[str, bytes]]:
+    """``msgs`` with each planned-work command of ``plan`` put before the message at its index."""
+    out = list(msgs)
+    for i in sorted(plan, reverse=True):
+        out.insert(i, (COMMAND_TOPIC, json.dumps(plan[i]).encode()))
+    return out
+
+
+async def _worker_status(url: str, worker: str) -> dict:
+    nc = await nats.connect(url, connect_timeout=2)
+    try:
+        kv = await nc.jetstream().key_value("watchdog_leases")
+        return json.loads((await kv.get(f"w.{worker}")).value)
+    finally:
+        await nc.close()
+
+
+@pytest.mark.slow
+def test_planned_work_commands_reach_every_partition_survive_a_restart_and_equal_a_replay(tmp_path):
+    """Commands by MQTT and by NATS: held raises as in a replay, a worker killed inside a window, one dead letter."""
+    port = free_port()
+    cfg = write_setup(tmp_path, [f"nats://127.0.0.1:{port}"], MODELS)
+    srv = NatsServer(tmp_path / "srv", port=port, mappings=mappings_for(cfg))
+    assert len({partition_of(m, 4) for m in ("a", "c")}) == 2  # the window spans two partitions
+    plain = traffic(MODELS, seed=3)
+    plan = {
+        4: {"action": "begin", "name": "meter-calibration"},  # no duration: refused, one dead letter
+        40: {"action": "begin", "name": "meter-calibration", "duration_s": 86400, "models": ["a", "c"], "by": "t"},
+        110: {"action": "end", "name": "meter-calibration"},
+        170: {"action": "begin", "name": "plant-stop", "duration_s": 86400, "reason": "stop"},
+        200: {"action": "end", "name": "plant-stop"},
+    }
+    msgs = with_commands(plain, plan)
+    half = 80 + 2  # after the window for a and c began (two commands before it)
+    expected = replay_plain(cfg, msgs)
+    assert expected != replay_plain(cfg, plain), "the commands must change the alerts for this test to mean anything"
+    workers = {"w1": start_worker(tmp_path, cfg, "w1")}
+    try:
+        wait_for(lambda: all_held(srv.url, 4), 20, "the worker holding every partition", workers["w1"].text)
+        # the first half through the MQTT listener, as a gateway and an operator would send it
+        pub = paho.Client(paho.CallbackAPIVersion.VERSION2, client_id="gateway-1")
+        pub.connect("127.0.0.1", srv.mqtt_port)
+        pub.loop_start()
+        for topic, payload in msgs[:half]:
+            info = pub.publish(topic, payload, qos=1)
+            info.wait_for_publish(5)
+            assert info.is_published()
+        pub.loop_stop()
+        pub.disconnect()
+        wait_for(
+            lambda: (
+                [w["name"] for w in asyncio.run(_worker_status(srv.url, "w1"))["planned_work"]] == ["meter-calibration"]
+            ),
+            20,
+            "w1 showing the window begun",
+            workers["w1"].text,
+        )
+        workers["w1"].kill()  # inside the window: its successor must still hold a and c
+        workers["w2"] = start_worker(tmp_path, cfg, "w2")
+        wait_for(lambda: all_held(srv.url, 4, by={"w2"}), 20, "w2 holding every partition", workers["w2"].text)
+        publish_nats(srv.url, msgs[half:])  # the rest, the end commands too, on NATS subjects
+        n = sum(len(v) for v in expected.values())
+        wait_for(lambda: len(read_alerts(srv.url, cfg, 0.3)) >= n, 30, f"{n} alerts", workers["w2"].text)
+        time.sleep(1.0)
+        alerts = read_alerts(srv.url, cfg)
+        assert len({a["alert_id"] for a in alerts}) == len(alerts), "an alert raised twice"
+        assert {m: alert_keys(v) for m, v in by_model(alerts).items()} == expected
+        assert by_model(alerts) == replay_stream(srv.url, cfg)
+        notes = [a for a in alerts if "meter-calibration" in (a.get("note") or "")]
+        assert notes and {a["model"] for a in notes} <= {"a", "c"}
+        assert "planned work 'meter-calibration' ended" in workers["w2"].text()
+        assert "planned work 'plant-stop' began" in workers["w2"].text()
+
+        async def dead() -> list:
+            nc = await nats.connect(srv.url)
+            sub = await nc.jetstream().subscribe("wd.dead.>", stream="WATCHDOG_DEAD", ordered_consumer=True)
+            out = []
+            with contextlib.suppress(nats.errors.TimeoutError):
+                while True:
+                    out.append(await sub.next_msg(timeout=0.5))
+            await nc.close()
+            return out
+
+        letters = asyncio.run(dead())
+        assert [(m.headers["Wd-Reason"], m.headers["Wd-Topic"]) for m in letters] == [("bad_command", COMMAND_TOPIC)]
+
+        # the command line: export a's partition (the commands come with it) and replay it
+        p = partition_of("a", 4)
+        rec, out = tmp_path / "p.jsonl", tmp_path / "p-alerts.jsonl"
+        cli = [sys.executable, "-m", "watchdog_edge.cli.app"]
+        env = dict(os.environ, PYTHONPATH=str(REPO))
+        for args in (
+            ["jetstream", "export", "-c", str(cfg), "-o", str(rec), "--partition", str(p)],
+            ["replay", str(rec), "-c", str(cfg), "--alerts", str(out), "--quiet"],
+        ):
+            done = subprocess.run([*cli, *args], capture_output=True, text=True, env=env, timeout=60)
+            assert done.returncode == 0, done.stderr
+        assert COMMAND_TOPIC in rec.read_text()
+        mine = [m for m in MODELS if partition_of(m, 4) == p]
+        replayed = [json.loads(line) for line in out.read_text().splitlines()]
+        assert [a for a in replayed if a["model"] in mine] == [a for a in alerts if a["model"] in mine]
+    finally:
+        codes = {"w2": workers["w2"].stop()} if "w2" in workers else {}
+        workers["w1"].kill()
+        srv.stop()
+    assert codes == {"w2": 0}, workers["w2"].text()[-3000:]
+
+
 @pytest.mark.slow
 def test_killed_worker_partitions_are_taken_over_and_alerts_equal_a_replay(tmp_path):
     port = free_port()
@@ -355,18 +501,50 @@ def test_killed_worker_partitions_are_taken_over_and_alerts_equal_a_replay(tmp_p
     assert "claimed" in workers["w1"].text() + workers["w3"].text()
 
 
+@pytest.mark.slow
+def test_a_single_server_killed_and_restarted_loses_nothing(tmp_path):
+    """The consumers' state is in the server's memory: after a restart the holder re-makes them from its snapshots."""
+    port = free_port()
+    cfg = write_setup(tmp_path, [f"nats://127.0.0.1:{port}"], MODELS)
+    srv = NatsServer(tmp_path / "srv", port=port, mappings=mappings_for(cfg), mqtt=False)
+    msgs = traffic(MODELS, seed=29)
+    w = start_worker(tmp_path, cfg, "w1")
+    try:
+        wait_for(lambda: all_held(srv.url, 4), 20, "the worker holding every partition", w.text)
+        half = len(msgs) // 2
+        publish_nats(srv.url, msgs[:half])
+        time.sleep(0.3)
+        srv.kill()
+        srv.start()
+        wait_for(lambda: publish_nats(srv.url, []) is None, 20, "the server back")
+        publish_nats(srv.url, msgs[half:])
+        expected = replay_plain(cfg, msgs)
+        n = sum(len(v) for v in expected.values())
+        wait_for(lambda: len(read_alerts(srv.url, cfg, 0.3)) >= n, 60, f"{n} alerts", w.text)
+        time.sleep(1.0)
+        alerts = read_alerts(srv.url, cfg)
+        assert len({a["alert_id"] for a in alerts}) == len(alerts), "an alert raised twice"
+        assert {m: alert_keys(v) for m, v in by_model(alerts).items()} == expected
+        assert by_model(alerts) == replay_stream(srv.url, cfg)
+        assert "resuming from its snapshot" in w.text()  # the consumers were re-made
+    finally:
+        rc = w.stop()
+        srv.stop()
+    assert rc == 0, w.text()[-3000:]
+
+
 # --- a three-server cluster ----------------------------------------------------------------
 @pytest.mark.slow
 def test_cluster_r3_loses_nothing_when_a_server_and_a_worker_die_under_load(tmp_path):
+    """Workers started on a cluster with no quorum yet wait for it; then a server and a worker die under load."""
     ports = [free_port() for _ in range(3)]
     urls = [f"nats://127.0.0.1:{p}" for p in ports]
-    cfg = write_setup(tmp_path, urls, MODELS, partitions=4, replicas=3)
-    servers = cluster(tmp_path / "cluster", mappings_for(cfg), ports=ports)
-    # the workers start once the new cluster has elected its leaders; on a loaded machine that
-    # took longer than a worker's start timeout
-    wait_jetstream(urls, replicas=3)
-    msgs = traffic(MODELS, seed=5)
+    cfg = write_setup(tmp_path, urls, MODELS, partitions=4, replicas=3, jetstream_extra="start_timeout_s = 90.0")
+    # one server of three: it answers, but its JetStream cannot elect a leader until a second
+    # one joins, so the workers' first requests to make the streams cannot succeed
+    servers = cluster(tmp_path / "cluster", mappings_for(cfg), ports=ports, launch=1)
     workers = {n: start_worker(tmp_path, cfg, n) for n in ("w1", "w2")}
+    msgs = traffic(MODELS, seed=5)
     stored: list[int] = []
     errors: list[str] = []
 
@@ -391,7 +569,13 @@ def test_cluster_r3_loses_nothing_when_a_server_and_a_worker_die_under_load(tmp_
 
     th = threading.Thread(target=lambda: asyncio.run(publisher()))
     try:
-        wait_for(lambda: all_held(urls[0], 4), 30, "two workers holding four partitions", workers["w1"].text)
+        wait_for(
+            lambda: "JetStream not ready" in workers["w1"].text(), 30, "w1 waiting for JetStream", workers["w1"].text
+        )
+        for srv in servers[1:]:
+            srv.start(wait=False)
+        wait_for(lambda: all_held(urls[0], 4), 90, "two workers holding four partitions", workers["w1"].text)
+        assert all(w.proc.poll() is None for w in workers.values())
         th.start()
         time.sleep(1.0)
         servers[1].kill()  # under load

@@ -173,3 +173,27 @@ def test_status_help_teaches_the_sources_and_the_flags():
     assert r.returncode == 0
     for words in ("--state-file", "--broker", "read-only", "fleet", "late", "Examples", "not a protection system"):
         assert words in r.stdout, words
+
+
+def test_planned_work_with_wait_0_delivers_the_command_and_exits_0_without_an_agent(broker):
+    """For JetStream workers, which publish no agent status: the broker's acknowledgement is the answer."""
+    watcher = Client(broker, "command-watcher", subscribe=["watchdog/agents/+/commands/#"])
+    try:
+        where = ["--agent", "central", "--broker", f"{broker.host}:{broker.port}"]
+        r = cli(
+            "planned-work", "begin", "meter-calibration", *where, "--for", "90m", "--model", "steam-flow", "--wait", "0"
+        )
+        assert r.returncode == 0, r.stderr
+        assert "not watched (--wait 0)" in r.stdout
+        deadline = time.monotonic() + 10
+        while time.monotonic() < deadline and not watcher.messages:
+            time.sleep(0.05)
+        (msg,) = watcher.messages
+        assert msg.topic == "watchdog/agents/central/commands/planned-work"
+        doc = json.loads(msg.payload)
+        assert doc["action"] == "begin" and doc["name"] == "meter-calibration" and doc["models"] == ["steam-flow"]
+        # watching a status nobody publishes still fails, saying why
+        r = cli("planned-work", "end", "meter-calibration", *where, "--wait", "0.5")
+        assert r.returncode == 1 and "is the agent running?" in r.stderr
+    finally:
+        watcher.close()

@@ -20,7 +20,7 @@ RUN_HELP = """Run one JetStream worker: hold a share of the partitions, feed the
 
 Start as many as you like, on one machine or many: they share the partitions through leases in a key-value bucket, and when one stops or dies the others take its partitions within about jetstream.lease_s. A partition's snapshot is kept in a key-value bucket and messages are acknowledged only after a snapshot covers them, so a replacement worker continues where the last snapshot left off and no alert is lost or raised twice.
 
-Stop it with SIGTERM or Ctrl-C: it snapshots and acknowledges its partitions, hands them back and exits 0. A bad config or card exits 2; no server reached within jetstream.start_timeout_s at start exits 3; once connected it reconnects for as long as it takes.
+Stop it with SIGTERM or Ctrl-C: it snapshots and acknowledges its partitions, hands them back and exits 0. A bad config or card exits 2; no server reached within jetstream.start_timeout_s at start, or a JetStream that refuses to make the streams and buckets (or is not ready within that timeout: a new cluster electing its leaders is waited for), exits 3; once connected it reconnects for as long as it takes.
 
 The NATS server needs JetStream and the subject mappings printed by 'watchdog-edge jetstream mappings'; with an MQTT listener (mqtt { port: 1883 }) gateways publish to it unchanged.
 
@@ -53,7 +53,7 @@ def run(
 def mappings(
     config: Path = typer.Option(..., "--config", "-c", help="The TOML config file with a [jetstream] section."),
 ) -> None:
-    """Print the subject mappings the NATS server needs: each model topic into its partition subject."""
+    """Print the subject mappings the NATS server needs: model topics into partitions, and the command topic."""
     from watchdog_edge.files.configfile import load_config
     from watchdog_edge.jetstream.subjects import server_config
 
@@ -67,7 +67,12 @@ def mappings(
 def export(
     config: Path = typer.Option(..., "--config", "-c", help="The TOML config file with a [jetstream] section."),
     out: Path = typer.Option(..., "--out", "-o", help="The recording to write (JSON Lines, overwritten)."),
-    partition: Optional[int] = typer.Option(None, "--partition", min=0, help="Only this partition."),
+    partition: Optional[int] = typer.Option(
+        None,
+        "--partition",
+        min=0,
+        help="Only this partition (and the planned-work commands, which every partition reads).",
+    ),
 ) -> None:
     """Write the input stream as a recording with the times the workers used (the stream's stored times).
 

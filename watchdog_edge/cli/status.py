@@ -181,7 +181,7 @@ PLANNED_HELP = """Begin or end planned work on an agent: its raises (of the give
 
 It publishes a command on the agent's planned-work topic (watchdog/agents/AGENT/commands/planned-work by default) and then watches the agent's status until the window shows begun or ended. The shipped ACL lets only the operator account publish there; a refusal is reported (MQTT 5 reason code). A command the agent cannot apply is set aside as a dead letter with reason bad_command ('watchdog-edge deadletters' says why).
 
-Windows that recur or are known in advance belong in the config ([[planned_work]]).
+Windows that recur or are known in advance belong in the config ([[planned_work]]). JetStream workers publish no agent status: send them commands with --wait 0 (the broker's acknowledgement is the answer) and read planned_work in the lease bucket.
 
 \\b
 Examples:
@@ -218,7 +218,14 @@ def planned_work(
     status_topic: str = typer.Option(
         "watchdog/agents/{agent}/status", "--status-topic", help="Status topic template (broker.topics.status)."
     ),
-    wait: float = typer.Option(5.0, "--wait", min=0, max=120, help="Seconds to watch the agent's status."),
+    wait: float = typer.Option(
+        5.0,
+        "--wait",
+        min=0,
+        max=120,
+        help="Seconds to watch the agent's status; 0 delivers the command without watching (JetStream workers "
+        "publish no agent status).",
+    ),
 ) -> None:
     from watchdog_edge.cli.durations import parse_duration_s
     from watchdog_edge.readers.commands import command_doc, send_command
@@ -242,6 +249,11 @@ def planned_work(
     except WatchdogError as e:
         _fail(str(e).replace("\n", " "))
     done = "began" if action == "begin" else "ended"
+    if wait == 0:
+        typer.echo(
+            f"planned work '{name}': the broker took the command for {agent}; its status was not watched (--wait 0)"
+        )
+        return
     if seen:
         typer.echo(f"planned work '{name}' {done} on {agent} (its status shows it)")
         return

@@ -328,7 +328,10 @@ class Monitor:
     1
     """
 
-    def __init__(self, config: Config, cards: dict[str, ModelCard]) -> None:
+    def __init__(self, config: Config, cards: dict[str, ModelCard], command_models: list[str] | None = None) -> None:
+        # command_models: the models a planned-work window may name (default: this config's).
+        # A JetStream partition's monitor holds some of the agent's models but meets every
+        # command and config window of the agent, which may name the others.
         self.config = config
         self.agent = config.agent.name
         routes: list[tuple[str, Lane]] = []
@@ -360,12 +363,13 @@ class Monitor:
         self._exact: tuple[bytes | None, list[Any]] = (None, [])
         # planned work: the windows, the command topic, and the next time the holding may change
         self.schedule = Schedule(config.planned_work)
+        self.command_models = list(self.tracks) if command_models is None else list(command_models)
         for pw in config.planned_work:
-            unknown = [m for m in pw.models or () if m not in self.tracks]
+            unknown = [m for m in pw.models or () if m not in self.command_models]
             if unknown:
                 raise ConfigError(
                     f"planned_work[{pw.name}].models: {unknown[0]!r} is not a model of this config; "
-                    f"models are {', '.join(self.tracks)}"
+                    f"models are {', '.join(self.command_models)}"
                 )
         self.command_topic = config.broker.topics.planned_work.replace("{agent}", self.agent)
         if self.router.route(self.command_topic):
@@ -611,7 +615,7 @@ class Monitor:
             doc = decode(raw, self.max_payload)
             if len(doc) != 1:
                 raise CommandError("send one planned-work command per message, as one JSON object")
-            self.schedule.command(doc[0], t, list(self.tracks))
+            self.schedule.command(doc[0], t, self.command_models)
         except BadRecord as e:
             self._dead_letter(self.command_topic, t, "bad_command", f"not a planned-work command: {e.detail}", raw, out)
             return
@@ -753,12 +757,16 @@ class Monitor:
             "bad_total": sum(self.bad.values()),
             "clock_backwards": self.clock_backwards,
             "dead_letters_kept": len(self._dead),
-            "planned_work": [w.to_dict() for w in self._pw_active.values()],
+            "planned_work": self.active_windows(),
             "held_raises": sum(tr.book.held for tr in self.tracks.values()),
             "alerts": self.alert_counts(),
             **totals,
             "models": per_model,
         }
+
+    def active_windows(self) -> list[dict[str, Any]]:
+        """The planned-work windows active at the last time fed, as shown in status."""
+        return [w.to_dict() for w in self._pw_active.values()]
 
     def alert_counts(self) -> dict[str, dict[str, dict[str, int]]]:
         """Alerts published since the first start: check -> state -> severity -> count."""
@@ -805,11 +813,17 @@ class Monitor:
         }
 
     @classmethod
-    def restore(cls, config: Config, cards: dict[str, ModelCard], data: dict[str, Any]) -> Monitor:
+    def restore(
+        cls,
+        config: Config,
+        cards: dict[str, ModelCard],
+        data: dict[str, Any],
+        command_models: list[str] | None = None,
+    ) -> Monitor:
         """A monitor that continues exactly where ``snapshot`` left off."""
         if data.get("format") != SNAPSHOT_FORMAT:
             raise ConfigError(f"snapshot format {data.get('format')!r} is not {SNAPSHOT_FORMAT}; start without it")
-        mon = cls(config, cards)
+        mon = cls(config, cards, command_models)
         mon.now = float(data["now"]) if data["now"] is not None else float("-inf")
         mon.received = data["received"]
         mon.ticks = data["ticks"]

@@ -141,7 +141,9 @@ class JetStreamSettings(_Strict):
         5000, ge=1, description="Snapshot a partition (then acknowledge) after this many messages at most."
     )
     snapshot_every_s: float = Field(10.0, gt=0, description="... or after this long, whichever comes first.")
-    fetch_batch_messages: int = Field(2000, ge=1, le=10000, description="Messages asked for in one pull request.")
+    fetch_batch_messages: int = Field(
+        5000, ge=1, le=10000, description="Messages asked for in one pull request (fewer requests, less server CPU)."
+    )
     mirror_alerts_to_mqtt: bool = Field(
         True, description="Also publish each alert on broker.topics.alerts, which the server's MQTT listener serves."
     )

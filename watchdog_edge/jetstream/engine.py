@@ -6,8 +6,12 @@ Every call here is idempotent, so any number of workers may start at once.
 from __future__ import annotations
 
 import asyncio
+import base64
+import calendar
 import contextlib
 import json
+import math
+import time
 from collections.abc import AsyncIterator
 from dataclasses import dataclass
 from typing import Any
@@ -26,18 +30,56 @@ from nats.js.api import (
 from nats.js.kv import KeyValue
 
 from watchdog_edge.core.settings import JetStreamSettings
-from watchdog_edge.jetstream.subjects import Subjects, delivery
+from watchdog_edge.jetstream.subjects import COMMANDS, Subjects, delivery
+
+# Refusals that a new or changing cluster gives until its leaders are elected and its peers
+# known; every other refusal (a 400 for a bad name, R3 on a single server, ...) needs a person.
+# The codes are nats-server's ``err_code`` values (from its errors.json; the cluster test meets
+# them on a cluster started a moment before the worker).
+WAIT_ERR_CODES = {
+    10005: "no suitable peers for placement",
+    10008: "JetStream system temporarily unavailable",
+    10023: "insufficient resources",
+}
+
+
+def worth_waiting(e: BaseException) -> bool:
+    """True for what a JetStream still electing its leaders answers; False for a refusal a person must fix."""
+    if isinstance(e, (asyncio.TimeoutError, nats.errors.NoRespondersError, nats.errors.ConnectionClosedError)):
+        return True
+    if isinstance(e, nats.errors.NoServersError):
+        return True
+    if isinstance(e, nats.js.errors.ServiceUnavailableError):  # 503: no JetStream leader to answer yet
+        return True
+    # a 500 can be for good (10074: replicas > 1 on a single server), so only the listed codes wait
+    return isinstance(e, nats.js.errors.APIError) and e.err_code in WAIT_ERR_CODES
+
+
+class StreamMismatch(Exception):
+    """A stream of the workers' name exists but does not take their subjects: a person must settle it."""
 
 
 async def ensure_stream(js: JetStreamContext, config: StreamConfig) -> None:
-    """Create the stream unless it exists (a worker never changes a stream someone else made)."""
+    """Create the stream unless it exists (a worker never changes a stream someone else made).
+
+    An existing stream must take the workers' subjects; StreamMismatch otherwise.
+    """
     try:
-        await js.stream_info(config.name or "")
+        info = await js.stream_info(config.name or "")
+        missing = [x for x in config.subjects or [] if x not in (info.config.subjects or [])]
+        if missing:
+            raise StreamMismatch(
+                f"stream {config.name} exists with subjects {info.config.subjects}, without {missing}, which "
+                "the workers need; give the workers another stream name in [jetstream] or fix the stream"
+            )
     except nats.js.errors.NotFoundError:
         try:
             await js.add_stream(config)
-        except nats.js.errors.BadRequestError:
-            await js.stream_info(config.name or "")  # made meanwhile by another worker: fine
+        except nats.js.errors.BadRequestError as refused:
+            try:
+                await js.stream_info(config.name or "")  # made meanwhile by another worker: fine
+            except nats.js.errors.NotFoundError:
+                raise refused from None  # not made: the refusal stands
 
 
 async def ensure_all(
@@ -95,8 +137,11 @@ async def ensure_all(
                 raise
             try:
                 buckets[role] = await js.create_key_value(bucket=name, history=1, ttl=ttl, replicas=s.replicas)
-            except nats.js.errors.BadRequestError:
-                buckets[role] = await js.key_value(name)
+            except nats.js.errors.BadRequestError as refused:
+                try:
+                    buckets[role] = await js.key_value(name)
+                except nats.js.errors.BucketNotFoundError:
+                    raise refused from None
     return buckets
 
 
@@ -123,6 +168,12 @@ async def start_consumer(js: JetStreamContext, s: JetStreamSettings, p: int, aft
             ack_policy=AckPolicy.ALL,
             ack_wait=max(60.0, 6 * s.snapshot_every_s),
             max_ack_pending=2 * s.snapshot_every_messages + 2 * s.fetch_batch_messages,
+            # The consumer's own state (what it delivered, what was acknowledged) is kept in the
+            # server's memory, not written to its store: no holder reads it back, since every
+            # claim re-makes the consumer from the snapshot's sequence. The messages stay in the
+            # file store, replicated. It cuts the server's CPU per record (bench/jetstream_throughput.py);
+            # a consumer lost with a restarted server is re-made from the snapshot (PullFeed).
+            mem_storage=True,
         ),
     )
     return name
@@ -139,10 +190,102 @@ class InboundMessage:
     payload: bytes
 
 
+def rfc3339_ns(text: str) -> int:
+    """Unix nanoseconds of the server's RFC 3339 time (it gives nanoseconds; floats would lose them).
+
+    >>> rfc3339_ns("2026-12-02T17:16:40.843405263Z"), rfc3339_ns("1970-01-01T00:00:01.5+00:00")
+    (1796231800843405263, 1500000000)
+    """
+    body, offset = text, 0
+    if body.endswith("Z"):
+        body = body[:-1]
+    elif len(body) > 6 and body[-6] in "+-" and body[-3] == ":":
+        sign = 1 if body[-6] == "+" else -1
+        offset = sign * (int(body[-5:-3]) * 3600 + int(body[-2:]) * 60)
+        body = body[:-6]
+    whole, _, frac = body.partition(".")
+    seconds = calendar.timegm(time.strptime(whole, "%Y-%m-%dT%H:%M:%S")) - offset
+    return seconds * 1_000_000_000 + int((frac + "000000000")[:9])
+
+
+async def next_command(nc: Any, s: JetStreamSettings, from_seq: int, timeout: float = 5.0) -> InboundMessage | None:
+    """The first planned-work command stored at stream sequence ``from_seq`` or later; None when there is none.
+
+    One request to the stream (a message get by subject); stream sequences only grow, so a
+    "none" holds for every sequence the caller has already seen delivered.
+    """
+    subjects = Subjects(s.subject_prefix, s.partitions)
+    req = {"seq": from_seq, "next_by_subj": subjects.all_commands()}
+    resp = await nc.request(f"$JS.API.STREAM.MSG.GET.{s.input_stream}", json.dumps(req).encode(), timeout=timeout)
+    doc = json.loads(resp.data)
+    err = doc.get("error")
+    if err is not None:
+        if err.get("code") == 404:
+            return None
+        raise nats.js.errors.APIError(
+            code=err.get("code"), err_code=err.get("err_code"), description=err.get("description")
+        )
+    m = doc["message"]
+    p, topic = subjects.split(m["subject"])
+    data = base64.b64decode(m["data"]) if m.get("data") else b""
+    return InboundMessage(p, int(m["seq"]), rfc3339_ns(m["time"]) / 1e9, topic, data)
+
+
+class Commands:
+    """The planned-work commands of the input stream, read once for every partition a worker holds.
+
+    A message get by subject makes the server pass over every message from the sequence given
+    to the first command (about 0.16 ms of its CPU per 1,000 messages, measured on 2.9), so a
+    get per batch and partition would cost a scan of the backlog each time. Here the worker
+    keeps one stretch of sequences, ``known_from`` to ``known_to``, in which it holds every
+    command, and extends it only past its end: a "none" reaches the stream's last sequence,
+    asked just before, since a command stored later gets a higher sequence. With traffic
+    flowing, nearly every batch passes the end, so the stretch is extended at most every
+    ``gap_s``: a partition then waits that long at most, and the server answers at most
+    two requests per ``gap_s`` per worker whatever the rate.
+    """
+
+    def __init__(self, nc: Any, js: JetStreamContext, s: JetStreamSettings, gap_s: float = 0.05) -> None:
+        self.nc, self.js, self.s = nc, js, s
+        self.gap_s = gap_s
+        self.asked_at = -math.inf
+        self.known_from = 1
+        self.known_to = 0
+        self.found: list[InboundMessage] = []
+        self.lock = asyncio.Lock()
+        self.gets = 0  # message gets made (for the status counters)
+
+    async def between(self, after: int, before: int) -> list[InboundMessage]:
+        """The commands stored after sequence ``after`` and before ``before``, in stream order."""
+        async with self.lock:
+            if after + 1 < self.known_from:  # a partition resuming from an older snapshot: start again there
+                self.known_from, self.known_to, self.found = after + 1, after, []
+            while self.known_to < before - 1:
+                wait = self.asked_at + self.gap_s - asyncio.get_running_loop().time()
+                if wait > 0:
+                    await asyncio.sleep(wait)
+                self.asked_at = asyncio.get_running_loop().time()
+                last = (await self.js.stream_info(self.s.input_stream)).state.last_seq
+                found = await next_command(self.nc, self.s, self.known_to + 1)
+                self.gets += 1
+                if found is None:
+                    self.known_to = max(before - 1, last)
+                    break
+                self.found.append(found)
+                self.known_to = found.seq
+            return [c for c in self.found if after < c.seq < before]
+
+    def forget_before(self, seq: int) -> None:
+        """Drop what no held partition needs any more (every one has fed past ``seq``)."""
+        if seq > self.known_from:
+            self.found = [c for c in self.found if c.seq >= seq]
+            self.known_from = min(seq, self.known_to + 1)
+
+
 async def read_input(
     js: JetStreamContext, s: JetStreamSettings, partition: int | None = None, idle_s: float = 1.0
 ) -> AsyncIterator[InboundMessage]:
-    """Every message of the input stream (or one partition) in stream order, up to the stream's last message now.
+    """Every message of the input stream (or one partition and the commands) in stream order, up to its last now.
 
     It also stops when none comes for ``idle_s``.
 
@@ -150,7 +293,9 @@ async def read_input(
         the workers' alerts.
     """
     subjects = Subjects(s.subject_prefix, s.partitions)
-    flt = subjects.all_inbound() if partition is None else subjects.partition_filter(partition)
+    # one partition's holder also reads the commands (subjects.py, rule 4); the server (2.9)
+    # takes one filter a consumer, so the others are skipped here
+    flt = subjects.all_inbound()
     last = (await js.stream_info(s.input_stream)).state.last_seq
     sub = await js.subscribe(flt, stream=s.input_stream, ordered_consumer=True, deliver_policy=DeliverPolicy.ALL)
     try:
@@ -161,7 +306,8 @@ async def read_input(
                 return
             d = delivery(msg.reply)
             p, topic = subjects.split(msg.subject)
-            yield InboundMessage(p, d.stream_seq, d.timestamp_ns / 1e9, topic, msg.data)
+            if partition is None or p == partition or p == COMMANDS:
+                yield InboundMessage(p, d.stream_seq, d.timestamp_ns / 1e9, topic, msg.data)
             if d.stream_seq >= last:
                 return
     finally:
@@ -176,8 +322,12 @@ class PullFeed:
     per message (see bench/jetstream_throughput.py).
     """
 
-    def __init__(self, nc: Any, stream: str, durable: str, batch: int, expires_s: float = 1.0) -> None:
+    def __init__(
+        self, nc: Any, stream: str, durable: str, batch: int, expires_s: float = 1.0, unserved_s: float = 10.0
+    ) -> None:
         self.nc = nc
+        self.unserved_s = unserved_s
+        self.unserved_since: float | None = None
         self.subject = f"$JS.API.CONSUMER.MSG.NEXT.{stream}.{durable}"
         self.batch = batch
         self.expires_s = expires_s
@@ -195,6 +345,7 @@ class PullFeed:
 
     async def _on_msg(self, msg: Any) -> None:
         if msg.reply:  # a message of the stream
+            self.unserved_since = None
             self.msgs.append(msg)
             self.remaining -= 1
             if self.remaining <= 0 or len(self.msgs) >= self.batch:
@@ -206,13 +357,21 @@ class PullFeed:
         self.remaining = 0  # the request is over: no messages, timed out, or refused
         if status == "409" and "Deleted" in (msg.headers or {}).get("Description", ""):
             self.gone = "the consumer was deleted"
+        self.unserved_since = None  # an answer (a timeout too): the consumer is served
         self.ready.set()
 
     async def take(self, timeout: float) -> list[Any]:
         """What has arrived; waits up to ``timeout`` when nothing has. Raises when the consumer is gone."""
         loop = asyncio.get_running_loop()
         if self.remaining > 0 and loop.time() - self.asked_at > self.expires_s + 2.0:
-            self.remaining = 0  # a request lost with a reconnect: ask again
+            # no answer at all, not even "timed out": lost with a reconnect, a leader being
+            # elected, or no consumer any more (a server restarted without it: its state was in
+            # memory). Ask again; when nothing answers for ``unserved_s``, the holder re-makes it.
+            if self.unserved_since is None:
+                self.unserved_since = self.asked_at
+            elif loop.time() - self.unserved_since > self.unserved_s:
+                self.gone = f"nothing has answered the consumer's pull requests for {self.unserved_s:.0f} s"
+            self.remaining = 0
         if self.remaining <= 0:
             self.remaining = self.batch
             self.asked_at = loop.time()
@@ -234,4 +393,4 @@ class PullFeed:
 
 
 class ConsumerGone(nats.errors.Error):
-    """The partition's consumer was deleted (another holder re-made it): resume from the snapshot."""
+    """The consumer was deleted (another holder re-made it) or nothing serves it: resume from the snapshot."""

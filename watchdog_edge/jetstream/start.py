@@ -25,7 +25,8 @@ def _fail(message: str, code: int) -> int:
 def run_worker(config: Path, worker_id: str | None = None, log_level: str = "info") -> int:
     """Load the config and cards, run one worker until SIGTERM or SIGINT; the process's exit code.
 
-    0 after a clean stop, 2 for a bad config or card, 3 when no server can be reached at start.
+    0 after a clean stop, 2 for a bad config or card, 3 when no server can be reached at start or
+    its JetStream refuses (or is not ready within the start timeout) to make the streams and buckets.
     """
     level = getattr(logging, log_level.upper(), None)
     if not isinstance(level, int):
@@ -33,7 +34,7 @@ def run_worker(config: Path, worker_id: str | None = None, log_level: str = "inf
     logging.basicConfig(level=level, stream=sys.stderr, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     from watchdog_edge.files.configfile import load_cards, load_config
     from watchdog_edge.jetstream.subjects import mappings
-    from watchdog_edge.jetstream.worker import Worker
+    from watchdog_edge.jetstream.worker import StartRefused, Worker
 
     try:
         cfg = load_config(config)
@@ -52,6 +53,8 @@ def run_worker(config: Path, worker_id: str | None = None, log_level: str = "inf
 
     try:
         return asyncio.run(main())
+    except StartRefused as e:
+        return _fail(str(e), 3)
     except (nats.errors.NoServersError, OSError) as e:
         return _fail(f"cannot reach a NATS server at {', '.join(cfg.jetstream.servers)}: {e}", 3)
 

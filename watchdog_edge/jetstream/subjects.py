@@ -11,6 +11,10 @@ The rules of this file:
 3. The inbound subject of a message is ``PREFIX.in.<partition>.m.<the topic as a subject>``,
    made by the server's mapping from the topic's own subject; a timer tick of a partition is
    ``PREFIX.in.<partition>.t``. One durable consumer per partition filters ``PREFIX.in.<p>.>``.
+4. Planned-work commands concern every partition (a window may name models of several, or
+   all), so they are not partitioned: the mapping puts the agent's command topic on
+   ``PREFIX.in.c.m.<the topic as a subject>``, in the same input stream, and every partition's
+   holder reads them in stream order between its own messages (worker.py, rule 7).
 """
 
 from __future__ import annotations
@@ -20,6 +24,7 @@ from dataclasses import dataclass
 from watchdog_edge.core.settings import Config, ModelSettings
 from watchdog_edge.errors import ConfigError
 
+COMMANDS = -1  # the "partition" of the planned-work commands, which every partition reads (rule 4)
 _FNV_OFFSET = 0x811C9DC5
 _FNV_PRIME = 0x01000193
 
@@ -79,6 +84,13 @@ class Subjects:
         """The subject the mapping gives a topic in partition ``p`` (for tests and benches)."""
         return f"{self.prefix}.in.{p}.m.{topic_to_subject(topic)}"
 
+    def command(self, topic: str) -> str:
+        """The subject the mapping gives a message on the planned-work command topic."""
+        return f"{self.prefix}.in.c.m.{topic_to_subject(topic)}"
+
+    def all_commands(self) -> str:
+        return f"{self.prefix}.in.c.>"
+
     def alert(self, model: str) -> str:
         return f"{self.prefix}.alerts.{model}"
 
@@ -92,9 +104,13 @@ class Subjects:
         return f"{self.prefix}.dead.>"
 
     def split(self, subject: str) -> tuple[int, str | None]:
-        """``(partition, MQTT topic)`` of an inbound subject; topic None for a tick."""
+        """``(partition, MQTT topic)`` of an inbound subject; topic None for a tick, partition COMMANDS for a command.
+
+        >>> Subjects("wd", 4).split("wd.in.2.m.plant.a.pred"), Subjects("wd", 4).split("wd.in.c.m.x.y")
+        ((2, 'plant/a/pred'), (-1, 'x/y'))
+        """
         parts = subject.split(".", 4)
-        p = int(parts[2])
+        p = COMMANDS if parts[2] == "c" else int(parts[2])
         if parts[3] == "t":
             return p, None
         return p, subject_to_topic(parts[4])
@@ -139,7 +155,19 @@ def mappings(cfg: Config, models: list[ModelSettings] | None = None) -> dict[str
             n = {i: j + 1 for j, i in enumerate(wild)}  # wildcard positions count from 1
             dest = ".".join(f"{{{{wildcard({n[i]})}}}}" if i in n else lv for i, lv in enumerate(levels))
             out[src] = f"{js.subject_prefix}.in.{{{{partition({js.partitions},{n[k]})}}}}.m.{dest}"
+    topic = command_topic(cfg)
+    if "." in topic or " " in topic or "+" in topic or "#" in topic:
+        raise ConfigError(
+            f"broker.topics.planned_work = {cfg.broker.topics.planned_work!r}: the command topic {topic!r} holds "
+            "'.', ' ', '+' or '#', which the JetStream workers cannot map (agent.name is part of it)"
+        )
+    out[topic_to_subject(topic)] = Subjects(js.subject_prefix, js.partitions).command(topic)
     return out
+
+
+def command_topic(cfg: Config) -> str:
+    """The agent's planned-work command topic (as the monitor computes it)."""
+    return cfg.broker.topics.planned_work.replace("{agent}", cfg.agent.name)
 
 
 def server_config(cfg: Config, models: list[ModelSettings] | None = None) -> str:

@@ -29,8 +29,16 @@ The rules of this file, in the order a partition meets them:
    core's snapshot goes to the snapshot bucket (compare-and-set, rule 2) and only then is the
    last message acknowledged (ack policy "all": it covers every message before it). A worker
    that dies loses nothing: its successor starts at the last snapshot (rule 2).
-6. Retained state per model goes to the state bucket after every alert and every
-   ``agent.state_every_s``.
+6. Retained state per model goes to the state bucket after every alert, every planned-work
+   window that begins or ends, and every ``agent.state_every_s``.
+7. Planned-work commands (subjects.py, rule 4) are in the input stream but in no partition's
+   consumer: before feeding a batch, the holder takes the commands stored before the batch's
+   last message from the worker's ``Commands`` (engine.py), which reads each stretch of the
+   stream once for all partitions, and feeds each at its place in stream order, with its
+   stored time. Every partition thus meets every
+   command where a replay of the stream meets it; a command's dead letter has one id in all
+   partitions (``c-<sequence>-<index>``), so the stream keeps it once. A command stored after
+   a partition's last message is fed before the next tick (within ``agent.tick_every_s``).
 """
 
 from __future__ import annotations
@@ -57,10 +65,17 @@ from nats.js.kv import KeyValue
 from watchdog_edge import __version__
 from watchdog_edge.agent.agent import alert_payload, json_safe
 from watchdog_edge.core.cards import ModelCard
-from watchdog_edge.core.events import Alert, DeadLetter, rfc3339
+from watchdog_edge.core.events import Alert, DeadLetter, PlannedWork, rfc3339
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import Config
-from watchdog_edge.jetstream.engine import PullFeed, ensure_all, start_consumer
+from watchdog_edge.jetstream.engine import (
+    Commands,
+    InboundMessage,
+    PullFeed,
+    ensure_all,
+    start_consumer,
+    worth_waiting,
+)
 from watchdog_edge.jetstream.subjects import Subjects, delivery, partition_of, topic_to_subject
 
 log = logging.getLogger("watchdog_edge.jetstream.worker")
@@ -90,6 +105,10 @@ def default_worker_id() -> str:
 
 class SnapshotTooLarge(Exception):
     """A partition's snapshot does not fit in one message of the server."""
+
+
+class StartRefused(Exception):
+    """The streams and buckets could not be made at start (a refusal, or not ready within the start timeout)."""
 
 
 class LostPartition(Exception):
@@ -128,6 +147,7 @@ class Worker:
         self.nc: NATS | None = None
         self.js: JetStreamContext | None = None
         self.lease_js: JetStreamContext | None = None
+        self.commands: Commands | None = None
         self.buckets: dict[str, KeyValue] = {}
         self.mqtt_alert_subjects = {
             m.id: topic_to_subject(config.broker.topics.alerts.format(model=m.id, agent=config.agent.name))
@@ -139,6 +159,7 @@ class Worker:
             "alerts_published": 0,
             "alerts_held_back": 0,
             "dead_letters": 0,
+            "commands": 0,
             "snapshots": 0,
             "claims": 0,
             "handed_back": 0,
@@ -147,15 +168,23 @@ class Worker:
         }
         self.started = time.time()
         self._dead_logged: dict[str, float] = {}
+        self._planned_logged: dict[tuple[str, ...], None] = {}
         self._errors_logged: dict[str, float] = {}
 
     # --- connection -------------------------------------------------------------------------
     async def connect(self) -> None:
-        """Connect (NoServersError after ``jetstream.start_timeout_s``), make the streams and buckets if missing.
+        """Connect, make the streams and buckets if missing; NoServersError or StartRefused otherwise.
 
-        Once connected, the client reconnects for as long as it takes.
+        Both steps share ``jetstream.start_timeout_s``: a server that is up but whose JetStream
+        is still electing its leaders (a cluster started a moment ago) is asked again, with a
+        growing pause, until the timeout; a refusal that needs a person (a name the server
+        refuses, replicas it cannot place on one server) ends the start at once. A request under
+        way when the timeout passes may add up to 5 s. Once connected, the client reconnects for
+        as long as it takes.
         """
         s = self.settings
+        loop = asyncio.get_running_loop()
+        deadline = loop.time() + s.start_timeout_s
         try:
             self.nc = await asyncio.wait_for(
                 nats.connect(
@@ -173,12 +202,36 @@ class Worker:
             )
         except asyncio.TimeoutError:
             raise nats.errors.NoServersError() from None
-        self.js = self.nc.jetstream(timeout=5)
         a = self.config.agent
-        self.buckets = await ensure_all(self.js, s, s.lease_s, a.dead_letter_max_count, a.dead_letter_max_bytes)
-        # lease calls wait at most a third of the lease: a slow one must not outlast the lease itself
-        self.lease_js = self.nc.jetstream(timeout=max(0.5, s.lease_s / 3))
-        self.buckets["leases"] = await self.lease_js.key_value(s.lease_bucket)
+        pause = 0.2
+        for attempt in range(1, 1_000_000):
+            self.js = self.nc.jetstream(timeout=5)  # the buckets keep it: no shorter timeout here
+            self.commands = Commands(self.nc, self.js, s)
+            try:
+                self.buckets = await ensure_all(self.js, s, s.lease_s, a.dead_letter_max_count, a.dead_letter_max_bytes)
+                # lease calls wait at most a third of the lease: a slow one must not outlast the lease
+                self.lease_js = self.nc.jetstream(timeout=max(0.5, s.lease_s / 3))
+                self.buckets["leases"] = await self.lease_js.key_value(s.lease_bucket)
+                break
+            except Exception as e:
+                if not worth_waiting(e):
+                    raise StartRefused(f"cannot make or use the streams and buckets: {e}") from None
+                left = deadline - loop.time()
+                if left <= 0:
+                    raise StartRefused(
+                        f"JetStream at {', '.join(s.servers)} was not ready within jetstream.start_timeout_s "
+                        f"({s.start_timeout_s} s; {attempt} tries; last: {type(e).__name__} {e}); raise the "
+                        "timeout for a cluster that takes longer to elect its leaders"
+                    ) from None
+                log.warning(
+                    "JetStream not ready to make the streams and buckets (%s); trying again in %.1f s "
+                    "(%.1f s of the start timeout left)",
+                    f"{type(e).__name__}: {e}" if str(e) else type(e).__name__,
+                    min(pause, left),
+                    left,
+                )
+                await asyncio.sleep(min(pause, left))
+                pause = min(2 * pause, 2.0)
 
     async def _on_error(self, e: Exception) -> None:
         now = time.monotonic()
@@ -290,12 +343,13 @@ class Worker:
         except nats.js.errors.KeyNotFoundError:
             entry = None
         part.snapshot_rev = (entry.revision or 0) if entry is not None else 0
+        every = [m.id for m in self.config.models]  # a command or window may name any model of the agent
         if entry is not None and entry.value:
             data = json.loads(zlib.decompress(entry.value))
-            part.monitor = Monitor.restore(cfg, cards, data["monitor"])
+            part.monitor = Monitor.restore(cfg, cards, data["monitor"], every)
             part.applied = part.snapshotted = int(data["seq"])
         else:
-            part.monitor = Monitor(cfg, cards)
+            part.monitor = Monitor(cfg, cards, every)
             part.applied = part.snapshotted = 0
         try:
             mark = await snaps.get(f"p.{p}.mark")
@@ -380,11 +434,24 @@ class Worker:
         feed, tick, split = mon.feed, mon.tick, self.subjects.split
         alerts: list[tuple[int, Alert]] = []
         dead: list[tuple[int, DeadLetter]] = []
+        planned: list[PlannedWork] = []
         last = None
+        # the commands stored before the last of these messages, fed in stream order (rule 7)
+        commands = await self._commands_before(part, delivery(msgs[-1].reply).stream_seq) if msgs else []
+        k = 0
         for msg in msgs:
             d = delivery(msg.reply)
             if d.stream_seq <= part.applied:  # delivered again (ack wait ran out): already fed
                 continue
+            while k < len(commands) and commands[k].seq < d.stream_seq:
+                c = commands[k]
+                k += 1
+                if c.seq <= part.applied:
+                    continue
+                self._sort(c.seq, feed(c.topic or "", c.payload, c.t), alerts, dead, planned, command=True)
+                self.counters["commands"] += 1
+                part.applied = c.seq
+                part.since_snapshot += 1
             t = d.timestamp_ns / 1e9
             _, topic = split(msg.subject)
             if topic is None:
@@ -396,17 +463,74 @@ class Worker:
             part.applied = d.stream_seq
             part.since_snapshot += 1
             last = msg
-            for ev in out:
-                if type(ev) is Alert:
-                    alerts.append((d.stream_seq, ev))
-                elif type(ev) is DeadLetter:
-                    dead.append((d.stream_seq, ev))
+            if out:
+                self._sort(d.stream_seq, out, alerts, dead, planned)
         if last is not None:
             part.last_msg = last
         if dead:
             await self._publish_dead(part, dead)
+        if planned:
+            await self._planned_work(part, planned)
         if alerts:
             await self._publish_alerts(part, alerts)
+
+    @staticmethod
+    def _sort(
+        seq: int,
+        out: list[Any],
+        alerts: list[tuple[int, Alert]],
+        dead: list[tuple[int, DeadLetter]],
+        planned: list[PlannedWork],
+        command: bool = False,
+    ) -> None:
+        for ev in out:
+            if type(ev) is Alert:
+                alerts.append((seq, ev))
+            elif type(ev) is DeadLetter:
+                # a command's dead letter is the same in every partition: one id, kept once (rule 4)
+                dead.append((-seq if command else seq, ev))
+            elif type(ev) is PlannedWork:
+                planned.append(ev)
+
+    async def _commands_before(self, part: Partition, seq: int) -> list[InboundMessage]:
+        """The planned-work commands stored after what the partition has fed and before ``seq``."""
+        assert self.commands is not None
+        held = [q.applied for q in self.held.values() if q.monitor is not None]
+        if held:
+            self.commands.forget_before(min(held) + 1)
+        return await self.commands.between(part.applied, seq)
+
+    async def _planned_work(self, part: Partition, events: list[PlannedWork]) -> None:
+        """Log a window beginning or ending (once a worker, not once a partition); retained state of its models."""
+        mine = part.monitor.models() if part.monitor is not None else []
+        touched: set[str] = set()
+        for ev in events:
+            w = ev.window
+            covered = [m for m in mine if w["models"] is None or m in w["models"]]
+            touched.update(covered)
+            key = (w["name"], ev.state, w["start"], w["end"])
+            if key in self._planned_logged:
+                continue
+            self._planned_logged[key] = None
+            while len(self._planned_logged) > 256:
+                del self._planned_logged[next(iter(self._planned_logged))]
+            log.warning(
+                "planned work '%s' %s (%s, %s to %s%s): %s",
+                w["name"],
+                ev.state,
+                w["source"],
+                w["start"],
+                w["end"],
+                f", {w['reason']}" if w["reason"] else "",
+                (
+                    f"raises of {', '.join(w['models']) if w['models'] else 'every model'} are held back and "
+                    "counted until it ends"
+                    if ev.state == "began"
+                    else "episodes still open are published now, with a note"
+                ),
+            )
+        if touched:
+            await self._put_states(part, sorted(touched))
 
     async def _publish_alerts(self, part: Partition, alerts: list[tuple[int, Alert]]) -> None:
         assert self.js is not None and self.nc is not None
@@ -433,7 +557,8 @@ class Worker:
         subject = self.subjects.dead(part.number)
         for k, (seq, d) in enumerate(dead):
             headers = {
-                "Nats-Msg-Id": f"{part.number}-{seq}-{k}",
+                # seq < 0: a command's, which every partition meets; the duplicate window keeps one
+                "Nats-Msg-Id": f"c-{-seq}-{k}" if seq < 0 else f"{part.number}-{seq}-{k}",
                 "Wd-Reason": d.reason,
                 "Wd-Topic": d.topic,
                 "Wd-Time": rfc3339(d.t),
@@ -505,8 +630,19 @@ class Worker:
             "heartbeat": rfc3339(time.time()),
             "uptime_s": round(time.time() - self.started, 3),
             "partitions": sorted(self.held),
+            "planned_work": self._windows(),
+            "command_lookups": self.commands.gets if self.commands is not None else 0,
             **self.counters,
         }
+
+    def _windows(self) -> list[dict[str, Any]]:
+        """The planned-work windows active in the held partitions (every partition meets every window)."""
+        seen: dict[str, dict[str, Any]] = {}
+        for part in list(self.held.values()):
+            if part.monitor is not None:
+                for w in part.monitor.active_windows():
+                    seen.setdefault(w["name"], w)
+        return [seen[n] for n in sorted(seen)]
 
     async def _shutdown(self) -> None:
         held = list(self.held.values())

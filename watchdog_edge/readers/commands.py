@@ -52,7 +52,7 @@ def command_doc(
 def send_command(
     access: BrokerAccess, command_topic: str, status_topic: str, doc: dict[str, Any], wait_s: float = 5.0
 ) -> bool | None:
-    """Publish ``doc`` and watch the agent's status; True when it shows the change, None when unseen.
+    """Publish ``doc`` and watch the agent's status; True when it shows the change, None when unseen or unwatched.
 
     Raises BrokerError when the broker cannot be reached or refuses the command.
     """
@@ -110,6 +110,8 @@ def send_command(
             raise BrokerError(
                 f"{refusal[0]} on {command_topic}; only an operator account may publish planned-work commands"
             )
+        if wait_s <= 0:
+            return None
         deadline = time.monotonic() + wait_s
         while time.monotonic() < deadline:
             with lock:
