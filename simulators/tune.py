@@ -34,6 +34,7 @@ import math
 import multiprocessing as mp
 import os
 import sys
+import time
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -353,6 +354,110 @@ def _run_one(job: tuple[int, dict]) -> tuple[int, list[Mark]]:
     return index, apply_setting(cfg, _W["cards"], _W["steps"], _W["models"], _W["checks"])
 
 
+@dataclass(frozen=True)
+class Checked:
+    """A grid setting's config validated (in a worker): its error, or what the run needs of it."""
+
+    index: int
+    error: str | None
+    checks_on: frozenset[str] = frozenset()  # in the chosen models
+    window_pairs: tuple[tuple[str, int], ...] = ()  # (model, window.size_pairs) of the chosen models
+
+
+def _check_setting(task: tuple[int, dict, str]) -> Checked:
+    index, data, label = task
+    try:
+        cfg = parse_config(data, _W["base_dir"], f"grid setting {label}")
+    except ConfigError as e:
+        return Checked(index, str(e))
+    models = _W["models"]
+    chosen = [m for m in cfg.models if models is None or m.id in models]
+    return Checked(
+        index,
+        None,
+        frozenset(n for m in chosen for n in m.enabled_checks()),
+        tuple((m.id, m.window.size_pairs) for m in chosen),
+    )
+
+
+def _batch(task: tuple[Callable[[Any], Any], list[Any]]) -> list[Any]:
+    fn, items = task
+    return [fn(x) for x in items]
+
+
+def _batches(tasks: list[Any], workers: int) -> list[list[Any]]:
+    """Tasks in runs of neighbours, long ones first, each a ``remaining / (2 x workers)``.
+
+    Neighbours in grid order differ in the last keys only (in the default grid, the gap
+    tolerance, which changes no interval): run by one worker, they share the quantiles its
+    caches hold, where tasks dealt out one by one had every worker solve most of them again
+    (2,200 more solves of 3,300 with two workers on the benchmark's day). The runs shrink
+    towards the end, so the workers still finish together.
+    """
+    out: list[list[Any]] = []
+    i = 0
+    while i < len(tasks):
+        n = max(1, -(-(len(tasks) - i) // (2 * workers)))
+        out.append(tasks[i : i + n])
+        i += n
+    return out
+
+
+class _Workers:
+    """``workers`` processes forked once with the shared steps, or this process for 1.
+
+    Fork hands the steps (and the cards) to each worker once, without copying or pickling
+    them per task: the workers start from the one parsed form. Each ``map`` is a phase;
+    both phases of a run (validating the settings, then running the jobs) use the same
+    workers.
+    """
+
+    def __init__(
+        self,
+        workers: int,
+        steps: list[Step],
+        cards: dict[str, ModelCard],
+        base_dir: Path,
+        models: list[str] | None,
+        checks: list[str] | None,
+    ) -> None:
+        self._args = (steps, cards, str(base_dir), models, checks)
+        self._n = workers
+        self._pool: Any = None
+        _init_worker(*self._args)  # for the in-process phases, and inherited by the workers
+
+    def __enter__(self) -> _Workers:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        if self._pool is not None:
+            if exc[0] is None:
+                self._pool.close()  # every task has its result: let the workers end
+            else:
+                self._pool.terminate()
+            self._pool.join()
+
+    def map(
+        self, fn: Callable[[Any], Any], tasks: list[Any], progress: Callable[[int], None] | None = None
+    ) -> list[Any]:
+        """``fn`` of every task, in the order they finish."""
+        out = []
+        if self._n <= 1 or len(tasks) <= 1:
+            for task in tasks:
+                out.append(fn(task))
+                if progress:
+                    progress(1)
+            return out
+        if self._pool is None:
+            ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+            self._pool = ctx.Pool(self._n, initializer=_init_worker, initargs=self._args)
+        for results in self._pool.imap_unordered(_batch, [(fn, b) for b in _batches(tasks, self._n)]):
+            out.extend(results)
+            if progress:
+                progress(len(results))
+        return out
+
+
 def evaluate_all(
     jobs: list[tuple[int, dict]],
     steps: list[Step],
@@ -364,23 +469,8 @@ def evaluate_all(
     checks: list[str] | None = None,
 ) -> dict[int, list[Mark]]:
     """Alerts of every job (index, config data); ``workers`` processes, or in-process for 1."""
-    results: dict[int, list[Mark]] = {}
-    if workers <= 1 or len(jobs) <= 1:
-        _init_worker(steps, cards, str(base_dir), models, checks)
-        for job in jobs:
-            i, marks = _run_one(job)
-            results[i] = marks
-            if progress:
-                progress(1)
-        return results
-    # fork hands the steps to each worker once, without pickling them per setting
-    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
-    with ctx.Pool(workers, initializer=_init_worker, initargs=(steps, cards, str(base_dir), models, checks)) as pool:
-        for i, marks in pool.imap_unordered(_run_one, jobs, chunksize=1):
-            results[i] = marks
-            if progress:
-                progress(1)
-    return results
+    with _Workers(workers, steps, cards, base_dir, models, checks) as pool:
+        return dict(pool.map(_run_one, jobs, progress))
 
 
 # -- scoring ------------------------------------------------------------------------------------
@@ -490,14 +580,20 @@ class TuneResult:
 
 
 def _grace(cfg: Config, intake: Intake, models: list[str] | None, grace_s: float | None) -> float:
+    return _grace_of(
+        tuple((m.id, m.window.size_pairs) for m in cfg.models if models is None or m.id in models), intake, grace_s
+    )
+
+
+def _grace_of(window_pairs: tuple[tuple[str, int], ...], intake: Intake, grace_s: float | None) -> float:
+    """The grace period: the given one, else the longest window of the chosen models in time."""
     if grace_s is not None:
         return grace_s
     rates = []
-    for m in cfg.models:
-        if models is None or m.id in models:
-            r = intake.pair_rate(m.id)
-            if r > 0:
-                rates.append(m.window.size_pairs / r)
+    for model, size in window_pairs:
+        r = intake.pair_rate(model)
+        if r > 0:
+            rates.append(size / r)
     return max(rates) if rates else 0.0
 
 
@@ -576,8 +672,17 @@ def tune(
     tick_every: float | None = None,
     progress: Callable[[int, int], None] | None = None,
     checks: list[str] | None = None,
+    timings: dict[str, float] | None = None,
 ) -> TuneResult:
-    """Evaluate every grid setting on a recording and rank them; see the module docstring."""
+    """Evaluate every grid setting on a recording and rank them; see the module docstring.
+
+    ``timings``, when given, receives the wall time in seconds of each phase: ``setup``
+    (config, cards, the grid), ``parse`` (the shared parse pass), ``workers`` (from the fork
+    to the last result: validating the settings, then the checks' runs), ``merge`` (scoring
+    and ranking, and the check recording if any).
+    """
+    clock = time.perf_counter
+    t0 = clock()
     p = Path(config_path)
     try:
         raw = tomllib.loads(p.read_text(encoding="utf-8"))
@@ -599,32 +704,16 @@ def tune(
     varied = varied_checks(grid)
     chosen = [m for m in cfg.models if models is None or m.id in models]
     fixed = {n for m in chosen for n in m.enabled_checks()} - varied
-    jobs: list[tuple[int, dict]] = []
-    job_of: dict[tuple, int] = {}  # (check, the values of the grid keys that reach it) -> job
-    parts: dict[int, list[int]] = {}  # setting -> the jobs whose alerts make up its alerts
-    invalid = []
-    configs: dict[int, Config] = {}
-    for s in settings:
-        data = with_setting(raw, s, models)
-        try:
-            configs[s.index] = parse_config(data, base_dir, f"grid setting {s.label()}")
-        except ConfigError as e:
-            invalid.append((s, str(e)))
-            continue
-        # Each varied check runs on its own, once per distinct value of the keys that reach
-        # it (checks do not see each other): a grid of gap settings x shift on/off runs gap
-        # once per gap setting and shift once, not every pair of them.
-        on = {n for m in configs[s.index].models if models is None or m.id in models for n in m.enabled_checks()}
-        parts[s.index] = []
-        for check in sorted(varied & on):
-            key = (check, tuple((k, repr(v)) for k, v in s.values.items() if reaches(k, check)))
-            if key not in job_of:
-                job_of[key] = len(jobs)
-                jobs.append((len(jobs), only_checks(data, varied - {check} | fixed, models)))
-            parts[s.index].append(job_of[key])
-    if not parts:
-        raise ConfigError("no grid setting gives a valid config; first problem:\n" + invalid[0][1])
+    if checks is not None:
+        from watchdog_edge.core.checks import CHECK_NAMES
+
+        unknown = [c for c in checks if c not in CHECK_NAMES]
+        if unknown:
+            raise ConfigError(f"--checks names {unknown[0]!r}; known checks are {', '.join(CHECK_NAMES)}")
+    data_of = {s.index: with_setting(raw, s, models) for s in settings}
+    t1 = clock()
     intake = intake_recording(cfg, cards, recording, tick_every)
+    t2 = clock()
     n_workers = max(1, workers if workers is not None else (os.cpu_count() or 1))
     done = 0
 
@@ -634,23 +723,44 @@ def tune(
         if progress:
             progress(done, len(jobs))
 
-    if checks is not None:
-        from watchdog_edge.core.checks import CHECK_NAMES
-
-        unknown = [c for c in checks if c not in CHECK_NAMES]
-        if unknown:
-            raise ConfigError(f"--checks names {unknown[0]!r}; known checks are {', '.join(CHECK_NAMES)}")
-    if fixed:
-        # the checks outside the grid: one more job, run alongside the settings
-        jobs.insert(0, (_SHARED, only_checks(raw, varied, models)))
-    marks = evaluate_all(jobs, intake.steps, cards, base_dir, models, n_workers, tick, checks)
+    jobs: list[tuple[int, dict]] = []
+    job_of: dict[tuple, int] = {}  # (check, the values of the grid keys that reach it) -> job
+    parts: dict[int, list[int]] = {}  # setting -> the jobs whose alerts make up its alerts
+    invalid = []
+    checked: dict[int, Checked] = {}
+    with _Workers(n_workers, intake.steps, cards, base_dir, models, checks) as pool:
+        # The settings are validated by the workers, each once, after the fork: in parallel.
+        for c in pool.map(_check_setting, [(s.index, data_of[s.index], s.label()) for s in settings]):
+            checked[c.index] = c
+        for s in settings:
+            c = checked[s.index]
+            if c.error is not None:
+                invalid.append((s, c.error))
+                continue
+            # Each varied check runs on its own, once per distinct value of the keys that reach
+            # it (checks do not see each other): a grid of gap settings x shift on/off runs gap
+            # once per gap setting and shift once, not every pair of them.
+            parts[s.index] = []
+            for check in sorted(varied & c.checks_on):
+                key = (check, tuple((k, repr(v)) for k, v in s.values.items() if reaches(k, check)))
+                if key not in job_of:
+                    job_of[key] = len(jobs)
+                    jobs.append((len(jobs), only_checks(data_of[s.index], varied - {check} | fixed, models)))
+                parts[s.index].append(job_of[key])
+        if not parts:
+            raise ConfigError("no grid setting gives a valid config; first problem:\n" + invalid[0][1])
+        if fixed:
+            # the checks outside the grid: one more job, run alongside the settings
+            jobs.insert(0, (_SHARED, only_checks(raw, varied, models)))
+        marks = dict(pool.map(_run_one, jobs, tick))
+    t3 = clock()
     shared = marks.pop(_SHARED, [])
     with_inc = incidents is not None
     rows = []
     for s in settings:
         if s.index not in parts:
             continue
-        g = _grace(configs[s.index], intake, models, grace_s)
+        g = _grace_of(checked[s.index].window_pairs, intake, grace_s)
         ms = _sort_marks([m for j in parts[s.index] for m in marks[j]] + shared)
         rows.append(Row(s, score(ms, incidents or [], intake.start, intake.end, g), marks=ms))
     by_index = {r.setting.index: r for r in rows}
@@ -664,10 +774,13 @@ def tune(
     best = rows[0]
     hold = None
     if check_recording is not None:
+        best_cfg = parse_config(data_of[best.setting.index], base_dir, f"grid setting {best.setting.label()}")
         hold = intake_recording(cfg, cards, check_recording, tick_every)
-        hm = apply_setting(configs[best.setting.index], cards, hold.steps, models, checks)
-        g = _grace(configs[best.setting.index], hold, models, grace_s)
+        hm = apply_setting(best_cfg, cards, hold.steps, models, checks)
+        g = _grace(best_cfg, hold, models, grace_s)
         best.check_score = score(hm, check_incidents or [], hold.start, hold.end, g)
+    if timings is not None:
+        timings.update(setup=t1 - t0, parse=t2 - t1, workers=t3 - t2, merge=clock() - t3)
     return TuneResult(rows, best, with_inc, false_alert_budget, invalid, intake, cfg, raw, models, hold, checks)
 
 

@@ -343,7 +343,7 @@ class Monitor:
                 raise ConfigError(f"models[{m.id}].card: no model card was given for model {m.id!r}")
             self.parsers[(m.id, "prediction")] = RecordParser(m.id, "prediction", m.fields.prediction_map())
             self.parsers[(m.id, "truth")] = RecordParser(m.id, "truth", m.fields.truth_map())
-            self.pairers[m.id] = Pairer(m.pairing.horizon_s, m.pairing.max_unpaired_records)
+            self.pairers[m.id] = Pairer(m.pairing.horizon_s, m.pairing.max_unpaired_records, m.id)
             self.tracks[m.id] = ModelTrack(self.agent, m, cards[m.id])
             pairer, track = self.pairers[m.id], self.tracks[m.id]
             routes.append(

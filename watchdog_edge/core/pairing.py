@@ -8,8 +8,8 @@ expire after ``horizon_s``; above ``max_unpaired`` pending records the oldest is
 from __future__ import annotations
 
 import math
-from collections import deque
-from dataclasses import asdict, astuple
+from array import array
+from dataclasses import asdict
 from typing import Any
 
 from watchdog_edge.core.records import Pair, Prediction, Truth
@@ -28,13 +28,70 @@ COUNTERS = (
 
 
 def _fields(p: Prediction) -> tuple:
+    """A waiting prediction's fields: (id, value, t, ts, features or None, version, model)."""
     # No features as None, not {}: a tuple holding a dict, even an empty one, stays tracked.
-    return (p.model, p.id, p.value, p.t, p.ts, p.features or None, p.model_version)
+    return (p.id, p.value, p.t, p.ts, p.features or None, p.model_version, p.model)
 
 
-def _prediction(fields: tuple) -> Prediction:
-    model, pid, value, t, ts, features, version = fields
+# The id stays in the tuple although it is the dict's key: a paired id is kept (in the done
+# set and the queue) as the very text object the prediction brought, not a second copy, and a
+# 3-tuple takes the same 64 bytes as a 2-tuple.
+def _prediction(fields: tuple, model: str | None) -> Prediction:
+    if len(fields) == 3:  # the short form: nothing but id, value and time
+        return Prediction(model or "", fields[0], fields[1], fields[2])
+    pid, value, t, ts, features, version, model = fields
     return Prediction(model, pid, value, t, ts, {} if features is None else features, version)
+
+
+def _truth(fields: tuple, model: str | None) -> Truth:
+    if len(fields) == 3:
+        return Truth(model or "", fields[0], fields[1], fields[2])
+    return Truth(fields[4], *fields[:4])
+
+
+# Queue entries already taken from the front before the front is cut off. Until then they
+# keep their ids alive, so this stays small; cutting moves the rest of the list (about 60
+# pointers a taken entry with a queue of 15,000).
+_CUT_AT = 256
+
+# A paired id's entry in the predictions' dict; index 2 (a waiting record's time) matches no time.
+PAIRED: tuple = ("", None, None)
+
+
+class _Arrivals:
+    """Ids and core times in arrival order, taken from the front by moving ``head``.
+
+    The times are doubles in an array, not float objects in a deque: 8 bytes an entry
+    instead of 32, which matters for the ids kept a whole horizon (every paired id, and
+    the queue entries of records that paired) -- measured in bench/replay_throughput.py.
+    """
+
+    __slots__ = ("ids", "ts", "head")
+
+    def __init__(self) -> None:
+        self.ids: list[str] = []
+        self.ts = array("d")
+        self.head = 0
+
+    def __len__(self) -> int:
+        return len(self.ts) - self.head
+
+    def cut(self) -> None:
+        """Drop the entries already taken, once they are many or half the queue or more."""
+        h = self.head
+        if h >= _CUT_AT or (h and h * 2 >= len(self.ts)):
+            del self.ids[:h]
+            del self.ts[:h]
+            self.head = 0
+
+    def clear(self) -> None:
+        self.ids.clear()
+        del self.ts[:]
+        self.head = 0
+
+    def items(self) -> list[tuple[str, float]]:
+        h = self.head
+        return list(zip(self.ids[h:], self.ts[h:]))
 
 
 class Pairer:
@@ -44,13 +101,18 @@ class Pairer:
     a tuple of numbers and text is not tracked by Python's garbage collector once it has been
     seen, so thousands of records waiting for a late truth add nothing to each collection's
     work (about a sixth of replay's time when they were objects). The record is built again
-    when it pairs or is written to a snapshot.
+    when it pairs or is written to a snapshot. A record with nothing but id, value and time
+    (of the pairer's model) is kept as ``(id, value, t)``, 32 bytes less than all its fields.
 
-    Each store is a plain dict by id beside two queues of ids and core times in arrival order
+    Each store is a plain dict by id beside a queue of ids and core times in arrival order
     (which is core-time order): expiry and eviction take from the front of the queues. A
     record that pairs leaves the dict and its queue entry stays until it reaches the front,
-    where it is recognised as gone and skipped. This holds a waiting record in about 40 bytes
-    less than an ordered dict, and a paired id in about 50 less (measured with tracemalloc).
+    where it is recognised as gone and skipped. A paired id stays in the predictions' dict
+    as ``PAIRED`` for the horizon after its pairing (with a queue of its own): one lookup
+    finds a duplicate of either kind, and the id costs a dict entry and no second text. What the pairer holds is bounded by the
+    horizon (or the cap): with a long horizon and a model whose truths never come, that is
+    every prediction of the horizon, and every paired id of the horizon is kept to count
+    duplicates.
 
     >>> p = Pairer(horizon_s=60, max_unpaired=100)
     >>> p.add_truth(Truth("m", "7", 1.5, t=10.0)) is None
@@ -59,48 +121,61 @@ class Pairer:
     0.5
     """
 
-    def __init__(self, horizon_s: float, max_unpaired: int) -> None:
+    def __init__(self, horizon_s: float, max_unpaired: int, model: str | None = None) -> None:
         self.horizon_s = float(horizon_s)
         self.max_unpaired = int(max_unpaired)
-        # id -> the record's fields in declaration order (index 3 is its core time ``t``)
+        self.model = model  # the model of records kept in the short form (else the first one's)
+        # id -> the record's fields; index 2 is its core time ``t``
         self._preds: dict[str, tuple] = {}
         self._truths: dict[str, tuple] = {}
-        self._pred_ids: deque[str] = deque()
-        self._pred_ts: deque[float] = deque()
-        self._truth_ids: deque[str] = deque()
-        self._truth_ts: deque[float] = deque()
-        self._done: set[str] = set()  # paired ids, for the horizon after their pairing
-        self._done_ids: deque[str] = deque()
-        self._done_ts: deque[float] = deque()
+        self._pred_q = _Arrivals()
+        self._truth_q = _Arrivals()
+        self._done = 0  # paired ids in ``_preds`` as PAIRED, for the horizon after their pairing
+        self._done_q = _Arrivals()
         self._expiring = (
-            (self._preds, self._pred_ids, self._pred_ts, "expired_predictions"),
-            (self._truths, self._truth_ids, self._truth_ts, "expired_truths"),
+            (self._preds, self._pred_q, "expired_predictions"),
+            (self._truths, self._truth_q, "expired_truths"),
         )
         self.counts = dict.fromkeys(COUNTERS, 0)
         self.due = float("inf")  # no record can expire before this core time
+        # bound appends of the queues, for the per-record path (the queues are only ever
+        # changed in place, so these stay theirs)
+        self._pred_add = (self._pred_q.ids.append, self._pred_q.ts.append)
+        self._truth_add = (self._truth_q.ids.append, self._truth_q.ts.append)
+        self._done_add = (self._done_q.ids.append, self._done_q.ts.append)
 
     @property
     def pending(self) -> int:
-        return len(self._preds) + len(self._truths)
+        return len(self._preds) - self._done + len(self._truths)
 
     def add_prediction(self, p: Prediction) -> Pair | None:
         """Store a prediction, or pair it with a waiting truth."""
         self.counts["predictions"] += 1
         pid = p.id
-        if pid in self._preds or pid in self._done:
+        preds = self._preds
+        if pid in preds:  # waiting, or PAIRED
             self.counts["duplicate_predictions"] += 1
             return None
-        truth = self._truths.pop(pid, None)
-        if truth is not None:
-            return self._pair(p, Truth(*truth), p.t)
+        truths = self._truths
+        if truths:  # mostly empty: truths come after their predictions
+            truth = truths.pop(pid, None)
+            if truth is not None:
+                return self._pair(pid, p, _truth(truth, self.model), p.t)
         # _fields(p) written out: this runs for every prediction
         t = p.t
-        self._preds[pid] = (p.model, pid, p.value, t, p.ts, p.features or None, p.model_version)
-        self._pred_ids.append(pid)
-        self._pred_ts.append(t)
-        if t + self.horizon_s < self.due:
-            self.due = t + self.horizon_s
-        if len(self._preds) + len(self._truths) > self.max_unpaired:
+        if p.ts is None and p.model_version is None and not p.features and p.model == self.model:
+            preds[pid] = (pid, p.value, t)
+        else:
+            if self.model is None:
+                self.model = p.model
+            preds[pid] = (pid, p.value, t, p.ts, p.features or None, p.model_version, p.model)
+        add_id, add_t = self._pred_add
+        add_id(pid)
+        add_t(t)
+        end = t + self.horizon_s
+        if end < self.due:
+            self.due = end
+        if len(preds) - self._done + len(truths) > self.max_unpaired:
             self._cap()
         return None
 
@@ -108,59 +183,74 @@ class Pairer:
         """Store a truth, or pair it with a waiting prediction."""
         self.counts["truths"] += 1
         tid = tr.id
-        if tid in self._truths or tid in self._done:
+        pred = self._preds.get(tid)
+        if pred is PAIRED or tid in self._truths:
             self.counts["duplicate_truths"] += 1
             return None
-        pred = self._preds.pop(tid, None)
         if pred is not None:
-            return self._pair(_prediction(pred), tr, tr.t)
+            return self._pair(pred[0], _prediction(pred, self.model), tr, tr.t)
         t = tr.t
-        self._truths[tid] = (tr.model, tid, tr.value, t, tr.ts)
-        self._truth_ids.append(tid)
-        self._truth_ts.append(t)
-        if t + self.horizon_s < self.due:
-            self.due = t + self.horizon_s
-        if len(self._preds) + len(self._truths) > self.max_unpaired:
+        if tr.ts is None and tr.model == self.model:
+            self._truths[tid] = (tid, tr.value, t)
+        else:
+            if self.model is None:
+                self.model = tr.model
+            self._truths[tid] = (tid, tr.value, t, tr.ts, tr.model)
+        add_id, add_t = self._truth_add
+        add_id(tid)
+        add_t(t)
+        end = t + self.horizon_s
+        if end < self.due:
+            self.due = end
+        if len(self._preds) - self._done + len(self._truths) > self.max_unpaired:
             self._cap()
         return None
 
-    def _pair(self, p: Prediction, tr: Truth, t: float) -> Pair:
+    def _pair(self, pid: str, p: Prediction, tr: Truth, t: float) -> Pair:
         self.counts["paired"] += 1
-        pid = p.id
-        self._done.add(pid)
-        self._done_ids.append(pid)
-        self._done_ts.append(t)
-        if t + self.horizon_s < self.due:
-            self.due = t + self.horizon_s
-        if len(self._done) > self.max_unpaired:
-            self._done.discard(self._done_ids.popleft())
-            self._done_ts.popleft()
+        self._preds[pid] = PAIRED  # in place of the waiting prediction, if any: its key stays
+        self._done += 1
+        add_id, add_t = self._done_add
+        add_id(pid)
+        add_t(t)
+        end = t + self.horizon_s
+        if end < self.due:
+            self.due = end
+        if self._done > self.max_unpaired:
+            q = self._done_q
+            del self._preds[q.ids[q.head]]
+            self._done -= 1
+            q.head += 1
+            q.cut()
         return Pair(p, tr, t)
 
     @staticmethod
-    def _front(store: dict[str, tuple], ids: deque[str], ts: deque[float]) -> float | None:
+    def _front(store: dict[str, tuple], q: _Arrivals) -> float | None:
         """Core time of the oldest record still in ``store``; queue entries of records gone are dropped."""
-        while ids:
-            rec = store.get(ids[0])
-            if rec is not None and rec[3] == ts[0]:
-                return ts[0]
-            ids.popleft()
-            ts.popleft()
+        ids, ts, i, n = q.ids, q.ts, q.head, len(q.ts)
+        while i < n:
+            rec = store.get(ids[i])
+            if rec is not None and rec[2] == ts[i]:
+                q.head = i
+                return ts[i]
+            i += 1
+        q.head = i
+        q.cut()
         return None
 
     def _cap(self) -> None:
-        while len(self._preds) + len(self._truths) > self.max_unpaired:
+        while len(self._preds) - self._done + len(self._truths) > self.max_unpaired:
             # Evict whichever side holds the oldest record.
-            op = self._front(self._preds, self._pred_ids, self._pred_ts)
-            ot = self._front(self._truths, self._truth_ids, self._truth_ts)
+            op = self._front(self._preds, self._pred_q)
+            ot = self._front(self._truths, self._truth_q)
             if ot is None or (op is not None and op <= ot):
-                self._pred_ts.popleft()
-                del self._preds[self._pred_ids.popleft()]
-                self.counts["evicted_predictions"] += 1
+                q, store, key = self._pred_q, self._preds, "evicted_predictions"
             else:
-                self._truth_ts.popleft()
-                del self._truths[self._truth_ids.popleft()]
-                self.counts["evicted_truths"] += 1
+                q, store, key = self._truth_q, self._truths, "evicted_truths"
+            del store[q.ids[q.head]]
+            q.head += 1
+            q.cut()
+            self.counts[key] += 1
 
     def expire(self, now: float) -> None:
         """Drop records older than the horizon (records arrive in core-time order)."""
@@ -168,61 +258,100 @@ class Pairer:
             return
         # "expired" is t + horizon < now, the very sum that ``due`` holds: written as
         # t < now - horizon it could differ from ``due`` in the last bit
+        # Runs for most records of a steady stream (each one moves ``due``): a queue is only
+        # walked when its front has expired, and the new ``due`` is taken on the way.
         h = self.horizon_s
-        for store, ids, ts, key in self._expiring:
-            n = 0
-            while ts and ts[0] + h < now:
-                t = ts.popleft()
-                rid = ids.popleft()
-                rec = store.get(rid)
-                if rec is not None and rec[3] == t:  # else it paired, or was evicted, already
-                    del store[rid]
-                    n += 1
-            if n:
-                self.counts[key] += n
-        done, done_ids, done_ts = self._done, self._done_ids, self._done_ts
-        while done_ts and done_ts[0] + h < now:
-            done_ts.popleft()
-            done.discard(done_ids.popleft())
-        self._set_due()
+        first = math.inf
+        for store, q, key in self._expiring:
+            ts = q.ts
+            i, end = q.head, len(ts)
+            if i < end and ts[i] + h < now:
+                ids = q.ids
+                n = 0
+                while i < end:
+                    ti = ts[i]  # read once: each read of an array of doubles makes a float
+                    if not ti + h < now:
+                        break
+                    rid = ids[i]
+                    rec = store.get(rid)
+                    if rec is not None and rec[2] == ti:  # else it paired, or was evicted, already
+                        del store[rid]
+                        n += 1
+                    i += 1
+                q.head = i
+                if i >= _CUT_AT or i * 2 >= end:  # cut()'s test, written out: most calls cut nothing
+                    q.cut()
+                    i, end = q.head, len(ts)
+                if n:
+                    self.counts[key] += n
+            if i < end:
+                ti = ts[i]
+                if ti < first:
+                    first = ti
+        q = self._done_q
+        ts = q.ts
+        i, end = q.head, len(ts)
+        if i < end and ts[i] + h < now:
+            preds, ids = self._preds, q.ids
+            while i < end and ts[i] + h < now:
+                del preds[ids[i]]
+                i += 1
+            self._done -= i - q.head
+            q.head = i
+            if i >= _CUT_AT or i * 2 >= end:
+                q.cut()
+                i, end = q.head, len(ts)
+        if i < end:
+            ti = ts[i]
+            if ti < first:
+                first = ti
+        self.due = first + h
 
     def _set_due(self) -> None:
         first = math.inf
-        for ts in (self._pred_ts, self._truth_ts, self._done_ts):
-            if ts and ts[0] < first:
-                first = ts[0]
+        for q in (self._pred_q, self._truth_q, self._done_q):
+            if q.head < len(q.ts) and q.ts[q.head] < first:
+                first = q.ts[q.head]
         self.due = first + self.horizon_s
 
     def snapshot(self) -> dict[str, Any]:
+        model = self.model
         return {
-            "preds": [asdict(_prediction(f)) for f in self._preds.values()],
-            "truths": [asdict(Truth(*f)) for f in self._truths.values()],
-            "done": list(zip(self._done_ids, self._done_ts)),
+            "preds": [asdict(_prediction(f, model)) for f in self._preds.values() if f is not PAIRED],
+            "truths": [asdict(_truth(f, model)) for f in self._truths.values()],
+            "done": self._done_q.items(),
             "counts": dict(self.counts),
         }
 
     def restore(self, data: dict[str, Any]) -> None:
         # in place: _expiring holds these very stores and queues
-        for store, ids, ts, _ in self._expiring:
+        for store, q, _ in self._expiring:
             store.clear()
-            ids.clear()
-            ts.clear()
+            q.clear()
+        self._done = 0
+        self._done_q.clear()
+        # the records go through add_*, which keeps each in its form; counts are restored after
         for d in data["preds"]:
-            f = _fields(Prediction(**d))
-            self._preds[f[1]] = f
-            self._pred_ids.append(f[1])
-            self._pred_ts.append(f[3])
+            p = Prediction(**d)
+            self._store(self._preds, self._pred_q, _fields(p), p.model)
         for d in data["truths"]:
-            f = astuple(Truth(**d))
-            self._truths[f[1]] = f
-            self._truth_ids.append(f[1])
-            self._truth_ts.append(f[3])
-        self._done.clear()
-        self._done_ids.clear()
-        self._done_ts.clear()
+            tr = Truth(**d)
+            self._store(self._truths, self._truth_q, (tr.id, tr.value, tr.t, tr.ts, tr.model), tr.model)
         for k, t in data["done"]:
-            self._done.add(k)
-            self._done_ids.append(k)
-            self._done_ts.append(float(t))
+            self._preds[k] = PAIRED
+            self._done += 1
+            self._done_q.ids.append(k)
+            self._done_q.ts.append(float(t))
         self.counts.update(data["counts"])
         self._set_due()
+
+    def _store(self, store: dict[str, tuple], q: _Arrivals, fields: tuple, model: str) -> None:
+        """Keep a restored record, in its short form when it has nothing else."""
+        if self.model is None:
+            self.model = model
+        short = (
+            fields[3] is None and model == self.model and (len(fields) == 5 or (not fields[4] and fields[5] is None))
+        )
+        store[fields[0]] = fields[:3] if short else fields
+        q.ids.append(fields[0])
+        q.ts.append(fields[2])
