@@ -46,6 +46,7 @@ from watchdog_edge.core.events import Alert, DeadLetter, PlannedWork
 from watchdog_edge.core.monitor import Monitor, PairStep, Step
 from watchdog_edge.core.renames import CONFIG_RENAMES
 from watchdog_edge.core.settings import Config, parse_config
+from watchdog_edge.core.stats import size_quantile_caches
 from watchdog_edge.errors import ConfigError, RecordingError
 from watchdog_edge.files.configfile import load_cards
 from watchdog_edge.files.documents import read_document
@@ -57,6 +58,7 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 # Keys that change what intake does (parsing, pairing, routing) cannot vary: the steps are shared.
+TUNE_QUANTILE_CACHE_ENTRIES = 16384  # a day of one scenario over the default grid meets about 8,000
 _FIXED_PREFIXES = ("id", "card", "prediction_topic", "truth_topic", "fields", "pairing")
 
 
@@ -711,6 +713,9 @@ def tune(
         if unknown:
             raise ConfigError(f"--checks names {unknown[0]!r}; known checks are {', '.join(CHECK_NAMES)}")
     data_of = {s.index: with_setting(raw, s, models) for s in settings}
+    # Settings replay the same windows and meet the same quantiles again: room for all of them
+    # (about 170 bytes each, at most some megabytes), made before the workers fork.
+    size_quantile_caches(TUNE_QUANTILE_CACHE_ENTRIES)
     t1 = clock()
     intake = intake_recording(cfg, cards, recording, tick_every)
     t2 = clock()
