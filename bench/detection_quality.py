@@ -17,7 +17,11 @@ least squares fitted with numpy on n training rows (n = 30, 300, 3,000) of d fea
 ``card_from_arrays`` (no hold-out, so the expected loss is the card's default estimate), and
 field records with new inputs drawn like the training ones and errors AR(1) with coefficient
 0, 0.5 or 0.9 (unit variance). A false alert is a level rise (normal to warning or
-critical, or warning to critical), counted per 100,000 records.
+critical, or warning to critical), counted per 100,000 records. Where the model's own field
+loss (noise variance plus the mean square of its fitting error on the stream's inputs) is
+beyond 1.25 x the card's expected loss, the card understates the field (small cards can look
+better than they are): a raise of gap, or of the rolling mean, which asks the same question,
+is then right. Such streams are listed below the table with those raises, not counted.
 
 Delays, in records after the change (median over the repetitions, and how many of them
 raised within the stream):
@@ -69,6 +73,8 @@ SHIFT_WHOLE = "shift, whole window only"  # short_window_predictions = 0, evalua
 REFERENCES = ("raw ADWIN", "rolling mean")
 RANK = {"normal": 0, "warning": 1, "critical": 2}
 ROLLING = 500  # pairs in the rolling mean reference (the gap window's default size)
+GAP_WARNING_TOLERANCE = 0.25  # gap's default warning tolerance (relative), as the rolling mean's 1.25
+TOLERANCE_TESTS = ("gap", "rolling mean")  # the two that ask "is the live loss beyond expected x 1.25?"
 
 
 # ------------------------------------------------------------------ streams
@@ -217,13 +223,17 @@ def false_alerts(task: tuple[int, int, str, float, int, int]) -> dict[str, Any]:
     for k in range(records):
         drv.feed(rows[k], float(pred[k]), float(truth[k]))
     scale = 100_000 / records
-    return {
-        "n": n,
-        "d": d,
-        "kind": kind,
-        "phi": phi,
-        "rate": {name: len(t.rises) * scale for name, t in drv.track.items()},
-    }
+    # The model's own field loss: the noise's variance (1) plus the mean square of its fitting
+    # error on the stream's inputs. Where that is beyond the warning limit, the card understates
+    # the field (a card that looks better than it is, as small cards can), and a raise of gap, or
+    # of the rolling mean, which asks the same question, is right: it is kept apart, not counted.
+    field_ratio = (1.0 + float(np.mean((1.0 + xf @ beta - pred) ** 2))) / drv.expected
+    beyond = field_ratio > 1.0 + GAP_WARNING_TOLERANCE
+    rate = {name: len(t.rises) * scale for name, t in drv.track.items()}
+    right = {name: rate[name] for name in TOLERANCE_TESTS} if beyond else {}
+    for name in right:
+        rate[name] = 0.0
+    return {"n": n, "d": d, "kind": kind, "phi": phi, "rate": rate, "field_ratio": field_ratio, "right": right}
 
 
 # ------------------------------------------------------------------ delays
@@ -436,6 +446,23 @@ def run(
         f"({streams * records:,} in all). Delays: median records from the change to the first raise, "
         f"(raised / repetitions), {reps} repetitions; the references watch the loss for doubling and "
         "FriedmanDrift, the input for the range and the discrete share."
+    )
+    beyond = [r for r in fa if r["right"]]
+    lines.append(
+        f"Streams whose model's field loss (noise variance plus its fitting error on the stream's inputs) is "
+        f"beyond 1.25 x the card's expected loss: {len(beyond)} of {streams}. There the card understates the "
+        "field, and raises of gap and of the rolling mean are right, so they are not counted above"
+        + (
+            ": "
+            + "; ".join(
+                f"n={r['n']}, d={r['d']} {r['kind']}, AR {r['phi']:g}: field {r['field_ratio']:.2f} x expected, "
+                f"gap {r['right']['gap']:.3g} and rolling mean {r['right']['rolling mean']:.3g} raises per 100k"
+                for r in beyond
+            )
+            + "."
+            if beyond
+            else "."
+        )
     )
     lines += bound_lines(delays)
     return "\n".join(lines)
