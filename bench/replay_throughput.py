@@ -46,7 +46,7 @@ def write_recording(path: Path, records: int, models: int, seed: int = 1) -> Non
             }
             w.message(round(t, 3), f"bench/m{m}/pred", json.dumps(body).encode())
             written += 1
-            if i % 2 == 0:
+            if (i // models) % 2 == 0:  # every second prediction of each model (i % 2 gave only even models truths)
                 pending.append(
                     (
                         t + 120,
