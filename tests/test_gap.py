@@ -214,6 +214,20 @@ def test_clearing_needs_k_evaluations_under_the_hysteresis_limit():
     assert levels[first_ok - 3] != "normal"
 
 
+def test_a_long_bad_spell_clears_once_the_loss_is_back_the_cusum_does_not_hold_it():
+    # Squared errors of sd 3 for 200 pairs pile up the CUSUM (about +1 a pair); once errors of
+    # sd 0.5 have filled the window the interval says the loss is well under the limit, and the
+    # episode must close then, not when the sum has drained (about 5 pairs per pair of the spell).
+    rng = np.random.default_rng(11)
+    gap = GapCheck(GapSettings(evaluate_every_pairs=5), ctx(size=60, min_pairs=40))
+    up = feed(gap, list(rng.normal(0.0, 3.0, 200) ** 2))
+    assert up[-1].level == "critical"
+    down = feed(gap, list(rng.normal(0.0, 0.5, 150) ** 2), start=200)
+    cleared = next(k for k, v in enumerate(down) if v.level == "normal")
+    assert 5 * cleared <= 100, [v.level for v in down]  # within 100 pairs of the loss coming back
+    assert down[cleared].figures["upper"] < gap.warning_limit
+
+
 def test_diagnosis_distinguishes_degradation_from_a_bad_start():
     rng = np.random.default_rng(6)
     gap = GapCheck(GapSettings(evaluate_every_pairs=10), ctx(size=100, min_pairs=100))

@@ -275,8 +275,10 @@ def test_the_page_reads_what_a_real_agent_publishes(tmp_path: Path, broker: Brok
             time.sleep(0.1)
         assert summary["models"]["pump"]["levels"]["gap"] == "critical", (summary, page.text())
         assert summary["models"]["pump"]["expected_loss"] == 1.0
-        a = summary["alerts"][-1]
-        assert (a["model"], a["check"], a["state"], a["severity"]) == ("pump", "gap", "raised", "critical")
+        # gap's CUSUM may raise a warning some pairs before the interval proves the critical level
+        assert ("pump", "gap", "raised", "critical") in [
+            (a["model"], a["check"], a["state"], a["severity"]) for a in summary["alerts"]
+        ]
         assert summary["agents"]["edge-1"]["connection"] == "online"
         html = http(page.url)[2].decode()
         drawn = re.search(r'<svg class="plot"[^>]*data-model="pump"[^>]*data-points="(\d+)"', html)
@@ -343,11 +345,12 @@ def test_the_page_shades_a_real_agents_planned_work(tmp_path: Path, broker: Brok
         html = ""
         while time.monotonic() < deadline:
             html = http(page.url)[2].decode()
-            if 'class="planned"' in html and "Raises held back so far: 1" in html:
+            if 'class="planned"' in html and re.search(r"Raises held back so far: [1-9]", html):
                 break
             time.sleep(0.2)
         assert 'class="planned"' in html and "Planned work 'probe cleaning' (weekly)" in html, page.text()
-        assert "Raises held back so far: 1" in html
+        # the critical raise, and a warning before it where gap's CUSUM raised first
+        assert re.search(r"Raises held back so far: [12]\b", html)
         assert json.loads(http(page.url + "api/summary")[2])["alerts"] == []  # held, so none published
     finally:
         assert agent.stop() == 0

@@ -243,7 +243,10 @@ class GapCheck(Check[GapSettings]):
             if RANK[by_gross] > RANK[raised]:
                 raised = by_gross
         self._kappa = max(1.0, iv.n * iv.std_error**2 / (2.0 * iv.mean**2)) if iv.mean > 0 else 1.0
-        by_cusum = self._cusum > self._kappa * self.cusum_threshold
+        # The CUSUM finds an onset: it raises from normal only. In an open episode it keeps the
+        # sum of the bad pairs, which would hold the episode long after the loss came back, so
+        # there the interval alone decides (raise to critical, step down, clear).
+        by_cusum = self._rule.level == "normal" and self._cusum > self._kappa * self.cusum_threshold
         if by_cusum and raised == "normal":
             raised = "warning"
         if raised != "normal":
