@@ -248,6 +248,18 @@ def test_server_partition_function_is_ours(tmp_path):
     assert got == {m: partition_of(m, 7) for m in ids}
 
 
+async def dead_letters(url: str) -> list:
+    """Every message of the dead-letter stream, in order."""
+    nc = await nats.connect(url)
+    sub = await nc.jetstream().subscribe("wd.dead.>", stream="WATCHDOG_DEAD", ordered_consumer=True)
+    out = []
+    with contextlib.suppress(nats.errors.TimeoutError):
+        while True:
+            out.append(await sub.next_msg(timeout=0.5))
+    await nc.close()
+    return out
+
+
 @pytest.mark.slow
 def test_mqtt_gateway_traffic_gives_the_alerts_of_a_replay(tmp_path):
     """Gateways unchanged: paho publishes to the server's MQTT listener; the alerts equal a replay's."""
@@ -295,17 +307,7 @@ def test_mqtt_gateway_traffic_gives_the_alerts_of_a_replay(tmp_path):
 
         st = asyncio.run(state())
 
-        async def dead() -> list:
-            nc = await nats.connect(srv.url)
-            sub = await nc.jetstream().subscribe("wd.dead.>", stream="WATCHDOG_DEAD", ordered_consumer=True)
-            out = []
-            with contextlib.suppress(nats.errors.TimeoutError):
-                while True:
-                    out.append(await sub.next_msg(timeout=0.5))
-            await nc.close()
-            return out
-
-        letters = asyncio.run(dead())
+        letters = asyncio.run(dead_letters(srv.url))
         assert [(m.data, m.headers["Wd-Reason"], m.headers["Wd-Topic"]) for m in letters] == [
             (b"{not json", "not_json", "plant/b/truth")
         ]
@@ -421,17 +423,7 @@ def test_planned_work_commands_reach_every_partition_survive_a_restart_and_equal
         assert "planned work 'meter-calibration' ended" in workers["w2"].text()
         assert "planned work 'plant-stop' began" in workers["w2"].text()
 
-        async def dead() -> list:
-            nc = await nats.connect(srv.url)
-            sub = await nc.jetstream().subscribe("wd.dead.>", stream="WATCHDOG_DEAD", ordered_consumer=True)
-            out = []
-            with contextlib.suppress(nats.errors.TimeoutError):
-                while True:
-                    out.append(await sub.next_msg(timeout=0.5))
-            await nc.close()
-            return out
-
-        letters = asyncio.run(dead())
+        letters = asyncio.run(dead_letters(srv.url))
         assert [(m.headers["Wd-Reason"], m.headers["Wd-Topic"]) for m in letters] == [("bad_command", COMMAND_TOPIC)]
 
         # the command line: export a's partition (the commands come with it) and replay it

@@ -548,20 +548,7 @@ class Agent:
                 w = ev.window
                 covered = w["models"] or self.monitor.models()
                 alerted.update(covered)
-                log.warning(
-                    "planned work '%s' %s (%s, %s to %s%s): %s",
-                    w["name"],
-                    ev.state,
-                    w["source"],
-                    w["start"],
-                    w["end"],
-                    f", {w['reason']}" if w["reason"] else "",
-                    (
-                        f"raises of {', '.join(covered)} are held back and counted until it ends"
-                        if ev.state == "began"
-                        else "episodes still open are published now, with a note"
-                    ),
-                )
+                log.warning("%s", ev.log_line(", ".join(covered)))
             else:
                 log.info("%s", ev)
 

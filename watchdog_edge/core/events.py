@@ -86,5 +86,21 @@ class PlannedWork:
     state: str  # "began" | "ended"
     window: dict[str, Any]
 
+    def log_line(self, held: str) -> str:
+        """One line for a log: the window, and what it does to raises (``held`` names the models).
+
+        >>> w = {"name": "flush", "source": "command", "start": "s", "end": "e", "reason": ""}
+        >>> PlannedWork(0.0, "ended", w).log_line("pump")
+        "planned work 'flush' ended (command, s to e): episodes still open are published now, with a note"
+        """
+        w = self.window
+        reason = f", {w['reason']}" if w["reason"] else ""
+        what = (
+            f"raises of {held} are held back and counted until it ends"
+            if self.state == "began"
+            else "episodes still open are published now, with a note"
+        )
+        return f"planned work '{w['name']}' {self.state} ({w['source']}, {w['start']} to {w['end']}{reason}): {what}"
+
 
 Event = Union[Alert, DeadLetter, VersionStarted, PlannedWork]

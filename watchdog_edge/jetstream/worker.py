@@ -514,21 +514,7 @@ class Worker:
             self._planned_logged[key] = None
             while len(self._planned_logged) > 256:
                 del self._planned_logged[next(iter(self._planned_logged))]
-            log.warning(
-                "planned work '%s' %s (%s, %s to %s%s): %s",
-                w["name"],
-                ev.state,
-                w["source"],
-                w["start"],
-                w["end"],
-                f", {w['reason']}" if w["reason"] else "",
-                (
-                    f"raises of {', '.join(w['models']) if w['models'] else 'every model'} are held back and "
-                    "counted until it ends"
-                    if ev.state == "began"
-                    else "episodes still open are published now, with a note"
-                ),
-            )
+            log.warning("%s", ev.log_line(", ".join(w["models"]) if w["models"] else "every model"))
         if touched:
             await self._put_states(part, sorted(touched))
 
