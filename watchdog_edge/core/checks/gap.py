@@ -11,7 +11,8 @@ Three tests, any of which raises:
 - the CUSUM (squared loss; ``cusum``): a window mean must wait for the change to fill the
   window, so a CUSUM of the log-likelihood ratio of squared Gaussian errors at the critical
   limit against the warning limit raises a warning sooner, at the false-alarm rate the interval
-  allows at the warning limit (see ``__init__``); a doubling is raised about 40 pairs sooner;
+  allows at the warning limit (see ``__init__``); a doubling is raised about 40 pairs sooner.
+  It raises from normal only: in an open episode the interval alone decides;
 - gross errors: at least ``gross_min_pairs`` of the latest ``gross_run_pairs`` losses above
   ``gross_multiple`` x the warning limit, while the live mean is above the warning limit
   widened for the card's degrees of freedom alone (the live variance says nothing then).
