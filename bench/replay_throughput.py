@@ -156,6 +156,7 @@ def curve(model_counts: list[int], per_model: int) -> None:
         f"{'models':>7} {'records':>10} {'records/s':>10} {'x orjson':>9} {'peak RSS MB':>12} {'KB/model':>9}  where a model's memory goes (KB)"
     )
     first = None
+    held: list[tuple[int, float]] = []  # (models, bytes the core holds, pending records apart)
     for models in model_counts:
         with tempfile.TemporaryDirectory() as tmp:
             folder = Path(tmp)
@@ -167,6 +168,7 @@ def curve(model_counts: list[int], per_model: int) -> None:
             mem = child(_MEMORY, str(cfg), str(rec))
         rate = n / res["seconds"]
         first = first or rate
+        held.append((models, mem["per_model"]))
         parts = ", ".join(f"{k} {v / models / 1024:.1f}" for k, v in mem["parts"].items() if v / models >= 256)
         print(
             f"{models:>7} {n:>10,} {rate:>10,.0f} {res['seconds'] / with_orjson:>9.2f} {res['rss_mb']:>12.0f} "
@@ -174,6 +176,15 @@ def curve(model_counts: list[int], per_model: int) -> None:
         )
     print("KB/model: what the core holds per model after the replay, pending records excluded;")
     print("pending records (waiting for their other half within the horizon) are listed apart, per model.")
+    if len(held) >= 2 and held[-1][0] > held[0][0]:
+        # What the core holds once (config, shared tables) is spread over few models in the first
+        # row: the cost of a model is the growth from the fewest models to the most.
+        (m0, b0), (m1, b1) = held[0], held[-1]
+        slope = (b1 - b0) / (m1 - m0)
+        print(
+            f"an added model costs {slope / 1024:.1f} KB (from {m0} to {m1} models); held once for all: "
+            f"{(b0 - slope * m0) / 1024:.0f} KB"
+        )
 
 
 def main() -> None:
