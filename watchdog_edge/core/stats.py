@@ -749,14 +749,14 @@ class LossInterval:
     lower_level: float = math.nan  # normal-scale level of the lower bounds after the Student correction
 
 
-def _df_grid(df: float, digits: int = 3) -> float:
-    """``df`` rounded down to ``digits`` significant digits (so quantiles repeat and are
-    cached; fewer degrees of freedom only widen the bounds)."""
+def _df_grid(df: float) -> float:
+    """``df`` rounded down to two significant digits (so quantiles repeat and are cached;
+    fewer degrees of freedom only widen the bounds)."""
     if df <= _DF_MIN:
         return _DF_MIN
     if df >= _DF_MAX:
         return _DF_MAX
-    step = 10.0 ** (math.floor(math.log10(df)) - digits + 1)
+    step = 10.0 ** (math.floor(math.log10(df)) - 1)
     return max(_DF_MIN, math.floor(df / step) * step)
 
 
@@ -875,7 +875,7 @@ def loss_interval(
     var_df = _df_steps(2.0 / var_log) if var_log > 0.0 else _DF_MAX
     lo_p = _student_level(confidence, var_df)
     up_p = _student_level(up_level, var_df)
-    live_df = _df_grid(2.0 * mean * mean / (se * se), digits=2) if se > 0.0 else _DF_MAX
+    live_df = _df_grid(2.0 * mean * mean / (se * se)) if se > 0.0 else _DF_MAX
     lower_live = mean / _f_ppf_cached(lo_p, live_df, math.inf)
     upper = mean / _f_ppf_cached(1.0 - up_p, live_df, math.inf)
     lower = lower_live if math.isinf(card_df) else mean / _f_ppf_cached(lo_p, live_df, card_df)
