@@ -392,3 +392,44 @@ def test_the_cusum_raises_a_doubling_sooner_than_the_interval_alone():
         assert 1000 <= first[True] <= first[False]
         sooner += first[True] < first[False] and by[True] == "CUSUM"
     assert sooner >= 5
+
+
+def _first_raise(gap: GapCheck, losses: list[float]):
+    for i, loss in enumerate(losses):
+        [v] = feed(gap, [loss], start=i) or [None]
+        if v is not None and v.level != "normal":
+            return i, v
+    return None, None
+
+
+def test_the_cusum_threshold_is_measured_at_rest_so_a_rise_does_not_raise_it():
+    # A step of independent squared Gaussian errors from the expected loss to 2.5 x: the
+    # threshold in force when the CUSUM raises is kappa x ln(ARL) with kappa from windows
+    # before the rise (about 1.1 here). Measured on the window that straddles the rise, the
+    # step reads as persistence and kappa came out at 1.3 to 2 (the old behaviour): the rise
+    # was raised 10 to 60 pairs later.
+    card = ModelCard(
+        model_id="m", training={"loss": 1.0, "count": 5000}, fitted_parameters=5, holdout={"loss": 1.0, "count": 3000}
+    )
+    context = CheckContext("m", card, "squared", 1.0, "holdout", window_size=500, min_pairs=100)
+    for seed in range(5):
+        rng = np.random.default_rng(100 + seed)
+        losses = list(rng.chisquare(1, 1500)) + list(2.5 * rng.chisquare(1, 500))
+        gap = GapCheck(GapSettings(), context)
+        i, v = _first_raise(gap, losses)
+        assert i is not None and i >= 1500 and v.figures["raised_by"] == "CUSUM"
+        assert v.figures["cusum_threshold"] <= 1.25 * gap.cusum_threshold
+        assert i - 1500 <= 120  # the CUSUM's drift at 2.5 x is 0.12 a pair: 9.2 x 1.1 / 0.12 = 85 on average
+
+
+def test_a_single_glitch_does_not_raise_through_the_cusum():
+    # One loss 1,000 times the expected (a sensor glitch) in a healthy stream: the CUSUM counts
+    # it at the gross-error threshold, so it adds at most 3.5 against a threshold of about 10:
+    # no raise. A burst of them is raised (by the CUSUM or the gross-error test, 5 in 10).
+    rng = np.random.default_rng(21)
+    healthy = list(rng.chisquare(1, 1200))
+    glitch = healthy[:800] + [1000.0] + healthy[800:]
+    assert _first_raise(GapCheck(GapSettings(), ctx(size=500, min_pairs=100)), glitch) == (None, None)
+    burst = healthy[:800] + [1000.0] * 5 + healthy[800:]
+    i, v = _first_raise(GapCheck(GapSettings(), ctx(size=500, min_pairs=100)), burst)
+    assert i is not None and 800 <= i <= 804

@@ -183,6 +183,7 @@ class GapCheck(Check[GapSettings]):
         self._raised_by = ""
         self._cusum = 0.0
         self._kappa = 1.0
+        self._kappa_age = -1  # pairs since kappa was last measured at rest; -1: never
 
     def _gross_run(self) -> int:
         """Gross errors among the latest ``gross_run_pairs`` pairs (counted up to gross_min_pairs)."""
@@ -193,13 +194,22 @@ class GapCheck(Check[GapSettings]):
         self.window.push(pair.t, loss)
         self._since_eval += 1
         self._seq += 1
-        if self.cusum_on:
-            self._cusum = max(0.0, self._cusum + self._cusum_a * loss - self._cusum_c)
         burst = False
+        if self.cusum_on:
+            # A gross error counts as one at the gross-error threshold: a single glitch adds at
+            # most a third of the threshold (3.3 of 9.2 at the defaults), so it never raises
+            # alone; runs of them are the gross-error test's business, and three in a row do.
+            x = loss if loss < self.gross_threshold else self.gross_threshold
+            self._cusum = max(0.0, self._cusum + self._cusum_a * x - self._cusum_c)
+            if self._kappa_age >= 0:
+                self._kappa_age += 1
+            # A crossing is looked at on the pair it happens (one comparison), not at the next
+            # multiple of evaluate_every_pairs.
+            burst = self._cusum > self._kappa * self.cusum_threshold and self._rule.level == "normal"
         if loss > self.gross_threshold:
             self._gross.append(self._seq)
             # A burst: evaluate now, not at the next multiple of evaluate_every_pairs.
-            burst = self._rule.level == "normal" and self._gross_run() >= self.settings.gross_min_pairs
+            burst = burst or (self._rule.level == "normal" and self._gross_run() >= self.settings.gross_min_pairs)
         if self._evaluated and self._rule.level == "normal":
             self._clean_pairs += 1
             if self._clean_pairs >= self.context.window_size:
@@ -220,7 +230,8 @@ class GapCheck(Check[GapSettings]):
         s = self.settings
         mean = self.window.mean()
         gross = self._gross_run() >= s.gross_min_pairs and mean > self.warning_limit * self.card_factor
-        if self._since_eval < s.evaluate_every_pairs and not (gross and self._rule.level == "normal"):
+        crossed = self._cusum > self._kappa * self.cusum_threshold
+        if self._since_eval < s.evaluate_every_pairs and not ((gross or crossed) and self._rule.level == "normal"):
             return None
         self._since_eval = 0
         self._evaluated = True
@@ -229,12 +240,32 @@ class GapCheck(Check[GapSettings]):
             # the warning limit, not merely one in which the gap was not yet proven: a model
             # bad from the start but slow to prove so is still diagnosed as bad from the start.
             self._clean_pairs = 0
-        if self._rule.level == "normal" and mean <= self.warning_limit and self._cusum <= self.cusum_threshold:
-            # The lower bound never exceeds the mean, nor the CUSUM kappa x its threshold with
-            # kappa >= 1, so nothing can be raised: skip the interval, the costliest step.
-            self._stale = True
+        # kappa is measured while the CUSUM is at rest (no sign of a rise since it last touched
+        # zero), about twice a window: measured on a window that straddles a rise, the change
+        # itself reads as persistence and inflates kappa, and so the threshold, exactly when
+        # the CUSUM should raise.
+        kappa_due = (
+            self.cusum_on
+            and self._rule.level == "normal"
+            and self._cusum == 0.0
+            and (self._kappa_age < 0 or self._kappa_age >= self.context.window_size // 2)
+        )
+        if self._rule.level == "normal" and mean <= self.warning_limit and not crossed:
+            # The lower bound never exceeds the mean, nor has the CUSUM passed kappa x its
+            # threshold, so nothing can be raised: skip the interval, the costliest step.
+            if kappa_due:
+                iv = self._interval()
+                self._kappa, self._kappa_age = self._kappa_of(iv), 0
+                self._store_figures(iv)
+            else:
+                self._stale = True
             return None
         iv = self._interval()
+        if kappa_due or (self._kappa_age < 0 and self.cusum_on):
+            # Also when never measured at rest (a CUSUM that has not touched zero at an
+            # evaluation since the start): the window at hand is then all there is.
+            self._kappa, self._kappa_age = self._kappa_of(iv), 0 if kappa_due else -1
+            crossed = self._cusum > self._kappa * self.cusum_threshold
         # Evidence for the one level rule (core/levels.py): the lower bound (or a run of gross
         # errors with the live mean over the limit) raises; the live upper bound, against the
         # limits eased by the hysteresis, says how far it may come down.
@@ -243,11 +274,10 @@ class GapCheck(Check[GapSettings]):
             by_gross = level_above(mean / self.card_factor, self.warning_limit, self.critical_limit)
             if RANK[by_gross] > RANK[raised]:
                 raised = by_gross
-        self._kappa = max(1.0, iv.n * iv.std_error**2 / (2.0 * iv.mean**2)) if iv.mean > 0 else 1.0
         # The CUSUM finds an onset: it raises from normal only. In an open episode it keeps the
         # sum of the bad pairs, which would hold the episode long after the loss came back, so
         # there the interval alone decides (raise to critical, step down, clear).
-        by_cusum = self._rule.level == "normal" and self._cusum > self._kappa * self.cusum_threshold
+        by_cusum = self._rule.level == "normal" and crossed
         if by_cusum and raised == "normal":
             raised = "warning"
         if raised != "normal":
@@ -270,6 +300,11 @@ class GapCheck(Check[GapSettings]):
             self._figures["diagnosis"] = self._diagnosis
             self._figures["raised_by"] = self._raised_by
         return Verdict(level, self._summary(iv), dict(self._figures))
+
+    @staticmethod
+    def _kappa_of(iv: LossInterval) -> float:
+        """The window's long-run variance over 2 mean^2 (chi-square's own), at least 1."""
+        return max(1.0, iv.n * iv.std_error**2 / (2.0 * iv.mean**2)) if iv.mean > 0 else 1.0
 
     def _interval(self) -> LossInterval:
         self._stale = False
@@ -378,6 +413,8 @@ class GapCheck(Check[GapSettings]):
             "gross": list(self._gross),
             "raised_by": self._raised_by,
             "cusum": self._cusum,
+            "kappa": self._kappa,
+            "kappa_age": self._kappa_age,
         }
 
     def restore(self, data: dict[str, Any]) -> None:
@@ -395,3 +432,5 @@ class GapCheck(Check[GapSettings]):
         self._gross = deque(data.get("gross", []), maxlen=self.settings.gross_min_pairs)
         self._raised_by = data.get("raised_by", "interval" if self._level != "normal" else "")
         self._cusum = float(data.get("cusum", 0.0))
+        self._kappa = float(data.get("kappa", 1.0))  # snapshots from before kappa was kept: measured anew
+        self._kappa_age = int(data.get("kappa_age", -1))
