@@ -12,7 +12,9 @@ Three tests, any of which raises:
   window, so a CUSUM of the log-likelihood ratio of squared Gaussian errors at the critical
   limit against the warning limit raises a warning sooner, at the false-alarm rate the interval
   allows at the warning limit (see ``__init__``); a doubling is raised about 40 pairs sooner.
-  It raises from normal only: in an open episode the interval alone decides;
+  Its threshold's widening for autocorrelation (kappa) is measured while the CUSUM is at rest,
+  not on a window that holds the rise. It raises from normal only: in an open episode the
+  interval alone decides;
 - gross errors: at least ``gross_min_pairs`` of the latest ``gross_run_pairs`` losses above
   ``gross_multiple`` x the warning limit, while the live mean is above the warning limit
   widened for the card's degrees of freedom alone (the live variance says nothing then).
@@ -197,8 +199,8 @@ class GapCheck(Check[GapSettings]):
         burst = False
         if self.cusum_on:
             # A gross error counts as one at the gross-error threshold: a single glitch adds at
-            # most a third of the threshold (3.3 of 9.2 at the defaults), so it never raises
-            # alone; runs of them are the gross-error test's business, and three in a row do.
+            # most about 3.5 at the defaults, against a threshold of kappa x 9.2, so it never
+            # raises from rest alone; a run of them does, as does the gross-error test.
             x = loss if loss < self.gross_threshold else self.gross_threshold
             self._cusum = max(0.0, self._cusum + self._cusum_a * x - self._cusum_c)
             if self._kappa_age >= 0:
