@@ -24,13 +24,23 @@ def test_the_detection_table_has_a_row_per_check_and_reference():
         "rolling mean",
     ]
     header = table.splitlines()[0]
-    for column in ("AR 0.9", "n=300", "d=1", "discrete", "delay: doubling", "delay: FriedmanDrift"):
+    for column in (
+        "AR 0.9",
+        "n=300",
+        "d=1",
+        "discrete",
+        "delay: doubling",
+        "delay: FriedmanDrift",
+        "delay: step to 1.15 x (within tolerance)",
+    ):
         assert column in header
     # every data row has a cell per column
     widths = {line.count("|") for line in table.splitlines() if line.startswith("|")}
     assert len(widths) == 1
     # streams whose model is in truth beyond the tolerance are named, not counted as false
     assert any(line.startswith("Streams whose model's field loss") for line in table.splitlines())
+    # and the step within the tolerance says where a raise is false and where it is right
+    assert any(line.startswith("Step to 1.15 x expected") for line in table.splitlines())
 
 
 def test_a_stream_whose_model_is_beyond_the_tolerance_does_not_count_gap_raises_as_false():
