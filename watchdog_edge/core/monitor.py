@@ -119,6 +119,14 @@ _R = TypeVar("_R", Prediction, Truth)
 class ModelTrack:
     """Windows, checks and alert states of one model."""
 
+    # slots: the attributes sit in the object itself, one memory read fewer each, which
+    # counts when many models take turns and their objects are out of the cache
+    __slots__ = (
+        "settings", "card", "context", "loss", "checks", "_takes", "_judges", "_on_prediction", "_on_truth",
+        "_on_pair", "_on_tick", "book", "keeps_features", "version", "version_seen", "pairs", "stale_pairs",
+        "last_alert", "alerts", "planned",
+    )  # fmt: skip
+
     def __init__(self, agent: str, settings: ModelSettings, card: ModelCard) -> None:
         self.settings = settings
         self.card = card
@@ -512,7 +520,7 @@ class Monitor:
                 return out
         for lane in lanes:
             pairer, track = lane.pairer, lane.track
-            if type(lane) is PredictionLane:
+            if isinstance(lane, PredictionLane):
                 parse_p = lane.parse
                 for el in elements:
                     try:
