@@ -175,6 +175,8 @@ class RecordParser:
     Truth(model='m', id='7', value=1.5, t=3.0, ts=None)
     """
 
+    __slots__ = ("model", "kind", "_plain", "_keys", "_getters", "parse")  # in the object: read per record
+
     def __init__(self, model: str, kind: str, fields: FieldMap) -> None:
         self.model = model
         self.kind = kind

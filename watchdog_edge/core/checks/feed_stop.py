@@ -85,6 +85,11 @@ class FeedStopCheck(Check[FeedStopSettings]):
     ('warning', 90.0)
     """
 
+    # what the verbs read, in the object itself (see RangeCheck)
+    __slots__ = (
+        "_start", "_last_prediction", "_last_truth", "_quiet_predictions", "_quiet_truths", "_fresh", "_now", "_next",
+    )  # fmt: skip
+
     name = "feed_stop"
     settings_model = FeedStopSettings
     # A pair comes with the truth or prediction just evaluated at the same time: nothing new.
@@ -116,7 +121,10 @@ class FeedStopCheck(Check[FeedStopSettings]):
             self._last_prediction = t
         if self._quiet_predictions:
             self._fresh = True
-        return self._due(t)
+        # _due(t) written out: this runs for every prediction
+        if self._now is None or t > self._now:
+            self._now = t
+        return self._fresh or self._now > self._next
 
     def on_truth(self, truth: Truth) -> bool:
         t = truth.t
@@ -126,7 +134,9 @@ class FeedStopCheck(Check[FeedStopSettings]):
             self._last_truth = t
         if self._quiet_truths:
             self._fresh = True
-        return self._due(t)
+        if self._now is None or t > self._now:  # _due(t), written out as above
+            self._now = t
+        return self._fresh or self._now > self._next
 
     def _due(self, t: float) -> bool:
         """Move the clock to ``t`` as evaluate would; False when evaluate at ``t`` has nothing new."""

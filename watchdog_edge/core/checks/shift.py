@@ -248,6 +248,9 @@ class ShiftCheck(Check[ShiftSettings]):
     ('critical', 3.88)
     """
 
+    # what on_prediction reads, in the object itself (see RangeCheck)
+    __slots__ = ("names", "_getter", "_pending", "_npend", "_since_eval", "_every")
+
     name = "shift"
     takes = frozenset({"prediction"})
     reacts_to = frozenset({"prediction"})  # its counts move only with predictions
