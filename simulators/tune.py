@@ -382,36 +382,94 @@ def _check_setting(task: tuple[int, dict, str]) -> Checked:
     )
 
 
-def _batch(task: tuple[Callable[[Any], Any], list[Any]]) -> list[Any]:
-    fn, items = task
-    return [fn(x) for x in items]
+def _segments(groups: list[Any], workers: int) -> list[int]:
+    """Where each worker's run of tasks starts: ``workers`` runs of about equal length, each
+    moved forward to the start of a group (a run of equal keys), so that a group is split
+    only when it is longer than a run. The last entry is the number of tasks.
 
-
-def _batches(tasks: list[Any], workers: int) -> list[list[Any]]:
-    """Tasks in runs of neighbours, long ones first, each a ``remaining / (2 x workers)``.
-
-    Neighbours in grid order differ in the last keys only (in the default grid, the gap
-    tolerance, which changes no interval): run by one worker, they share the quantiles its
-    caches hold, where tasks dealt out one by one had every worker solve most of them again
-    (2,200 more solves of 3,300 with two workers on the benchmark's day). The runs shrink
-    towards the end, so the workers still finish together.
+    >>> _segments(["a", "a", "b", "b", "b", "c"], 2)
+    [0, 5, 6]
     """
-    out: list[list[Any]] = []
-    i = 0
-    while i < len(tasks):
-        n = max(1, -(-(len(tasks) - i) // (2 * workers)))
-        out.append(tasks[i : i + n])
-        i += n
-    return out
+    n = len(groups)
+    starts = [0]
+    for k in range(1, workers):
+        i = max(starts[-1], k * n // workers)
+        j = i
+        while 0 < j < n and groups[j] == groups[j - 1]:
+            j += 1
+        starts.append(i if j >= n else j)
+    return [*starts, n]
+
+
+class _Queue:
+    """The tasks of a phase in ``workers`` runs, one per worker, in shared memory.
+
+    A worker takes the tasks of its own run from the front; when its run is empty it takes the
+    last task of the longest run left, from the back. Tasks in a run are grid neighbours, whose
+    checks meet the same quantiles (see ``_groups``): taking from the back keeps a stolen group
+    with the thief and the front of the run with its owner, so a group is rarely solved twice,
+    and the workers still finish within one task of each other.
+    """
+
+    def __init__(self, ctx: Any, starts: list[int]) -> None:
+        self.workers = len(starts) - 1
+        self._bounds = ctx.RawArray("q", [b for k in range(self.workers) for b in (starts[k], starts[k + 1])])
+        self._done = ctx.RawValue("q", 0)
+        self._lock = ctx.Lock()
+
+    def take(self, me: int) -> int | None:
+        """The index of the next task for worker ``me``, or None when every task is taken."""
+        b = self._bounds
+        with self._lock:
+            lo, hi = b[2 * me], b[2 * me + 1]
+            if lo < hi:
+                b[2 * me] = lo + 1
+                return lo
+            victim, left = -1, 0
+            for k in range(self.workers):
+                if b[2 * k + 1] - b[2 * k] > left:
+                    victim, left = k, b[2 * k + 1] - b[2 * k]
+            if victim < 0:
+                return None
+            b[2 * victim + 1] -= 1
+            return int(b[2 * victim + 1])
+
+    def finished(self) -> int:
+        """One more task done; the number done so far, by every worker."""
+        with self._lock:
+            self._done.value += 1
+            return int(self._done.value)
+
+    def done(self) -> int:
+        with self._lock:
+            return int(self._done.value)
+
+
+def _serve(fn: Callable[[Any], Any], tasks: list[Any], queue: _Queue, me: int, conn: Any) -> None:
+    """A forked worker: run tasks from the queue, then send their results (or the error) back."""
+    out: list[tuple[int, Any]] = []
+    try:
+        while (i := queue.take(me)) is not None:
+            out.append((i, fn(tasks[i])))
+            queue.finished()
+        conn.send((None, out))
+    except BaseException as e:  # handed to the parent, which raises it
+        try:
+            conn.send((e, []))
+        except Exception:  # an error that cannot be pickled: its text
+            conn.send((RuntimeError(f"a tuning worker failed: {e!r}"), []))
+    finally:
+        conn.close()
 
 
 class _Workers:
-    """``workers`` processes forked once with the shared steps, or this process for 1.
+    """This process and ``workers - 1`` processes forked with the shared steps, for each phase.
 
-    Fork hands the steps (and the cards) to each worker once, without copying or pickling
-    them per task: the workers start from the one parsed form. Each ``map`` is a phase;
-    both phases of a run (validating the settings, then running the jobs) use the same
-    workers.
+    Fork hands the steps, the cards and the phase's tasks to each worker without copying or
+    pickling them: the workers start from the one parsed form. This process works too rather
+    than wait (one process fewer to fork, and fewer pages copied when the workers touch the
+    steps), and only results come back, once per worker. The tasks are dealt out by a shared
+    ``_Queue``. With one worker everything runs in this process.
     """
 
     def __init__(
@@ -423,41 +481,72 @@ class _Workers:
         models: list[str] | None,
         checks: list[str] | None,
     ) -> None:
-        self._args = (steps, cards, str(base_dir), models, checks)
         self._n = workers
-        self._pool: Any = None
-        _init_worker(*self._args)  # for the in-process phases, and inherited by the workers
+        _init_worker(steps, cards, str(base_dir), models, checks)
 
     def __enter__(self) -> _Workers:
         return self
 
     def __exit__(self, *exc: object) -> None:
-        if self._pool is not None:
-            if exc[0] is None:
-                self._pool.close()  # every task has its result: let the workers end
-            else:
-                self._pool.terminate()
-            self._pool.join()
+        pass  # each phase ends its workers
 
     def map(
-        self, fn: Callable[[Any], Any], tasks: list[Any], progress: Callable[[int], None] | None = None
+        self,
+        fn: Callable[[Any], Any],
+        tasks: list[Any],
+        progress: Callable[[int], None] | None = None,
+        groups: list[Any] | None = None,
     ) -> list[Any]:
-        """``fn`` of every task, in the order they finish."""
-        out = []
-        if self._n <= 1 or len(tasks) <= 1:
+        """``fn`` of every task, in task order. ``groups`` (a key per task) marks runs of
+        neighbouring tasks that are best run by one worker."""
+        n = min(self._n, len(tasks))
+        if n <= 1:
+            out = []
             for task in tasks:
                 out.append(fn(task))
                 if progress:
                     progress(1)
             return out
-        if self._pool is None:
-            ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
-            self._pool = ctx.Pool(self._n, initializer=_init_worker, initargs=self._args)
-        for results in self._pool.imap_unordered(_batch, [(fn, b) for b in _batches(tasks, self._n)]):
-            out.extend(results)
-            if progress:
-                progress(len(results))
-        return out
+        ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+        queue = _Queue(ctx, _segments(groups if groups is not None else list(range(len(tasks))), n))
+        procs, conns = [], []
+        results: dict[int, Any] = {}
+        ended = False
+        try:
+            for me in range(1, n):
+                recv, send = ctx.Pipe(duplex=False)
+                p = ctx.Process(target=_serve, args=(fn, tasks, queue, me, send), daemon=True)
+                p.start()
+                send.close()
+                procs.append(p)
+                conns.append(recv)
+            reported = 0
+            while (i := queue.take(0)) is not None:
+                results[i] = fn(tasks[i])
+                done = queue.finished()
+                if progress:
+                    progress(done - reported)
+                    reported = done
+            for p, conn in zip(procs, conns):
+                try:
+                    error, out = conn.recv()
+                except EOFError:
+                    p.join()
+                    raise RuntimeError(f"a tuning worker ended without its results (exit code {p.exitcode})") from None
+                if error is not None:
+                    raise error
+                results.update(out)
+            if progress and len(tasks) > reported:
+                progress(len(tasks) - reported)
+            ended = True
+        finally:
+            for p in procs:
+                if not ended:
+                    p.terminate()  # an error here or in a worker: the others' results are not wanted
+                p.join()
+            for conn in conns:
+                conn.close()
+        return [results[i] for i in range(len(tasks))]
 
 
 def evaluate_all(
@@ -730,6 +819,7 @@ def tune(
 
     jobs: list[tuple[int, dict]] = []
     job_of: dict[tuple, int] = {}  # (check, the values of the grid keys that reach it) -> job
+    group_of: list[tuple] = []  # job -> (check, the values of the keys reaching it but the last)
     parts: dict[int, list[int]] = {}  # setting -> the jobs whose alerts make up its alerts
     invalid = []
     checked: dict[int, Checked] = {}
@@ -751,13 +841,24 @@ def tune(
                 if key not in job_of:
                     job_of[key] = len(jobs)
                     jobs.append((len(jobs), only_checks(data_of[s.index], varied - {check} | fixed, models)))
+                    group_of.append(key[:1] + key[1][:-1])
                 parts[s.index].append(job_of[key])
         if not parts:
             raise ConfigError("no grid setting gives a valid config; first problem:\n" + invalid[0][1])
+        # Jobs of one check that differ only in the last grid key reaching it are neighbours
+        # that meet the same quantiles (in the default grid they differ in the gap tolerance,
+        # which changes no interval): kept together, one worker solves them once.
+        first: dict[tuple, int] = {}
+        for j, grp in enumerate(group_of):
+            first.setdefault(grp, j)
+        order = sorted(range(len(jobs)), key=lambda j: (first[group_of[j]], j))
+        jobs = [jobs[j] for j in order]
+        groups: list[Any] = [group_of[j] for j in order]
         if fixed:
             # the checks outside the grid: one more job, run alongside the settings
             jobs.insert(0, (_SHARED, only_checks(raw, varied, models)))
-        marks = dict(pool.map(_run_one, jobs, tick))
+            groups.insert(0, _SHARED)
+        marks = dict(pool.map(_run_one, jobs, tick, groups))
     t3 = clock()
     shared = marks.pop(_SHARED, [])
     with_inc = incidents is not None
