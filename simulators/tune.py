@@ -28,10 +28,13 @@ setting is "tightest" when there is no incidents file)::
 from __future__ import annotations
 
 import copy
+import functools
 import gc
+import io
 import itertools
 import math
 import multiprocessing as mp
+import operator
 import os
 import sys
 import time
@@ -39,7 +42,7 @@ from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 from watchdog_edge.core.cards import ModelCard
 from watchdog_edge.core.events import Alert, DeadLetter, PlannedWork
@@ -50,7 +53,7 @@ from watchdog_edge.core.stats import size_quantile_caches
 from watchdog_edge.errors import ConfigError, RecordingError
 from watchdog_edge.files.configfile import load_cards
 from watchdog_edge.files.documents import read_document
-from watchdog_edge.replay.recording import read_recording, with_ticks
+from watchdog_edge.replay.recording import RecordLine, parse_lines, read_recording, with_ticks
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -214,36 +217,123 @@ class Intake:
         return (n - 1) / (b - a) if n > 1 and b > a else 0.0
 
 
+Line = tuple[float, "str | None", "bytes | None", bool]  # a recording line: t, topic, payload, tick
+_as_line = operator.attrgetter("t", "topic", "payload", "tick")
+_READ_CHUNK = 1 << 20
+_EVENTS = (DeadLetter, PlannedWork)  # what intake returns besides steps
+# With several workers a recording this large or larger is read in two parts at once: the
+# first, read by the process that pairs the lines, is the smaller, since that process then
+# pairs every line while another process reads the rest and hands it over.
+_SPLIT_MIN_BYTES = 256 * 1024
+_FIRST_PART_SHARE = 0.4
+
+
+def _size(path: str | Path) -> int:
+    try:
+        return os.path.getsize(path)
+    except OSError:
+        return 0  # read as a whole, which gives the error
+
+
+def _line_start(fh: BinaryIO, at: int, size: int) -> int:
+    """The first offset at or after ``at`` where a line starts (``size`` when none does)."""
+    if at <= 0:
+        return 0
+    if at >= size:
+        return size
+    fh.seek(at - 1)
+    pos = at - 1
+    while chunk := fh.read(65536):
+        i = chunk.find(b"\n")
+        if i >= 0:
+            return pos + i + 1
+        pos += len(chunk)
+    return size
+
+
+def split_recording(recording: str | Path, parts: int, first_share: float) -> list[tuple[int, int | None]]:
+    """``parts`` byte ranges of whole lines that together hold the recording, the first about
+    ``first_share`` of its size and the others equal; the last runs to the end of the file
+    (``None``), as a reading of the whole file would."""
+    p = Path(recording)
+    size = p.stat().st_size
+    with p.open("rb") as fh:
+        cuts = [0]
+        for k in range(1, parts):
+            share = first_share + (1.0 - first_share) * (k - 1) / (parts - 1)
+            cuts.append(max(cuts[-1], _line_start(fh, int(size * share), size)))
+    ends: list[int | None] = [*cuts[1:], None]
+    return list(zip(cuts, ends))
+
+
+def read_part(recording: str | Path, start: int, stop: int | None) -> list[Line]:
+    """The lines between two byte offsets where lines start (``stop`` None: to the end), as
+    ``read_recording`` reads them: the same lines, errors and line numbers as in the whole file.
+
+    Lines are independent of each other until pairing, so parts of a recording can be read by
+    different processes and handed in order to ``intake_recording``.
+    """
+    p = Path(recording)
+    try:
+        fh = p.open("rb")
+    except FileNotFoundError:
+        return list(map(_as_line, read_recording(p)))  # its error for a missing file
+    with fh:
+        first = 1  # the number of the part's first line: one more than the line ends before it
+        left = start
+        while left > 0 and (chunk := fh.read(min(left, _READ_CHUNK))):
+            first += chunk.count(b"\n")
+            left -= len(chunk)
+        fh.seek(start)
+        data = fh.read() if stop is None else fh.read(stop - start)
+    return list(map(_as_line, parse_lines(io.BytesIO(data), str(p), first, cut_last_ok=True)))
+
+
 def intake_recording(
-    config: Config, cards: dict[str, ModelCard], recording: str | Path, tick_every: float | None = None
+    config: Config,
+    cards: dict[str, ModelCard],
+    recording: str | Path,
+    tick_every: float | None = None,
+    parts: Iterable[Callable[[], Iterable[Line]]] | None = None,
 ) -> Intake:
-    """Parse and pair a recording once, through the same core as replay."""
+    """Parse and pair a recording once, through the same core as replay.
+
+    ``parts``, when given, give the recording's lines in consecutive parts (``read_part`` of
+    the ranges of ``split_recording``), each called when its turn comes: another process can
+    read a later part while this one pairs the earlier ones. The steps are the same as from
+    reading the whole file here.
+    """
     mon = Monitor(config, cards)
-    steps: list[Step] = []
+    if parts is None:
+        parts = (lambda: map(_as_line, read_recording(recording)),)
+    lines: Iterable[Line] = itertools.chain.from_iterable(part() for part in parts)
+    if tick_every:
+        lines = map(_as_line, with_ticks((RecordLine(*x) for x in lines), tick_every))
     start = end = math.nan
-    pairs: dict[str, int] = {}
-    span: dict[str, tuple[float, float]] = {}
-    intake, intake_tick, add = mon.intake, mon.intake_tick, steps.append
-    lines = read_recording(recording)
-    for line in with_ticks(lines, tick_every) if tick_every else lines:
-        t = line.t
-        if line.tick:
-            out = intake_tick(t)
+    got: list[Any] = []
+    keep, intake, intake_tick = got.extend, mon.intake, mon.intake_tick
+    for t, topic, payload, tick in lines:
+        if tick:
+            keep(intake_tick(t))
         else:
-            assert line.topic is not None and line.payload is not None  # a message line has both
-            out = intake(line.topic, line.payload, t)
+            assert topic is not None and payload is not None  # a message line has both
+            keep(intake(topic, payload, t))
         if not t <= end:  # the first line (end is NaN) or a later receive time
             end = t
             if math.isnan(start):
                 start = t
-        for s in out:
-            if isinstance(s, (DeadLetter, PlannedWork)):  # events, not steps
-                continue
-            add(s)
-            if type(s) is PairStep:
-                pairs[s.model] = pairs.get(s.model, 0) + 1
-                a, _ = span.get(s.model, (s.t, s.t))
-                span[s.model] = (a, s.t)
+    steps: list[Step] = []
+    add = steps.append
+    pairs: dict[str, int] = {}
+    span: dict[str, tuple[float, float]] = {}
+    for s in got:
+        if isinstance(s, _EVENTS):  # dead letters and planned work: events, not steps
+            continue
+        add(s)
+        if type(s) is PairStep:
+            pairs[s.model] = pairs.get(s.model, 0) + 1
+            a, _ = span.get(s.model, (s.t, s.t))
+            span[s.model] = (a, s.t)
     if not steps:
         raise RecordingError(
             f"recording {recording} gave no predictions or truths on the config's topics; "
@@ -440,26 +530,40 @@ class _Queue:
             self._done.value += 1
             return int(self._done.value)
 
-    def done(self) -> int:
-        with self._lock:
-            return int(self._done.value)
 
-
-def _serve(fn: Callable[[Any], Any], tasks: list[Any], queue: _Queue, me: int, conn: Any) -> None:
-    """A forked worker: run tasks from the queue, then send their results (or the error) back."""
+def _serve(
+    fn: Callable[[Any], Any],
+    tasks: list[Any],
+    queue: _Queue,
+    me: int,
+    conn: Any,
+    init: tuple[Any, ...],
+    each: bool,
+) -> None:
+    """A forked worker: run tasks from the queue and send their results back, each as it is
+    done or all at the end; then an end mark, or the error."""
     out: list[tuple[int, Any]] = []
     try:
+        _init_worker(*init)  # the same objects after a fork; copies where processes are spawned
         while (i := queue.take(me)) is not None:
             out.append((i, fn(tasks[i])))
             queue.finished()
-        conn.send((None, out))
+            if each:
+                conn.send(("results", out))
+                out = []
+        conn.send(("results", out))
+        conn.send(("end", None))
     except BaseException as e:  # handed to the parent, which raises it
         try:
-            conn.send((e, []))
+            conn.send(("error", e))
         except Exception:  # an error that cannot be pickled: its text
-            conn.send((RuntimeError(f"a tuning worker failed: {e!r}"), []))
+            conn.send(("error", RuntimeError(f"a tuning worker failed: {e!r}")))
     finally:
         conn.close()
+
+
+def _call(task: Callable[[], Any]) -> Any:
+    return task()
 
 
 class _Workers:
@@ -470,6 +574,9 @@ class _Workers:
     than wait (one process fewer to fork, and fewer pages copied when the workers touch the
     steps), and only results come back, once per worker. The tasks are dealt out by a shared
     ``_Queue``. With one worker everything runs in this process.
+
+    Work that needs no steps can start before the parse (``ahead``), in one forked process,
+    so that the parse does not leave the other CPUs idle.
     """
 
     def __init__(
@@ -482,13 +589,68 @@ class _Workers:
         checks: list[str] | None,
     ) -> None:
         self._n = workers
-        _init_worker(steps, cards, str(base_dir), models, checks)
+        self._ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+        self._procs: list[tuple[Any, Any]] = []  # (process, the end of its pipe) still running
+        self.share(steps, cards, base_dir, models, checks)
+
+    def share(
+        self,
+        steps: list[Step],
+        cards: dict[str, ModelCard],
+        base_dir: Path,
+        models: list[str] | None,
+        checks: list[str] | None,
+    ) -> None:
+        """What the tasks of the next phases read: the steps (once parsed), the cards, the options."""
+        self._init = (steps, cards, str(base_dir), models, checks)
+        _init_worker(*self._init)
 
     def __enter__(self) -> _Workers:
         return self
 
     def __exit__(self, *exc: object) -> None:
-        pass  # each phase ends its workers
+        # after an error here or in a worker: the others' results are not wanted
+        for p, conn in self._procs:
+            p.terminate()
+            p.join()
+            conn.close()
+        self._procs.clear()
+
+    def _start(
+        self, fn: Callable[[Any], Any], tasks: list[Any], queue: _Queue, me: int, each: bool = False
+    ) -> tuple[Any, Any]:
+        recv, send = self._ctx.Pipe(duplex=False)
+        p = self._ctx.Process(target=_serve, args=(fn, tasks, queue, me, send, self._init, each), daemon=True)
+        p.start()
+        send.close()
+        self._procs.append((p, recv))
+        return p, recv
+
+    def _results(self, p: Any, conn: Any) -> Iterator[tuple[int, Any]]:
+        """(task, result) pairs as a worker sends them, until its end mark; its error raised."""
+        while True:
+            try:
+                kind, body = conn.recv()
+            except EOFError:
+                p.join()
+                raise RuntimeError(f"a tuning worker ended without its results (exit code {p.exitcode})") from None
+            if kind == "error":
+                raise body
+            if kind == "end":
+                break
+            yield from body
+        self._procs.remove((p, conn))
+        p.join()
+        conn.close()
+
+    def ahead(self, fn: Callable[[Any], Any], tasks: list[Any]) -> Iterator[Any]:
+        """``fn`` of each task in turn, started in one forked process (with several workers)
+        while this process goes on; the results come in task order as they are asked for (in
+        this process, then, with one worker)."""
+        if self._n <= 1 or not tasks:
+            return (fn(t) for t in tasks)
+        p, conn = self._start(fn, tasks, _Queue(self._ctx, [0, len(tasks)]), 0, each=True)
+        return (r for _, r in self._results(p, conn))
 
     def map(
         self,
@@ -507,45 +669,20 @@ class _Workers:
                 if progress:
                     progress(1)
             return out
-        ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
-        queue = _Queue(ctx, _segments(groups if groups is not None else list(range(len(tasks))), n))
-        procs, conns = [], []
+        queue = _Queue(self._ctx, _segments(groups if groups is not None else list(range(len(tasks))), n))
+        started = [self._start(fn, tasks, queue, me) for me in range(1, n)]
         results: dict[int, Any] = {}
-        ended = False
-        try:
-            for me in range(1, n):
-                recv, send = ctx.Pipe(duplex=False)
-                p = ctx.Process(target=_serve, args=(fn, tasks, queue, me, send), daemon=True)
-                p.start()
-                send.close()
-                procs.append(p)
-                conns.append(recv)
-            reported = 0
-            while (i := queue.take(0)) is not None:
-                results[i] = fn(tasks[i])
-                done = queue.finished()
-                if progress:
-                    progress(done - reported)
-                    reported = done
-            for p, conn in zip(procs, conns):
-                try:
-                    error, out = conn.recv()
-                except EOFError:
-                    p.join()
-                    raise RuntimeError(f"a tuning worker ended without its results (exit code {p.exitcode})") from None
-                if error is not None:
-                    raise error
-                results.update(out)
-            if progress and len(tasks) > reported:
-                progress(len(tasks) - reported)
-            ended = True
-        finally:
-            for p in procs:
-                if not ended:
-                    p.terminate()  # an error here or in a worker: the others' results are not wanted
-                p.join()
-            for conn in conns:
-                conn.close()
+        reported = 0
+        while (i := queue.take(0)) is not None:
+            results[i] = fn(tasks[i])
+            done = queue.finished()
+            if progress:
+                progress(done - reported)
+                reported = done
+        for p, conn in started:
+            results.update(self._results(p, conn))
+        if progress and len(tasks) > reported:
+            progress(len(tasks) - reported)
         return [results[i] for i in range(len(tasks))]
 
 
@@ -768,9 +905,10 @@ def tune(
     """Evaluate every grid setting on a recording and rank them; see the module docstring.
 
     ``timings``, when given, receives the wall time in seconds of each phase: ``setup``
-    (config, cards, the grid), ``parse`` (the shared parse pass), ``workers`` (from the fork
-    to the last result: validating the settings, then the checks' runs), ``merge`` (scoring
-    and ranking, and the check recording if any).
+    (config, cards, the grid, starting the worker that validates the settings), ``parse``
+    (the shared parse pass, alongside that validation when there are several workers),
+    ``workers`` (from the parse to the last result: the validation in one worker, then the
+    checks' runs), ``merge`` (scoring and ranking, and the check recording if any).
     """
     clock = time.perf_counter
     t0 = clock()
@@ -805,9 +943,6 @@ def tune(
     # Settings replay the same windows and meet the same quantiles again: room for all of them
     # (about 170 bytes each, at most some megabytes), made before the workers fork.
     size_quantile_caches(TUNE_QUANTILE_CACHE_ENTRIES)
-    t1 = clock()
-    intake = intake_recording(cfg, cards, recording, tick_every)
-    t2 = clock()
     n_workers = max(1, workers if workers is not None else (os.cpu_count() or 1))
     done = 0
 
@@ -823,9 +958,26 @@ def tune(
     parts: dict[int, list[int]] = {}  # setting -> the jobs whose alerts make up its alerts
     invalid = []
     checked: dict[int, Checked] = {}
-    with _Workers(n_workers, intake.steps, cards, base_dir, models, checks) as pool:
-        # The settings are validated by the workers, each once, after the fork: in parallel.
-        for c in pool.map(_check_setting, [(s.index, data_of[s.index], s.label()) for s in settings]):
+    with _Workers(n_workers, [], cards, base_dir, models, checks) as pool:
+        # The parse (reading lines, then pairing them in order) is the run's one serial phase.
+        # With several workers, one of them reads the end of the recording meanwhile, then
+        # validates the settings (they need no steps); this process reads the start of the
+        # recording and pairs all of it.
+        ahead: list[Callable[[], Any]] = [
+            functools.partial(_check_setting, (s.index, data_of[s.index], s.label())) for s in settings
+        ]
+        line_parts = None
+        if n_workers > 1 and _size(recording) >= _SPLIT_MIN_BYTES:
+            (a0, b0), (a1, b1) = split_recording(recording, 2, _FIRST_PART_SHARE)
+            ahead.insert(0, functools.partial(read_part, recording, a1, b1))
+        results = pool.ahead(_call, ahead)
+        if len(ahead) > len(settings):
+            line_parts = (functools.partial(read_part, recording, a0, b0), functools.partial(next, results))
+        t1 = clock()
+        intake = intake_recording(cfg, cards, recording, tick_every, line_parts)
+        t2 = clock()
+        pool.share(intake.steps, cards, base_dir, models, checks)
+        for c in results:
             checked[c.index] = c
         for s in settings:
             c = checked[s.index]
