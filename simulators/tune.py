@@ -496,7 +496,7 @@ class _Queue:
 
     A worker takes the tasks of its own run from the front; when its run is empty it takes the
     last task of the longest run left, from the back. Tasks in a run are grid neighbours, whose
-    checks meet the same quantiles (see ``_groups``): taking from the back keeps a stolen group
+    checks meet the same quantiles (see ``tune``): taking from the back keeps a stolen group
     with the thief and the front of the run with its owner, so a group is rarely solved twice,
     and the workers still finish within one task of each other.
     """
@@ -566,6 +566,19 @@ def _call(task: Callable[[], Any]) -> Any:
     return task()
 
 
+_ENDED: list[Any] = []  # workers that sent all their results, not yet waited for
+
+
+def _reap(wait: bool = True) -> None:
+    """Wait for the workers that have sent all their results (they are ending, if not ended);
+    without ``wait``, only for those already ended (the others at the next call, or when
+    this process ends)."""
+    for p in list(_ENDED):
+        p.join(None if wait else 0)
+        if p.exitcode is not None:
+            _ENDED.remove(p)
+
+
 class _Workers:
     """This process and ``workers - 1`` processes forked with the shared steps, for each phase.
 
@@ -588,6 +601,7 @@ class _Workers:
         models: list[str] | None,
         checks: list[str] | None,
     ) -> None:
+        _reap(wait=False)
         self._n = workers
         self._ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
         self._procs: list[tuple[Any, Any]] = []  # (process, the end of its pipe) still running
@@ -615,6 +629,8 @@ class _Workers:
             p.join()
             conn.close()
         self._procs.clear()
+        if exc[0] is not None:
+            _reap()
 
     def _start(
         self, fn: Callable[[Any], Any], tasks: list[Any], queue: _Queue, me: int, each: bool = False
@@ -640,8 +656,10 @@ class _Workers:
                 break
             yield from body
         self._procs.remove((p, conn))
-        p.join()
         conn.close()
+        # A worker's exit (its memory handed back) takes some milliseconds: not waited for;
+        # it is reaped once ended (``_reap``).
+        _ENDED.append(p)
 
     def ahead(self, fn: Callable[[Any], Any], tasks: list[Any]) -> Iterator[Any]:
         """``fn`` of each task in turn, started in one forked process (with several workers)
@@ -698,7 +716,9 @@ def evaluate_all(
 ) -> dict[int, list[Mark]]:
     """Alerts of every job (index, config data); ``workers`` processes, or in-process for 1."""
     with _Workers(workers, steps, cards, base_dir, models, checks) as pool:
-        return dict(pool.map(_run_one, jobs, progress))
+        out = dict(pool.map(_run_one, jobs, progress))
+    _reap(wait=False)
+    return out
 
 
 # -- scoring ------------------------------------------------------------------------------------
@@ -1039,6 +1059,7 @@ def tune(
         best.check_score = score(hm, check_incidents or [], hold.start, hold.end, g)
     if timings is not None:
         timings.update(setup=t1 - t0, parse=t2 - t1, workers=t3 - t2, merge=clock() - t3)
+    _reap(wait=False)
     return TuneResult(rows, best, with_inc, false_alert_budget, invalid, intake, cfg, raw, models, hold, checks)
 
 
