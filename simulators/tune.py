@@ -30,11 +30,9 @@ from __future__ import annotations
 import copy
 import functools
 import gc
-import io
 import itertools
 import math
 import multiprocessing as mp
-import operator
 import os
 import sys
 import time
@@ -42,7 +40,7 @@ from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, BinaryIO
+from typing import Any
 
 from watchdog_edge.core.cards import ModelCard
 from watchdog_edge.core.events import Alert, DeadLetter, PlannedWork
@@ -53,7 +51,7 @@ from watchdog_edge.core.stats import size_quantile_caches
 from watchdog_edge.errors import ConfigError, RecordingError
 from watchdog_edge.files.configfile import load_cards
 from watchdog_edge.files.documents import read_document
-from watchdog_edge.replay.recording import RecordLine, parse_lines, read_recording, with_ticks
+from watchdog_edge.replay.recording import read_recording, with_ticks
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -217,123 +215,36 @@ class Intake:
         return (n - 1) / (b - a) if n > 1 and b > a else 0.0
 
 
-Line = tuple[float, "str | None", "bytes | None", bool]  # a recording line: t, topic, payload, tick
-_as_line = operator.attrgetter("t", "topic", "payload", "tick")
-_READ_CHUNK = 1 << 20
-_EVENTS = (DeadLetter, PlannedWork)  # what intake returns besides steps
-# With several workers a recording this large or larger is read in two parts at once: the
-# first, read by the process that pairs the lines, is the smaller, since that process then
-# pairs every line while another process reads the rest and hands it over.
-_SPLIT_MIN_BYTES = 256 * 1024
-_FIRST_PART_SHARE = 0.4
-
-
-def _size(path: str | Path) -> int:
-    try:
-        return os.path.getsize(path)
-    except OSError:
-        return 0  # read as a whole, which gives the error
-
-
-def _line_start(fh: BinaryIO, at: int, size: int) -> int:
-    """The first offset at or after ``at`` where a line starts (``size`` when none does)."""
-    if at <= 0:
-        return 0
-    if at >= size:
-        return size
-    fh.seek(at - 1)
-    pos = at - 1
-    while chunk := fh.read(65536):
-        i = chunk.find(b"\n")
-        if i >= 0:
-            return pos + i + 1
-        pos += len(chunk)
-    return size
-
-
-def split_recording(recording: str | Path, parts: int, first_share: float) -> list[tuple[int, int | None]]:
-    """``parts`` byte ranges of whole lines that together hold the recording, the first about
-    ``first_share`` of its size and the others equal; the last runs to the end of the file
-    (``None``), as a reading of the whole file would."""
-    p = Path(recording)
-    size = p.stat().st_size
-    with p.open("rb") as fh:
-        cuts = [0]
-        for k in range(1, parts):
-            share = first_share + (1.0 - first_share) * (k - 1) / (parts - 1)
-            cuts.append(max(cuts[-1], _line_start(fh, int(size * share), size)))
-    ends: list[int | None] = [*cuts[1:], None]
-    return list(zip(cuts, ends))
-
-
-def read_part(recording: str | Path, start: int, stop: int | None) -> list[Line]:
-    """The lines between two byte offsets where lines start (``stop`` None: to the end), as
-    ``read_recording`` reads them: the same lines, errors and line numbers as in the whole file.
-
-    Lines are independent of each other until pairing, so parts of a recording can be read by
-    different processes and handed in order to ``intake_recording``.
-    """
-    p = Path(recording)
-    try:
-        fh = p.open("rb")
-    except FileNotFoundError:
-        return list(map(_as_line, read_recording(p)))  # its error for a missing file
-    with fh:
-        first = 1  # the number of the part's first line: one more than the line ends before it
-        left = start
-        while left > 0 and (chunk := fh.read(min(left, _READ_CHUNK))):
-            first += chunk.count(b"\n")
-            left -= len(chunk)
-        fh.seek(start)
-        data = fh.read() if stop is None else fh.read(stop - start)
-    return list(map(_as_line, parse_lines(io.BytesIO(data), str(p), first, cut_last_ok=True)))
-
-
 def intake_recording(
-    config: Config,
-    cards: dict[str, ModelCard],
-    recording: str | Path,
-    tick_every: float | None = None,
-    parts: Iterable[Callable[[], Iterable[Line]]] | None = None,
+    config: Config, cards: dict[str, ModelCard], recording: str | Path, tick_every: float | None = None
 ) -> Intake:
-    """Parse and pair a recording once, through the same core as replay.
-
-    ``parts``, when given, give the recording's lines in consecutive parts (``read_part`` of
-    the ranges of ``split_recording``), each called when its turn comes: another process can
-    read a later part while this one pairs the earlier ones. The steps are the same as from
-    reading the whole file here.
-    """
+    """Parse and pair a recording once, through the same core as replay."""
     mon = Monitor(config, cards)
-    if parts is None:
-        parts = (lambda: map(_as_line, read_recording(recording)),)
-    lines: Iterable[Line] = itertools.chain.from_iterable(part() for part in parts)
-    if tick_every:
-        lines = map(_as_line, with_ticks((RecordLine(*x) for x in lines), tick_every))
+    steps: list[Step] = []
     start = end = math.nan
-    got: list[Any] = []
-    keep, intake, intake_tick = got.extend, mon.intake, mon.intake_tick
-    for t, topic, payload, tick in lines:
-        if tick:
-            keep(intake_tick(t))
+    pairs: dict[str, int] = {}
+    span: dict[str, tuple[float, float]] = {}
+    intake, intake_tick, add = mon.intake, mon.intake_tick, steps.append
+    lines = read_recording(recording)
+    for line in with_ticks(lines, tick_every) if tick_every else lines:
+        t = line.t
+        if line.tick:
+            out = intake_tick(t)
         else:
-            assert topic is not None and payload is not None  # a message line has both
-            keep(intake(topic, payload, t))
+            assert line.topic is not None and line.payload is not None  # a message line has both
+            out = intake(line.topic, line.payload, t)
         if not t <= end:  # the first line (end is NaN) or a later receive time
             end = t
             if math.isnan(start):
                 start = t
-    steps: list[Step] = []
-    add = steps.append
-    pairs: dict[str, int] = {}
-    span: dict[str, tuple[float, float]] = {}
-    for s in got:
-        if isinstance(s, _EVENTS):  # dead letters and planned work: events, not steps
-            continue
-        add(s)
-        if type(s) is PairStep:
-            pairs[s.model] = pairs.get(s.model, 0) + 1
-            a, _ = span.get(s.model, (s.t, s.t))
-            span[s.model] = (a, s.t)
+        for s in out:
+            if isinstance(s, (DeadLetter, PlannedWork)):  # events, not steps
+                continue
+            add(s)
+            if type(s) is PairStep:
+                pairs[s.model] = pairs.get(s.model, 0) + 1
+                a, _ = span.get(s.model, (s.t, s.t))
+                span[s.model] = (a, s.t)
     if not steps:
         raise RecordingError(
             f"recording {recording} gave no predictions or truths on the config's topics; "
@@ -492,20 +403,30 @@ def _segments(groups: list[Any], workers: int) -> list[int]:
 
 
 class _Queue:
-    """The tasks of a phase in ``workers`` runs, one per worker, in shared memory.
+    """The tasks of a phase in runs, one per worker, in shared memory; made before the fork
+    and set again for each phase.
 
     A worker takes the tasks of its own run from the front; when its run is empty it takes the
     last task of the longest run left, from the back. Tasks in a run are grid neighbours, whose
     checks meet the same quantiles (see ``tune``): taking from the back keeps a stolen group
     with the thief and the front of the run with its owner, so a group is rarely solved twice,
-    and the workers still finish within one task of each other.
+    and the workers still finish within one task of each other, even when one starts late.
     """
 
-    def __init__(self, ctx: Any, starts: list[int]) -> None:
-        self.workers = len(starts) - 1
-        self._bounds = ctx.RawArray("q", [b for k in range(self.workers) for b in (starts[k], starts[k + 1])])
+    def __init__(self, ctx: Any, workers: int) -> None:
+        self.workers = workers
+        self._bounds = ctx.RawArray("q", 2 * workers)
+        self._taken = ctx.RawArray("q", workers)  # tasks each worker took in this phase
         self._done = ctx.RawValue("q", 0)
         self._lock = ctx.Lock()
+
+    def set(self, starts: list[int]) -> None:
+        """A new phase: worker k's run is tasks ``starts[k]`` to ``starts[k + 1]``."""
+        with self._lock:
+            for k in range(self.workers):
+                self._bounds[2 * k], self._bounds[2 * k + 1] = starts[k], starts[k + 1]
+                self._taken[k] = 0
+            self._done.value = 0
 
     def take(self, me: int) -> int | None:
         """The index of the next task for worker ``me``, or None when every task is taken."""
@@ -514,6 +435,7 @@ class _Queue:
             lo, hi = b[2 * me], b[2 * me + 1]
             if lo < hi:
                 b[2 * me] = lo + 1
+                self._taken[me] += 1
                 return lo
             victim, left = -1, 0
             for k in range(self.workers):
@@ -522,7 +444,13 @@ class _Queue:
             if victim < 0:
                 return None
             b[2 * victim + 1] -= 1
+            self._taken[me] += 1
             return int(b[2 * victim + 1])
+
+    def taken(self, me: int) -> int:
+        """How many tasks worker ``me`` took in this phase (final once ``take`` gives None)."""
+        with self._lock:
+            return int(self._taken[me])
 
     def finished(self) -> int:
         """One more task done; the number done so far, by every worker."""
@@ -531,28 +459,38 @@ class _Queue:
             return int(self._done.value)
 
 
-def _serve(
-    fn: Callable[[Any], Any],
-    tasks: list[Any],
+def _run_phase(fn: Callable[[Any], Any], tasks: list[Any], queue: _Queue, me: int, conn: Any) -> None:
+    out = []
+    while (i := queue.take(me)) is not None:
+        out.append((i, fn(tasks[i])))
+        queue.finished()
+    conn.send(("results", out))
+
+
+def _helper(
     queue: _Queue,
     me: int,
     conn: Any,
     init: tuple[Any, ...],
-    each: bool,
+    first: tuple[Callable[[Any], Any], list[Any]] | None,
+    parse: Callable[[], Intake] | None,
 ) -> None:
-    """A forked worker: run tasks from the queue and send their results back, each as it is
-    done or all at the end; then an end mark, or the error."""
-    out: list[tuple[int, Any]] = []
+    """A forked worker: the first phase's tasks, then its own parse pass if given, then the
+    phases the parent sends, until it says stop; results (or the error) go back by ``conn``."""
     try:
         _init_worker(*init)  # the same objects after a fork; copies where processes are spawned
-        while (i := queue.take(me)) is not None:
-            out.append((i, fn(tasks[i])))
-            queue.finished()
-            if each:
-                conn.send(("results", out))
-                out = []
-        conn.send(("results", out))
-        conn.send(("end", None))
+        if first is not None:
+            _run_phase(*first, queue, me, conn)
+        if parse is not None:
+            _W["steps"] = parse().steps
+        while True:
+            try:
+                msg = conn.recv()
+            except EOFError:  # the parent has closed its end
+                break
+            if msg[0] != "phase":
+                break
+            _run_phase(msg[1], msg[2], queue, me, conn)
     except BaseException as e:  # handed to the parent, which raises it
         try:
             conn.send(("error", e))
@@ -562,17 +500,12 @@ def _serve(
         conn.close()
 
 
-def _call(task: Callable[[], Any]) -> Any:
-    return task()
-
-
-_ENDED: list[Any] = []  # workers that sent all their results, not yet waited for
+_ENDED: list[Any] = []  # workers told to stop, not yet waited for
 
 
 def _reap(wait: bool = True) -> None:
-    """Wait for the workers that have sent all their results (they are ending, if not ended);
-    without ``wait``, only for those already ended (the others at the next call, or when
-    this process ends)."""
+    """Wait for the workers told to stop (they are ending, if not ended); without ``wait``,
+    only for those already ended (the others at the next call, or when this process ends)."""
     for p in list(_ENDED):
         p.join(None if wait else 0)
         if p.exitcode is not None:
@@ -580,16 +513,19 @@ def _reap(wait: bool = True) -> None:
 
 
 class _Workers:
-    """This process and ``workers - 1`` processes forked with the shared steps, for each phase.
+    """This process and ``workers - 1`` forked worker processes, for the phases of a run.
 
-    Fork hands the steps, the cards and the phase's tasks to each worker without copying or
-    pickling them: the workers start from the one parsed form. This process works too rather
-    than wait (one process fewer to fork, and fewer pages copied when the workers touch the
-    steps), and only results come back, once per worker. The tasks are dealt out by a shared
-    ``_Queue``. With one worker everything runs in this process.
+    The workers are forked once, at the start of a run, and each phase's tasks are dealt out
+    by a shared ``_Queue``; this process works too rather than wait, and only results come
+    back, once per worker and phase. With one worker everything runs in this process.
 
-    Work that needs no steps can start before the parse (``ahead``), in one forked process,
-    so that the parse does not leave the other CPUs idle.
+    Forked before the parse (``parse`` given), each worker first runs the ``first`` phase (the
+    settings' validation, which needs no steps) while this process parses, then parses the
+    recording itself: its steps are its own from the start, so nothing is copied, pickled or
+    shared, and the other CPUs are not idle during this process's parse (the run's one serial
+    phase), which the workers do alongside. The parse is deterministic: every worker's steps
+    are the ones this process parses. Forked after it (``steps`` given), the workers share
+    this process's steps.
     """
 
     def __init__(
@@ -600,75 +536,96 @@ class _Workers:
         base_dir: Path,
         models: list[str] | None,
         checks: list[str] | None,
+        first: tuple[Callable[[Any], Any], list[Any]] | None = None,
+        parse: Callable[[], Intake] | None = None,
     ) -> None:
         _reap(wait=False)
         self._n = workers
-        self._ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
-        self._procs: list[tuple[Any, Any]] = []  # (process, the end of its pipe) still running
-        self.share(steps, cards, base_dir, models, checks)
+        self._first = first
+        self._conns: list[tuple[Any, Any]] = []  # (process, this end of its pipe)
+        self._owed: list[int] = []  # per worker: results of past phases it took no task in, not read
+        init = (steps, cards, str(base_dir), models, checks)
+        _init_worker(*init)
+        if workers <= 1:
+            return
+        ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+        self._queue = _Queue(ctx, workers)
+        if first is not None:  # this process parses meanwhile: the workers share the first phase
+            self._queue.set([0, *_segments(list(range(len(first[1]))), workers - 1)])
+        for me in range(1, workers):
+            mine, theirs = ctx.Pipe()
+            p = ctx.Process(target=_helper, args=(self._queue, me, theirs, init, first, parse), daemon=True)
+            p.start()
+            theirs.close()
+            self._conns.append((p, mine))
+            self._owed.append(0)
 
-    def share(
-        self,
-        steps: list[Step],
-        cards: dict[str, ModelCard],
-        base_dir: Path,
-        models: list[str] | None,
-        checks: list[str] | None,
-    ) -> None:
-        """What the tasks of the next phases read: the steps (once parsed), the cards, the options."""
-        self._init = (steps, cards, str(base_dir), models, checks)
-        _init_worker(*self._init)
+    def share(self, steps: list[Step]) -> None:
+        """The steps this process parsed, for the phases it runs itself."""
+        _W["steps"] = steps
 
     def __enter__(self) -> _Workers:
         return self
 
     def __exit__(self, *exc: object) -> None:
-        # after an error here or in a worker: the others' results are not wanted
-        for p, conn in self._procs:
-            p.terminate()
-            p.join()
+        for p, conn in self._conns:
+            if exc[0] is None:
+                try:
+                    conn.send(("stop",))
+                except OSError:  # it has ended
+                    pass
+            else:  # after an error here or in a worker: the others' results are not wanted
+                p.terminate()
             conn.close()
-        self._procs.clear()
+            # A worker's exit (its memory handed back) takes some milliseconds: not waited
+            # for; it is reaped once ended (``_reap``).
+            _ENDED.append(p)
+        self._conns.clear()
         if exc[0] is not None:
             _reap()
 
-    def _start(
-        self, fn: Callable[[Any], Any], tasks: list[Any], queue: _Queue, me: int, each: bool = False
-    ) -> tuple[Any, Any]:
-        recv, send = self._ctx.Pipe(duplex=False)
-        p = self._ctx.Process(target=_serve, args=(fn, tasks, queue, me, send, self._init, each), daemon=True)
-        p.start()
-        send.close()
-        self._procs.append((p, recv))
-        return p, recv
+    def _results(self, p: Any, conn: Any) -> list[tuple[int, Any]]:
+        try:
+            kind, body = conn.recv()
+        except EOFError:
+            p.join()
+            raise RuntimeError(f"a tuning worker ended without its results (exit code {p.exitcode})") from None
+        if kind == "error":
+            raise body
+        return body
 
-    def _results(self, p: Any, conn: Any) -> Iterator[tuple[int, Any]]:
-        """(task, result) pairs as a worker sends them, until its end mark; its error raised."""
-        while True:
-            try:
-                kind, body = conn.recv()
-            except EOFError:
-                p.join()
-                raise RuntimeError(f"a tuning worker ended without its results (exit code {p.exitcode})") from None
-            if kind == "error":
-                raise body
-            if kind == "end":
-                break
-            yield from body
-        self._procs.remove((p, conn))
-        conn.close()
-        # A worker's exit (its memory handed back) takes some milliseconds: not waited for;
-        # it is reaped once ended (``_reap``).
-        _ENDED.append(p)
+    def first(self) -> list[Any]:
+        """The results of the ``first`` phase, in task order."""
+        assert self._first is not None
+        fn, tasks = self._first
+        self._first = None
+        if self._n <= 1:
+            return [fn(t) for t in tasks]
+        return self._collect(fn, tasks)
 
-    def ahead(self, fn: Callable[[Any], Any], tasks: list[Any]) -> Iterator[Any]:
-        """``fn`` of each task in turn, started in one forked process (with several workers)
-        while this process goes on; the results come in task order as they are asked for (in
-        this process, then, with one worker)."""
-        if self._n <= 1 or not tasks:
-            return (fn(t) for t in tasks)
-        p, conn = self._start(fn, tasks, _Queue(self._ctx, [0, len(tasks)]), 0, each=True)
-        return (r for _, r in self._results(p, conn))
+    def _collect(
+        self, fn: Callable[[Any], Any], tasks: list[Any], progress: Callable[[int], None] | None = None
+    ) -> list[Any]:
+        results: dict[int, Any] = {}
+        reported = 0
+        while (i := self._queue.take(0)) is not None:
+            results[i] = fn(tasks[i])
+            done = self._queue.finished()
+            if progress:
+                progress(done - reported)
+                reported = done
+        for k, (p, conn) in enumerate(self._conns, 1):
+            if self._queue.taken(k) == 0:
+                # it took no task (still parsing, say): its empty results are not waited for
+                self._owed[k - 1] += 1
+                continue
+            while self._owed[k - 1]:
+                self._results(p, conn)
+                self._owed[k - 1] -= 1
+            results.update(self._results(p, conn))
+        if progress and len(tasks) > reported:
+            progress(len(tasks) - reported)
+        return [results[i] for i in range(len(tasks))]
 
     def map(
         self,
@@ -679,29 +636,17 @@ class _Workers:
     ) -> list[Any]:
         """``fn`` of every task, in task order. ``groups`` (a key per task) marks runs of
         neighbouring tasks that are best run by one worker."""
-        n = min(self._n, len(tasks))
-        if n <= 1:
+        if self._n <= 1:
             out = []
             for task in tasks:
                 out.append(fn(task))
                 if progress:
                     progress(1)
             return out
-        queue = _Queue(self._ctx, _segments(groups if groups is not None else list(range(len(tasks))), n))
-        started = [self._start(fn, tasks, queue, me) for me in range(1, n)]
-        results: dict[int, Any] = {}
-        reported = 0
-        while (i := queue.take(0)) is not None:
-            results[i] = fn(tasks[i])
-            done = queue.finished()
-            if progress:
-                progress(done - reported)
-                reported = done
-        for p, conn in started:
-            results.update(self._results(p, conn))
-        if progress and len(tasks) > reported:
-            progress(len(tasks) - reported)
-        return [results[i] for i in range(len(tasks))]
+        self._queue.set(_segments(groups if groups is not None else list(range(len(tasks))), self._n))
+        for _, conn in self._conns:
+            conn.send(("phase", fn, tasks))
+        return self._collect(fn, tasks, progress)
 
 
 def evaluate_all(
@@ -978,26 +923,24 @@ def tune(
     parts: dict[int, list[int]] = {}  # setting -> the jobs whose alerts make up its alerts
     invalid = []
     checked: dict[int, Checked] = {}
-    with _Workers(n_workers, [], cards, base_dir, models, checks) as pool:
-        # The parse (reading lines, then pairing them in order) is the run's one serial phase.
-        # With several workers, one of them reads the end of the recording meanwhile, then
-        # validates the settings (they need no steps); this process reads the start of the
-        # recording and pairs all of it.
-        ahead: list[Callable[[], Any]] = [
-            functools.partial(_check_setting, (s.index, data_of[s.index], s.label())) for s in settings
-        ]
-        line_parts = None
-        if n_workers > 1 and _size(recording) >= _SPLIT_MIN_BYTES:
-            (a0, b0), (a1, b1) = split_recording(recording, 2, _FIRST_PART_SHARE)
-            ahead.insert(0, functools.partial(read_part, recording, a1, b1))
-        results = pool.ahead(_call, ahead)
-        if len(ahead) > len(settings):
-            line_parts = (functools.partial(read_part, recording, a0, b0), functools.partial(next, results))
+    validation = [(s.index, data_of[s.index], s.label()) for s in settings]
+    with _Workers(
+        n_workers,
+        [],
+        cards,
+        base_dir,
+        models,
+        checks,
+        first=(_check_setting, validation),
+        parse=functools.partial(intake_recording, cfg, cards, recording, tick_every),
+    ) as pool:
+        # The parse pass is the run's one serial phase: the workers, forked before it,
+        # validate the settings (they need no steps) meanwhile, then parse for themselves.
         t1 = clock()
-        intake = intake_recording(cfg, cards, recording, tick_every, line_parts)
+        intake = intake_recording(cfg, cards, recording, tick_every)
         t2 = clock()
-        pool.share(intake.steps, cards, base_dir, models, checks)
-        for c in results:
+        pool.share(intake.steps)
+        for c in pool.first():
             checked[c.index] = c
         for s in settings:
             c = checked[s.index]

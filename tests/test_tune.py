@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
+import functools
 import json
 import math
-import multiprocessing
+import pickle
 import struct
 from pathlib import Path
 
@@ -15,7 +16,6 @@ from simulators.bundle import load_incidents, write_bundle
 from simulators.generate import simulate
 from simulators.scenario import load_scenario
 from simulators.tune import (
-    _SPLIT_MIN_BYTES,
     Mark,
     _Workers,
     apply_setting,
@@ -23,9 +23,7 @@ from simulators.tune import (
     expand,
     intake_recording,
     load_grid,
-    read_part,
     score,
-    split_recording,
     tune,
     with_setting,
 )
@@ -33,7 +31,7 @@ from watchdog_edge.cli.app import app
 from watchdog_edge.core.events import Alert
 from watchdog_edge.core.monitor import Monitor
 from watchdog_edge.core.settings import parse_config
-from watchdog_edge.errors import ConfigError, RecordingError
+from watchdog_edge.errors import ConfigError
 from watchdog_edge.files.configfile import load_cards, load_config
 from watchdog_edge.replay.recording import read_recording, replay
 
@@ -150,78 +148,42 @@ def test_two_workers_give_the_same_results_as_one(recordings):
 
 
 def test_tune_gives_the_same_results_with_one_two_and_three_workers(recordings):
-    # three workers on two CPUs: the shared queue still hands out each job once, and the end
-    # of the recording read by another process gives the same steps
+    # three workers on two CPUs: the shared queue still hands out each job once, and every
+    # worker's own parse pass gives the steps this process parses
     a, _ = recordings
     grid = {"window.size_pairs": [60, 240], "checks.gap.confidence": [0.9, 0.99], "checks.shift.enabled": [True, False]}
     runs = {n: tune(a.config, a.recording, load_incidents(a.incidents), grid=grid, workers=n) for n in (1, 2, 3)}
-    assert a.recording.stat().st_size >= _SPLIT_MIN_BYTES  # so the parse was split
     want = [(r.setting.index, r.marks, r.score.to_dict(), r.robust_false_alerts_per_day) for r in runs[1].rows]
     for n in (2, 3):
         assert [
             (r.setting.index, r.marks, r.score.to_dict(), r.robust_false_alerts_per_day) for r in runs[n].rows
         ] == want
-        assert runs[n].intake.steps == runs[1].intake.steps
     assert len(want) == 8 and any(marks for _, marks, _, _ in want)
 
 
-def _lines(path):
-    return [(x.t, x.topic, x.payload, x.tick) for x in read_recording(path)]
+def _steps_pickled(_: object) -> bytes:
+    from simulators.tune import _W
+
+    return pickle.dumps(_W["steps"])
 
 
-def test_a_recording_read_in_parts_by_several_processes_gives_the_serial_steps(recordings):
+def test_workers_parsing_the_recording_alongside_give_the_serial_steps_exactly(recordings):
+    # the workers are forked before the parse pass and parse the recording themselves, in
+    # parallel with this process: each one's steps, pickled, are byte for byte the serial ones
     a, _ = recordings
     cfg = load_config(a.config)
     cards = load_cards(cfg)
-    serial = intake_recording(cfg, cards, a.recording)
-    for parts, first_share in ((2, 0.4), (3, 0.1), (5, 0.5)):
-        ranges = split_recording(a.recording, parts, first_share)
-        assert ranges[0][0] == 0 and ranges[-1][1] is None
-        assert all(stop == start for (_, stop), (start, _) in zip(ranges, ranges[1:]))
-        # every part but the first read by forked processes, whose lines come back pickled
-        with multiprocessing.get_context("fork").Pool(2) as pool:
-            later = pool.starmap(read_part, [(a.recording, *r) for r in ranges[1:]])
-        assert [x for part in [read_part(a.recording, *ranges[0]), *later] for x in part] == _lines(a.recording)
-        split = intake_recording(
-            cfg,
-            cards,
-            a.recording,
-            parts=[lambda r=ranges[0]: read_part(a.recording, *r)] + [lambda p=p: p for p in later],
-        )
-        assert split.steps == serial.steps and len(serial.steps) > 5_000
-        assert (split.start, split.end, split.pairs, split.pair_span) == (
-            serial.start,
-            serial.end,
-            serial.pairs,
-            serial.pair_span,
-        )
+    parse = functools.partial(intake_recording, cfg, cards, a.recording)
+    with _Workers(3, [], cards, a.config.parent, None, None, first=(_squared, [1, 2, 3]), parse=parse) as pool:
+        serial = intake_recording(cfg, cards, a.recording)
+        pool.share(serial.steps)
+        assert pool.first() == [1, 4, 9]
+        got = pool.map(_steps_pickled, list(range(12)))
+    want = pickle.dumps(serial.steps)
+    assert len(serial.steps) > 5_000 and got == [want] * 12
 
 
-def test_parts_of_a_recording_keep_its_line_numbers_blank_lines_and_cut_last_line(recordings, tmp_path):
-    a, _ = recordings
-    text = a.recording.read_bytes().split(b"\n")
-    path = tmp_path / "r.jsonl"
-    # blank lines, and a last line cut short (skipped with a warning, as in a whole reading)
-    path.write_bytes(b"\n".join(text[:300] + [b"", b""] + text[300:600]) + b"\n" + text[600][:20])
-    for parts in (2, 4, 40):
-        ranges = split_recording(path, parts, 0.3)
-        assert [x for r in ranges for x in read_part(path, *r)] == _lines(path)
-    # a bad line far into the file: the part that holds it names the same line as a whole reading
-    path.write_bytes(b"\n".join(text[:4000] + [b'{"t": 1.0, "topic": 3}'] + text[4000:]))
-    assert path.stat().st_size >= _SPLIT_MIN_BYTES  # tune splits it
-    with pytest.raises(RecordingError) as whole:
-        _lines(path)
-    start, stop = split_recording(path, 2, 0.4)[1]
-    with pytest.raises(RecordingError) as part:
-        read_part(path, start, stop)
-    assert str(part.value) == str(whole.value) and "line 4001" in str(whole.value)
-    # and tune with two workers stops with that error, as with one
-    for n in (1, 2):
-        with pytest.raises(RecordingError, match="line 4001"):
-            tune(a.config, path, None, grid={"checks.gap.confidence": [0.9]}, workers=n)
-
-
-def _fails_on_seven(x: int) -> int:
+def _squared(x: int) -> int:
     if x == 7:
         raise ValueError("task 7 fails")
     return x * x
@@ -231,12 +193,11 @@ def test_workers_hand_out_each_task_once_and_pass_an_error_on():
     with _Workers(3, [], {}, Path("."), None, None) as pool:
         tasks = list(range(40))
         groups = [x // 6 for x in tasks]  # runs of neighbours, split only past a worker's share
-        assert pool.map(_fails_on_seven, [x for x in tasks if x != 7], groups=groups[:39]) == [
-            x * x for x in tasks if x != 7
-        ]
+        kept = [x for x in tasks if x != 7]
+        assert pool.map(_squared, kept, groups=groups[:39]) == [x * x for x in kept]
+        assert pool.map(_squared, [3, 4]) == [9, 16]  # fewer tasks than workers
         with pytest.raises(ValueError, match="task 7 fails"):
-            pool.map(_fails_on_seven, tasks)
-        assert list(pool.ahead(_fails_on_seven, [1, 2, 3])) == [1, 4, 9]
+            pool.map(_squared, tasks)
 
 
 def _raw(path):
