@@ -1,8 +1,8 @@
 """Choose check settings on recorded traffic: one parse pass, many settings, one worker per CPU.
 
-The recording is parsed and paired once (``Monitor.intake``) into steps; each setting of the
-grid is a Monitor built from the config with some keys replaced, and ``apply(steps)`` gives its
-alerts. Checks do not see each other, so a check runs once per distinct value of the grid keys
+The recording is parsed and paired once (``Monitor.intake``) into steps (with several workers,
+each worker parses it too, alongside: see ``_Workers``); each setting of the grid is a Monitor
+built from the config with some keys replaced, and ``apply(steps)`` gives its alerts. Checks do not see each other, so a check runs once per distinct value of the grid keys
 that reach it (its own keys, and ``window.*`` for the checks that read the model's window), and
 a setting's alerts are put together from those runs; checks the grid does not reach run once. A raised alert counts as a detection of an incident when it comes between the
 incident's start and its end plus a grace period (default: one window, i.e. the window size
