@@ -16,7 +16,7 @@ read the ratios, not the seconds. Every run starts with the core's quantile cach
 Then the two-worker ratio again with each run in a new process, as a ``tune`` command runs:
 rounds in one process leave the memory earlier runs freed in its heap, where the parse pass
 allocates; a worker forked before the parse shares those pages, so the parse copies them
-(about 2,700 page copies per run in one process against 950 in a new one).
+(about 2,700 more page faults per run in one process, 950 more in a new one).
 
 Then the phases of a run (wall time, the fastest of the rounds), the serial share (everything
 outside the workers' phase) and the ratio it allows (Amdahl: 1 / (serial + rest / workers)),
