@@ -13,6 +13,11 @@ of one. Timings are the fastest of ``--repeat`` interleaved rounds; the machine 
 read the ratios, not the seconds. Every run starts with the core's quantile caches empty, as a
 ``tune`` command does (rounds in one process would otherwise find them filled).
 
+Then the two-worker ratio again with each run in a new process, as a ``tune`` command runs:
+rounds in one process leave the memory earlier runs freed in its heap, where the parse pass
+allocates; a worker forked before the parse shares those pages, so the parse copies them
+(about 2,700 more page faults per run in one process, 950 more in a new one).
+
 Then the phases of a run (wall time, the fastest of the rounds), the serial share (everything
 outside the workers' phase) and the ratio it allows (Amdahl: 1 / (serial + rest / workers)),
 and the CPU time the workers spent against one worker's: what parallel running adds.
@@ -24,8 +29,11 @@ from __future__ import annotations
 
 import argparse
 import functools
+import json
+import math
 import os
 import resource
+import subprocess
 import sys
 import tempfile
 import time
@@ -36,6 +44,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from simulators.bundle import write_bundle
 from simulators.generate import simulate
 from simulators.scenario import load_scenario
+from simulators.tune import _reap as reap
 from simulators.tune import default_grid, expand, tune
 from watchdog_edge.core import stats, tails
 from watchdog_edge.files.configfile import (
@@ -78,6 +87,32 @@ def best_times(fns: dict, repeat: int, clock=time.perf_counter) -> dict[str, flo
     return {k: min(v) for k, v in times.items()}
 
 
+_FRESH = """
+import json, sys, time
+from simulators.tune import tune
+grid = json.loads(sys.argv[3])
+t = time.perf_counter()
+tune(sys.argv[1], sys.argv[2], None, grid=grid, workers=int(sys.argv[4]))
+print(time.perf_counter() - t)
+"""
+
+
+def fresh_run(config: Path, recording: Path, grid: dict, workers: int) -> float:
+    """Wall time of ``tune`` alone in a new Python process, as a ``tune`` command runs it: no
+    earlier run has left its freed memory in the process (which a forked worker then shares,
+    so that the parse pass, writing into it, copies its pages)."""
+    root = str(Path(__file__).resolve().parents[1])
+    env = {**os.environ, "PYTHONPATH": root + os.pathsep + os.environ.get("PYTHONPATH", "")}
+    out = subprocess.run(
+        [sys.executable, "-c", _FRESH, str(config), str(recording), json.dumps(grid), str(workers)],
+        env=env,
+        capture_output=True,
+        text=True,
+        check=True,
+    )
+    return float(out.stdout.split()[-1])
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--hours", type=float, default=24.0)
@@ -117,12 +152,17 @@ def main() -> None:
                 ph: dict[str, float] = {}
                 c0, k0 = time.process_time(), children_cpu()
                 tune(paths.config, paths.recording, None, grid=grid, workers=n, timings=ph)
+                reap()  # the workers' CPU time counts once they are waited for
                 spent = time.process_time() - c0 + children_cpu() - k0
                 cpu[n] = min(cpu.get(n, spent), spent)
                 if n not in phases or sum(ph.values()) < sum(phases[n].values()):
                     phases[n] = ph
         # the same in-process runs in CPU time of this process: what one added setting costs,
         # whatever else the machine is doing (the pool's children are not in it, so not gn)
+        fresh = {1: math.inf, cpus: math.inf}
+        for _ in range(args.repeat):
+            for n in fresh:
+                fresh[n] = min(fresh[n], fresh_run(paths.config, paths.recording, grid, n))
         c = best_times(
             {
                 k: v
@@ -147,6 +187,10 @@ def main() -> None:
     cpu_marginal = (c["g1"] - c["one"]) / (g - 1)
     print(f"added setting / full replay      {cpu_marginal / c['full']:8.3f}   (target <= 0.100; CPU time)")
     print(f"{cpus} workers / 1 worker            {per_min_n / per_min_1:8.2f}x  (target >= 1.6x with 2)")
+    print(
+        f"the same, each run a new process   {fresh[1] / fresh[cpus]:8.2f}x  ({fresh[1] * 1000:.0f} ms and "
+        f"{fresh[cpus] * 1000:.0f} ms: a tune command)"
+    )
     p1, pn = phases[1], phases[cpus]
     total1 = sum(p1.values())
     serial = (total1 - p1["workers"]) / total1

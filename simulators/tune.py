@@ -1,8 +1,8 @@
 """Choose check settings on recorded traffic: one parse pass, many settings, one worker per CPU.
 
-The recording is parsed and paired once (``Monitor.intake``) into steps; each setting of the
-grid is a Monitor built from the config with some keys replaced, and ``apply(steps)`` gives its
-alerts. Checks do not see each other, so a check runs once per distinct value of the grid keys
+The recording is parsed and paired once (``Monitor.intake``) into steps (with several workers,
+each worker parses it too, alongside: see ``_Workers``); each setting of the grid is a Monitor
+built from the config with some keys replaced, and ``apply(steps)`` gives its alerts. Checks do not see each other, so a check runs once per distinct value of the grid keys
 that reach it (its own keys, and ``window.*`` for the checks that read the model's window), and
 a setting's alerts are put together from those runs; checks the grid does not reach run once. A raised alert counts as a detection of an incident when it comes between the
 incident's start and its end plus a grace period (default: one window, i.e. the window size
@@ -28,6 +28,7 @@ setting is "tightest" when there is no incidents file)::
 from __future__ import annotations
 
 import copy
+import functools
 import gc
 import itertools
 import math
@@ -382,36 +383,149 @@ def _check_setting(task: tuple[int, dict, str]) -> Checked:
     )
 
 
-def _batch(task: tuple[Callable[[Any], Any], list[Any]]) -> list[Any]:
-    fn, items = task
-    return [fn(x) for x in items]
+def _segments(groups: list[Any], workers: int) -> list[int]:
+    """Where each worker's run of tasks starts: ``workers`` runs of about equal length, each
+    moved forward to the start of a group (a run of equal keys), so that a group is split
+    only when it is longer than a run. The last entry is the number of tasks.
 
-
-def _batches(tasks: list[Any], workers: int) -> list[list[Any]]:
-    """Tasks in runs of neighbours, long ones first, each a ``remaining / (2 x workers)``.
-
-    Neighbours in grid order differ in the last keys only (in the default grid, the gap
-    tolerance, which changes no interval): run by one worker, they share the quantiles its
-    caches hold, where tasks dealt out one by one had every worker solve most of them again
-    (2,200 more solves of 3,300 with two workers on the benchmark's day). The runs shrink
-    towards the end, so the workers still finish together.
+    >>> _segments(["a", "a", "b", "b", "b", "c"], 2)
+    [0, 5, 6]
     """
-    out: list[list[Any]] = []
-    i = 0
-    while i < len(tasks):
-        n = max(1, -(-(len(tasks) - i) // (2 * workers)))
-        out.append(tasks[i : i + n])
-        i += n
-    return out
+    n = len(groups)
+    starts = [0]
+    for k in range(1, workers):
+        i = max(starts[-1], k * n // workers)
+        j = i
+        while 0 < j < n and groups[j] == groups[j - 1]:
+            j += 1
+        starts.append(i if j >= n else j)
+    return [*starts, n]
+
+
+class _Queue:
+    """The tasks of a phase in runs, one per worker, in shared memory; made before the fork
+    and set again for each phase.
+
+    A worker takes the tasks of its own run from the front; when its run is empty it takes the
+    last task of the longest run left, from the back. Tasks in a run are grid neighbours, whose
+    checks meet the same quantiles (see ``tune``): taking from the back keeps a stolen group
+    with the thief and the front of the run with its owner, so a group is rarely solved twice,
+    and the workers still finish within one task of each other, even when one starts late.
+    """
+
+    def __init__(self, ctx: Any, workers: int) -> None:
+        self.workers = workers
+        self._bounds = ctx.RawArray("q", 2 * workers)
+        self._taken = ctx.RawArray("q", workers)  # tasks each worker took in this phase
+        self._done = ctx.RawValue("q", 0)
+        self._lock = ctx.Lock()
+
+    def set(self, starts: list[int]) -> None:
+        """A new phase: worker k's run is tasks ``starts[k]`` to ``starts[k + 1]``."""
+        with self._lock:
+            for k in range(self.workers):
+                self._bounds[2 * k], self._bounds[2 * k + 1] = starts[k], starts[k + 1]
+                self._taken[k] = 0
+            self._done.value = 0
+
+    def take(self, me: int) -> int | None:
+        """The index of the next task for worker ``me``, or None when every task is taken."""
+        b = self._bounds
+        with self._lock:
+            lo, hi = b[2 * me], b[2 * me + 1]
+            if lo < hi:
+                b[2 * me] = lo + 1
+                self._taken[me] += 1
+                return lo
+            victim, left = -1, 0
+            for k in range(self.workers):
+                if b[2 * k + 1] - b[2 * k] > left:
+                    victim, left = k, b[2 * k + 1] - b[2 * k]
+            if victim < 0:
+                return None
+            b[2 * victim + 1] -= 1
+            self._taken[me] += 1
+            return int(b[2 * victim + 1])
+
+    def taken(self, me: int) -> int:
+        """How many tasks worker ``me`` took in this phase (final once ``take`` gives None)."""
+        with self._lock:
+            return int(self._taken[me])
+
+    def finished(self) -> int:
+        """One more task done; the number done so far, by every worker."""
+        with self._lock:
+            self._done.value += 1
+            return int(self._done.value)
+
+
+def _run_phase(fn: Callable[[Any], Any], tasks: list[Any], queue: _Queue, me: int, conn: Any) -> None:
+    out = []
+    while (i := queue.take(me)) is not None:
+        out.append((i, fn(tasks[i])))
+        queue.finished()
+    conn.send(("results", out))
+
+
+def _helper(
+    queue: _Queue,
+    me: int,
+    conn: Any,
+    init: tuple[Any, ...],
+    first: tuple[Callable[[Any], Any], list[Any]] | None,
+    parse: Callable[[], Intake] | None,
+) -> None:
+    """A forked worker: the first phase's tasks, then its own parse pass if given, then the
+    phases the parent sends, until it says stop; results (or the error) go back by ``conn``."""
+    try:
+        _init_worker(*init)  # the same objects after a fork; copies where processes are spawned
+        if first is not None:
+            _run_phase(*first, queue, me, conn)
+        if parse is not None:
+            _W["steps"] = parse().steps
+        while True:
+            try:
+                msg = conn.recv()
+            except EOFError:  # the parent has closed its end
+                break
+            if msg[0] != "phase":
+                break
+            _run_phase(msg[1], msg[2], queue, me, conn)
+    except BaseException as e:  # handed to the parent, which raises it
+        try:
+            conn.send(("error", e))
+        except Exception:  # an error that cannot be pickled: its text
+            conn.send(("error", RuntimeError(f"a tuning worker failed: {e!r}")))
+    finally:
+        conn.close()
+
+
+_ENDED: list[Any] = []  # workers told to stop, not yet waited for
+
+
+def _reap(wait: bool = True) -> None:
+    """Wait for the workers told to stop (they are ending, if not ended); without ``wait``,
+    only for those already ended (the others at the next call, or when this process ends)."""
+    for p in list(_ENDED):
+        p.join(None if wait else 0)
+        if p.exitcode is not None:
+            _ENDED.remove(p)
 
 
 class _Workers:
-    """``workers`` processes forked once with the shared steps, or this process for 1.
+    """This process and ``workers - 1`` forked worker processes, for the phases of a run.
 
-    Fork hands the steps (and the cards) to each worker once, without copying or pickling
-    them per task: the workers start from the one parsed form. Each ``map`` is a phase;
-    both phases of a run (validating the settings, then running the jobs) use the same
-    workers.
+    The workers are forked once, at the start of a run, and each phase's tasks are dealt out
+    by a shared ``_Queue``; this process works too rather than wait, and only results come
+    back, once per worker and phase. With one worker everything runs in this process.
+
+    Forked before the parse (``parse`` given), each worker first runs the ``first`` phase (the
+    settings' validation, which needs no steps) while this process parses, then parses the
+    recording itself: its steps are its own from the start, so nothing is copied, pickled or
+    shared, and the other CPUs are not idle during this process's parse (the run's one serial
+    phase), which the workers do alongside. The parse is deterministic: every worker's steps
+    are the ones this process parses. Forked after it (``steps`` given), the workers share
+    this process's steps.
     """
 
     def __init__(
@@ -422,42 +536,117 @@ class _Workers:
         base_dir: Path,
         models: list[str] | None,
         checks: list[str] | None,
+        first: tuple[Callable[[Any], Any], list[Any]] | None = None,
+        parse: Callable[[], Intake] | None = None,
     ) -> None:
-        self._args = (steps, cards, str(base_dir), models, checks)
+        _reap(wait=False)
         self._n = workers
-        self._pool: Any = None
-        _init_worker(*self._args)  # for the in-process phases, and inherited by the workers
+        self._first = first
+        self._conns: list[tuple[Any, Any]] = []  # (process, this end of its pipe)
+        self._owed: list[int] = []  # per worker: results of past phases it took no task in, not read
+        init = (steps, cards, str(base_dir), models, checks)
+        _init_worker(*init)
+        if workers <= 1:
+            return
+        ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+        self._queue = _Queue(ctx, workers)
+        if first is not None:  # this process parses meanwhile: the workers share the first phase
+            self._queue.set([0, *_segments(list(range(len(first[1]))), workers - 1)])
+        for me in range(1, workers):
+            mine, theirs = ctx.Pipe()
+            p = ctx.Process(target=_helper, args=(self._queue, me, theirs, init, first, parse), daemon=True)
+            p.start()
+            theirs.close()
+            self._conns.append((p, mine))
+            self._owed.append(0)
+
+    def share(self, steps: list[Step]) -> None:
+        """The steps this process parsed, for the phases it runs itself."""
+        _W["steps"] = steps
 
     def __enter__(self) -> _Workers:
         return self
 
     def __exit__(self, *exc: object) -> None:
-        if self._pool is not None:
+        for p, conn in self._conns:
             if exc[0] is None:
-                self._pool.close()  # every task has its result: let the workers end
-            else:
-                self._pool.terminate()
-            self._pool.join()
+                try:
+                    conn.send(("stop",))
+                except OSError:  # it has ended
+                    pass
+            else:  # after an error here or in a worker: the others' results are not wanted
+                p.terminate()
+            conn.close()
+            # A worker's exit (its memory handed back) takes some milliseconds: not waited
+            # for; it is reaped once ended (``_reap``).
+            _ENDED.append(p)
+        self._conns.clear()
+        if exc[0] is not None:
+            _reap()
 
-    def map(
+    def _results(self, p: Any, conn: Any) -> list[tuple[int, Any]]:
+        try:
+            kind, body = conn.recv()
+        except EOFError:
+            p.join()
+            raise RuntimeError(f"a tuning worker ended without its results (exit code {p.exitcode})") from None
+        if kind == "error":
+            raise body
+        return body
+
+    def first(self) -> list[Any]:
+        """The results of the ``first`` phase, in task order."""
+        assert self._first is not None
+        fn, tasks = self._first
+        self._first = None
+        if self._n <= 1:
+            return [fn(t) for t in tasks]
+        return self._collect(fn, tasks)
+
+    def _collect(
         self, fn: Callable[[Any], Any], tasks: list[Any], progress: Callable[[int], None] | None = None
     ) -> list[Any]:
-        """``fn`` of every task, in the order they finish."""
-        out = []
-        if self._n <= 1 or len(tasks) <= 1:
+        results: dict[int, Any] = {}
+        reported = 0
+        while (i := self._queue.take(0)) is not None:
+            results[i] = fn(tasks[i])
+            done = self._queue.finished()
+            if progress:
+                progress(done - reported)
+                reported = done
+        for k, (p, conn) in enumerate(self._conns, 1):
+            if self._queue.taken(k) == 0:
+                # it took no task (still parsing, say): its empty results are not waited for
+                self._owed[k - 1] += 1
+                continue
+            while self._owed[k - 1]:
+                self._results(p, conn)
+                self._owed[k - 1] -= 1
+            results.update(self._results(p, conn))
+        if progress and len(tasks) > reported:
+            progress(len(tasks) - reported)
+        return [results[i] for i in range(len(tasks))]
+
+    def map(
+        self,
+        fn: Callable[[Any], Any],
+        tasks: list[Any],
+        progress: Callable[[int], None] | None = None,
+        groups: list[Any] | None = None,
+    ) -> list[Any]:
+        """``fn`` of every task, in task order. ``groups`` (a key per task) marks runs of
+        neighbouring tasks that are best run by one worker."""
+        if self._n <= 1:
+            out = []
             for task in tasks:
                 out.append(fn(task))
                 if progress:
                     progress(1)
             return out
-        if self._pool is None:
-            ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
-            self._pool = ctx.Pool(self._n, initializer=_init_worker, initargs=self._args)
-        for results in self._pool.imap_unordered(_batch, [(fn, b) for b in _batches(tasks, self._n)]):
-            out.extend(results)
-            if progress:
-                progress(len(results))
-        return out
+        self._queue.set(_segments(groups if groups is not None else list(range(len(tasks))), self._n))
+        for _, conn in self._conns:
+            conn.send(("phase", fn, tasks))
+        return self._collect(fn, tasks, progress)
 
 
 def evaluate_all(
@@ -472,7 +661,9 @@ def evaluate_all(
 ) -> dict[int, list[Mark]]:
     """Alerts of every job (index, config data); ``workers`` processes, or in-process for 1."""
     with _Workers(workers, steps, cards, base_dir, models, checks) as pool:
-        return dict(pool.map(_run_one, jobs, progress))
+        out = dict(pool.map(_run_one, jobs, progress))
+    _reap(wait=False)
+    return out
 
 
 # -- scoring ------------------------------------------------------------------------------------
@@ -679,9 +870,10 @@ def tune(
     """Evaluate every grid setting on a recording and rank them; see the module docstring.
 
     ``timings``, when given, receives the wall time in seconds of each phase: ``setup``
-    (config, cards, the grid), ``parse`` (the shared parse pass), ``workers`` (from the fork
-    to the last result: validating the settings, then the checks' runs), ``merge`` (scoring
-    and ranking, and the check recording if any).
+    (config, cards, the grid, starting the worker that validates the settings), ``parse``
+    (the shared parse pass, alongside that validation when there are several workers),
+    ``workers`` (from the parse to the last result: the validation in one worker, then the
+    checks' runs), ``merge`` (scoring and ranking, and the check recording if any).
     """
     clock = time.perf_counter
     t0 = clock()
@@ -716,9 +908,6 @@ def tune(
     # Settings replay the same windows and meet the same quantiles again: room for all of them
     # (about 170 bytes each, at most some megabytes), made before the workers fork.
     size_quantile_caches(TUNE_QUANTILE_CACHE_ENTRIES)
-    t1 = clock()
-    intake = intake_recording(cfg, cards, recording, tick_every)
-    t2 = clock()
     n_workers = max(1, workers if workers is not None else (os.cpu_count() or 1))
     done = 0
 
@@ -730,12 +919,28 @@ def tune(
 
     jobs: list[tuple[int, dict]] = []
     job_of: dict[tuple, int] = {}  # (check, the values of the grid keys that reach it) -> job
+    group_of: list[tuple] = []  # job -> (check, the values of the keys reaching it but the last)
     parts: dict[int, list[int]] = {}  # setting -> the jobs whose alerts make up its alerts
     invalid = []
     checked: dict[int, Checked] = {}
-    with _Workers(n_workers, intake.steps, cards, base_dir, models, checks) as pool:
-        # The settings are validated by the workers, each once, after the fork: in parallel.
-        for c in pool.map(_check_setting, [(s.index, data_of[s.index], s.label()) for s in settings]):
+    validation = [(s.index, data_of[s.index], s.label()) for s in settings]
+    with _Workers(
+        n_workers,
+        [],
+        cards,
+        base_dir,
+        models,
+        checks,
+        first=(_check_setting, validation),
+        parse=functools.partial(intake_recording, cfg, cards, recording, tick_every),
+    ) as pool:
+        # The parse pass is the run's one serial phase: the workers, forked before it,
+        # validate the settings (they need no steps) meanwhile, then parse for themselves.
+        t1 = clock()
+        intake = intake_recording(cfg, cards, recording, tick_every)
+        t2 = clock()
+        pool.share(intake.steps)
+        for c in pool.first():
             checked[c.index] = c
         for s in settings:
             c = checked[s.index]
@@ -751,13 +956,24 @@ def tune(
                 if key not in job_of:
                     job_of[key] = len(jobs)
                     jobs.append((len(jobs), only_checks(data_of[s.index], varied - {check} | fixed, models)))
+                    group_of.append(key[:1] + key[1][:-1])
                 parts[s.index].append(job_of[key])
         if not parts:
             raise ConfigError("no grid setting gives a valid config; first problem:\n" + invalid[0][1])
+        # Jobs of one check that differ only in the last grid key reaching it are neighbours
+        # that meet the same quantiles (in the default grid they differ in the gap tolerance,
+        # which changes no interval): kept together, one worker solves them once.
+        first: dict[tuple, int] = {}
+        for j, grp in enumerate(group_of):
+            first.setdefault(grp, j)
+        order = sorted(range(len(jobs)), key=lambda j: (first[group_of[j]], j))
+        jobs = [jobs[j] for j in order]
+        groups: list[Any] = [group_of[j] for j in order]
         if fixed:
             # the checks outside the grid: one more job, run alongside the settings
             jobs.insert(0, (_SHARED, only_checks(raw, varied, models)))
-        marks = dict(pool.map(_run_one, jobs, tick))
+            groups.insert(0, _SHARED)
+        marks = dict(pool.map(_run_one, jobs, tick, groups))
     t3 = clock()
     shared = marks.pop(_SHARED, [])
     with_inc = incidents is not None
@@ -786,6 +1002,7 @@ def tune(
         best.check_score = score(hm, check_incidents or [], hold.start, hold.end, g)
     if timings is not None:
         timings.update(setup=t1 - t0, parse=t2 - t1, workers=t3 - t2, merge=clock() - t3)
+    _reap(wait=False)
     return TuneResult(rows, best, with_inc, false_alert_budget, invalid, intake, cfg, raw, models, hold, checks)
 
 

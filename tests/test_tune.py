@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import functools
 import json
 import math
+import pickle
 import struct
+from pathlib import Path
 
 import pytest
 from typer.testing import CliRunner
@@ -14,6 +17,7 @@ from simulators.generate import simulate
 from simulators.scenario import load_scenario
 from simulators.tune import (
     Mark,
+    _Workers,
     apply_setting,
     evaluate_all,
     expand,
@@ -141,6 +145,59 @@ def test_two_workers_give_the_same_results_as_one(recordings):
     one = evaluate_all(jobs, intake.steps, cards, a.config.parent, None, workers=1)
     two = evaluate_all(jobs, intake.steps, cards, a.config.parent, None, workers=2)
     assert one == two and len(one) == 6
+
+
+def test_tune_gives_the_same_results_with_one_two_and_three_workers(recordings):
+    # three workers on two CPUs: the shared queue still hands out each job once, and every
+    # worker's own parse pass gives the steps this process parses
+    a, _ = recordings
+    grid = {"window.size_pairs": [60, 240], "checks.gap.confidence": [0.9, 0.99], "checks.shift.enabled": [True, False]}
+    runs = {n: tune(a.config, a.recording, load_incidents(a.incidents), grid=grid, workers=n) for n in (1, 2, 3)}
+    want = [(r.setting.index, r.marks, r.score.to_dict(), r.robust_false_alerts_per_day) for r in runs[1].rows]
+    for n in (2, 3):
+        assert [
+            (r.setting.index, r.marks, r.score.to_dict(), r.robust_false_alerts_per_day) for r in runs[n].rows
+        ] == want
+    assert len(want) == 8 and any(marks for _, marks, _, _ in want)
+
+
+def _steps_pickled(_: object) -> bytes:
+    from simulators.tune import _W
+
+    return pickle.dumps(_W["steps"])
+
+
+def test_workers_parsing_the_recording_alongside_give_the_serial_steps_exactly(recordings):
+    # the workers are forked before the parse pass and parse the recording themselves, in
+    # parallel with this process: each one's steps, pickled, are byte for byte the serial ones
+    a, _ = recordings
+    cfg = load_config(a.config)
+    cards = load_cards(cfg)
+    parse = functools.partial(intake_recording, cfg, cards, a.recording)
+    with _Workers(3, [], cards, a.config.parent, None, None, first=(_squared, [1, 2, 3]), parse=parse) as pool:
+        serial = intake_recording(cfg, cards, a.recording)
+        pool.share(serial.steps)
+        assert pool.first() == [1, 4, 9]
+        got = pool.map(_steps_pickled, list(range(12)))
+    want = pickle.dumps(serial.steps)
+    assert len(serial.steps) > 5_000 and got == [want] * 12
+
+
+def _squared(x: int) -> int:
+    if x == 7:
+        raise ValueError("task 7 fails")
+    return x * x
+
+
+def test_workers_hand_out_each_task_once_and_pass_an_error_on():
+    with _Workers(3, [], {}, Path("."), None, None) as pool:
+        tasks = list(range(40))
+        groups = [x // 6 for x in tasks]  # runs of neighbours, split only past a worker's share
+        kept = [x for x in tasks if x != 7]
+        assert pool.map(_squared, kept, groups=groups[:39]) == [x * x for x in kept]
+        assert pool.map(_squared, [3, 4]) == [9, 16]  # fewer tasks than workers
+        with pytest.raises(ValueError, match="task 7 fails"):
+            pool.map(_squared, tasks)
 
 
 def _raw(path):
