@@ -42,7 +42,14 @@ from watchdog_edge.core.checks.base import Check, CheckContext, CheckSettings, V
 from watchdog_edge.core.levels import RANK, LevelRule, level_above
 from watchdog_edge.core.losses import LossWindow
 from watchdog_edge.core.records import Pair
-from watchdog_edge.core.stats import LossInterval, chi2_ppf, f_ppf, loss_interval, window_span_level
+from watchdog_edge.core.stats import (
+    LossInterval,
+    chi2_ppf,
+    f_ppf,
+    loss_interval,
+    prewhitened_long_run_variance,
+    window_span_level,
+)
 
 FROM_DEPLOYMENT = "present from deployment"
 AFTER_HEALTHY = "appeared after a healthy period"
@@ -206,8 +213,14 @@ class GapCheck(Check[GapSettings]):
             if self._kappa_age >= 0:
                 self._kappa_age += 1
             # A crossing is looked at on the pair it happens (one comparison), not at the next
-            # multiple of evaluate_every_pairs.
-            burst = self._cusum > self._kappa * self.cusum_threshold and self._rule.level == "normal"
+            # multiple of evaluate_every_pairs, once kappa is known from a time at rest: before
+            # that each look measures kappa anew on the window at hand, which would cost an
+            # interval a pair while the sum rises.
+            burst = (
+                self._kappa_age >= 0
+                and self._cusum > self._kappa * self.cusum_threshold
+                and self._rule.level == "normal"
+            )
         if loss > self.gross_threshold:
             self._gross.append(self._seq)
             # A burst: evaluate now, not at the next multiple of evaluate_every_pairs.
@@ -233,7 +246,8 @@ class GapCheck(Check[GapSettings]):
         mean = self.window.mean()
         gross = self._gross_run() >= s.gross_min_pairs and mean > self.warning_limit * self.card_factor
         crossed = self._cusum > self._kappa * self.cusum_threshold
-        if self._since_eval < s.evaluate_every_pairs and not ((gross or crossed) and self._rule.level == "normal"):
+        early = gross or (crossed and self._kappa_age >= 0)  # looked at before the cadence (see on_pair)
+        if self._since_eval < s.evaluate_every_pairs and not (early and self._rule.level == "normal"):
             return None
         self._since_eval = 0
         self._evaluated = True
@@ -256,11 +270,13 @@ class GapCheck(Check[GapSettings]):
             # The lower bound never exceeds the mean, nor has the CUSUM passed kappa x its
             # threshold, so nothing can be raised: skip the interval, the costliest step.
             if kappa_due:
-                iv = self._interval()
-                self._kappa, self._kappa_age = self._kappa_of(iv), 0
-                self._store_figures(iv)
-            else:
-                self._stale = True
+                # the long-run variance alone, without the interval's quantiles (tune runs this
+                # for every setting)
+                arr = self.window.array()
+                m = float(arr.mean())
+                kappa = prewhitened_long_run_variance(arr) / (2.0 * m * m) if m > 0 else 1.0
+                self._kappa, self._kappa_age = max(1.0, kappa), 0
+            self._stale = True
             return None
         iv = self._interval()
         if kappa_due or (self._kappa_age < 0 and self.cusum_on):
