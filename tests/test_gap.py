@@ -433,3 +433,32 @@ def test_a_single_glitch_does_not_raise_through_the_cusum():
     burst = healthy[:800] + [1000.0] * 5 + healthy[800:]
     i, v = _first_raise(GapCheck(GapSettings(), ctx(size=500, min_pairs=100)), burst)
     assert i is not None and 800 <= i <= 804
+
+
+def test_a_restored_check_keeps_kappa_and_raises_where_the_uninterrupted_one_does():
+    # The agent restarts from its snapshot: kappa, measured at rest before the restart, and the
+    # CUSUM carry over (through JSON, as the store keeps them), so the rise after it is raised
+    # at the same pair with the same figures.
+    import json
+
+    card = ModelCard(
+        model_id="m", training={"loss": 1.0, "count": 5000}, fitted_parameters=5, holdout={"loss": 1.0, "count": 3000}
+    )
+    context = CheckContext("m", card, "squared", 1.0, "holdout", window_size=500, min_pairs=100)
+    rng = np.random.default_rng(31)
+    losses = list(rng.chisquare(1, 1500)) + list(2.5 * rng.chisquare(1, 500))
+    whole = GapCheck(GapSettings(), context)
+    i_whole, v_whole = _first_raise(whole, losses)
+    first = GapCheck(GapSettings(), context)
+    assert _first_raise(first, losses[:1520]) == (None, None)
+    assert first.snapshot()["kappa_age"] >= 0  # measured at rest before the restart
+    second = GapCheck(GapSettings(), context)
+    second.restore(json.loads(json.dumps(first.snapshot())))
+    assert second._kappa == first._kappa
+    for k, loss in enumerate(losses[1520:]):
+        [v] = feed(second, [loss], start=1520 + k) or [None]
+        if v is not None and v.level != "normal":
+            assert (1520 + k, v.figures) == (i_whole, v_whole.figures)
+            break
+    else:
+        raise AssertionError("the restored check never raised")
