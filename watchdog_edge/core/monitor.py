@@ -530,7 +530,8 @@ class Monitor:
                         if rejected is None:
                             continue
                         p = rejected
-                    # track.prediction(p, out) written out (p.t is t)
+                    # track.prediction(p, out) written out (p.t is t): a call and its argument
+                    # passing saved on every prediction, the replay's hottest path
                     v = p.model_version
                     if v is not None and v != track.version:
                         track._new_version(p, out)
