@@ -55,6 +55,11 @@ FROM_DEPLOYMENT = "present from deployment"
 AFTER_HEALTHY = "appeared after a healthy period"
 
 
+def _kappa(long_run_variance: float, mean: float) -> float:
+    """The losses' long-run variance over 2 mean^2 (chi-square's own), at least 1."""
+    return max(1.0, long_run_variance / (2.0 * mean * mean)) if mean > 0 else 1.0
+
+
 class GapSettings(CheckSettings):
     """Settings of ``gap``.
 
@@ -273,16 +278,14 @@ class GapCheck(Check[GapSettings]):
                 # the long-run variance alone, without the interval's quantiles (tune runs this
                 # for every setting)
                 arr = self.window.array()
-                m = float(arr.mean())
-                kappa = prewhitened_long_run_variance(arr) / (2.0 * m * m) if m > 0 else 1.0
-                self._kappa, self._kappa_age = max(1.0, kappa), 0
+                self._kappa, self._kappa_age = _kappa(prewhitened_long_run_variance(arr), float(arr.mean())), 0
             self._stale = True
             return None
         iv = self._interval()
         if kappa_due or (self._kappa_age < 0 and self.cusum_on):
             # Also when never measured at rest (a CUSUM that has not touched zero at an
             # evaluation since the start): the window at hand is then all there is.
-            self._kappa, self._kappa_age = self._kappa_of(iv), 0 if kappa_due else -1
+            self._kappa, self._kappa_age = _kappa(iv.n * iv.std_error**2, iv.mean), 0 if kappa_due else -1
             crossed = self._cusum > self._kappa * self.cusum_threshold
         # Evidence for the one level rule (core/levels.py): the lower bound (or a run of gross
         # errors with the live mean over the limit) raises; the live upper bound, against the
@@ -318,11 +321,6 @@ class GapCheck(Check[GapSettings]):
             self._figures["diagnosis"] = self._diagnosis
             self._figures["raised_by"] = self._raised_by
         return Verdict(level, self._summary(iv), dict(self._figures))
-
-    @staticmethod
-    def _kappa_of(iv: LossInterval) -> float:
-        """The window's long-run variance over 2 mean^2 (chi-square's own), at least 1."""
-        return max(1.0, iv.n * iv.std_error**2 / (2.0 * iv.mean**2)) if iv.mean > 0 else 1.0
 
     def _interval(self) -> LossInterval:
         self._stale = False
