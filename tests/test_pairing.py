@@ -88,6 +88,7 @@ class _Plain:
         self.truths: dict[str, float] = {}
         self.done: dict[str, float] = {}
         self.counts = dict.fromkeys(COUNTERS, 0)
+        self.recs: dict[tuple[bool, str], object] = {}  # (is a prediction, id) -> the record held
 
     def expire(self, now: float) -> None:
         for store, key in ((self.preds, "expired_predictions"), (self.truths, "expired_truths")):
@@ -98,21 +99,23 @@ class _Plain:
         for k in [k for k, t in self.done.items() if t + self.h < now]:
             del self.done[k]
 
-    def add(self, side: str, rid: str, t: float) -> bool:
+    def add(self, side: str, rid: str, t: float, rec: object = None) -> object:
+        """None when the record is held or dropped; else the waiting record it pairs with."""
         mine, other = (self.preds, self.truths) if side == "p" else (self.truths, self.preds)
         name = "predictions" if side == "p" else "truths"
         self.counts[name] += 1
         if rid in mine or rid in self.done:
             self.counts["duplicate_" + name] += 1
-            return False
+            return None
         if rid in other:
             del other[rid]
             self.counts["paired"] += 1
             self.done[rid] = t
             if len(self.done) > self.cap:
                 del self.done[next(iter(self.done))]
-            return True
+            return self.recs.pop((other is self.preds, rid))
         mine[rid] = t
+        self.recs[(side == "p", rid)] = rec
         while len(self.preds) + len(self.truths) > self.cap:
             op = min(self.preds.values(), default=None)
             ot = min(self.truths.values(), default=None)
@@ -122,17 +125,21 @@ class _Plain:
             else:
                 del self.truths[min(self.truths, key=self.truths.__getitem__)]
                 self.counts["evicted_truths"] += 1
-        return False
+        return None
 
 
 @settings(max_examples=300, deadline=None)
 # a record whose horizon ends at the very time of the next one, in floating point
-@example(steps=[("p", 0, 0.5976432851712189, True), ("t", 0, 20.0, True)], horizon=20.0, cap=8, restore_at=120)
+@example(
+    steps=[("p", 0, 0.5976432851712189, True, False), ("t", 0, 20.0, True, False)], horizon=20.0, cap=8, restore_at=120
+)
 # an expired prediction, still held by the lazy expiry, is found by its truth
-@example(steps=[("p", 0, 0.0, False), ("t", 0, 21.0, False)], horizon=20.0, cap=8, restore_at=120)
+@example(steps=[("p", 0, 0.0, False, True), ("t", 0, 21.0, False, True)], horizon=20.0, cap=8, restore_at=120)
 @given(
     steps=st.lists(
-        st.tuples(st.sampled_from("pt"), st.integers(0, 12), st.floats(0, 30), st.booleans()), min_size=1, max_size=120
+        st.tuples(st.sampled_from("pt"), st.integers(0, 12), st.floats(0, 30), st.booleans(), st.booleans()),
+        min_size=1,
+        max_size=120,
     ),
     horizon=st.sampled_from([5.0, 20.0, 1e9]),
     cap=st.integers(1, 8),
@@ -140,9 +147,11 @@ class _Plain:
 )
 def test_pairer_follows_the_plain_rules(steps, horizon, cap, restore_at):
     # The counts are read after some steps only: reading them brings the lazy expiry up to
-    # date, and between reads the records past their horizon must still never pair.
+    # date, and between reads the records past their horizon must still never pair. Each
+    # record has a value of its own, and some have every field: a pair must hold the very
+    # records that were added, also across a snapshot.
     p, plain, t = Pairer(horizon, cap), _Plain(horizon, cap), 0.0
-    for i, (side, rid, dt, look) in enumerate(steps):
+    for i, (side, rid, dt, look, full) in enumerate(steps):
         if i == restore_at:  # a snapshot taken mid-stream continues the same way
             q = Pairer(horizon, cap)
             q.restore(json.loads(json.dumps(p.snapshot())))
@@ -151,9 +160,21 @@ def test_pairer_follows_the_plain_rules(steps, horizon, cap, restore_at):
         if t > p.due:  # as the core calls it
             p.expire(t)
         plain.expire(t)
-        rec = P(rid, t) if side == "p" else T(rid, t)
-        got = p.add_prediction(rec) if side == "p" else p.add_truth(rec)
-        assert (got is not None) == plain.add(side, str(rid), t)
+        if side == "p":
+            rec = P(rid, t, v=float(i))
+            if full:
+                rec.ts, rec.features, rec.model_version = t - 1.0, {"a": float(-i), "b": None}, f"v{i}"
+            got = p.add_prediction(rec)
+        else:
+            rec = T(rid, t, v=float(-i))
+            if full:
+                rec.ts, rec.model = t - 0.5, "other"
+            got = p.add_truth(rec)
+        other = plain.add(side, str(rid), t, rec)
+        assert (got is not None) == (other is not None)
+        if got is not None:
+            assert got.t == t
+            assert (got.prediction, got.truth) == ((other, rec) if side == "t" else (rec, other))
         if look:
             assert p.counts == plain.counts and p.pending == len(plain.preds) + len(plain.truths)
     assert p.counts == plain.counts and p.pending == len(plain.preds) + len(plain.truths)

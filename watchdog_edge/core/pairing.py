@@ -27,26 +27,19 @@ COUNTERS = (
 )
 
 
-def _fields(p: Prediction) -> tuple:
-    """A waiting prediction's fields: (id, value, t, ts, features or None, version, model)."""
-    # No features as None, not {}: a tuple holding a dict, even an empty one, stays tracked.
-    return (p.id, p.value, p.t, p.ts, p.features or None, p.model_version, p.model)
+def _prediction(model: str | None, pid: str, value: float, t: float, more: tuple | None) -> Prediction:
+    """A waiting prediction built again; ``more`` is (ts, features or None, version, model) or None."""
+    if more is None:  # the short form: nothing but id, value and time, of the pairer's model
+        return Prediction(model or "", pid, value, t)
+    ts, features, version, own_model = more
+    return Prediction(own_model, pid, value, t, ts, {} if features is None else features, version)
 
 
-# The id stays in the tuple although it is the dict's key: a paired id is kept (in the done
-# set and the queue) as the very text object the prediction brought, not a second copy, and a
-# 3-tuple takes the same 64 bytes as a 2-tuple.
-def _prediction(fields: tuple, model: str | None) -> Prediction:
-    if len(fields) == 3:  # the short form: nothing but id, value and time
-        return Prediction(model or "", fields[0], fields[1], fields[2])
-    pid, value, t, ts, features, version, model = fields
-    return Prediction(model, pid, value, t, ts, {} if features is None else features, version)
-
-
-def _truth(fields: tuple, model: str | None) -> Truth:
-    if len(fields) == 3:
-        return Truth(model or "", fields[0], fields[1], fields[2])
-    return Truth(fields[4], *fields[:4])
+def _truth(model: str | None, tid: str, value: float, t: float, more: tuple | None) -> Truth:
+    """A waiting truth built again; ``more`` is (ts, model) or None."""
+    if more is None:
+        return Truth(model or "", tid, value, t)
+    return Truth(more[1], tid, value, t, more[0])
 
 
 # Queue entries already taken from the front before the front is cut off. Until then they
@@ -58,24 +51,28 @@ _CUT_AT = 256
 # about 3 % more records held, for expiry in batches (see Pairer.expire).
 _SLACK = 1 / 32
 
-# A paired id's entry in the predictions' dict; index 2 (a waiting record's time) matches no time.
-PAIRED: tuple = ("", None, None)
+# A paired id's entry in the predictions' dict: no arrival number is negative.
+PAIRED = -1
 
 
 class _Arrivals:
-    """Ids and core times in arrival order, taken from the front by moving ``head``.
+    """Ids, core times and values in arrival order, taken from the front by moving ``head``.
 
-    The times are doubles in an array, not float objects in a deque: 8 bytes an entry
-    instead of 32, which matters for the ids kept a whole horizon (every paired id, and
-    the queue entries of records that paired) -- measured in bench/replay_throughput.py.
+    An entry's arrival number is ``base`` plus its index: the stores map a waiting record's id
+    to that number, and its time and value are read here. Times and values are doubles in
+    arrays, not float objects: 8 bytes each instead of 24 and a 64-byte tuple to hold them,
+    which matters for the records kept a whole horizon -- measured in
+    bench/replay_throughput.py. The queue of paired ids keeps no values.
     """
 
-    __slots__ = ("ids", "ts", "head")
+    __slots__ = ("ids", "ts", "values", "head", "base")
 
     def __init__(self) -> None:
         self.ids: list[str] = []
         self.ts = array("d")
+        self.values = array("d")
         self.head = 0
+        self.base = 0  # the arrival number of ids[0]
 
     def __len__(self) -> int:
         return len(self.ts) - self.head
@@ -86,12 +83,17 @@ class _Arrivals:
         if h >= _CUT_AT or (h and h * 2 >= len(self.ts)):
             del self.ids[:h]
             del self.ts[:h]
+            if len(self.values):
+                del self.values[:h]
+            self.base += h
             self.head = 0
 
     def clear(self) -> None:
         self.ids.clear()
         del self.ts[:]
+        del self.values[:]
         self.head = 0
+        self.base = 0
 
     def items(self) -> list[tuple[str, float]]:
         h = self.head
@@ -101,22 +103,21 @@ class _Arrivals:
 class Pairer:
     """Holds unpaired records of one model.
 
-    A waiting record is kept as a plain tuple of its fields rather than as the record object:
-    a tuple of numbers and text is not tracked by Python's garbage collector once it has been
-    seen, so thousands of records waiting for a late truth add nothing to each collection's
-    work (about a sixth of replay's time when they were objects). The record is built again
-    when it pairs or is written to a snapshot. A record with nothing but id, value and time
-    (of the pairer's model) is kept as ``(id, value, t)``, 32 bytes less than all its fields.
+    A waiting record is kept as an entry in its side's queue (id, time, value) and, in a dict
+    by id, its arrival number: no object of its own, so thousands of records waiting for a late
+    truth cost about 150 bytes each (226 as a tuple of float objects) and add nothing to the
+    garbage collector's work. Fields beyond id, value and time (source time, features, model
+    version, another model), rare in practice, are kept in a dict of their own. The record is
+    built again when it pairs or is written to a snapshot.
 
-    Each store is a plain dict by id beside a queue of ids and core times in arrival order
-    (which is core-time order): expiry and eviction take from the front of the queues. A
-    record that pairs leaves the dict and its queue entry stays until it reaches the front,
-    where it is recognised as gone and skipped. A paired id stays in the predictions' dict
-    as ``PAIRED`` for the horizon after its pairing (with a queue of its own): one lookup
-    finds a duplicate of either kind, and the id costs a dict entry and no second text. What the pairer holds is bounded by the
-    horizon (or the cap): with a long horizon and a model whose truths never come, that is
-    every prediction of the horizon, and every paired id of the horizon is kept to count
-    duplicates.
+    Expiry and eviction take from the front of the queues, which are in arrival (core-time)
+    order. A record that pairs leaves its dict and its queue entry stays until it reaches the
+    front, where it is recognised as gone (its id maps to another number, or to none) and
+    skipped. A paired id stays in the predictions' dict as ``PAIRED`` for the horizon after its
+    pairing (with a queue of its own): one lookup finds a duplicate of either kind, and the id
+    costs a dict entry and no second text. What the pairer holds is bounded by the horizon (or
+    the cap): with a long horizon and a model whose truths never come, that is every
+    prediction of the horizon, and every paired id of the horizon is kept to count duplicates.
 
     >>> p = Pairer(horizon_s=60, max_unpaired=100)
     >>> p.add_truth(Truth("m", "7", 1.5, t=10.0)) is None
@@ -128,24 +129,28 @@ class Pairer:
     # slots: the attributes sit in the object itself, one memory read fewer each, which
     # counts when many models take turns and their objects are out of the cache
     __slots__ = (
-        "horizon_s", "max_unpaired", "model", "_preds", "_truths", "_pred_q", "_truth_q", "_done", "_done_q",
-        "_expiring", "_counts", "due", "now", "_slack", "late", "_pred_add", "_truth_add", "_done_add",
+        "horizon_s", "max_unpaired", "model", "_preds", "_truths", "_pred_q", "_truth_q", "_pred_more",
+        "_truth_more", "_done", "_done_q", "_expiring", "_counts", "due", "now", "_slack", "late", "_pred_add",
+        "_truth_add", "_done_add",
     )  # fmt: skip
 
     def __init__(self, horizon_s: float, max_unpaired: int, model: str | None = None) -> None:
         self.horizon_s = float(horizon_s)
         self.max_unpaired = int(max_unpaired)
         self.model = model  # the model of records kept in the short form (else the first one's)
-        # id -> the record's fields; index 2 is its core time ``t``
-        self._preds: dict[str, tuple] = {}
-        self._truths: dict[str, tuple] = {}
+        # id -> the waiting record's arrival number in its queue (PAIRED in _preds: paired)
+        self._preds: dict[str, int] = {}
+        self._truths: dict[str, int] = {}
         self._pred_q = _Arrivals()
         self._truth_q = _Arrivals()
+        # id -> the fields beyond id, value and time, for records that have any
+        self._pred_more: dict[str, tuple] = {}
+        self._truth_more: dict[str, tuple] = {}
         self._done = 0  # paired ids in ``_preds`` as PAIRED, for the horizon after their pairing
         self._done_q = _Arrivals()
         self._expiring = (
-            (self._preds, self._pred_q, "expired_predictions"),
-            (self._truths, self._truth_q, "expired_truths"),
+            (self._preds, self._pred_q, self._pred_more, "expired_predictions"),
+            (self._truths, self._truth_q, self._truth_more, "expired_truths"),
         )
         self._counts = dict.fromkeys(COUNTERS, 0)
         self.due = float("inf")  # no record can expire before this core time
@@ -161,8 +166,10 @@ class Pairer:
         self.late = math.inf  # due + the slack: expire for real past this
         # bound appends of the queues, for the per-record path (the queues are only ever
         # changed in place, so these stay theirs)
-        self._pred_add = (self._pred_q.ids.append, self._pred_q.ts.append)
-        self._truth_add = (self._truth_q.ids.append, self._truth_q.ts.append)
+        q = self._pred_q
+        self._pred_add = (q.ids.append, q.ts.append, q.values.append)
+        q = self._truth_q
+        self._truth_add = (q.ids.append, q.ts.append, q.values.append)
         self._done_add = (self._done_q.ids.append, self._done_q.ts.append)
 
     @property
@@ -192,24 +199,28 @@ class Pairer:
                 return None
         truths = self._truths
         if truths:  # mostly empty: truths come after their predictions
-            truth = truths.get(pid)
-            if truth is not None and truth[2] + self.horizon_s < self.now:
+            n = truths.get(pid)
+            if n is not None and self._truth_q.ts[n - self._truth_q.base] + self.horizon_s < self.now:
                 self._expire(self.now)  # it has expired: count it so
-                truth = truths.get(pid)
-            if truth is not None:
+                n = truths.get(pid)
+            if n is not None:
                 del truths[pid]
-                return self._pair(pid, p, _truth(truth, self.model), p.t)
-        # _fields(p) written out: this runs for every prediction
+                q = self._truth_q
+                j = n - q.base
+                more = self._truth_more.pop(pid, None) if self._truth_more else None
+                return self._pair(pid, p, _truth(self.model, pid, q.values[j], q.ts[j], more), p.t)
+        # stored in place (see _keep): this runs for every prediction
         t = p.t
-        if p.ts is None and p.model_version is None and not p.features and p.model == self.model:
-            preds[pid] = (pid, p.value, t)
-        else:
+        q = self._pred_q
+        preds[pid] = q.base + len(q.ts)
+        if p.ts is not None or p.model_version is not None or p.features or p.model != self.model:
             if self.model is None:
                 self.model = p.model
-            preds[pid] = (pid, p.value, t, p.ts, p.features or None, p.model_version, p.model)
-        add_id, add_t = self._pred_add
+            self._pred_more[pid] = (p.ts, p.features or None, p.model_version, p.model)
+        add_id, add_t, add_value = self._pred_add
         add_id(pid)
         add_t(t)
+        add_value(p.value)
         end = t + self.horizon_s
         if end < self.due:
             self.due = end
@@ -222,27 +233,33 @@ class Pairer:
         """Store a truth, or pair it with a waiting prediction."""
         self._counts["truths"] += 1
         tid = tr.id
-        pred = self._preds.get(tid)
+        n = self._preds.get(tid)
         if self.now > self.due and (
-            tid in self._truths or (pred is not None and (pred is PAIRED or pred[2] + self.horizon_s < self.now))
+            tid in self._truths
+            or (n is not None and (n < 0 or self._pred_q.ts[n - self._pred_q.base] + self.horizon_s < self.now))
         ):
             self._expire(self.now)  # what was found may have expired: expire for real and look again
-            pred = self._preds.get(tid)
-        if pred is PAIRED or tid in self._truths:
+            n = self._preds.get(tid)
+        if (n is not None and n < 0) or tid in self._truths:
             self._counts["duplicate_truths"] += 1
             return None
-        if pred is not None:
-            return self._pair(pred[0], _prediction(pred, self.model), tr, tr.t)
+        if n is not None:
+            q = self._pred_q
+            j = n - q.base
+            pid = q.ids[j]  # the very text the prediction brought, kept as the paired id
+            more = self._pred_more.pop(pid, None) if self._pred_more else None
+            return self._pair(pid, _prediction(self.model, pid, q.values[j], q.ts[j], more), tr, tr.t)
         t = tr.t
-        if tr.ts is None and tr.model == self.model:
-            self._truths[tid] = (tid, tr.value, t)
-        else:
+        q = self._truth_q
+        self._truths[tid] = q.base + len(q.ts)
+        if tr.ts is not None or tr.model != self.model:
             if self.model is None:
                 self.model = tr.model
-            self._truths[tid] = (tid, tr.value, t, tr.ts, tr.model)
-        add_id, add_t = self._truth_add
+            self._truth_more[tid] = (tr.ts, tr.model)
+        add_id, add_t, add_value = self._truth_add
         add_id(tid)
         add_t(t)
+        add_value(tr.value)
         end = t + self.horizon_s
         if end < self.due:
             self.due = end
@@ -273,14 +290,13 @@ class Pairer:
         return Pair(p, tr, t)
 
     @staticmethod
-    def _front(store: dict[str, tuple], q: _Arrivals) -> float | None:
+    def _front(store: dict[str, int], q: _Arrivals) -> float | None:
         """Core time of the oldest record still in ``store``; queue entries of records gone are dropped."""
-        ids, ts, i, n = q.ids, q.ts, q.head, len(q.ts)
+        ids, base, i, n = q.ids, q.base, q.head, len(q.ts)
         while i < n:
-            rec = store.get(ids[i])
-            if rec is not None and rec[2] == ts[i]:
+            if store.get(ids[i]) == base + i:
                 q.head = i
-                return ts[i]
+                return q.ts[i]
             i += 1
         q.head = i
         q.cut()
@@ -294,10 +310,13 @@ class Pairer:
             op = self._front(self._preds, self._pred_q)
             ot = self._front(self._truths, self._truth_q)
             if ot is None or (op is not None and op <= ot):
-                q, store, key = self._pred_q, self._preds, "evicted_predictions"
+                q, store, more, key = self._pred_q, self._preds, self._pred_more, "evicted_predictions"
             else:
-                q, store, key = self._truth_q, self._truths, "evicted_truths"
-            del store[q.ids[q.head]]
+                q, store, more, key = self._truth_q, self._truths, self._truth_more, "evicted_truths"
+            rid = q.ids[q.head]
+            del store[rid]
+            if more:
+                more.pop(rid, None)
             q.head += 1
             q.cut()
             self._counts[key] += 1
@@ -318,24 +337,25 @@ class Pairer:
             return
         # "expired" is t + horizon < now, the very sum that ``due`` holds: written as
         # t < now - horizon it could differ from ``due`` in the last bit
-        # Runs for most records of a steady stream (each one moves ``due``): a queue is only
-        # walked when its front has expired, and the new ``due`` is taken on the way.
+        # A queue is only walked when its front has expired, and the new ``due`` is taken on
+        # the way.
         h = self.horizon_s
         first = math.inf
-        for store, q, key in self._expiring:
+        for store, q, more, key in self._expiring:
             ts = q.ts
             i, end = q.head, len(ts)
             if i < end and ts[i] + h < now:
-                ids = q.ids
+                ids, base = q.ids, q.base
                 n = 0
                 while i < end:
                     ti = ts[i]  # read once: each read of an array of doubles makes a float
                     if not ti + h < now:
                         break
                     rid = ids[i]
-                    rec = store.get(rid)
-                    if rec is not None and rec[2] == ti:  # else it paired, or was evicted, already
+                    if store.get(rid) == base + i:  # else it paired, or was evicted, already
                         del store[rid]
+                        if more:
+                            more.pop(rid, None)
                         n += 1
                     i += 1
                 q.head = i
@@ -380,28 +400,43 @@ class Pairer:
         if self.now > self.due:
             self._expire(self.now)
         model = self.model
+        pq, tq = self._pred_q, self._truth_q
+        pmore, tmore = self._pred_more, self._truth_more
+        preds = [
+            _prediction(model, pid, pq.values[n - pq.base], pq.ts[n - pq.base], pmore.get(pid))
+            for pid, n in self._preds.items()
+            if n >= 0
+        ]
+        truths = [
+            _truth(model, tid, tq.values[n - tq.base], tq.ts[n - tq.base], tmore.get(tid))
+            for tid, n in self._truths.items()
+        ]
         return {
-            "preds": [asdict(_prediction(f, model)) for f in self._preds.values() if f is not PAIRED],
-            "truths": [asdict(_truth(f, model)) for f in self._truths.values()],
+            "preds": [asdict(p) for p in preds],
+            "truths": [asdict(tr) for tr in truths],
             "done": self._done_q.items(),
             "counts": dict(self._counts),
         }
 
     def restore(self, data: dict[str, Any]) -> None:
         # in place: _expiring holds these very stores and queues
-        for store, q, _ in self._expiring:
+        for store, q, mores, _ in self._expiring:
             store.clear()
             q.clear()
+            mores.clear()
         self._done = 0
         self._done_q.clear()
         self.now = -math.inf  # as after an eager expiry: nothing is past its horizon until asked
-        # the records go through add_*, which keeps each in its form; counts are restored after
+        # each record is kept in its form; counts are restored after
         for d in data["preds"]:
             p = Prediction(**d)
-            self._store(self._preds, self._pred_q, _fields(p), p.model)
+            more = (p.ts, p.features or None, p.model_version, p.model)
+            self._keep(self._preds, self._pred_q, self._pred_more, p.id, p.value, p.t, more, p.model)
         for d in data["truths"]:
             tr = Truth(**d)
-            self._store(self._truths, self._truth_q, (tr.id, tr.value, tr.t, tr.ts, tr.model), tr.model)
+            self._keep(
+                self._truths, self._truth_q, self._truth_more, tr.id, tr.value, tr.t, (tr.ts, tr.model), tr.model
+            )
         for k, t in data["done"]:
             self._preds[k] = PAIRED
             self._done += 1
@@ -410,13 +445,16 @@ class Pairer:
         self._counts.update(data["counts"])
         self._set_due()
 
-    def _store(self, store: dict[str, tuple], q: _Arrivals, fields: tuple, model: str) -> None:
-        """Keep a restored record, in its short form when it has nothing else."""
+    def _keep(
+        self, store: dict[str, int], q: _Arrivals, mores: dict[str, tuple], rid: str, value: float, t: float,
+        more: tuple, model: str,
+    ) -> None:  # fmt: skip
+        """Keep a restored record; its further fields only when it has any (``more[0]`` is its ts)."""
         if self.model is None:
             self.model = model
-        short = (
-            fields[3] is None and model == self.model and (len(fields) == 5 or (not fields[4] and fields[5] is None))
-        )
-        store[fields[0]] = fields[:3] if short else fields
-        q.ids.append(fields[0])
-        q.ts.append(fields[2])
+        if more[0] is not None or model != self.model or any(v is not None for v in more[1:-1]):
+            mores[rid] = more
+        store[rid] = q.base + len(q.ts)
+        q.ids.append(rid)
+        q.ts.append(t)
+        q.values.append(value)
