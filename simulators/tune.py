@@ -411,6 +411,10 @@ class _Queue:
     checks meet the same quantiles (see ``tune``): taking from the back keeps a stolen group
     with the thief and the front of the run with its owner, so a group is rarely solved twice,
     and the workers still finish within one task of each other, even when one starts late.
+
+    Each phase has a number, and a worker takes only from the phase it was told of: one that
+    comes late to a phase the parent has already finished alone (and set the next) would
+    otherwise take the next phase's tasks and send them back as the old phase's results.
     """
 
     def __init__(self, ctx: Any, workers: int) -> None:
@@ -418,20 +422,26 @@ class _Queue:
         self._bounds = ctx.RawArray("q", 2 * workers)
         self._taken = ctx.RawArray("q", workers)  # tasks each worker took in this phase
         self._done = ctx.RawValue("q", 0)
+        self._phase = ctx.RawValue("q", 0)
         self._lock = ctx.Lock()
 
-    def set(self, starts: list[int]) -> None:
-        """A new phase: worker k's run is tasks ``starts[k]`` to ``starts[k + 1]``."""
+    def set(self, starts: list[int]) -> int:
+        """A new phase, and its number: worker k's run is tasks ``starts[k]`` to ``starts[k + 1]``."""
         with self._lock:
             for k in range(self.workers):
                 self._bounds[2 * k], self._bounds[2 * k + 1] = starts[k], starts[k + 1]
                 self._taken[k] = 0
             self._done.value = 0
+            self._phase.value += 1
+            return int(self._phase.value)
 
-    def take(self, me: int) -> int | None:
-        """The index of the next task for worker ``me``, or None when every task is taken."""
+    def take(self, me: int, phase: int) -> int | None:
+        """The index of the next task of ``phase`` for worker ``me``; None when every task is
+        taken, or when that phase is over."""
         b = self._bounds
         with self._lock:
+            if self._phase.value != phase:
+                return None
             lo, hi = b[2 * me], b[2 * me + 1]
             if lo < hi:
                 b[2 * me] = lo + 1
@@ -459,9 +469,9 @@ class _Queue:
             return int(self._done.value)
 
 
-def _run_phase(fn: Callable[[Any], Any], tasks: list[Any], queue: _Queue, me: int, conn: Any) -> None:
+def _run_phase(fn: Callable[[Any], Any], tasks: list[Any], phase: int, queue: _Queue, me: int, conn: Any) -> None:
     out = []
-    while (i := queue.take(me)) is not None:
+    while (i := queue.take(me, phase)) is not None:
         out.append((i, fn(tasks[i])))
         queue.finished()
     conn.send(("results", out))
@@ -472,11 +482,18 @@ def _helper(
     me: int,
     conn: Any,
     init: tuple[Any, ...],
-    first: tuple[Callable[[Any], Any], list[Any]] | None,
+    first: tuple[Callable[[Any], Any], list[Any], int] | None,
     parse: Callable[[], Intake] | None,
+    siblings: list[Any],
 ) -> None:
     """A forked worker: the first phase's tasks, then its own parse pass if given, then the
-    phases the parent sends, until it says stop; results (or the error) go back by ``conn``."""
+    phases the parent sends, until it says stop; results (or the error) go back by ``conn``.
+
+    ``siblings`` are the parent's ends of the pipes of the workers forked before this one:
+    this copy of them is closed at once, so that a pipe ends when the parent closes it.
+    """
+    for other in siblings:
+        other.close()
     try:
         _init_worker(*init)  # the same objects after a fork; copies where processes are spawned
         if first is not None:
@@ -490,7 +507,7 @@ def _helper(
                 break
             if msg[0] != "phase":
                 break
-            _run_phase(msg[1], msg[2], queue, me, conn)
+            _run_phase(msg[1], msg[2], msg[3], queue, me, conn)
     except BaseException as e:  # handed to the parent, which raises it
         try:
             conn.send(("error", e))
@@ -542,6 +559,7 @@ class _Workers:
         _reap(wait=False)
         self._n = workers
         self._first = first
+        self._first_phase = 0  # the first phase's number in the queue
         self._conns: list[tuple[Any, Any]] = []  # (process, this end of its pipe)
         self._owed: list[int] = []  # per worker: results of past phases it took no task in, not read
         init = (steps, cards, str(base_dir), models, checks)
@@ -550,11 +568,17 @@ class _Workers:
             return
         ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
         self._queue = _Queue(ctx, workers)
+        first_phase = None
         if first is not None:  # this process parses meanwhile: the workers share the first phase
-            self._queue.set([0, *_segments(list(range(len(first[1]))), workers - 1)])
+            phase = self._queue.set([0, *_segments(list(range(len(first[1]))), workers - 1)])
+            first_phase = (*first, phase)
+            self._first_phase = phase
         for me in range(1, workers):
             mine, theirs = ctx.Pipe()
-            p = ctx.Process(target=_helper, args=(self._queue, me, theirs, init, first, parse), daemon=True)
+            siblings = [c for _, c in self._conns]
+            p = ctx.Process(
+                target=_helper, args=(self._queue, me, theirs, init, first_phase, parse, siblings), daemon=True
+            )
             p.start()
             theirs.close()
             self._conns.append((p, mine))
@@ -568,11 +592,16 @@ class _Workers:
         return self
 
     def __exit__(self, *exc: object) -> None:
-        for p, conn in self._conns:
+        for k, (p, conn) in enumerate(self._conns):
             if exc[0] is None:
+                # The empty results of phases it took no task in are read first: unread, a
+                # long run of them fills the pipe and the worker waits on it for ever.
                 try:
+                    while self._owed[k]:
+                        self._results(p, conn)
+                        self._owed[k] -= 1
                     conn.send(("stop",))
-                except OSError:  # it has ended
+                except Exception:  # it has ended (or failed after the run had every result)
                     pass
             else:  # after an error here or in a worker: the others' results are not wanted
                 p.terminate()
@@ -601,14 +630,14 @@ class _Workers:
         self._first = None
         if self._n <= 1:
             return [fn(t) for t in tasks]
-        return self._collect(fn, tasks)
+        return self._collect(fn, tasks, self._first_phase)
 
     def _collect(
-        self, fn: Callable[[Any], Any], tasks: list[Any], progress: Callable[[int], None] | None = None
+        self, fn: Callable[[Any], Any], tasks: list[Any], phase: int, progress: Callable[[int], None] | None = None
     ) -> list[Any]:
         results: dict[int, Any] = {}
         reported = 0
-        while (i := self._queue.take(0)) is not None:
+        while (i := self._queue.take(0, phase)) is not None:
             results[i] = fn(tasks[i])
             done = self._queue.finished()
             if progress:
@@ -643,10 +672,10 @@ class _Workers:
                 if progress:
                     progress(1)
             return out
-        self._queue.set(_segments(groups if groups is not None else list(range(len(tasks))), self._n))
+        phase = self._queue.set(_segments(groups if groups is not None else list(range(len(tasks))), self._n))
         for _, conn in self._conns:
-            conn.send(("phase", fn, tasks))
-        return self._collect(fn, tasks, progress)
+            conn.send(("phase", fn, tasks, phase))
+        return self._collect(fn, tasks, phase, progress)
 
 
 def evaluate_all(

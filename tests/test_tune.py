@@ -17,6 +17,7 @@ from simulators.generate import simulate
 from simulators.scenario import load_scenario
 from simulators.tune import (
     Mark,
+    _Queue,
     _Workers,
     apply_setting,
     evaluate_all,
@@ -198,6 +199,27 @@ def test_workers_hand_out_each_task_once_and_pass_an_error_on():
         assert pool.map(_squared, [3, 4]) == [9, 16]  # fewer tasks than workers
         with pytest.raises(ValueError, match="task 7 fails"):
             pool.map(_squared, tasks)
+
+
+def test_a_worker_late_to_a_phase_takes_nothing_of_the_next():
+    # A worker that reaches a phase after this process has done it alone and set the next
+    # phase must take nothing: else it sends the next phase's tasks back as the old phase's
+    # results, which are read and dropped, and the next phase lacks them.
+    import multiprocessing as mp
+
+    q = _Queue(mp.get_context(), 3)
+    old = q.set([0, 1, 2, 2])
+    new = q.set([0, 1, 2, 2])
+    assert new != old
+    assert q.take(1, old) is None and q.taken(1) == 0
+    assert q.take(1, new) == 1 and q.take(0, new) == 0 and q.take(2, new) is None
+
+
+def test_many_short_phases_in_a_row_lose_no_result():
+    # fewer tasks than workers, phase after phase: workers often come late to a phase
+    with _Workers(3, [], {}, Path("."), None, None) as pool:
+        for k in range(300):
+            assert pool.map(_squared, [k % 7 + 8, 3]) == [(k % 7 + 8) ** 2, 9]
 
 
 def _raw(path):
